@@ -1,0 +1,106 @@
+"""Decode once: keep transformed blocks in memory, or in an uncompressed scratch file.
+
+Decompressing chunks can cost more than the arithmetic, so the first pass that reads the
+source stores the transformed blocks, and later passes read them back: from memory when
+they fit the budget, else from a scratch file read with ordinary positioned reads into
+fresh buffers (no memory map, so no file pages count towards resident memory).
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import shutil
+import tempfile
+import threading
+from pathlib import Path
+
+import numpy as np
+
+__all__ = ["BlockCache"]
+
+logger = logging.getLogger(__name__)
+
+
+class BlockCache:
+    """Row blocks of an ``n × p`` matrix stored once and read back many times.
+
+    Parameters
+    ----------
+    mode : {"memory", "scratch"}
+    n_rows, n_cols : int
+    dtype : numpy.dtype
+    scratch_dir : path, optional
+        Parent of the temporary scratch directory (``mode="scratch"``).
+    """
+
+    def __init__(self, mode: str, n_rows: int, n_cols: int, dtype, scratch_dir: Path | None = None):
+        self.mode = mode
+        self.shape = (n_rows, n_cols)
+        self.dtype = np.dtype(dtype)
+        self.row_bytes = n_cols * self.dtype.itemsize
+        self._blocks: dict[int, np.ndarray] = {}
+        self._lock = threading.Lock()
+        self._dir: str | None = None
+        self._fd: int | None = None
+        if mode == "scratch":
+            self._dir = tempfile.mkdtemp(prefix="axiscope-scratch-", dir=scratch_dir)
+            path = os.path.join(self._dir, "blocks.bin")
+            self._fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_TRUNC, 0o600)
+            self.path = Path(path)
+
+    @property
+    def nbytes(self) -> int:
+        return self.shape[0] * self.row_bytes
+
+    def put(self, start: int, block: np.ndarray) -> None:
+        """Store rows ``start .. start + len(block)``."""
+        block = np.ascontiguousarray(block, dtype=self.dtype)
+        if self.mode == "memory":
+            with self._lock:
+                self._blocks[start] = block
+            return
+        view = memoryview(block).cast("B")
+        offset = start * self.row_bytes
+        while view.nbytes:
+            written = os.pwrite(self._fd, view, offset)
+            view, offset = view[written:], offset + written
+
+    def get(self, start: int, stop: int) -> np.ndarray:
+        """Rows ``start .. stop`` as a fresh array (blocks are read back as they were put)."""
+        if self.mode == "memory":
+            return self._blocks[start]
+        out = np.empty((stop - start, self.shape[1]), dtype=self.dtype)
+        view = memoryview(out).cast("B")
+        offset = start * self.row_bytes
+        while view.nbytes:
+            got = os.preadv(self._fd, [view], offset)
+            if got == 0:
+                raise OSError(f"scratch file {self.path} ended early at byte {offset}")
+            view, offset = view[got:], offset + got
+        return out
+
+    def close(self) -> None:
+        """Free the blocks and remove the scratch directory."""
+        self._blocks.clear()
+        if self._fd is not None:
+            os.close(self._fd)
+            self._fd = None
+        if self._dir is not None:
+            shutil.rmtree(self._dir, ignore_errors=True)
+            self._dir = None
+
+    def __enter__(self) -> "BlockCache":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+
+def scratch_has_room(scratch_dir: Path | None, nbytes: int) -> bool:
+    """Whether the scratch location has ``nbytes`` free, with 5% to spare."""
+    where = scratch_dir if scratch_dir is not None else Path(tempfile.gettempdir())
+    try:
+        return shutil.disk_usage(where).free >= nbytes * 1.05
+    except OSError:
+        return False

@@ -1,0 +1,317 @@
+"""Factorisation engine: randomized SVD of an implicitly centred and scaled matrix.
+
+The engine sees a row-chunked Dask array ``X`` (samples × features, values already
+transformed) plus the centre ``μ`` and inverse scale ``d`` of each feature, and factorises
+
+    X̃ = (X − 1·μᵀ)·diag(d)
+
+without forming ``X̃``: every product is taken block by block as
+``X_b·(d∘W) − 1·(μᵀ(d∘W))`` and ``d∘(X_bᵀY_b − μ·(1ᵀY))``.
+
+Randomized path (Halko, Martinsson & Tropp 2011, "Finding structure with randomness",
+SIAM Review 53(2), doi:10.1137/090771806, algorithms 4.4 and 5.1): subspace iteration on
+the Gram form ``X̃ᵀX̃`` in feature space. One read of a block yields both ``Y_b = X̃_b·Q`` and
+``X̃_bᵀ·Y_b``, so each power iteration costs one pass over the data; ``Q`` is
+re-orthonormalised (QR, float64) after every pass so float32 never overflows. The final
+pass computes ``X̃·Q`` only; the small SVD of that ``n × l`` matrix gives scores and loadings
+(Rayleigh–Ritz). With ``power_iterations="auto"`` iterations continue until the leading
+Ritz values change by less than ``tol`` (relative) between two passes.
+"""
+
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass, field
+
+import dask.array as da
+import numpy as np
+import scipy.linalg
+
+from .passes import PassRunner
+
+__all__ = ["Factorization", "randomized_factorization", "exact_factorization", "orient_signs"]
+
+logger = logging.getLogger(__name__)
+
+#: Number of Gaussian probes for the a-posteriori error estimate (failure probability 10**-r).
+N_PROBES = 10
+#: Largest number of power iterations taken by ``power_iterations="auto"``.
+MAX_AUTO_ITERATIONS = 30
+
+
+@dataclass
+class Factorization:
+    """Leading singular triplets of the preprocessed matrix ``X̃`` (``n × p``).
+
+    Attributes
+    ----------
+    singular_values : ndarray, shape (k,)
+    components : ndarray, shape (p, k)
+        Right singular vectors (unit-norm feature directions, the loadings).
+    scores : ndarray, shape (n, k)
+        Left singular vectors times singular values (``X̃ · components``).
+    row_sq_norms : ndarray, shape (n,)
+        Squared distance of each sample to the centre, ``‖x̃_i‖²``.
+    method : str
+    power_iterations : int
+    converged : bool
+    ritz_change : float
+        Largest relative change of the leading singular values in the last iteration.
+    residual_bound : float
+        Probabilistic upper bound on ``‖X̃ − X̃·Q·Qᵀ‖₂`` (Halko et al. 2011, §4.3, with
+        probability at least ``1 − 10**-10``); NaN for the exact path (where it is the
+        ``(k+1)``-th singular value).
+    """
+
+    singular_values: np.ndarray
+    components: np.ndarray
+    scores: np.ndarray
+    row_sq_norms: np.ndarray
+    method: str
+    power_iterations: int = 0
+    converged: bool = True
+    ritz_change: float = 0.0
+    residual_bound: float = float("nan")
+    ritz_history: list = field(default_factory=list)
+
+
+def orient_signs(components: np.ndarray, scores: np.ndarray) -> None:
+    """Orient each axis so that its largest-magnitude loading is positive (in place).
+
+    Ties between equal magnitudes go to the first feature.
+    """
+    idx = np.argmax(np.abs(components), axis=0)
+    signs = np.sign(components[idx, np.arange(components.shape[1])])
+    signs[signs == 0] = 1.0
+    components *= signs
+    scores *= signs
+
+
+def _filled(block: np.ndarray, fill: np.ndarray | None) -> np.ndarray:
+    if fill is None:
+        return block
+    bad = ~np.isfinite(block)
+    if bad.any():
+        block = np.where(bad, fill.astype(block.dtype), block)
+    return block
+
+
+def _products(block, W, offset, mean, d, fill, want_gram, want_norms):
+    """Block products ``Y_b = X̃_b·W'`` (and ``X_bᵀ·Y_b``, ``‖x̃_i‖²``) for one block."""
+    block = _filled(block, fill)
+    y = (block @ W).astype(np.float64)
+    y -= offset
+    gram = None
+    if want_gram:
+        gram = (block.T @ y.astype(block.dtype, copy=False)).astype(np.float64)
+    norms = None
+    if want_norms:
+        centred = (block - mean.astype(block.dtype)) * d.astype(block.dtype)
+        norms = np.einsum("ij,ij->i", centred, centred, dtype=np.float64)
+    return y, gram, norms
+
+
+@dataclass
+class _Operator:
+    """Implicit ``X̃ = (X − 1μᵀ)·diag(d)`` over a row-chunked Dask array."""
+
+    X: da.Array
+    mean: np.ndarray
+    d: np.ndarray
+    fill: np.ndarray | None
+    runner: PassRunner
+    source: str
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return self.X.shape
+
+    def apply(self, W: np.ndarray, *, gram: bool, norms: bool, name: str):
+        """One pass: ``X̃·W`` (n × m), optionally ``X̃ᵀ·X̃·W`` (p × m) and ``‖x̃_i‖²``."""
+        n, p = self.shape
+        dw = self.d[:, None] * W
+        offset = self.mean @ dw
+        W_cast = dw.astype(self.X.dtype)
+        Y = np.empty((n, W.shape[1]))
+        acc = {"gram": np.zeros((p, W.shape[1])) if gram else None}
+        row_norms = np.empty(n) if norms else None
+
+        def fold(result, index, start):
+            y, g, r = result
+            Y[start : start + y.shape[0]] = y
+            if g is not None:
+                acc["gram"] += g
+            if r is not None:
+                row_norms[start : start + y.shape[0]] = r
+
+        self.runner.run(
+            name, self.source, self.X, _products,
+            fold, W_cast, offset, self.mean, self.d, self.fill, gram, norms,
+        )
+        Z = None
+        if gram:
+            Z = self.d[:, None] * (acc["gram"] - np.outer(self.mean, Y.sum(axis=0)))
+        return Y, Z, row_norms
+
+
+def randomized_factorization(
+    X: da.Array,
+    mean: np.ndarray,
+    inverse_scale: np.ndarray,
+    *,
+    n_components: int,
+    oversample: int = 10,
+    power_iterations: int | str = "auto",
+    tol: float = 1e-7,
+    rng: np.random.Generator,
+    start: np.ndarray | None = None,
+    fill: np.ndarray | None = None,
+    runner: PassRunner | None = None,
+    source: str = "data",
+) -> Factorization:
+    """Leading ``n_components`` singular triplets of ``X̃`` by randomized subspace iteration.
+
+    Parameters
+    ----------
+    X : dask.array.Array, shape (n, p)
+        Transformed values, chunked along rows only (each chunk holds whole rows).
+    mean, inverse_scale : ndarray, shape (p,)
+        Centre ``μ`` and inverse scale ``d`` of each column (``d = 0`` drops a column).
+    n_components : int
+    oversample : int, default=10
+        Extra dimensions of the sketch, ``l = n_components + oversample``.
+    power_iterations : int or "auto", default="auto"
+        Passes of subspace iteration after the first sketch. ``"auto"`` stops when the
+        leading singular values change by less than ``tol`` (relative) between passes,
+        after at most ``MAX_AUTO_ITERATIONS``.
+    tol : float, default=1e-7
+    rng : numpy.random.Generator
+        Source of the Gaussian test matrices.
+    start : ndarray of shape (p, l), optional
+        ``X̃ᵀX̃·Ω`` for some test matrix ``Ω`` when the caller obtained it in an earlier
+        pass (fused with the statistics pass); otherwise one pass computes it.
+    fill : ndarray of shape (p,), optional
+        Value replacing non-finite cells of each column.
+    runner : PassRunner, optional
+        Records passes and reports progress.
+
+    Returns
+    -------
+    Factorization
+
+    Notes
+    -----
+    Passes over the data: one for the first sketch (none when ``start`` is given), one per
+    power iteration, one final. Memory: ``O((n + p)·l)`` float64 plus the blocks in flight.
+    """
+    runner = runner or PassRunner()
+    n, p = X.shape
+    l = min(n_components + oversample, min(n, p))
+    op = _Operator(X, np.asarray(mean, float), np.asarray(inverse_scale, float), fill, runner, source)
+
+    if start is None:
+        omega = rng.standard_normal((p, l))
+        _, Z, _ = op.apply(omega, gram=True, norms=False, name="sketch")
+    else:
+        Z = start
+    Q = _orthonormal(Z)
+
+    auto = power_iterations == "auto"
+    max_iter = MAX_AUTO_ITERATIONS if auto else int(power_iterations)
+    history: list[np.ndarray] = []
+    previous = None
+    change = np.inf
+    iterations = 0
+    converged = not auto
+    while iterations < max_iter:
+        Y, Z, _ = op.apply(Q, gram=True, norms=False, name=f"power iteration {iterations + 1}")
+        iterations += 1
+        ritz = np.sqrt(np.maximum(np.linalg.eigvalsh(Y.T @ Y)[::-1][:n_components], 0.0))
+        history.append(ritz)
+        if previous is not None:
+            change = float(np.max(np.abs(ritz - previous) / np.maximum(ritz, np.finfo(float).tiny)))
+        previous = ritz
+        Q = _orthonormal(Z)
+        if auto and change < tol:
+            converged = True
+            break
+
+    probes = rng.standard_normal((p, N_PROBES))
+    Y, _, row_norms = op.apply(np.hstack([Q, probes]), gram=False, norms=True, name="final")
+    Y, Yp = Y[:, :l], Y[:, l:]
+    U, s, Wt = scipy.linalg.svd(Y, full_matrices=False, lapack_driver="gesdd")
+    k = n_components
+    components = Q @ Wt[:k].T
+    scores = U[:, :k] * s[:k]
+    residual = Yp - Y @ (Q.T @ probes)
+    bound = 10.0 * np.sqrt(2.0 / np.pi) * float(np.max(np.linalg.norm(residual, axis=0)))
+    orient_signs(components, scores)
+    if auto and not converged:
+        logger.warning(
+            "power iterations stopped after %d passes with a relative change of %.1e "
+            "(tolerance %.0e); raise --power-iterations or --oversample for more accuracy",
+            iterations, change, tol,
+        )
+    return Factorization(
+        singular_values=s[:k].copy(),
+        components=components,
+        scores=scores,
+        row_sq_norms=row_norms,
+        method="randomized",
+        power_iterations=iterations,
+        converged=converged,
+        ritz_change=float(change) if np.isfinite(change) else float("nan"),
+        residual_bound=bound,
+        ritz_history=[h.tolist() for h in history],
+    )
+
+
+def exact_factorization(
+    X: da.Array,
+    mean: np.ndarray,
+    inverse_scale: np.ndarray,
+    *,
+    n_components: int,
+    fill: np.ndarray | None = None,
+    runner: PassRunner | None = None,
+    source: str = "data",
+) -> Factorization:
+    """Leading singular triplets of ``X̃`` by LAPACK (``gesdd``) on the whole matrix.
+
+    For small inputs only: holds ``X̃`` in float64 (``8·n·p`` bytes). One pass.
+    """
+    runner = runner or PassRunner()
+    n, p = X.shape
+    mean = np.asarray(mean, float)
+    d = np.asarray(inverse_scale, float)
+    dense = np.empty((n, p))
+
+    def task(block):
+        block = _filled(block, fill)
+        return (block.astype(np.float64) - mean) * d
+
+    def fold(result, index, start):
+        dense[start : start + result.shape[0]] = result
+
+    runner.run("exact", source, X, task, fold)
+    row_norms = np.einsum("ij,ij->i", dense, dense)
+    U, s, Vt = scipy.linalg.svd(dense, full_matrices=False, lapack_driver="gesdd")
+    k = n_components
+    components = Vt[:k].T.copy()
+    scores = U[:, :k] * s[:k]
+    orient_signs(components, scores)
+    residual = float(s[k]) if s.shape[0] > k else 0.0
+    return Factorization(
+        singular_values=s[:k].copy(),
+        components=components,
+        scores=scores,
+        row_sq_norms=row_norms,
+        method="exact",
+        residual_bound=residual,
+    )
+
+
+def _orthonormal(Z: np.ndarray) -> np.ndarray:
+    """Orthonormal basis of the columns of ``Z`` (economic QR, float64)."""
+    Q, _ = scipy.linalg.qr(Z, mode="economic", check_finite=False)
+    return Q

@@ -1,0 +1,71 @@
+"""Memory budgets: parsing sizes such as ``512MB`` and sizing blocks of samples from a budget."""
+
+from __future__ import annotations
+
+import os
+import re
+
+from .errors import OptionError
+
+__all__ = ["parse_memory", "default_memory_limit", "format_bytes"]
+
+_UNITS = {
+    "": 1,
+    "B": 1,
+    "KB": 10**3,
+    "MB": 10**6,
+    "GB": 10**9,
+    "TB": 10**12,
+    "KIB": 2**10,
+    "MIB": 2**20,
+    "GIB": 2**30,
+    "TIB": 2**40,
+    "K": 10**3,
+    "M": 10**6,
+    "G": 10**9,
+    "T": 10**12,
+}
+_PATTERN = re.compile(r"^\s*([0-9]*\.?[0-9]+(?:[eE][+-]?[0-9]+)?)\s*([A-Za-z]*)\s*$")
+
+
+def parse_memory(text: str | int | float) -> int:
+    """Parse a memory size such as ``"512MB"``, ``"4GB"``, ``"1.5GiB"`` or a number of bytes.
+
+    Decimal units (KB, MB, GB, TB) are powers of 1000, binary units (KiB, MiB, GiB, TiB)
+    powers of 1024.
+    """
+    if isinstance(text, (int, float)):
+        value, unit = float(text), ""
+    else:
+        match = _PATTERN.match(text)
+        if match is None or match.group(2).upper() not in _UNITS:
+            raise OptionError(
+                f"memory limit {text!r} is not a size; write it like 512MB, 4GB or 1.5GiB"
+            )
+        value, unit = float(match.group(1)), match.group(2).upper()
+    size = int(value * _UNITS[unit])
+    if size < 16 * 2**20:
+        raise OptionError(f"memory limit {text!r} is below the minimum of 16MB; raise it")
+    return size
+
+
+def total_memory() -> int:
+    """Physical memory of this machine in bytes."""
+    try:
+        return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (ValueError, OSError, AttributeError):  # pragma: no cover - non-POSIX
+        return 8 * 2**30
+
+
+def default_memory_limit() -> int:
+    """Half of the physical memory: room for the operating system's page cache and other work."""
+    return total_memory() // 2
+
+
+def format_bytes(n: float) -> str:
+    """Human-readable size with decimal units (``1.2 GB``)."""
+    for unit in ("B", "KB", "MB", "GB", "TB"):
+        if abs(n) < 1000 or unit == "TB":
+            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
+        n /= 1000
+    return f"{n:.1f} TB"  # pragma: no cover

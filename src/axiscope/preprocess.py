@@ -1,0 +1,281 @@
+"""Lazy preprocessing: per-sample transforms, streaming feature statistics, feature selection.
+
+The preprocessed matrix is never materialised. A block of samples ``X_b`` goes through the
+per-sample transform ``f`` (total normalisation, then ``log1p``); the centred and scaled
+matrix ``X̃ = (f(X) − 1·μᵀ)·diag(d)`` enters the engine only through block products,
+with ``d = 1/σ`` for kept features and ``d = 0`` for dropped ones.
+"""
+
+from __future__ import annotations
+
+import logging
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+
+from .errors import OptionError
+
+__all__ = [
+    "SCALES",
+    "MISSING",
+    "PreprocessSpec",
+    "BlockStats",
+    "FeatureStatistics",
+    "Preprocessing",
+    "transform_block",
+    "block_statistics",
+    "first_nonfinite",
+]
+
+logger = logging.getLogger(__name__)
+
+SCALES = ("unit", "none", "binomial")
+MISSING = ("error", "mean")
+
+
+@dataclass(frozen=True)
+class PreprocessSpec:
+    """What to do to the matrix before the factorisation.
+
+    Parameters
+    ----------
+    center : bool, default=True
+        Subtract each feature's mean.
+    scale : {"unit", "none", "binomial"}, default="unit"
+        ``unit``: divide each feature by its population standard deviation (1/n), so every
+        feature weighs the same (standardized PCA). ``none``: covariance PCA.
+        ``binomial``: genotype dosages coded 0/1/2, divided by ``sqrt(2p(1−p))`` with
+        ``p = mean/2`` (Patterson, Price & Reich 2006, doi:10.1371/journal.pgen.0020190).
+    log1p : bool, default=False
+        Replace each value ``x`` by ``log(1 + x)`` (after total normalisation).
+    normalize_total : float or None, default=None
+        Rescale each sample so that its values sum to this total (counts per T) before
+        ``log1p``.
+    min_variance : float or None, default=None
+        Drop features whose variance (after the transforms, before scaling) is below this.
+    top_variable : int or None, default=None
+        Keep only the ``top_variable`` features of largest variance.
+    missing : {"error", "mean"}, default="error"
+        NaN or infinite cells are an error, or are replaced by the feature mean.
+    """
+
+    center: bool = True
+    scale: str = "unit"
+    log1p: bool = False
+    normalize_total: float | None = None
+    min_variance: float | None = None
+    top_variable: int | None = None
+    missing: str = "error"
+
+    def __post_init__(self) -> None:
+        if self.scale not in SCALES:
+            raise OptionError(f"--scale {self.scale!r} is not one of {', '.join(SCALES)}")
+        if self.missing not in MISSING:
+            raise OptionError(f"--missing {self.missing!r} is not one of {', '.join(MISSING)}")
+        if self.normalize_total is not None and not self.normalize_total > 0:
+            raise OptionError(f"--normalize-total must be positive, got {self.normalize_total}")
+        if self.min_variance is not None and self.min_variance < 0:
+            raise OptionError(f"--min-variance must be >= 0, got {self.min_variance}")
+        if self.top_variable is not None and self.top_variable < 2:
+            raise OptionError(f"--top-variable must be at least 2, got {self.top_variable}")
+
+    @property
+    def has_filter(self) -> bool:
+        """Whether features are selected by a statistic (beyond dropping constant ones)."""
+        return self.min_variance is not None or self.top_variable is not None
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+
+def transform_block(block: np.ndarray, spec: PreprocessSpec) -> np.ndarray:
+    """Apply the per-sample transforms of ``spec`` to a block of samples, in its own dtype.
+
+    The block is modified in place when a transform applies; callers pass fresh blocks.
+    """
+    if spec.normalize_total is not None:
+        totals = np.nansum(block, axis=1, dtype=np.float64)
+        factors = np.where(totals > 0, spec.normalize_total / np.where(totals > 0, totals, 1), 0)
+        block *= factors.astype(block.dtype)[:, None]
+    if spec.log1p:
+        np.log1p(block, out=block)
+    return block
+
+
+def first_nonfinite(block: np.ndarray) -> tuple[int, int] | None:
+    """Row and column of the first NaN or infinite cell of a block, or None."""
+    bad = ~np.isfinite(block)
+    if not bad.any():
+        return None
+    rows, cols = np.nonzero(bad)
+    return int(rows[0]), int(cols[0])
+
+
+@dataclass
+class BlockStats:
+    """Per-feature statistics of a set of samples, mergeable (Chan, Golub & LeVeque 1983).
+
+    ``count`` is the number of finite values per feature, ``mean`` their mean, ``m2`` the
+    sum of squared deviations from that mean; all in float64.
+    """
+
+    n_samples: int
+    count: np.ndarray
+    mean: np.ndarray
+    m2: np.ndarray
+    nonzero: np.ndarray
+    n_nonfinite: int = 0
+
+    def merge(self, other: "BlockStats") -> "BlockStats":
+        """Combine with the statistics of disjoint samples (pairwise update, stable)."""
+        count = self.count + other.count
+        safe = np.maximum(count, 1)
+        delta = other.mean - self.mean
+        mean = self.mean + delta * (other.count / safe)
+        m2 = self.m2 + other.m2 + delta**2 * (self.count * other.count / safe)
+        return BlockStats(
+            self.n_samples + other.n_samples,
+            count,
+            mean,
+            m2,
+            self.nonzero + other.nonzero,
+            self.n_nonfinite + other.n_nonfinite,
+        )
+
+
+def block_statistics(block: np.ndarray) -> BlockStats:
+    """Statistics of one block of (transformed) samples; non-finite cells are skipped."""
+    x = block.astype(np.float64, copy=True)
+    finite = np.isfinite(x)
+    n_bad = int(x.size - np.count_nonzero(finite))
+    if n_bad:
+        x[~finite] = np.nan
+        count = finite.sum(axis=0).astype(np.float64)
+        mean = np.where(count > 0, np.nansum(x, axis=0) / np.maximum(count, 1), 0.0)
+        x -= mean
+        x[~finite] = 0.0
+    else:
+        count = np.full(x.shape[1], float(x.shape[0]))
+        mean = x.mean(axis=0)
+        x -= mean
+    m2 = np.einsum("ij,ij->j", x, x)
+    nonzero = np.count_nonzero(block, axis=0).astype(np.int64)
+    return BlockStats(block.shape[0], count, mean, m2, nonzero, n_bad)
+
+
+@dataclass
+class FeatureStatistics:
+    """Per-feature statistics over all samples after the transforms (float64).
+
+    ``variance`` is the population variance (divided by the number of samples); cells
+    imputed by the mean add nothing to it.
+    """
+
+    n_samples: int
+    mean: np.ndarray
+    variance: np.ndarray
+    count: np.ndarray
+    nonzero: np.ndarray
+    n_missing: int
+
+    @classmethod
+    def from_block_stats(cls, stats: BlockStats) -> "FeatureStatistics":
+        return cls(
+            n_samples=stats.n_samples,
+            mean=stats.mean,
+            variance=stats.m2 / stats.n_samples,
+            count=stats.count,
+            nonzero=stats.nonzero,
+            n_missing=stats.n_nonfinite,
+        )
+
+
+@dataclass
+class Preprocessing:
+    """Fitted preprocessing: which features are kept and the centre and scale of each.
+
+    Attributes
+    ----------
+    spec : PreprocessSpec
+    kept : ndarray of int, shape (n_kept,)
+        Indices of the kept features among all the input's features.
+    mean : ndarray, shape (n_kept,)
+        Centre of each kept feature (zero when ``spec.center`` is false).
+    scale : ndarray, shape (n_kept,)
+        Divisor of each kept feature (population standard deviation for ``unit``,
+        ``sqrt(2p(1−p))`` for ``binomial``, 1 for ``none``).
+    std : ndarray, shape (n_kept,)
+        Population standard deviation of each kept feature after the transforms.
+    dropped : dict
+        Number of features dropped for each reason.
+    """
+
+    spec: PreprocessSpec
+    kept: np.ndarray
+    mean: np.ndarray
+    scale: np.ndarray
+    std: np.ndarray
+    dropped: dict = field(default_factory=dict)
+
+    @property
+    def inverse_scale(self) -> np.ndarray:
+        return 1.0 / self.scale
+
+    @property
+    def total_inertia(self) -> float:
+        """Sum of the variances of the preprocessed features (trace of the covariance)."""
+        centred_var = self.std**2
+        if not self.spec.center:
+            centred_var = centred_var + self.mean_raw**2
+        return float(np.sum(centred_var / self.scale**2))
+
+    mean_raw: np.ndarray = field(default_factory=lambda: np.empty(0))
+
+    @classmethod
+    def from_statistics(cls, spec: PreprocessSpec, stats: FeatureStatistics) -> "Preprocessing":
+        """Choose the kept features and their centre and scale from streaming statistics."""
+        mean, var = stats.mean, np.maximum(stats.variance, 0.0)
+        p = mean.shape[0]
+        keep = np.ones(p, dtype=bool)
+        dropped: dict[str, int] = {}
+        eps = np.finfo(np.float32).eps
+        constant = var <= (eps * np.maximum(np.abs(mean), 1.0)) ** 2
+        if spec.scale == "binomial":
+            freq = mean / 2.0
+            binom = 2.0 * freq * (1.0 - freq)
+            constant |= binom <= 0
+        if spec.scale != "none" or spec.center:
+            if constant.any():
+                dropped["constant"] = int(constant.sum())
+            keep &= ~constant
+        if spec.min_variance is not None:
+            low = keep & (var < spec.min_variance)
+            if low.any():
+                dropped["min_variance"] = int(low.sum())
+            keep &= ~low
+        if spec.top_variable is not None and keep.sum() > spec.top_variable:
+            candidates = np.flatnonzero(keep)
+            order = np.argsort(-var[candidates], kind="stable")
+            chosen = np.zeros(p, dtype=bool)
+            chosen[candidates[order[: spec.top_variable]]] = True
+            dropped["top_variable"] = int(keep.sum() - spec.top_variable)
+            keep = chosen
+        kept = np.flatnonzero(keep)
+        std = np.sqrt(var[kept])
+        if spec.scale == "unit":
+            scale = std.copy()
+        elif spec.scale == "binomial":
+            freq = mean[kept] / 2.0
+            scale = np.sqrt(2.0 * freq * (1.0 - freq))
+        else:
+            scale = np.ones(kept.shape[0])
+        centre = mean[kept] if spec.center else np.zeros(kept.shape[0])
+        return cls(
+            spec=spec,
+            kept=kept,
+            mean=centre,
+            scale=scale,
+            std=std,
+            dropped=dropped,
+            mean_raw=mean[kept].copy(),
+        )

@@ -1,0 +1,89 @@
+"""Atomic output directories and table writers."""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import shutil
+import tempfile
+from collections.abc import Iterator
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .errors import OptionError
+
+__all__ = ["atomic_directory", "write_table", "write_json", "ZARR_FEATURE_THRESHOLD"]
+
+#: Above this many features, per-feature tables are also written as Zarr arrays with ids.
+ZARR_FEATURE_THRESHOLD = 200_000
+
+
+def check_target(out: Path, overwrite: bool) -> None:
+    """Refuse an existing output directory unless ``overwrite``."""
+    out = Path(out)
+    if out.exists() and not overwrite:
+        raise OptionError(f"{out}: already exists; choose another --out or pass --overwrite")
+    if out.exists() and not out.is_dir():
+        raise OptionError(f"{out}: exists and is not a directory; choose another --out")
+
+
+@contextlib.contextmanager
+def atomic_directory(out: Path, *, overwrite: bool = False) -> Iterator[Path]:
+    """Yield a temporary directory beside ``out``; move it to ``out`` only on success.
+
+    A failed or interrupted run leaves neither ``out`` nor the temporary directory.
+    """
+    out = Path(out)
+    check_target(out, overwrite)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.tmp-", dir=out.parent))
+    try:
+        yield tmp
+        if out.exists():
+            old = out.with_name(f".{out.name}.old-{os.getpid()}")
+            os.replace(out, old)
+            os.replace(tmp, out)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.replace(tmp, out)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+
+
+def write_table(df: pd.DataFrame, path: Path, *, parquet: bool = False) -> None:
+    """Write a tab-separated table (and a Parquet copy when asked)."""
+    df.to_csv(path, sep="\t", index=False, float_format="%.8g")
+    if parquet:
+        df.to_parquet(Path(path).with_suffix(".parquet"), index=False)
+
+
+def write_json(obj: dict, path: Path) -> None:
+    import json
+
+    Path(path).write_text(json.dumps(obj, indent=2, default=_json_default) + "\n")
+
+
+def _json_default(value):
+    if isinstance(value, np.generic):
+        return value.item()
+    if isinstance(value, np.ndarray):
+        return value.tolist()
+    if isinstance(value, Path):
+        return str(value)
+    raise TypeError(f"not JSON serialisable: {type(value).__name__}")
+
+
+def write_zarr_matrix(path: Path, values: np.ndarray, row_ids: np.ndarray, columns: list[str]) -> None:
+    """A 2-D Zarr array ``values`` with row ids and column names, as a Zarr v3 group."""
+    import zarr
+
+    group = zarr.open_group(str(path), mode="w")
+    arr = group.create_array("values", shape=values.shape, dtype=values.dtype,
+                             chunks=(min(values.shape[0], 65536), values.shape[1]))
+    arr[:] = values
+    ids = group.create_array("row_ids", shape=(len(row_ids),), dtype=str)
+    ids[:] = np.asarray(row_ids, dtype=str)
+    group.attrs["columns"] = list(columns)
