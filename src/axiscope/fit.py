@@ -105,6 +105,8 @@ def plan_blocks(
         )
     rows = int(min(room // (window * row_bytes), _MAX_BLOCK_BYTES // max(1, n_features * itemsize)))
     rows = max(min_rows, min(rows, n_samples))
+    if n_samples >= 512:  # enough blocks to keep every thread busy
+        rows = min(rows, -(-n_samples // (2 * threads)))
     if sample_chunk and rows >= sample_chunk:
         rows = (rows // sample_chunk) * sample_chunk
     cache_bytes = n_samples * cache_features * itemsize
@@ -197,6 +199,52 @@ class FitResult:
         return pd.DataFrame(rows, columns=["axis", "direction", "rank", "feature_id", "loading"])
 
 
+    def write(self, directory: Path, *, top: int = 25, parquet: bool = False,
+              command_line: list[str] | None = None) -> None:
+        """Write the tables, the model and the manifest into an existing directory.
+
+        Callers wanting atomic output wrap this in :func:`axiscope.writers.atomic_directory`.
+        """
+        from .writers import ZARR_FEATURE_THRESHOLD, write_json, write_table, write_zarr_matrix
+
+        directory = Path(directory)
+        directory.mkdir(parents=True, exist_ok=True)
+        write_table(self.components_table(), directory / "components.tsv", parquet=parquet)
+        write_table(self.sample_scores(), directory / "sample_scores.tsv", parquet=parquet)
+        loadings = self.feature_loadings()
+        write_table(loadings, directory / "feature_loadings.tsv", parquet=parquet)
+        if loadings.shape[0] > ZARR_FEATURE_THRESHOLD:
+            write_zarr_matrix(directory / "feature_loadings.zarr", self.model.components,
+                              self.model.feature_ids, self.axis_names)
+        write_table(self.top_features(top), directory / "top_features.tsv", parquet=parquet)
+        dropped = np.setdiff1d(np.arange(self.input_feature_ids.shape[0]), self.preprocessing.kept)
+        if dropped.size:
+            write_table(self.dropped_features(), directory / "dropped_features.tsv")
+        self.model.save(directory / "model")
+        manifest = dict(self.manifest)
+        if command_line is not None:
+            manifest["command_line"] = command_line
+        write_json(manifest, directory / "manifest.json")
+
+    def dropped_features(self) -> pd.DataFrame:
+        """Features left out of the axes, with the reason and their statistics."""
+        stats, prep = self.statistics, self.preprocessing
+        dropped = np.setdiff1d(np.arange(self.input_feature_ids.shape[0]), prep.kept)
+        eps = np.finfo(np.float32).eps
+        const = stats.variance[dropped] <= (eps * np.maximum(np.abs(stats.mean[dropped]), 1.0)) ** 2
+        if prep.spec.scale == "binomial":
+            f = stats.mean[dropped] / 2
+            const |= 2 * f * (1 - f) <= 0
+        return pd.DataFrame(
+            {
+                "feature_id": self.input_feature_ids[dropped],
+                "reason": np.where(const, "constant", "filtered"),
+                "mean": stats.mean[dropped],
+                "variance": stats.variance[dropped],
+            }
+        )
+
+
 def fit(
     source: MatrixSource | str | os.PathLike,
     *,
@@ -204,7 +252,7 @@ def fit(
     preprocess: PreprocessSpec | None = None,
     oversample: int = 10,
     power_iterations: int | str = "auto",
-    tol: float = 1e-7,
+    tol: float = 1e-6,
     method: str = "auto",
     seed: int | np.random.Generator = 0,
     memory_limit: int | str | None = None,
@@ -232,7 +280,7 @@ def fit(
     oversample : int, default=10
     power_iterations : int or "auto", default="auto"
         See :func:`axiscope.engine.randomized_factorization`.
-    tol : float, default=1e-7
+    tol : float, default=1e-6
         Relative change of the leading singular values that stops ``"auto"`` iterations.
     method : {"auto", "randomized", "exact"}, default="auto"
         ``exact`` holds the preprocessed matrix in memory and calls LAPACK; ``auto`` does
@@ -428,6 +476,11 @@ def _fit(src, spec, k, oversample, power_iterations, tol, method, rng, budget, t
         total_inertia=prep.total_inertia,
         n_input_features=p_all,
         info={"method": fac.method},
+        extras={
+            "input_feature_ids": np.asarray(src.feature_ids, dtype=str),
+            "feature_mean": prep.mean_raw,
+            "training_sq_dist": fac.row_sq_norms,
+        },
     )
     t_total = time.perf_counter() - t_start
     manifest = {

@@ -38,7 +38,7 @@ import numpy as np
 
 from axiscope.errors import InputError, OptionError
 
-__all__ = ["SAMPLES_IN", "MatrixSource", "describe_source", "open_matrix"]
+__all__ = ["SAMPLES_IN", "MatrixSource", "array_source", "describe_source", "open_matrix"]
 
 logger = logging.getLogger(__name__)
 
@@ -98,6 +98,8 @@ def _to_str_ids(values: Any) -> np.ndarray:
 
 def _file_size(path: pathlib.Path) -> int:
     """Bytes on disk of a file, or the sum over all files below a directory."""
+    if not path.exists():  # an in-memory array
+        return 0
     if path.is_dir():
         total = 0
         for root, _dirs, files in os.walk(path):
@@ -876,3 +878,29 @@ def describe_source(source: MatrixSource) -> dict[str, Any]:
         "first_sample_ids": [str(v) for v in source.sample_ids[:_ID_HEAD]],
         "first_feature_ids": [str(v) for v in source.feature_ids[:_ID_HEAD]],
     }
+
+
+# ------------------------------------------------------------------------ in-memory arrays
+
+
+def array_source(data: Any, *, sample_ids: Sequence[str] | None = None,
+                 feature_ids: Sequence[str] | None = None, name: str = "<array>") -> MatrixSource:
+    """Wrap an in-memory 2-D array (samples × features) as a :class:`MatrixSource`.
+
+    The array is not copied; blocks are copied as they are read. Used by the Python API
+    and the scikit-learn estimator, and for small data in tests.
+    """
+    array = np.asarray(data)
+    if array.ndim != 2:
+        raise InputError(f"{name}: expected a 2-D array, got {array.ndim} dimension(s)")
+    if not _is_numeric(array.dtype):
+        raise InputError(f"{name}: values of dtype {array.dtype} are not numeric")
+    backend = _MemoryBackend(array, array.shape)
+
+    def resolve(given: str, default: str, option: str) -> tuple[np.ndarray | None, str]:
+        values = sample_ids if option == "--sample-ids" else feature_ids
+        if values is None:
+            return None, "generated"
+        return _to_str_ids(values), "given"
+
+    return _build_source(pathlib.Path(name), "array", None, "rows", backend, resolve, None, None)

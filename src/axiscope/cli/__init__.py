@@ -1,0 +1,19 @@
+"""Command-line interface: a thin typer layer over the Python API.
+
+Each command lives in its own module and registers itself on :data:`app`. Library errors
+(:class:`axiscope.errors.AxiscopeError`) become one line on standard error and exit code 2.
+"""
+
+from __future__ import annotations
+
+import sys
+
+from ._app import app, main
+
+# Importing the command modules registers their commands on the app.
+from . import demo_cmd, fit_cmd, inspect_cmd  # noqa: E402,F401
+
+__all__ = ["app", "main"]
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,48 @@
+"""Option declarations shared by several commands."""
+
+from __future__ import annotations
+
+from enum import Enum
+from pathlib import Path
+from typing import Annotated
+
+import typer
+
+
+class SamplesIn(str, Enum):
+    rows = "rows"
+    columns = "columns"
+
+
+class Scale(str, Enum):
+    unit = "unit"
+    none = "none"
+    binomial = "binomial"
+
+
+class Missing(str, Enum):
+    error = "error"
+    mean = "mean"
+
+
+class Method(str, Enum):
+    auto = "auto"
+    randomized = "randomized"
+    exact = "exact"
+
+
+class TableFormat(str, Enum):
+    tsv = "tsv"
+    parquet = "parquet"
+
+
+InputPath = Annotated[Path, typer.Argument(help="Matrix file: .h5/.hdf5, Zarr directory, .npy, .csv/.tsv[.gz].")]
+OutDir = Annotated[Path, typer.Option("--out", "-o", help="Output directory (written atomically).")]
+Dataset = Annotated[str | None, typer.Option(help="2-D dataset inside an HDF5 file or Zarr store.")]
+SampleIds = Annotated[str | None, typer.Option(help="Dataset in the same file, or a one-column text file, with sample ids.")]
+FeatureIds = Annotated[str | None, typer.Option(help="Dataset in the same file, or a one-column text file, with feature ids.")]
+SamplesInOpt = Annotated[SamplesIn, typer.Option(help="Whether samples are the file's rows or its columns.")]
+MemoryLimit = Annotated[str | None, typer.Option(help="Memory budget for data, e.g. 512MB or 4GB (default: half the RAM).")]
+Threads = Annotated[int | None, typer.Option(min=1, help="Blocks processed at once (default: number of cores).")]
+Overwrite = Annotated[bool, typer.Option(help="Replace an existing output directory.")]
+Quiet = Annotated[bool, typer.Option("--quiet", "-q", help="No progress bars or summary.")]

@@ -1,0 +1,210 @@
+"""Projection of samples onto a fitted model's axes, streamed in blocks.
+
+Used for new samples (scoring) and for supplementary samples of the fitted file. The
+stored preprocessing is replayed exactly: total normalisation over the training input's
+features, ``log1p``, the training centre and scale (never statistics of the new samples).
+Features are matched by id, not position.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+from dataclasses import dataclass
+
+import numpy as np
+
+from .errors import InputError
+from .fit import plan_blocks
+from .memory import default_memory_limit, parse_memory
+from .model import Model
+from .passes import PassRunner, Progress, array_from_blocks
+from .preprocess import first_nonfinite
+from .readers import MatrixSource
+
+__all__ = ["FeatureMatch", "match_features", "Projection", "project"]
+
+logger = logging.getLogger(__name__)
+
+
+@dataclass
+class FeatureMatch:
+    """Where each model feature sits in a new file.
+
+    Attributes
+    ----------
+    model_columns : ndarray of int, shape (n_present,)
+        Column in the new file of each model feature that is present.
+    present : ndarray of bool, shape (p_model,)
+        Whether each model feature is present.
+    total_columns : ndarray of int
+        Columns of the new file that were features of the training input (used for
+        total normalisation).
+    n_extra : int
+        Features of the new file that the model does not use.
+    """
+
+    model_columns: np.ndarray
+    present: np.ndarray
+    total_columns: np.ndarray
+    n_extra: int
+
+    @property
+    def n_missing(self) -> int:
+        return int((~self.present).sum())
+
+
+def match_features(model: Model, feature_ids: np.ndarray, *, where: str, fill_missing: bool) -> FeatureMatch:
+    """Match the model's features to a new file's feature ids."""
+    position = {fid: i for i, fid in enumerate(np.asarray(feature_ids).tolist())}
+    wanted = np.asarray(model.feature_ids).tolist()
+    cols = np.array([position.get(f, -1) for f in wanted], dtype=np.int64)
+    present = cols >= 0
+    if not present.any():
+        raise InputError(
+            f"{where}: none of the model's {len(wanted)} feature ids occur in this file "
+            f"(e.g. model {wanted[0]!r}, file {next(iter(position), '')!r}); check --feature-ids and --samples-in"
+        )
+    missing = np.flatnonzero(~present)
+    if missing.size and not fill_missing:
+        examples = ", ".join(wanted[i] for i in missing[:10])
+        raise InputError(
+            f"{where}: {missing.size} of the model's {len(wanted)} features are missing "
+            f"(first: {examples}); supply them or pass --fill-missing mean"
+        )
+    training_inputs = model.extras.get("input_feature_ids")
+    if training_inputs is not None:
+        total_cols = np.array([position[f] for f in np.asarray(training_inputs).tolist() if f in position], dtype=np.int64)
+    else:
+        total_cols = np.arange(len(position))
+    n_extra = len(position) - int(present.sum())
+    return FeatureMatch(cols[present], present, total_cols, n_extra)
+
+
+@dataclass
+class Projection:
+    """Samples placed on a model's axes.
+
+    Attributes
+    ----------
+    sample_ids : ndarray of str, shape (m,)
+    scores : ndarray, shape (m, k)
+    sq_dist : ndarray, shape (m,)
+        Squared distance to the centre in the preprocessed space (missing features add 0).
+    residual : ndarray, shape (m,)
+        Squared distance left after projection on the k axes (``sq_dist − ‖score‖²``).
+    missing_fraction : ndarray, shape (m,)
+        Fraction of the model's features filled with the training mean (absent features
+        and non-finite cells).
+    match : FeatureMatch
+    """
+
+    sample_ids: np.ndarray
+    scores: np.ndarray
+    sq_dist: np.ndarray
+    residual: np.ndarray
+    missing_fraction: np.ndarray
+    match: FeatureMatch
+    passes: PassRunner
+
+
+def project(
+    model: Model,
+    source: MatrixSource,
+    *,
+    rows: np.ndarray | None = None,
+    fill_missing: bool = False,
+    memory_limit: int | str | None = None,
+    threads: int | None = None,
+    progress: Progress | None = None,
+) -> Projection:
+    """Scores of (some) samples of ``source`` on the model's axes, in one streaming pass.
+
+    Parameters
+    ----------
+    model : Model
+    source : MatrixSource
+    rows : ndarray of bool, shape (n_samples,), optional
+        Which samples to project (default all).
+    fill_missing : bool, default=False
+        Model features absent from ``source`` take their training mean (adding nothing);
+        otherwise their absence is an error.
+    memory_limit, threads, progress
+        As for :func:`axiscope.fit`.
+
+    Notes
+    -----
+    Memory: the model plus a window of blocks; independent of the number of samples
+    projected except for the ``m × k`` scores.
+    """
+    where = str(source.path)
+    match = match_features(model, source.feature_ids, where=where, fill_missing=fill_missing)
+    n_all, p_in = source.shape
+    rows = np.ones(n_all, dtype=bool) if rows is None else np.asarray(rows, dtype=bool)
+    budget = default_memory_limit() if memory_limit is None else parse_memory(memory_limit)
+    threads = max(1, int(threads or os.cpu_count() or 1))
+    plan = plan_blocks(n_all, p_in, source.dtype.itemsize, sketch_width=model.n_components,
+                       threads=threads, budget=budget, sample_chunk=source.sample_chunk,
+                       cache_features=0)
+    spans = [(s, min(n_all, s + plan.block_rows)) for s in range(0, n_all, plan.block_rows)]
+    spans = [(a, b) for a, b in spans if rows[a:b].any()]
+    spec = model.spec
+    present = match.present
+    mean = model.mean[present]
+    inv = (1.0 / model.scale)[present]
+    V = model.components[present]
+    fill = model.extras.get("feature_mean", model.mean)[present]
+    total = spec.normalize_total
+
+    def load(i):
+        a, b = spans[i]
+        block = source.read_samples(a, b)
+        return block[rows[a:b]] if not rows[a:b].all() else block
+
+    def task(block):
+        x = block[:, match.model_columns]
+        if total is not None:
+            sums = np.nansum(block[:, match.total_columns], axis=1, dtype=np.float64)
+            factor = np.where(sums > 0, total / np.where(sums > 0, sums, 1), 0.0)
+            x = x * factor.astype(x.dtype)[:, None]
+        if spec.log1p:
+            x = np.log1p(x)
+        bad = first_nonfinite(x)
+        n_bad = np.zeros(x.shape[0])
+        if bad is not None:
+            if spec.missing != "mean" and not fill_missing:
+                return None, bad
+            mask = ~np.isfinite(x)
+            n_bad = mask.sum(axis=1)
+            x = np.where(mask, fill.astype(x.dtype), x)
+        c = (x.astype(np.float64) - mean) * inv
+        scores = c @ V
+        sq = np.einsum("ij,ij->i", c, c)
+        return (scores, sq, n_bad), None
+
+    counts = [int(rows[a:b].sum()) for a, b in spans]
+    X = array_from_blocks(load, counts, p_in, source.dtype, f"project-{id(source)}-{os.getpid()}")
+    m = int(sum(counts))
+    scores = np.empty((m, model.n_components))
+    sq = np.empty(m)
+    n_bad = np.empty(m)
+    ids = np.asarray(source.sample_ids)[rows]
+
+    def fold(result, index, start):
+        out, bad = result
+        if bad is not None:
+            r, c = bad
+            raise InputError(
+                f"{where}: sample {ids[start + r]!r}, feature {model.feature_ids[present][c]!r} is NaN "
+                f"or infinite; fix the input or pass --fill-missing mean to use the training mean"
+            )
+        s, q, nb = out
+        scores[start : start + s.shape[0]] = s
+        sq[start : start + s.shape[0]] = q
+        n_bad[start : start + s.shape[0]] = nb
+
+    runner = PassRunner(threads=threads, progress=progress)
+    runner.run("projection", "input", X, task, fold)
+    residual = np.maximum(sq - np.einsum("ij,ij->i", scores, scores), 0.0)
+    missing_fraction = (n_bad + match.n_missing) / model.n_features
+    return Projection(ids, scores, sq, residual, missing_fraction, match, runner)
