@@ -259,6 +259,7 @@ def fit(
     threads: int | None = None,
     scratch: str | os.PathLike | None = None,
     active: np.ndarray | None = None,
+    exclude_features: np.ndarray | None = None,
     progress: Progress | None = None,
     dataset: str | None = None,
     sample_ids: str | None = None,
@@ -294,6 +295,8 @@ def fit(
         Where the scratch file goes when transformed blocks do not fit in memory.
     active : ndarray of bool, shape (n_samples,), optional
         Samples used to build the axes; the others are left out (supplementary).
+    exclude_features : ndarray of bool, shape (n_features,), optional
+        Features left out of the axes (supplementary features); they are still read.
     progress : callable, optional
         ``progress(pass_name, blocks_done, n_blocks)``.
 
@@ -328,15 +331,21 @@ def fit(
                       samples_in=samples_in) if owned else source
     try:
         return _fit(src, spec, n_components, oversample, power_iterations, tol, method, rng,
-                    budget, threads, scratch_dir, active, progress, t_start, seed)
+                    budget, threads, scratch_dir, active, exclude_features, progress, t_start, seed)
     finally:
         if owned:
             src.close()
 
 
 def _fit(src, spec, k, oversample, power_iterations, tol, method, rng, budget, threads,
-         scratch_dir, active, progress, t_start, seed) -> FitResult:
+         scratch_dir, active, exclude, progress, t_start, seed) -> FitResult:
     n_all, p_all = src.shape
+    if exclude is not None:
+        exclude = np.asarray(exclude, dtype=bool)
+        if exclude.shape != (p_all,):
+            raise OptionError(f"the supplementary-feature mask has {exclude.shape[0]} entries for {p_all} features")
+        if not exclude.any():
+            exclude = None
     if active is None:
         active = np.ones(n_all, dtype=bool)
     active = np.asarray(active, dtype=bool)
@@ -381,12 +390,13 @@ def _fit(src, spec, k, oversample, power_iterations, tol, method, rng, budget, t
 
     rows_per_block = [c for _, _, c in keep_spans]
     token = uuid.uuid4().hex[:8]
-    fuse = not spec.has_filter and spec.missing == "error" and method == "randomized"
-    cache_first = plan.cache != "source" and not spec.has_filter
+    filtered = spec.has_filter or exclude is not None
+    fuse = not filtered and spec.missing == "error" and method == "randomized"
+    cache_first = plan.cache != "source" and not filtered
     cache = None
     try:
         if plan.cache != "source":
-            cache_cols = p_all if not spec.has_filter else None
+            cache_cols = p_all if not filtered else None
             if cache_cols is not None:
                 cache = BlockCache(plan.cache, n, cache_cols, src.dtype, scratch_dir)
         X_src = array_from_blocks(
@@ -395,7 +405,7 @@ def _fit(src, spec, k, oversample, power_iterations, tol, method, rng, budget, t
         )
         omega = rng.standard_normal((p_all, l)) if fuse else None
         stats, raw_sketch = _statistics_pass(X_src, spec, omega, runner, src, active)
-        prep = Preprocessing.from_statistics(spec, stats)
+        prep = Preprocessing.from_statistics(spec, stats, exclude)
         if prep.kept.shape[0] < 2:
             raise InputError(
                 f"{src.path}: fewer than 2 features left after dropping constant or filtered "
@@ -414,7 +424,7 @@ def _fit(src, spec, k, oversample, power_iterations, tol, method, rng, budget, t
 
         # Column space of the arrays the engine sees: all input features (dropped ones
         # get inverse scale 0) when nothing is filtered, else only the kept features.
-        if spec.has_filter:
+        if filtered:
             columns = prep.kept
             mean_c, d_c = prep.mean, prep.inverse_scale
             fill_c = prep.mean_raw if spec.missing == "mean" else None

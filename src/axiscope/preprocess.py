@@ -232,12 +232,20 @@ class Preprocessing:
     mean_raw: np.ndarray = field(default_factory=lambda: np.empty(0))
 
     @classmethod
-    def from_statistics(cls, spec: PreprocessSpec, stats: FeatureStatistics) -> "Preprocessing":
-        """Choose the kept features and their centre and scale from streaming statistics."""
+    def from_statistics(cls, spec: PreprocessSpec, stats: FeatureStatistics,
+                        exclude: np.ndarray | None = None) -> "Preprocessing":
+        """Choose the kept features and their centre and scale from streaming statistics.
+
+        ``exclude`` (bool, one per feature) marks features left out of the axes on purpose
+        (supplementary features).
+        """
         mean, var = stats.mean, np.maximum(stats.variance, 0.0)
         p = mean.shape[0]
         keep = np.ones(p, dtype=bool)
         dropped: dict[str, int] = {}
+        if exclude is not None and np.any(exclude):
+            keep &= ~np.asarray(exclude, dtype=bool)
+            dropped["supplementary"] = int(np.sum(exclude))
         eps = np.finfo(np.float32).eps
         constant = var <= (eps * np.maximum(np.abs(mean), 1.0)) ** 2
         if spec.scale == "binomial":
