@@ -106,7 +106,8 @@ def _products(block, W, offset, mean, d, fill, want_gram, want_norms):
         gram = (block.T @ y.astype(block.dtype, copy=False)).astype(np.float64)
     norms = None
     if want_norms:
-        centred = (block - mean.astype(block.dtype)) * d.astype(block.dtype)
+        centred = block - mean.astype(block.dtype)
+        centred *= d.astype(block.dtype)
         norms = np.einsum("ij,ij->i", centred, centred, dtype=np.float64)
     return y, gram, norms
 
@@ -206,9 +207,9 @@ def randomized_factorization(
     -----
     Each pass over a block computes ``Y_b = X̃_b·Q_i`` and ``X̃_bᵀ·Y_b``; the new block
     ``Q_{i+1}`` is orthonormalised (twice, against the whole basis) so float32 never
-    overflows. Because ``X̃·K`` is known block by block for the orthonormal basis
-    ``K = [Q_0, Q_1, …]``, the Rayleigh–Ritz step needs no further pass: the SVD of the
-    ``n × width`` matrix ``X̃·K`` gives scores, values and loadings. Keeping the whole
+    overflows. Because ``B = X̃·K`` is known block by block for the orthonormal basis
+    ``K = [Q_0, Q_1, …]``, the Rayleigh–Ritz step needs no further pass: the eigenvectors
+    ``W`` of ``BᵀB`` give values ``s``, loadings ``K·W`` and scores ``B·W``. Keeping the whole
     basis (block Krylov, Musco & Musco 2015, "Randomized block Krylov methods for stronger
     and faster approximate singular value decomposition", NeurIPS, arXiv:1504.05477)
     converges far faster than plain subspace iteration on flat spectra. When the basis
@@ -255,7 +256,7 @@ def randomized_factorization(
                 Z = Z[:, :l] if Z.shape[1] > l else Z
         K = np.hstack([K, Q])
         B = np.hstack([B, Y])
-        U, s, Wt = scipy.linalg.svd(B, full_matrices=False, lapack_driver="gesdd")
+        s, W = _ritz(B)
         ritz = s[:k].copy()
         if history:
             previous = history[-1]
@@ -276,11 +277,11 @@ def randomized_factorization(
         Q = _orthonormal(_project_out(Q, K))
         if K.shape[1] + l > max_basis:
             keep = max_basis - l
-            K = K @ Wt[:keep].T
-            B = U[:, :keep] * s[:keep]
+            K = K @ W[:, :keep]
+            B = B @ W[:, :keep]
 
-    components = K @ Wt[:k].T
-    scores = U[:, :k] * s[:k]
+    components = K @ W[:, :k]
+    scores = B @ W[:, :k]
     residual = Yp - B @ (K.T @ probes)
     bound = 10.0 * np.sqrt(2.0 / np.pi) * float(np.max(np.linalg.norm(residual, axis=0)))
     orient_signs(components, scores)
@@ -302,6 +303,18 @@ def randomized_factorization(
         residual_bound=bound,
         ritz_history=[h.tolist() for h in history],
     )
+
+
+def _ritz(B: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Singular values and right singular vectors of ``B`` (n × L) from its L × L Gram matrix.
+
+    Holding only ``B`` and an ``L × L`` matrix (not the ``n × L`` left factor) keeps memory
+    at one copy of the basis; squaring the condition number costs nothing for the leading
+    values that are wanted.
+    """
+    evals, W = scipy.linalg.eigh(B.T @ B, check_finite=False)
+    order = np.argsort(evals)[::-1]
+    return np.sqrt(np.maximum(evals[order], 0.0)), W[:, order]
 
 
 def _project_out(Z: np.ndarray, K: np.ndarray) -> np.ndarray:

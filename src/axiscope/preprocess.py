@@ -123,7 +123,6 @@ class BlockStats:
     count: np.ndarray
     mean: np.ndarray
     m2: np.ndarray
-    nonzero: np.ndarray
     n_nonfinite: int = 0
 
     def merge(self, other: "BlockStats") -> "BlockStats":
@@ -133,34 +132,41 @@ class BlockStats:
         delta = other.mean - self.mean
         mean = self.mean + delta * (other.count / safe)
         m2 = self.m2 + other.m2 + delta**2 * (self.count * other.count / safe)
-        return BlockStats(
-            self.n_samples + other.n_samples,
-            count,
-            mean,
-            m2,
-            self.nonzero + other.nonzero,
-            self.n_nonfinite + other.n_nonfinite,
-        )
+        return BlockStats(self.n_samples + other.n_samples, count, mean, m2,
+                          self.n_nonfinite + other.n_nonfinite)
 
 
 def block_statistics(block: np.ndarray) -> BlockStats:
-    """Statistics of one block of (transformed) samples; non-finite cells are skipped."""
+    """Statistics of one block of (transformed) samples; non-finite cells are skipped.
+
+    Sums are accumulated in float64 without a float64 copy of the block: the block is
+    shifted by its (rounded) mean in its own dtype, and ``M2 = Σc² − (Σc)²/m`` corrects
+    for the rounding of the shift.
+    """
+    m = block.shape[0]
+    total = np.add.reduce(block, axis=0, dtype=np.float64)
+    if not np.isfinite(total).all():
+        return _block_statistics_nonfinite(block)
+    shift = (total / m).astype(block.dtype)
+    c = block - shift
+    csum = np.add.reduce(c, axis=0, dtype=np.float64)
+    np.square(c, out=c)
+    m2 = np.add.reduce(c, axis=0, dtype=np.float64) - csum**2 / m
+    mean = shift.astype(np.float64) + csum / m
+    return BlockStats(m, np.full(block.shape[1], float(m)), mean, np.maximum(m2, 0.0), 0)
+
+
+def _block_statistics_nonfinite(block: np.ndarray) -> BlockStats:
     x = block.astype(np.float64, copy=True)
     finite = np.isfinite(x)
     n_bad = int(x.size - np.count_nonzero(finite))
-    if n_bad:
-        x[~finite] = np.nan
-        count = finite.sum(axis=0).astype(np.float64)
-        mean = np.where(count > 0, np.nansum(x, axis=0) / np.maximum(count, 1), 0.0)
-        x -= mean
-        x[~finite] = 0.0
-    else:
-        count = np.full(x.shape[1], float(x.shape[0]))
-        mean = x.mean(axis=0)
-        x -= mean
+    x[~finite] = np.nan
+    count = finite.sum(axis=0).astype(np.float64)
+    mean = np.where(count > 0, np.nansum(x, axis=0) / np.maximum(count, 1), 0.0)
+    x -= mean
+    x[~finite] = 0.0
     m2 = np.einsum("ij,ij->j", x, x)
-    nonzero = np.count_nonzero(block, axis=0).astype(np.int64)
-    return BlockStats(block.shape[0], count, mean, m2, nonzero, n_bad)
+    return BlockStats(block.shape[0], count, mean, m2, n_bad)
 
 
 @dataclass
@@ -175,7 +181,6 @@ class FeatureStatistics:
     mean: np.ndarray
     variance: np.ndarray
     count: np.ndarray
-    nonzero: np.ndarray
     n_missing: int
 
     @classmethod
@@ -185,7 +190,6 @@ class FeatureStatistics:
             mean=stats.mean,
             variance=stats.m2 / stats.n_samples,
             count=stats.count,
-            nonzero=stats.nonzero,
             n_missing=stats.n_nonfinite,
         )
 

@@ -18,7 +18,7 @@ from .errors import InputError
 from .fit import plan_blocks
 from .memory import default_memory_limit, parse_memory
 from .model import Model
-from .passes import PassRunner, Progress, array_from_blocks
+from .passes import PassRunner, Progress, array_from_blocks, blas_threads
 from .preprocess import first_nonfinite
 from .readers import MatrixSource
 
@@ -204,7 +204,8 @@ def project(
         n_bad[start : start + s.shape[0]] = nb
 
     runner = PassRunner(threads=threads, progress=progress)
-    runner.run("projection", "input", X, task, fold)
+    with blas_threads(threads):
+        runner.run("projection", "input", X, task, fold)
     residual = np.maximum(sq - np.einsum("ij,ij->i", scores, scores), 0.0)
     missing_fraction = (n_bad + match.n_missing) / model.n_features
     return Projection(ids, scores, sq, residual, missing_fraction, match, runner)

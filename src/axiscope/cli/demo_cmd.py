@@ -47,3 +47,19 @@ def demo_command(
         neg = top[(top.axis == axis) & (top.direction == "negative")].feature_id.tolist()
         say(f"  {axis}: top positive genes {', '.join(pos)}; top negative {', '.join(neg)}", quiet)
     say(f"  demo data in {out / 'data'}", quiet)
+
+
+@app.command("simulate")
+def simulate_command(
+    out: Annotated[Path, typer.Option("--out", "-o", help="Folder for the simulated files.")],
+    seed: Annotated[int, typer.Option(help="Seed of the simulation.")] = 7,
+    overwrite: Overwrite = False,
+    quiet: Quiet = False,
+) -> None:
+    """Write the demo's invented cohort: reference.zarr, new_batch.zarr and annotation tables."""
+    setup_logging(quiet)
+    with user_errors():
+        with atomic_directory(out, overwrite=overwrite) as tmp:
+            paths = make_demo_data(tmp, seed=seed)
+    for name, path in paths.items():
+        say(f"{name}: {out / path.name}", quiet)
