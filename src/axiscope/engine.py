@@ -273,8 +273,10 @@ def randomized_factorization(
             break
         # the next block is orthogonal to the whole basis, so a restart that keeps the
         # leading Ritz vectors keeps their residuals in the expanded basis (thick restart)
-        Q = _orthonormal(_project_out(Z[:, : min(l, room)], K))
-        Q = _orthonormal(_project_out(Q, K))
+        Q = _new_block(Z[:, : min(l, room)], K)
+        if Q.shape[1] == 0:  # the basis already spans the range of X̃ᵀ
+            converged = True
+            break
         if K.shape[1] + l > max_basis:
             keep = max_basis - l
             K = K @ W[:, :keep]
@@ -315,6 +317,19 @@ def _ritz(B: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     evals, W = scipy.linalg.eigh(B.T @ B, check_finite=False)
     order = np.argsort(evals)[::-1]
     return np.sqrt(np.maximum(evals[order], 0.0)), W[:, order]
+
+
+def _new_block(Z: np.ndarray, K: np.ndarray) -> np.ndarray:
+    """Orthonormal directions of ``Z`` outside the span of ``K``, dropping vanishing ones.
+
+    Directions whose part outside ``K`` is below ``1e-10·‖Z‖`` are numerically in the span
+    already (the basis has reached the rank of the matrix) and are not added.
+    """
+    scale = np.linalg.norm(Z, 2)
+    U, sv, _ = scipy.linalg.svd(_project_out(Z, K), full_matrices=False, check_finite=False)
+    keep = sv > 1e-10 * max(scale, np.finfo(float).tiny)
+    Q = U[:, keep]
+    return _orthonormal(_project_out(Q, K)) if Q.shape[1] else Q
 
 
 def _project_out(Z: np.ndarray, K: np.ndarray) -> np.ndarray:

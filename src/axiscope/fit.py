@@ -25,7 +25,7 @@ from .engine import N_PROBES, Factorization, exact_factorization, randomized_fac
 from .errors import InputError, OptionError
 from .memory import default_memory_limit, format_bytes, parse_memory
 from .model import Model
-from .passes import PassRunner, Progress, array_from_blocks
+from .passes import PassRunner, Progress, array_from_blocks, blas_threads
 from .preprocess import (
     BlockStats,
     FeatureStatistics,
@@ -36,6 +36,7 @@ from .preprocess import (
     transform_block,
 )
 from .readers import MatrixSource, open_matrix
+from .scoring import training_extras  # diagnostics and shrinkage stored in the model
 
 __all__ = ["fit", "FitResult", "BlockPlan", "plan_blocks", "METHODS"]
 
@@ -57,6 +58,7 @@ class BlockPlan:
     fixed_bytes: int
     block_bytes: int
     cache_bytes: int
+    max_basis: int
 
     def to_dict(self) -> dict:
         return {
@@ -66,6 +68,7 @@ class BlockPlan:
             "fixed_bytes": self.fixed_bytes,
             "block_bytes": self.block_bytes,
             "cache_bytes": self.cache_bytes,
+            "max_basis": self.max_basis,
         }
 
 
@@ -81,34 +84,40 @@ def plan_blocks(
     cache_features: int | None = None,
     scratch: Path | None = None,
 ) -> BlockPlan:
-    """Choose block rows and the cache location so that the fit stays within ``budget``.
+    """Choose block rows, Krylov basis width and cache location to stay within ``budget``.
 
-    Memory held: ``O((n + p)·l)`` float64 for the sketches and factors, a window of
-    ``2·threads`` blocks with their float64 work arrays, and the cache when it is kept in
-    memory.
+    Memory held: the Krylov basis and its image, ``(n + p)·max_basis`` float64 (at most a
+    quarter of the budget, between ``2·l`` and ``8·l`` columns); vectors of per-feature
+    statistics; a window of ``2·threads`` blocks, each with one work array of its size and a
+    ``p × l`` partial product; and the cache when it is kept in memory.
     """
     cache_features = n_features if cache_features is None else cache_features
-    width = sketch_width + N_PROBES
-    fixed = 8 * (3 * n_samples * width + 4 * n_features * width + 12 * n_features)
+    l = sketch_width
+    width = l + N_PROBES
+    per_column = 8 * (n_samples + n_features)
+    max_basis = int(min(8 * l, max(2 * l, (budget // 4) // per_column)))
+    fixed = per_column * (max_basis + 2 * width) + 8 * 12 * n_features
     window = 2 * threads
-    # per row of a block in flight: the block, a float64 copy, a centred copy, and its share of a partial product
-    row_bytes = n_features * (2 * itemsize + 16)
+    row_bytes = 2 * n_features * itemsize + 8 * width
     partial = 8 * n_features * width
     room = budget - fixed - window * partial
-    min_rows = 1
-    if room < window * row_bytes * min_rows:
+    if room < window * row_bytes:
         need = fixed + window * (partial + row_bytes)
         raise OptionError(
             f"memory limit {format_bytes(budget)} is too small for {n_samples} samples × "
-            f"{n_features} features with {sketch_width} sketch columns (needs at least "
+            f"{n_features} features with {l} sketch columns (needs at least "
             f"{format_bytes(need)}); raise --memory-limit or lower --components"
         )
     rows = int(min(room // (window * row_bytes), _MAX_BLOCK_BYTES // max(1, n_features * itemsize)))
-    rows = max(min_rows, min(rows, n_samples))
+    rows = max(1, min(rows, n_samples))
     if n_samples >= 512:  # enough blocks to keep every thread busy
         rows = min(rows, -(-n_samples // (2 * threads)))
-    if sample_chunk and rows >= sample_chunk:
-        rows = (rows // sample_chunk) * sample_chunk
+    if sample_chunk and sample_chunk < n_samples:
+        # whole on-disk chunks per block, so no chunk is decoded twice
+        if rows >= sample_chunk:
+            rows = (rows // sample_chunk) * sample_chunk
+        elif window * sample_chunk * row_bytes <= room:
+            rows = sample_chunk
     cache_bytes = n_samples * cache_features * itemsize
     if fixed + window * (partial + rows * row_bytes) + cache_bytes <= budget:
         cache = "memory"
@@ -120,7 +129,7 @@ def plan_blocks(
             format_bytes(cache_bytes), scratch or "the temporary directory",
         )
         cache = "source"
-    return BlockPlan(rows, cache, budget, fixed, rows * n_features * itemsize, cache_bytes)
+    return BlockPlan(rows, cache, budget, fixed, rows * n_features * itemsize, cache_bytes, max_basis)
 
 
 @dataclass
@@ -184,7 +193,15 @@ class FitResult:
         return df
 
     def top_features(self, n: int = 25) -> pd.DataFrame:
-        """The ``n`` features with the largest positive and negative loadings on each axis."""
+        """The ``n`` features with the largest positive and negative loadings on each axis.
+
+        Columns: axis, direction, rank, feature_id, loading, correlation (between the
+        feature and the scores) and contribution (percent of the axis, ``100·loading²``);
+        see :func:`axiscope.interpret.feature_statistics`.
+        """
+        from .interpret import feature_statistics
+
+        stats = feature_statistics(self.model)
         V = self.model.components
         ids = np.asarray(self.model.feature_ids)
         rows = []
@@ -195,9 +212,10 @@ class FitResult:
                 for rank, i in enumerate(idx, start=1):
                     if (V[i, j] > 0) != (direction == "positive"):
                         break
-                    rows.append((axis, direction, rank, ids[i], V[i, j]))
-        return pd.DataFrame(rows, columns=["axis", "direction", "rank", "feature_id", "loading"])
-
+                    rows.append((axis, direction, rank, ids[i], V[i, j], stats.correlation[i, j],
+                                 stats.contribution[i, j]))
+        return pd.DataFrame(rows, columns=["axis", "direction", "rank", "feature_id", "loading",
+                                           "correlation", "contribution"])
 
     def write(self, directory: Path, *, top: int = 25, parquet: bool = False,
               command_line: list[str] | None = None) -> None:
@@ -226,8 +244,15 @@ class FitResult:
             manifest["command_line"] = command_line
         write_json(manifest, directory / "manifest.json")
 
-    def dropped_features(self) -> pd.DataFrame:
-        """Features left out of the axes, with the reason and their statistics."""
+    def dropped_features(self, supplementary: np.ndarray | None = None) -> pd.DataFrame:
+        """Features left out of the axes, with the reason and their statistics.
+
+        Reasons: ``supplementary`` (excluded on purpose with ``exclude_features``),
+        ``constant`` or ``filtered``. ``supplementary`` (bool, one per input feature) is the
+        mask given to :func:`fit`; without it, excluded features are recognised as the
+        dropped ones that are neither constant nor below the filters (exact unless
+        ``top_variable`` is set, where an excluded feature of low variance reads "filtered").
+        """
         stats, prep = self.statistics, self.preprocessing
         dropped = np.setdiff1d(np.arange(self.input_feature_ids.shape[0]), prep.kept)
         eps = np.finfo(np.float32).eps
@@ -235,10 +260,21 @@ class FitResult:
         if prep.spec.scale == "binomial":
             f = stats.mean[dropped] / 2
             const |= 2 * f * (1 - f) <= 0
+        if supplementary is not None:
+            sup = np.asarray(supplementary, dtype=bool)[dropped]
+        elif prep.dropped.get("supplementary"):
+            var = stats.variance[dropped]
+            sup = ~const
+            if prep.spec.min_variance is not None:
+                sup &= var >= prep.spec.min_variance
+            if prep.spec.top_variable is not None and prep.kept.size:
+                sup &= var > stats.variance[prep.kept].min()
+        else:
+            sup = np.zeros(dropped.shape[0], dtype=bool)
         return pd.DataFrame(
             {
                 "feature_id": self.input_feature_ids[dropped],
-                "reason": np.where(const, "constant", "filtered"),
+                "reason": np.where(sup, "supplementary", np.where(const, "constant", "filtered")),
                 "mean": stats.mean[dropped],
                 "variance": stats.variance[dropped],
             }
@@ -330,8 +366,9 @@ def fit(
     src = open_matrix(source, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
                       samples_in=samples_in) if owned else source
     try:
-        return _fit(src, spec, n_components, oversample, power_iterations, tol, method, rng,
-                    budget, threads, scratch_dir, active, exclude_features, progress, t_start, seed)
+        with blas_threads(threads):
+            return _fit(src, spec, n_components, oversample, power_iterations, tol, method, rng,
+                        budget, threads, scratch_dir, active, exclude_features, progress, t_start, seed)
     finally:
         if owned:
             src.close()
@@ -466,7 +503,7 @@ def _fit(src, spec, k, oversample, power_iterations, tol, method, rng, budget, t
             fac = randomized_factorization(
                 X_iter, mean_c, d_c, n_components=k, oversample=oversample,
                 power_iterations=power_iterations, tol=tol, rng=rng, start=start,
-                fill=fill_c, runner=runner, source=iter_source,
+                fill=fill_c, runner=runner, source=iter_source, max_basis=plan.max_basis,
             )
     finally:
         if cache is not None:
@@ -490,6 +527,9 @@ def _fit(src, spec, k, oversample, power_iterations, tol, method, rng, budget, t
             "input_feature_ids": np.asarray(src.feature_ids, dtype=str),
             "feature_mean": prep.mean_raw,
             "training_sq_dist": fac.row_sq_norms,
+            "input_feature_mean": stats.mean,
+            **training_extras(fac.singular_values, fac.scores, fac.row_sq_norms,
+                              total_inertia=prep.total_inertia, n_features=int(prep.kept.shape[0])),
         },
     )
     t_total = time.perf_counter() - t_start
@@ -552,8 +592,8 @@ def _fit(src, spec, k, oversample, power_iterations, tol, method, rng, budget, t
 
 
 def _stats_task(block, omega32):
-    bad = first_nonfinite(block)
     stats = block_statistics(block)
+    bad = first_nonfinite(block) if stats.n_nonfinite else None
     sketch = None
     if omega32 is not None and bad is None:
         sketch = (block.T @ (block @ omega32)).astype(np.float64)

@@ -44,7 +44,7 @@ def parse_memory(text: str | int | float) -> int:
             )
         value, unit = float(match.group(1)), match.group(2).upper()
     size = int(value * _UNITS[unit])
-    if size < 16 * 2**20:
+    if size < 16 * 10**6:
         raise OptionError(f"memory limit {text!r} is below the minimum of 16MB; raise it")
     return size
 

@@ -118,16 +118,12 @@ def array_from_blocks(
 
 
 def blas_threads(threads: int):
-    """Limit BLAS to one thread while ``threads`` blocks run at once.
+    """Limit BLAS to one thread while blocks run on ``threads`` Dask threads.
 
-    Blocks are processed in parallel by the Dask threads; a multi-threaded BLAS called from
-    several of them at once oversubscribes the cores and leaves later calls on the main
-    thread contending with idle BLAS workers (measured: a 20,000 × 30 projection 250× slower).
+    Parallelism comes from processing blocks at once; a multi-threaded BLAS called from the
+    Dask worker threads oversubscribes the cores and leaves later calls on the main thread
+    contending with idle BLAS workers (measured: a 20,000 × 30 projection 250× slower).
     """
-    import contextlib
-
     from threadpoolctl import threadpool_limits
 
-    if threads <= 1:
-        return contextlib.nullcontext()
     return threadpool_limits(limits=1, user_api="blas")

@@ -94,7 +94,9 @@ def transform_block(block: np.ndarray, spec: PreprocessSpec) -> np.ndarray:
     The block is modified in place when a transform applies; callers pass fresh blocks.
     """
     if spec.normalize_total is not None:
-        totals = np.nansum(block, axis=1, dtype=np.float64)
+        totals = np.add.reduce(block, axis=1, dtype=np.float64)
+        if not np.isfinite(totals).all():  # skip NaN cells, copying only such blocks
+            totals = np.add.reduce(np.where(np.isfinite(block), block, 0), axis=1, dtype=np.float64)
         factors = np.where(totals > 0, spec.normalize_total / np.where(totals > 0, totals, 1), 0)
         block *= factors.astype(block.dtype)[:, None]
     if spec.log1p:

@@ -161,25 +161,31 @@ def project(
         block = source.read_samples(a, b)
         return block[rows[a:b]] if not rows[a:b].all() else block
 
+    dtype = source.dtype
+    mean_t, inv_t, V_t = mean.astype(dtype), inv.astype(dtype), V.astype(dtype)
+    all_total = match.total_columns.shape[0] == p_in
+
     def task(block):
+        # one gathered copy of the model's columns, then everything in place in the input dtype
         x = block[:, match.model_columns]
         if total is not None:
-            sums = np.nansum(block[:, match.total_columns], axis=1, dtype=np.float64)
+            sums = _row_sums(block if all_total else block[:, match.total_columns])
             factor = np.where(sums > 0, total / np.where(sums > 0, sums, 1), 0.0)
-            x = x * factor.astype(x.dtype)[:, None]
+            x *= factor.astype(dtype)[:, None]
         if spec.log1p:
-            x = np.log1p(x)
-        bad = first_nonfinite(x)
+            np.log1p(x, out=x)
+        bad = first_nonfinite(x) if not np.isfinite(np.add.reduce(x, axis=1)).all() else None
         n_bad = np.zeros(x.shape[0])
         if bad is not None:
             if spec.missing != "mean" and not fill_missing:
                 return None, bad
             mask = ~np.isfinite(x)
             n_bad = mask.sum(axis=1)
-            x = np.where(mask, fill.astype(x.dtype), x)
-        c = (x.astype(np.float64) - mean) * inv
-        scores = c @ V
-        sq = np.einsum("ij,ij->i", c, c)
+            x = np.where(mask, fill.astype(dtype), x)
+        x -= mean_t
+        x *= inv_t
+        scores = (x @ V_t).astype(np.float64)
+        sq = np.einsum("ij,ij->i", x, x, dtype=np.float64)
         return (scores, sq, n_bad), None
 
     counts = [int(rows[a:b].sum()) for a, b in spans]
@@ -209,3 +215,11 @@ def project(
     residual = np.maximum(sq - np.einsum("ij,ij->i", scores, scores), 0.0)
     missing_fraction = (n_bad + match.n_missing) / model.n_features
     return Projection(ids, scores, sq, residual, missing_fraction, match, runner)
+
+
+def _row_sums(block: np.ndarray) -> np.ndarray:
+    """Row sums in float64, ignoring non-finite cells (copying only when there are some)."""
+    sums = np.add.reduce(block, axis=1, dtype=np.float64)
+    if not np.isfinite(sums).all():
+        sums = np.nansum(np.where(np.isfinite(block), block, 0), axis=1, dtype=np.float64)
+    return sums

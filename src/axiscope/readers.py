@@ -441,7 +441,7 @@ def open_matrix(path: str | os.PathLike[str], *, dataset: str | None = None,
         raise OptionError(f"--samples-in {samples_in!r} is not valid; use one of: {', '.join(SAMPLES_IN)}")
     path = pathlib.Path(path)
     if not path.exists():
-        raise InputError(f"{path}: no such file")
+        raise InputError(f"{path}: no such file; check the path")
     kind = _detect_format(path)
     if kind in ("npy", "text") and dataset is not None:
         raise OptionError(f"{path.name}: --dataset only applies to HDF5 and Zarr input; drop it")

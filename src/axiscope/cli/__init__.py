@@ -11,7 +11,7 @@ import sys
 from ._app import app, main
 
 # Importing the command modules registers their commands on the app.
-from . import demo_cmd, fit_cmd, inspect_cmd  # noqa: E402,F401
+from . import demo_cmd, describe_cmd, fit_cmd, inspect_cmd, score_cmd  # noqa: E402,F401
 
 __all__ = ["app", "main"]
 

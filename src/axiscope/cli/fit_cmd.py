@@ -8,9 +8,11 @@ from typing import Annotated
 
 import typer
 
+from ..describe import interpret_fit, plan_interpretation, read_feature_list
 from ..fit import fit
 from ..preprocess import PreprocessSpec
-from ..writers import atomic_directory, check_target
+from ..readers import open_matrix
+from ..writers import atomic_directory, check_target, write_table
 from ._app import app, progress_display, say, setup_logging, user_errors
 from ._options import (
     Dataset,
@@ -28,6 +30,15 @@ from ._options import (
     Scale,
     TableFormat,
     Threads,
+)
+from .describe_cmd import (
+    AllowMissingAnnotations,
+    AnnotationsFile,
+    Categorical,
+    IdColumn,
+    Quantitative,
+    Technical,
+    print_axis_summaries,
 )
 
 
@@ -65,10 +76,18 @@ def fit_command(
     sample_ids: SampleIds = None,
     feature_ids: FeatureIds = None,
     samples_in: SamplesInOpt = SamplesIn.rows,
+    annotations: AnnotationsFile = None,
+    id_column: IdColumn = "sample_id",
+    categorical: Categorical = None,
+    quantitative: Quantitative = None,
+    technical: Technical = None,
+    supplementary_features: Annotated[Path | None, typer.Option(help="Text file with one feature id per line: left out of the axes and reported as supplementary.")] = None,
+    supplementary_samples_column: Annotated[str | None, typer.Option(help="true/false annotation column: true rows are left out of the fit and projected afterwards.")] = None,
+    allow_missing_annotations: AllowMissingAnnotations = False,
     overwrite: Overwrite = False,
     quiet: Quiet = False,
 ) -> None:
-    """Fit principal axes to INPUT and write tables, the model and a manifest to --out."""
+    """Fit principal axes to INPUT and write tables, the model, a manifest and the axis descriptions to --out."""
     setup_logging(quiet)
     with user_errors():
         check_target(out, overwrite)
@@ -76,17 +95,32 @@ def fit_command(
             center=center, scale=scale.value, log1p=log1p, normalize_total=normalize_total,
             min_variance=min_variance, top_variable=top_variable, missing=missing.value,
         )
-        with progress_display(quiet) as progress:
-            result = fit(
-                input, n_components=components, preprocess=spec, oversample=oversample,
-                power_iterations=parse_power_iterations(power_iterations), method=method.value,
-                seed=seed, memory_limit=memory_limit, threads=threads, scratch=scratch,
-                progress=progress, dataset=dataset, sample_ids=sample_ids,
-                feature_ids=feature_ids, samples_in=samples_in.value,
+        with open_matrix(input, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
+                         samples_in=samples_in.value) as src:
+            prepared = plan_interpretation(
+                src, annotations=annotations, id_column=id_column, categorical=categorical,
+                quantitative=quantitative, technical=technical,
+                supplementary_features=read_feature_list(supplementary_features, src.feature_ids)
+                if supplementary_features else None,
+                supplementary_samples_column=supplementary_samples_column,
+                allow_missing=allow_missing_annotations,
             )
+            with progress_display(quiet) as progress:
+                result = fit(
+                    src, n_components=components, preprocess=spec, oversample=oversample,
+                    power_iterations=parse_power_iterations(power_iterations), method=method.value,
+                    seed=seed, memory_limit=memory_limit, threads=threads, scratch=scratch,
+                    progress=progress, active=prepared.active, exclude_features=prepared.exclude,
+                )
+                description = interpret_fit(prepared, result, src, top=top, memory_limit=memory_limit,
+                                            threads=threads, progress=progress)
         with atomic_directory(out, overwrite=overwrite) as tmp:
             result.write(tmp, top=top, parquet=format is TableFormat.parquet, command_line=sys.argv)
+            if prepared.exclude is not None:
+                write_table(result.dropped_features(supplementary=prepared.exclude), tmp / "dropped_features.tsv")
+            description.write(tmp)
     print_fit_summary(result, out, quiet)
+    print_axis_summaries(description, quiet)
 
 
 def print_fit_summary(result, out: Path, quiet: bool) -> None:

@@ -1,0 +1,97 @@
+"""``axiscope score``: place new samples on a saved model's axes and flag the ones it does not describe."""
+
+from __future__ import annotations
+
+import sys
+from enum import Enum
+from pathlib import Path
+from typing import Annotated
+
+import typer
+
+from ..scoring import score
+from ..writers import atomic_directory, check_target
+from ._app import app, progress_display, say, setup_logging, user_errors
+from ._options import (
+    Dataset,
+    FeatureIds,
+    InputPath,
+    MemoryLimit,
+    OutDir,
+    Overwrite,
+    Quiet,
+    SampleIds,
+    SamplesIn,
+    SamplesInOpt,
+    Threads,
+)
+
+
+class FillMissing(str, Enum):
+    mean = "mean"
+
+
+class QLimit(str, Enum):
+    jackson_mudholkar = "jackson-mudholkar"
+    box = "box"
+
+
+ModelDir = Annotated[Path, typer.Argument(help="Model folder (the model/ folder written by 'axiscope fit' or AxiscopePCA.save).")]
+
+
+@app.command("score")
+def score_command(
+    model_dir: ModelDir,
+    input: InputPath,
+    out: OutDir,
+    fill_missing: Annotated[FillMissing | None, typer.Option(help="mean: model features absent from INPUT take their training mean (otherwise an error).")] = None,
+    max_missing_fraction: Annotated[float, typer.Option(min=0.0, max=1.0, help="Flag samples with a larger fraction of filled features.")] = 0.1,
+    confidence: Annotated[float, typer.Option(help="Confidence of the T² and Q limits used for flags (between 0.5 and 1; 0.95 is also reported).")] = 0.99,
+    correct_shrinkage: Annotated[bool, typer.Option("--correct-shrinkage", help="Undo the shrinkage of projected scores when features far outnumber training samples.")] = False,
+    adjust_q: Annotated[bool, typer.Option(help="Raise the Q limits by the expected excess of new samples' residuals over the training ones (matters when features far outnumber training samples).")] = True,
+    q_limit: Annotated[QLimit, typer.Option(help="Q limit: Jackson-Mudholkar (falls back to Box when the moments do not allow it) or Box's scaled chi-square.")] = QLimit.jackson_mudholkar,
+    dataset: Dataset = None,
+    sample_ids: SampleIds = None,
+    feature_ids: FeatureIds = None,
+    samples_in: SamplesInOpt = SamplesIn.rows,
+    memory_limit: MemoryLimit = None,
+    threads: Threads = None,
+    overwrite: Overwrite = False,
+    quiet: Quiet = False,
+) -> None:
+    """Score INPUT against the model in MODEL_DIR; write scores, diagnostics and a manifest to --out."""
+    setup_logging(quiet)
+    with user_errors():
+        check_target(out, overwrite)
+        with progress_display(quiet) as progress:
+            result = score(
+                model_dir, input, fill_missing=fill_missing.value if fill_missing else None,
+                max_missing_fraction=max_missing_fraction, confidence=confidence,
+                correct_shrinkage=correct_shrinkage, adjust_q=adjust_q, q_method=q_limit.value,
+                memory_limit=memory_limit, threads=threads, progress=progress, dataset=dataset,
+                sample_ids=sample_ids, feature_ids=feature_ids, samples_in=samples_in.value,
+            )
+        with atomic_directory(out, overwrite=overwrite) as tmp:
+            result.write(tmp, command_line=sys.argv)
+    print_score_summary(result, out, quiet)
+
+
+def print_score_summary(result, out: Path, quiet: bool) -> None:
+    """A few lines: samples scored, features matched, counts within and flagged, where files are."""
+    m = result.manifest
+    c = m["counts"]
+    say(
+        f"scored {c['samples']} samples on {m['model']['n_components']} axes "
+        f"({c['model_features_matched']} model features matched, {c['model_features_filled']} filled, "
+        f"{c['extra_features_ignored']} extra ignored; {m['seconds']:.1f} s)",
+        quiet,
+    )
+    flags = c["flags"]
+    level = m["options"]["confidence"]
+    flagged = c["samples"] - flags["within"]
+    parts = ", ".join(f"{name} {flags[name]}" for name in ("t2", "q", "both", "missing") if flags[name])
+    say(f"  at {level:g}: {flags['within']} within limits, {flagged} flagged" + (f" ({parts})" if parts else ""), quiet)
+    for key, count in c["flagged_at"].items():
+        if float(key) != level:
+            say(f"  at {key}: {count} flagged", quiet)
+    say(f"  Q limit: {result.q_method}; results in {out}", quiet)

@@ -1,0 +1,513 @@
+"""Scoring new samples against a saved model, with out-of-model diagnostics.
+
+:func:`score` places a batch of new samples on a fitted model's axes in one streaming pass
+(:func:`axiscope.project.project`: features matched by id, the stored preprocessing
+replayed) and computes two distances per sample:
+
+* Hotelling's T² inside the model's ``k``-dimensional space,
+  ``T² = Σ_j t_j² / λ_j`` with ``λ_j = s_j²/(n−1)`` the (unbiased) variance of axis ``j``;
+* the squared prediction error ``Q = ‖x̃ − V·t‖²``, the part of the preprocessed sample
+  left after projection on the axes.
+
+Each is compared with a control limit at the requested confidence (and at 0.95):
+
+* T²: for a new sample independent of the ``n`` training samples,
+  ``T²_α = k(n−1)(n+1) / (n(n−k)) · F_α(k, n−k)`` (Tracy, Young & Mason 1992, "Multivariate
+  control charts for individual observations", Journal of Quality Technology 24(2),
+  88–95, doi:10.1080/00224065.1992.11979383);
+* Q: the approximation of Jackson & Mudholkar (1979, "Control procedures for residuals
+  associated with principal component analysis", Technometrics 21(3), 341–349,
+  doi:10.1080/00401706.1979.10489779) from the moments ``θ_r = Σ_{j>k} λ_j^r`` of the
+  residual eigenvalues, or Box's (1954) scaled chi-square ``g·χ²_h`` matching the mean and
+  variance of the training residuals (Box 1954, Annals of Mathematical Statistics 25(2),
+  290–302, doi:10.1214/aoms/1177728786).
+
+What the limits need from the training data is stored in the model at fit time by
+:func:`training_extras`: ``θ1`` exactly (total variance minus the variance of the ``k``
+axes), ``θ2`` and ``θ3`` estimated from the cumulants of the training residuals (for a
+Gaussian sample ``Q = Σ λ_j z_j²`` has cumulants ``κ1 = θ1``, ``κ2 = 2θ2``, ``κ3 = 8θ3``),
+the mean and variance of the training residuals, and per-axis shrinkage factors
+(:mod:`axiscope.shrinkage`).
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+from . import __version__
+from .errors import ModelError, OptionError
+from .model import MODEL_VERSION, Model, load_model
+from .readers import MatrixSource, open_matrix
+from .shrinkage import spiked_shrinkage
+
+# Note: axiscope.project imports axiscope.fit, which imports training_extras from here, so
+# project is imported inside score() rather than at the top of this module.
+
+__all__ = [
+    "Q_LIMIT_METHODS",
+    "FLAGS",
+    "ControlLimits",
+    "ScoreResult",
+    "score",
+    "t2_limit",
+    "q_limit_jackson_mudholkar",
+    "q_limit_box",
+    "training_extras",
+]
+
+logger = logging.getLogger(__name__)
+
+#: How the Q limit is computed.
+Q_LIMIT_METHODS = ("jackson-mudholkar", "box")
+#: Values of the ``flag`` column of the diagnostics.
+FLAGS = ("within", "t2", "q", "both", "missing")
+#: Confidence always reported besides the requested one.
+SECONDARY_CONFIDENCE = 0.95
+
+
+# ----------------------------------------------------------------------- at fit time
+
+
+def training_extras(
+    singular_values: np.ndarray,
+    scores: np.ndarray,
+    sq_dist: np.ndarray,
+    *,
+    total_inertia: float,
+    n_features: int,
+) -> dict[str, np.ndarray]:
+    """Arrays stored with a model so that new samples can be diagnosed and corrected.
+
+    Parameters
+    ----------
+    singular_values : ndarray, shape (k,)
+    scores : ndarray, shape (n, k)
+        Training scores.
+    sq_dist : ndarray, shape (n,)
+        Squared distance of each training sample to the centre (preprocessed space).
+    total_inertia : float
+        Sum of the variances of the preprocessed features (population convention).
+    n_features : int
+        Number of features used by the axes.
+
+    Returns
+    -------
+    dict
+        ``residual_moments`` (θ1, θ2, θ3), ``residual_mean_var`` (mean and population
+        variance of the training residuals ``Q``), ``shrinkage_factor`` (k,).
+
+    Notes
+    -----
+    θ1 is exact: the sum of the residual eigenvalues is the total variance minus the
+    variance of the ``k`` axes (population convention, ``s²/n``). θ2 and θ3 would need all
+    residual eigenvalues; they are estimated from the second and third central moments
+    of the training residuals, which is exact in expectation for Gaussian data
+    (``Var Q = 2θ2``, ``E(Q − θ1)³ = 8θ3``) and otherwise matches the limit to the observed
+    spread and skew of the residuals. No pass over the data is needed.
+    """
+    s = np.asarray(singular_values, dtype=np.float64)
+    scores = np.asarray(scores, dtype=np.float64)
+    n = scores.shape[0]
+    variance = s**2 / n
+    theta1 = max(float(total_inertia) - float(variance.sum()), 0.0)
+    q = np.maximum(np.asarray(sq_dist, dtype=np.float64) - np.einsum("ij,ij->i", scores, scores), 0.0)
+    centred = q - q.mean()
+    m2 = float(np.mean(centred**2))
+    m3 = float(np.mean(centred**3))
+    shrink = spiked_shrinkage(variance, n_samples=n, n_features=n_features, total_variance=total_inertia)
+    return {
+        "residual_moments": np.array([theta1, m2 / 2.0, m3 / 8.0]),
+        "residual_mean_var": np.array([float(q.mean()), m2]),
+        "shrinkage_factor": shrink.factor,
+    }
+
+
+# ----------------------------------------------------------------------- control limits
+
+
+def t2_limit(confidence: float, n_components: int, n_samples: int) -> float:
+    """Control limit of Hotelling's T² for a new sample (Tracy, Young & Mason 1992).
+
+    ``k(n−1)(n+1) / (n(n−k)) · F⁻¹(confidence; k, n−k)`` with T² computed from the
+    unbiased axis variances ``s²/(n−1)``. NaN when ``n <= k``.
+    """
+    k, n = int(n_components), int(n_samples)
+    if n <= k:
+        return float("nan")
+    return float(k * (n - 1) * (n + 1) / (n * (n - k)) * stats.f.ppf(confidence, k, n - k))
+
+
+def q_limit_jackson_mudholkar(confidence: float, theta1: float, theta2: float, theta3: float) -> float:
+    """Jackson & Mudholkar (1979) limit of the squared prediction error.
+
+    ``Q_α = θ1·[c_α·sqrt(2θ2h0²)/θ1 + 1 + θ2h0(h0 − 1)/θ1²]^(1/h0)``,
+    ``h0 = 1 − 2θ1θ3/(3θ2²)``, ``c_α`` the standard normal quantile at ``confidence``.
+    NaN when the moments do not allow it (``θ1, θ2 <= 0``, ``h0 <= 0`` or a negative base).
+    """
+    if not (theta1 > 0 and theta2 > 0):
+        return float("nan")
+    h0 = 1.0 - 2.0 * theta1 * theta3 / (3.0 * theta2**2)
+    if not h0 > 0:
+        return float("nan")
+    c = stats.norm.ppf(confidence)
+    base = c * np.sqrt(2.0 * theta2 * h0**2) / theta1 + 1.0 + theta2 * h0 * (h0 - 1.0) / theta1**2
+    if not base > 0:
+        return float("nan")
+    return float(theta1 * base ** (1.0 / h0))
+
+
+def q_limit_box(confidence: float, mean: float, variance: float) -> float:
+    """Box (1954) limit: ``g·χ²⁻¹(confidence; h)`` with ``g = var/(2·mean)``, ``h = 2·mean²/var``."""
+    if not (mean > 0 and variance > 0):
+        return float("nan")
+    g = variance / (2.0 * mean)
+    h = 2.0 * mean**2 / variance
+    return float(g * stats.chi2.ppf(confidence, h))
+
+
+@dataclass
+class ControlLimits:
+    """Limits of T² and Q at one confidence level.
+
+    ``q`` includes ``q_offset``, the expected excess of new samples' residuals over the
+    training residuals (:func:`residual_excess`; zero when ``adjust_q=False``).
+    """
+
+    confidence: float
+    t2: float
+    q: float
+    q_offset: float = 0.0
+
+    def to_dict(self) -> dict:
+        return {"confidence": self.confidence, "t2_limit": self.t2, "q_limit": self.q,
+                "q_offset": self.q_offset}
+
+
+def residual_excess(model: Model) -> float:
+    """Expected excess of a new sample's Q over the mean training Q.
+
+    ``Σ_j λ_j(1 − f_j²) + 2θ1/n``. First term: the training samples helped choose the axes,
+    so the axes take up more of their variance (``λ_j``, population convention) than of a
+    new sample's (``f_j²·λ_j`` with ``f_j`` the shrinkage factor, :mod:`axiscope.shrinkage`);
+    the difference is left in a new sample's residual. Second term: the training residuals
+    are measured from the training mean with the ``1/n`` convention (expected
+    ``(n−1)/n`` of the residual variance) while a new sample also carries the error of that
+    mean (``+1/n``). Both vanish when samples far outnumber features.
+    """
+    factor = model.extras.get("shrinkage_factor")
+    moments = model.extras.get("residual_moments")
+    if factor is None or moments is None:
+        raise ModelError(
+            "the model stores no shrinkage factors (written by an older axiscope); refit it, "
+            "or score without --correct-shrinkage and with --no-adjust-q"
+        )
+    f = np.asarray(factor, dtype=np.float64)
+    theta1 = float(moments[0])
+    return float(np.sum(model.variance * (1.0 - f**2)) + 2.0 * theta1 / model.n_samples)
+
+
+def model_limits(model: Model, confidence: float, *, q_method: str = "jackson-mudholkar",
+                 q_offset: float = 0.0) -> tuple[ControlLimits, str]:
+    """Limits for ``model`` at ``confidence`` and the name of the Q method actually used.
+
+    ``q_offset`` is added to the Q limit (see :func:`residual_excess`).
+    """
+    moments = model.extras.get("residual_moments")
+    mean_var = model.extras.get("residual_mean_var")
+    if moments is None or mean_var is None:
+        raise ModelError(
+            "the model stores no training residual statistics (it was written by an older "
+            "axiscope); refit it to score new samples with control limits"
+        )
+    t2 = t2_limit(confidence, model.n_components, model.n_samples)
+    used = q_method
+    if q_method == "jackson-mudholkar":
+        q = q_limit_jackson_mudholkar(confidence, *map(float, moments))
+        if not np.isfinite(q):
+            used = "box"
+            q = q_limit_box(confidence, *map(float, mean_var))
+    else:
+        q = q_limit_box(confidence, *map(float, mean_var))
+    return ControlLimits(float(confidence), t2, q + q_offset, q_offset), used
+
+
+# ---------------------------------------------------------------------------- results
+
+
+@dataclass
+class ScoreResult:
+    """New samples placed on a model's axes, with diagnostics.
+
+    Attributes
+    ----------
+    scores : DataFrame
+        ``sample_id``, ``PC1`` … ``PCk``.
+    diagnostics : DataFrame
+        ``sample_id``, ``t2``, ``t2_limit``, ``q``, ``q_limit``, ``flag`` (one of
+        ``within``, ``t2``, ``q``, ``both``, ``missing``) and ``missing_fraction``.
+    limits : dict of float to ControlLimits
+        Limits at the requested confidence and at 0.95.
+    q_method : str
+        ``"jackson-mudholkar"`` or ``"box"`` (the method that produced the Q limits).
+    manifest : dict
+        Model checksum and version, input, options, counts and timings.
+    """
+
+    scores: pd.DataFrame
+    diagnostics: pd.DataFrame
+    limits: dict
+    q_method: str
+    manifest: dict = field(default_factory=dict)
+
+    def counts(self) -> dict[str, int]:
+        """Number of samples with each flag at the requested confidence."""
+        values = self.diagnostics["flag"].to_numpy()
+        return {f: int(np.sum(values == f)) for f in FLAGS}
+
+    def flagged(self, confidence: float | None = None) -> np.ndarray:
+        """Boolean mask of samples beyond a limit (or above the missing fraction)."""
+        if confidence is None:
+            return self.diagnostics["flag"].to_numpy() != "within"
+        lim = self.limits[confidence]
+        d = self.diagnostics
+        return ((d["t2"] > lim.t2) | (d["q"] > lim.q) | (d["flag"] == "missing")).to_numpy()
+
+    def write(self, directory: Path, *, command_line: list[str] | None = None) -> None:
+        """Write ``scores.tsv``, ``diagnostics.tsv`` and ``manifest.json`` into ``directory``.
+
+        Callers wanting atomic output wrap this in :func:`axiscope.writers.atomic_directory`.
+        """
+        from .writers import write_json, write_table
+
+        directory = Path(directory)
+        directory.mkdir(parents=True, exist_ok=True)
+        write_table(self.scores, directory / "scores.tsv")
+        write_table(self.diagnostics, directory / "diagnostics.tsv")
+        manifest = dict(self.manifest)
+        if command_line is not None:
+            manifest["command_line"] = command_line
+        write_json(manifest, directory / "manifest.json")
+
+
+# ----------------------------------------------------------------------------- scoring
+
+
+def _fill_option(fill_missing) -> bool:
+    if fill_missing is None or fill_missing is False:
+        return False
+    if fill_missing is True or fill_missing == "mean":
+        return True
+    raise OptionError(f"--fill-missing {fill_missing!r} is not supported; use 'mean' or leave it out")
+
+
+def score(
+    model: Model | str | os.PathLike,
+    source: MatrixSource | str | os.PathLike,
+    *,
+    fill_missing: str | bool | None = None,
+    max_missing_fraction: float = 0.1,
+    confidence: float = 0.99,
+    correct_shrinkage: bool = False,
+    adjust_q: bool = True,
+    q_method: str = "jackson-mudholkar",
+    memory_limit: int | str | None = None,
+    threads: int | None = None,
+    progress=None,
+    dataset: str | None = None,
+    sample_ids: str | None = None,
+    feature_ids: str | None = None,
+    samples_in: str = "rows",
+) -> ScoreResult:
+    """Score new samples against a saved model and flag those the model does not describe.
+
+    Parameters
+    ----------
+    model : Model or path
+        A fitted model, or its directory (the ``model/`` folder written by ``axiscope fit``
+        or :meth:`axiscope.estimator.AxiscopePCA.save`); a directory is verified (format
+        version and checksums) by :func:`axiscope.model.load_model`.
+    source : MatrixSource or path
+        The new samples. A path is opened with :func:`axiscope.readers.open_matrix` using
+        ``dataset``, ``sample_ids``, ``feature_ids`` and ``samples_in``.
+    fill_missing : {"mean"} or None, default=None
+        Model features absent from the input (and NaN cells) take their training mean,
+        adding nothing to scores, T² or Q; otherwise their absence is an error.
+    max_missing_fraction : float, default=0.1
+        Samples with a larger fraction of filled features are flagged ``missing`` (their
+        T² and Q are underestimated). Common practice, no source.
+    confidence : float, default=0.99
+        Confidence of the control limits used for the ``flag`` column; limits at 0.95
+        are reported as well.
+    correct_shrinkage : bool, default=False
+        Divide the projected scores by the per-axis shrinkage factors stored in the model
+        (:mod:`axiscope.shrinkage`) before writing them and computing T². Worth it when
+        features far outnumber the training samples.
+    adjust_q : bool, default=True
+        Raise the Q limits by the expected excess of new samples' residuals over the
+        training residuals (:func:`residual_excess`). Without it, when features far
+        outnumber training samples, clean new samples exceed the Q limit far more often
+        than ``1 − confidence`` (the training residuals are too small: the axes were fitted
+        to those samples). Negligible when samples far outnumber features.
+    q_method : {"jackson-mudholkar", "box"}, default="jackson-mudholkar"
+        Limit of Q. Jackson–Mudholkar falls back to Box when the stored moments do not
+        allow it (the manifest says which was used).
+    memory_limit, threads, progress
+        As for :func:`axiscope.fit`.
+
+    Returns
+    -------
+    ScoreResult
+
+    Notes
+    -----
+    One streaming pass over the input; memory is the model plus a window of blocks plus
+    ``O(m·k)`` for the ``m`` scored samples.
+    """
+    from .project import project
+
+    t0 = time.perf_counter()
+    fill = _fill_option(fill_missing)
+    if not 0.5 < confidence < 1:
+        raise OptionError(f"--confidence must be between 0.5 and 1 (exclusive), got {confidence}")
+    if not 0 <= max_missing_fraction <= 1:
+        raise OptionError(f"--max-missing-fraction must be between 0 and 1, got {max_missing_fraction}")
+    if q_method not in Q_LIMIT_METHODS:
+        raise OptionError(f"--q-limit {q_method!r} is not one of {', '.join(Q_LIMIT_METHODS)}")
+
+    model_info: dict = {"format_version": MODEL_VERSION}
+    if isinstance(model, Model):
+        model_info.update(path=None, checksum=None)
+    else:
+        model_dir = Path(model)
+        model = load_model(model_dir)
+        model_info.update(path=str(model_dir), checksum=model.checksum(model_dir))
+    levels = sorted({float(confidence), SECONDARY_CONFIDENCE}, reverse=True)
+    factor = np.ones(model.n_components)
+    offset = 0.0
+    if adjust_q:
+        offset = residual_excess(model)
+    if correct_shrinkage:
+        residual_excess(model)  # clear error when the model has no factors
+        factor = np.asarray(model.extras["shrinkage_factor"], dtype=np.float64)
+    limits = {}
+    methods = set()
+    for level in levels:
+        limits[level], used = model_limits(model, level, q_method=q_method, q_offset=offset)
+        methods.add(used)
+    used_method = "box" if "box" in methods else q_method
+    if used_method != q_method:
+        logger.info(
+            "the stored residual moments do not allow the Jackson-Mudholkar Q limit (h0 <= 0: "
+            "residuals more skewed than a Gaussian quadratic form); using Box's scaled chi-square"
+        )
+        limits = {level: model_limits(model, level, q_method="box", q_offset=offset)[0] for level in levels}
+
+    owned = not isinstance(source, MatrixSource)
+    src = open_matrix(source, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
+                      samples_in=samples_in) if owned else source
+    try:
+        proj = project(model, src, fill_missing=fill, memory_limit=memory_limit, threads=threads,
+                       progress=progress)
+        input_info = {
+            "path": str(src.path),
+            "format": src.format,
+            "dataset": src.dataset,
+            "samples_in": src.samples_in,
+            "shape": list(src.shape),
+            "dtype": str(src.dtype),
+        }
+    finally:
+        if owned:
+            src.close()
+
+    scores = proj.scores / factor
+    axis_var = model.singular_values**2 / max(model.n_samples - 1, 1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t2 = np.sum(scores**2 / axis_var, axis=1)
+    q = proj.residual
+    main = limits[float(confidence)]
+    over_t2 = t2 > main.t2
+    over_q = q > main.q
+    flag = np.full(t2.shape[0], "within", dtype=object)
+    flag[over_t2 & ~over_q] = "t2"
+    flag[over_q & ~over_t2] = "q"
+    flag[over_t2 & over_q] = "both"
+    flag[proj.missing_fraction > max_missing_fraction] = "missing"
+
+    ids = np.asarray(proj.sample_ids, dtype=str)
+    scores_df = pd.DataFrame(scores, columns=model.axis_names)
+    scores_df.insert(0, "sample_id", ids)
+    diagnostics = pd.DataFrame(
+        {
+            "sample_id": ids,
+            "t2": t2,
+            "t2_limit": main.t2,
+            "q": q,
+            "q_limit": main.q,
+            "flag": flag,
+            "missing_fraction": proj.missing_fraction,
+        }
+    )
+    counts = {f: int(np.sum(flag == f)) for f in FLAGS}
+    manifest = {
+        "axiscope_version": __version__,
+        "model": {
+            **model_info,
+            "n_components": model.n_components,
+            "n_features": model.n_features,
+            "n_training_samples": model.n_samples,
+        },
+        "input": input_info,
+        "options": {
+            "fill_missing": "mean" if fill else None,
+            "max_missing_fraction": max_missing_fraction,
+            "confidence": float(confidence),
+            "correct_shrinkage": bool(correct_shrinkage),
+            "adjust_q": bool(adjust_q),
+            "q_limit_method": used_method,
+        },
+        "limits": {
+            "t2": "F distribution, k(n-1)(n+1)/(n(n-k)) F(k, n-k) (Tracy, Young & Mason 1992)",
+            "q": (
+                "Jackson & Mudholkar (1979): theta1 exact from the eigenvalues, theta2 and "
+                "theta3 from the cumulants of the training residuals"
+                + ("; plus q_offset, the expected excess of new samples' residuals" if adjust_q else "")
+                if used_method == "jackson-mudholkar"
+                else "Box (1954) scaled chi-square from the mean and variance of the training residuals"
+                + ("; plus q_offset, the expected excess of new samples' residuals" if adjust_q else "")
+            ),
+            "levels": [limits[level].to_dict() for level in levels],
+        },
+        "shrinkage_factor": factor.tolist() if correct_shrinkage else None,
+        "counts": {
+            "samples": int(t2.shape[0]),
+            "model_features_matched": int(proj.match.present.sum()),
+            "model_features_filled": int(proj.match.n_missing),
+            "extra_features_ignored": int(proj.match.n_extra),
+            "flags": counts,
+            "flagged_at": {
+                f"{level:g}": int(np.sum((t2 > limits[level].t2) | (q > limits[level].q)
+                                         | (proj.missing_fraction > max_missing_fraction)))
+                for level in levels
+            },
+        },
+        "passes": [
+            {"name": r.name, "read_from": r.source, "seconds": round(r.seconds, 3), "blocks": r.n_blocks}
+            for r in proj.passes.records
+        ],
+        "seconds": round(time.perf_counter() - t0, 3),
+    }
+    if proj.match.n_missing:
+        logger.warning(
+            "%d of the model's %d features are missing from %s and were filled with their training mean",
+            proj.match.n_missing, model.n_features, input_info["path"],
+        )
+    return ScoreResult(scores_df, diagnostics, {lv: limits[lv] for lv in levels}, used_method, manifest)

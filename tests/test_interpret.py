@@ -1,0 +1,214 @@
+"""Contributions, squared cosines, correlations and supplementary elements.
+
+References: textbook PCA algebra (common practice, no source) for the identities;
+numpy.corrcoef / scipy.stats.pearsonr and LAPACK through numpy for direct computations.
+Data: invented random matrices with planted structure.
+"""
+
+from __future__ import annotations
+
+import time
+import tracemalloc
+
+import h5py
+import numpy as np
+import pytest
+from scipy import stats as sps
+
+from axiscope import PreprocessSpec, fit, open_matrix
+from axiscope.interpret import (
+    feature_statistics,
+    read_feature_statistics,
+    sample_contributions,
+    sample_quality,
+    supplementary_feature_statistics,
+)
+from axiscope.project import project
+from axiscope.readers import array_source
+
+
+def _planted(n, p, seed=0, rank=3):
+    rng = np.random.default_rng(seed)
+    X = rng.standard_normal((n, rank)) @ (3 * rng.standard_normal((rank, p))) + rng.standard_normal((n, p))
+    return X + rng.uniform(1, 5, p)
+
+
+def _counts(n, p, seed=0):
+    rng = np.random.default_rng(seed)
+    mu = np.exp(rng.normal(2, 1, p)) * np.exp(rng.normal(0, 0.5, (n, 1)))
+    mu[: n // 2, : p // 5] *= 4
+    return rng.poisson(mu).astype(np.float32)
+
+
+def _transformed(X, spec):
+    """The per-sample transforms of the fit, computed directly (reference: their definition)."""
+    Y = np.asarray(X, dtype=np.float64).copy()
+    if spec.normalize_total is not None:
+        Y = Y * (spec.normalize_total / Y.sum(axis=1, keepdims=True))
+    if spec.log1p:
+        Y = np.log1p(Y)
+    return Y
+
+
+def test_identities_exact_full_rank():
+    # identities of textbook PCA algebra (common practice, no source); n < p so that the
+    # n − 1 axes of an exact fit span the whole centred space
+    X = _planted(9, 25, seed=1)
+    r = fit(array_source(X), n_components=8, method="exact")
+    names = r.axis_names
+    ctr = sample_contributions(r.sample_ids, r.scores, r.model.singular_values, names)
+    np.testing.assert_allclose(ctr[[f"contribution_{a}" for a in names]].sum(axis=0), 100.0, rtol=1e-10)
+    q = sample_quality(r.sample_ids, r.scores, r.sample_sq_dist, names)
+    np.testing.assert_allclose(q["quality"], 1.0, rtol=1e-8)
+    fs = feature_statistics(r.model)
+    np.testing.assert_allclose(fs.contribution.sum(axis=0), 100.0, rtol=1e-10)
+    np.testing.assert_allclose(fs.cos2.sum(axis=1), 1.0, rtol=1e-8)
+    # unit scaling: correlation = loading × sqrt(variance of the axis)
+    np.testing.assert_allclose(fs.correlation, r.model.components * np.sqrt(r.model.variance), atol=1e-12)
+
+
+@pytest.mark.parametrize(
+    "spec",
+    [
+        PreprocessSpec(),
+        PreprocessSpec(scale="none"),
+        PreprocessSpec(scale="none", center=False),
+        PreprocessSpec(normalize_total=1e4, log1p=True),
+        PreprocessSpec(scale="binomial"),
+    ],
+    ids=["unit", "none", "uncentred", "log-cpm", "binomial"],
+)
+def test_closed_form_correlations_match_direct_computation(spec):
+    rng = np.random.default_rng(3)
+    if spec.scale == "binomial":
+        freq = rng.uniform(0.1, 0.9, 40)
+        X = rng.binomial(2, freq, (60, 40)).astype(np.float64)
+        X[:30, :8] = rng.binomial(2, 0.95, (30, 8))
+    elif spec.log1p:
+        X = _counts(60, 40).astype(np.float64)
+    else:
+        X = _planted(60, 40, seed=3)
+    r = fit(array_source(X), n_components=4, preprocess=spec, method="exact")
+    fs = feature_statistics(r.model)
+    Y = _transformed(X, spec)[:, r.preprocessing.kept]
+    for j in range(Y.shape[1]):
+        for a in range(4):
+            ref = sps.pearsonr(Y[:, j], r.scores[:, a]).statistic  # reference: scipy.stats.pearsonr
+            assert fs.correlation[j, a] == pytest.approx(ref, abs=1e-8)
+    # squared cosine: (x̃ᵀu_a)² / ‖x̃‖² with x̃ the preprocessed column (definition)
+    Xt = (Y - r.model.mean) / r.model.scale
+    U = r.scores / r.model.singular_values
+    cos2 = (Xt.T @ U) ** 2 / (Xt**2).sum(axis=0)[:, None]
+    np.testing.assert_allclose(fs.cos2, cos2, atol=1e-9)
+    top = r.top_features(3)
+    assert {"correlation", "contribution"} <= set(top.columns)
+    row = top.iloc[0]
+    j = list(r.model.feature_ids).index(row.feature_id)
+    assert row.correlation == pytest.approx(fs.correlation[j, 0])
+    assert row.contribution == pytest.approx(100 * r.model.components[j, 0] ** 2)
+
+
+@pytest.mark.parametrize("spec", [PreprocessSpec(), PreprocessSpec(normalize_total=1e4, log1p=True),
+                                  PreprocessSpec(scale="none", center=False)],
+                         ids=["unit", "log-cpm", "uncentred"])
+def test_streaming_statistics_of_active_features_reproduce_the_closed_form(spec):
+    # the same quantities by two routes: the model (closed form) and a pass over the data
+    X = _counts(50, 30, seed=5)
+    r = fit(array_source(X), n_components=3, preprocess=spec, method="exact")
+    src = array_source(X)
+    s = supplementary_feature_statistics(src, r.scores, r.model.singular_values,
+                                         columns=r.preprocessing.kept, spec=spec, memory_limit="64MB", threads=1)
+    fs = feature_statistics(r.model)
+    np.testing.assert_allclose(s.correlation, fs.correlation, atol=1e-6)
+    np.testing.assert_allclose(s.cos2, fs.cos2, atol=1e-6)
+    np.testing.assert_allclose(s.loading, fs.loading, atol=1e-6)
+    assert np.isnan(s.contribution).all() and s.supplementary.all()
+
+
+def test_supplementary_features_and_dropped_reason():
+    X = _planted(80, 30, seed=7)
+    exclude = np.zeros(30, dtype=bool)
+    exclude[[2, 11, 29]] = True
+    r = fit(array_source(X), n_components=3, method="exact", exclude_features=exclude)
+    assert not set(r.model.feature_ids) & set(np.asarray(r.input_feature_ids)[exclude])
+    src = array_source(X)
+    s = supplementary_feature_statistics(src, r.scores, r.model.singular_values, columns=exclude, threads=1)
+    for row, j in enumerate(np.flatnonzero(exclude)):
+        ref = np.corrcoef(X[:, j], r.scores.T)[0, 1:]  # reference: numpy.corrcoef
+        np.testing.assert_allclose(s.correlation[row], ref, atol=1e-10)
+    dropped = r.dropped_features()
+    assert (dropped.reason == "supplementary").sum() == 3
+    assert list(r.dropped_features(supplementary=exclude).reason) == ["supplementary"] * 3
+
+
+def test_supplementary_features_with_missing_values_use_the_mean():
+    rng = np.random.default_rng(9)
+    X = _planted(70, 12, seed=9)
+    Z = rng.standard_normal((70, 4))
+    Z[rng.random((70, 4)) < 0.1] = np.nan
+    r = fit(array_source(X), n_components=2, method="exact")
+    spec = PreprocessSpec(missing="mean")
+    s = supplementary_feature_statistics(array_source(Z), r.scores, r.model.singular_values, spec=spec, threads=1)
+    filled = np.where(np.isnan(Z), np.nanmean(Z, axis=0), Z)
+    for j in range(4):
+        ref = np.corrcoef(filled[:, j], r.scores.T)[0, 1:]  # reference: numpy.corrcoef on mean-imputed data
+        np.testing.assert_allclose(s.correlation[j], ref, atol=1e-10)
+    with pytest.raises(Exception, match="NaN or infinite"):
+        supplementary_feature_statistics(array_source(Z), r.scores, r.model.singular_values, threads=1)
+
+
+def test_supplementary_samples_reproduce_active_scores_and_leave_axes_unchanged():
+    X = _planted(90, 20, seed=11)
+    active = np.ones(90, dtype=bool)
+    active[::7] = False
+    r = fit(array_source(X), n_components=3, method="exact", active=active)
+    # projecting training rows as if supplementary gives back their active scores
+    back = project(r.model, array_source(X), rows=active, threads=1)
+    np.testing.assert_allclose(back.scores, r.scores, atol=1e-8)
+    np.testing.assert_allclose(back.sq_dist, r.sample_sq_dist, rtol=1e-8)
+    # supplementary rows do not change the axes: same as a fit on the active rows alone
+    alone = fit(array_source(X[active]), n_components=3, method="exact")
+    np.testing.assert_allclose(np.abs(r.model.components), np.abs(alone.model.components), atol=1e-10)
+    np.testing.assert_allclose(r.model.singular_values, alone.model.singular_values, rtol=1e-12)
+    sup = project(r.model, array_source(X), rows=~active, threads=1)
+    q = sample_quality(sup.sample_ids, sup.scores, sup.sq_dist, r.axis_names, status="supplementary")
+    assert ((q.quality > 0) & (q.quality <= 1 + 1e-12)).all()
+
+
+def test_feature_statistics_for_a_million_features_stay_under_budget(tmp_path):
+    # Out of core: 40 samples × 1,000,000 features (160 MB as float32 on disk, 320 MB as
+    # float64). The per-feature statistics are computed in one pass over row blocks; the
+    # memory budget passed (180 MB) is well under the float64 matrix, and the traced peak
+    # must stay below it and below the size of the float32 data itself (no whole copy).
+    n, p, k = 40, 1_000_000, 2
+    rng = np.random.default_rng(0)
+    latent = rng.standard_normal((n, k))
+    path = tmp_path / "wide.h5"
+    with h5py.File(path, "w") as fh:
+        d = fh.create_dataset("matrix", shape=(n, p), dtype="float32", chunks=(8, 65536))
+        w = rng.standard_normal((k, 1000)).astype(np.float32)
+        for lo in range(0, p, 250_000):
+            noise = rng.standard_normal((n, 250_000), dtype=np.float32)
+            noise[:, :1000] += (latent @ w).astype(np.float32)
+            d[:, lo : lo + 250_000] = noise
+    scores = latent * np.array([30.0, 20.0])
+    s_values = np.sqrt((scores**2).sum(axis=0))
+    budget = 180 * 2**20
+    t0 = time.perf_counter()
+    with open_matrix(path) as src:
+        tracemalloc.start()
+        stats = supplementary_feature_statistics(src, scores, s_values, memory_limit=budget, threads=1)
+        _, peak = tracemalloc.get_traced_memory()
+        tracemalloc.stop()
+        check = src.read_samples(0, n)[:, [0, 500, 999_999]].astype(np.float64)
+    assert peak < budget, f"peak {peak / 2**20:.0f} MB over the {budget / 2**20:.0f} MB budget"
+    assert peak < n * p * 4, f"peak {peak / 2**20:.0f} MB: as much as the whole float32 matrix"
+    for col, j in enumerate([0, 500, 999_999]):
+        ref = np.corrcoef(check[:, col], scores.T)[0, 1:]  # reference: numpy.corrcoef
+        np.testing.assert_allclose(stats.correlation[j], ref, atol=1e-6)
+    path_out = stats.write(tmp_path)  # above 200,000 features: Zarr with ids
+    assert path_out.suffix == ".zarr"
+    back = read_feature_statistics(tmp_path)
+    assert back.feature_ids[999_999] == stats.feature_ids[999_999]
+    np.testing.assert_array_equal(back.correlation[:5], stats.correlation[:5])
+    assert time.perf_counter() - t0 < 60

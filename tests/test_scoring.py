@@ -1,0 +1,348 @@
+"""Tests of :mod:`axiscope.scoring` and ``axiscope score``.
+
+Outside references: the dense textbook computation of the conftest (numpy/LAPACK SVD of
+the preprocessed matrix), scikit-learn's PCA, scipy.stats distributions, the published
+formulas of the control limits (written out in this file, independently of the library),
+and simulations whose truth the test planted.
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+from typer.testing import CliRunner
+
+from axiscope import PreprocessSpec, fit, load_model
+from axiscope.cli import app
+from axiscope.errors import InputError, ModelError, OptionError
+from axiscope.readers import array_source
+from axiscope.scoring import score
+
+runner = CliRunner()
+
+
+def spiked_gaussian(rng, n, p, spikes, U, offset=3.0):
+    """Gaussian samples ``offset + U·diag(√spikes)·z + e`` (planted truth: the covariance)."""
+    k = len(spikes)
+    return offset + (rng.standard_normal((n, k)) * np.sqrt(spikes)) @ U.T + rng.standard_normal((n, p))
+
+
+@pytest.fixture(scope="module")
+def calibration():
+    """A model fitted on 2000 Gaussian samples and 4000 new samples from the same distribution."""
+    rng = np.random.default_rng(11)
+    p, spikes = 40, np.array([12.0, 8.0, 5.0])
+    U, _ = np.linalg.qr(rng.standard_normal((p, 3)))
+    X_train = spiked_gaussian(rng, 2000, p, spikes, U)
+    X_new = spiked_gaussian(rng, 4000, p, spikes, U)
+    result = fit(array_source(X_train), n_components=3, threads=1)
+    return {"X_train": X_train, "X_new": X_new, "U": U, "spikes": spikes, "fit": result}
+
+
+# ------------------------------------------------------------------ reproducing scores
+
+
+def test_scoring_the_training_file_reproduces_training_scores(write_matrix, planted, dense, orient, tmp_path):
+    P = planted(120, 60, rank=4, seed=3)
+    path = write_matrix(P.X, "zarr3", feature_ids=[f"g{j}" for j in range(60)],
+                        sample_ids=[f"s{i}" for i in range(120)])
+    result = fit(path, n_components=4, threads=1)
+    result.model.save(tmp_path / "model")
+    scored = score(tmp_path / "model", path, threads=1)
+    got = scored.scores[result.axis_names].to_numpy()
+    # reference: the fit's own training scores (the issue's requirement, ≤ 1e-5 relative)
+    rel = np.linalg.norm(got - result.scores) / np.linalg.norm(result.scores)
+    assert rel <= 1e-5
+    # reference: numpy/LAPACK SVD of the densely standardized matrix (conftest.dense_reference)
+    ref = dense(P.X)
+    _, ref_scores = orient(ref.components(4), ref.scores(4))
+    np.testing.assert_allclose(got, ref_scores, rtol=0, atol=1e-6 * np.abs(ref_scores).max())
+    assert list(scored.scores["sample_id"]) == [f"s{i}" for i in range(120)]
+
+
+def test_permuted_and_extra_feature_columns_give_identical_scores(planted):
+    P = planted(80, 30, rank=3, seed=5)
+    ids = np.array([f"g{j}" for j in range(30)])
+    result = fit(array_source(P.X, feature_ids=ids), n_components=3, threads=1)
+    rng = np.random.default_rng(0)
+    extra = rng.standard_normal((80, 7)) * 100  # junk features the model does not use
+    order = rng.permutation(37)
+    shuffled = np.hstack([P.X, extra])[:, order]
+    shuffled_ids = np.concatenate([ids, [f"junk{j}" for j in range(7)]])[order]
+    a = score(result.model, array_source(P.X, feature_ids=ids), threads=1)
+    b = score(result.model, array_source(shuffled, feature_ids=shuffled_ids), threads=1)
+    # reference: the unpermuted matrix (planted by the test); matching is by id, so equal
+    np.testing.assert_allclose(b.scores.iloc[:, 1:].to_numpy(), a.scores.iloc[:, 1:].to_numpy(), rtol=0, atol=1e-12)
+    np.testing.assert_allclose(b.diagnostics["q"], a.diagnostics["q"], rtol=1e-12)
+    assert b.manifest["counts"]["extra_features_ignored"] == 7
+
+
+# -------------------------------------------------------------------------- diagnostics
+
+
+def test_t2_and_q_values_match_scikit_learn_pca(calibration):
+    from sklearn.decomposition import PCA
+    from sklearn.preprocessing import StandardScaler
+
+    X_train, X_new = calibration["X_train"], calibration["X_new"][:200]
+    res = score(calibration["fit"].model, array_source(X_new), threads=1)
+    # reference: scikit-learn StandardScaler (population SD) + PCA (LAPACK, variances with n−1)
+    scaler = StandardScaler().fit(X_train)
+    pca = PCA(n_components=3, svd_solver="full").fit(scaler.transform(X_train))
+    Z = scaler.transform(X_new)
+    T = pca.transform(Z)
+    t2_ref = np.sum(T**2 / pca.explained_variance_, axis=1)  # Hotelling's T², textbook definition
+    q_ref = np.sum((Z - pca.inverse_transform(T)) ** 2, axis=1)  # squared prediction error
+    np.testing.assert_allclose(res.diagnostics["t2"], t2_ref, rtol=1e-8)
+    np.testing.assert_allclose(res.diagnostics["q"], q_ref, rtol=1e-8)
+
+
+def test_t2_limit_matches_f_distribution_formula(calibration):
+    model = calibration["fit"].model
+    res = score(model, array_source(calibration["X_new"][:50]), threads=1, confidence=0.99)
+    n, k = model.n_samples, model.n_components
+    for level in (0.99, 0.95):
+        # reference: Tracy, Young & Mason (1992), J. Quality Technology 24(2), limit of T² for a
+        # new observation, k(n−1)(n+1)/(n(n−k))·F(k, n−k), with scipy.stats.f
+        expected = k * (n - 1) * (n + 1) / (n * (n - k)) * stats.f.ppf(level, k, n - k)
+        assert res.limits[level].t2 == pytest.approx(expected, rel=1e-12)
+    assert np.all(res.diagnostics["t2_limit"] == res.limits[0.99].t2)
+
+
+def test_q_limit_matches_jackson_mudholkar_formula(calibration):
+    from sklearn.decomposition import PCA
+    from sklearn.preprocessing import StandardScaler
+
+    X_train = calibration["X_train"]
+    model = calibration["fit"].model
+    res = score(model, array_source(calibration["X_new"][:50]), threads=1)
+    assert res.q_method == "jackson-mudholkar"
+    Z = StandardScaler().fit_transform(X_train)
+    # reference: numpy.linalg.eigvalsh of the (population) covariance; θ1 = sum of the
+    # eigenvalues left out of the model
+    eig = np.sort(np.linalg.eigvalsh(Z.T @ Z / Z.shape[0]))[::-1]
+    theta1 = eig[3:].sum()
+    # θ2, θ3 from the central moments of the training residuals (scipy.stats.moment), using
+    # Var Q = 2θ2 and E(Q − θ1)³ = 8θ3 for Gaussian quadratic forms (Jackson & Mudholkar 1979)
+    pca = PCA(n_components=3, svd_solver="full").fit(Z)
+    q_train = np.sum((Z - pca.inverse_transform(pca.transform(Z))) ** 2, axis=1)
+    theta2 = stats.moment(q_train, 2) / 2
+    theta3 = stats.moment(q_train, 3) / 8
+    assert q_train.mean() == pytest.approx(theta1, rel=1e-9)
+    # for Gaussian data these estimate the eigenvalue moments (reference: eigvalsh), loosely
+    assert theta2 == pytest.approx(np.sum(eig[3:] ** 2), rel=0.15)
+    for level in (0.99, 0.95):
+        # reference: Jackson & Mudholkar (1979), Technometrics 21(3), 341–349, eq. for Q_α
+        h0 = 1 - 2 * theta1 * theta3 / (3 * theta2**2)
+        c = stats.norm.ppf(level)
+        expected = theta1 * (c * np.sqrt(2 * theta2 * h0**2) / theta1 + 1
+                             + theta2 * h0 * (h0 - 1) / theta1**2) ** (1 / h0)
+        # the library adds the expected excess of new samples' residuals (tested below)
+        assert res.limits[level].q - res.limits[level].q_offset == pytest.approx(expected, rel=1e-7)
+    # Box (1954): g·χ²_h with g = var/(2 mean), h = 2 mean²/var (scipy.stats.chi2)
+    box = score(model, array_source(calibration["X_new"][:50]), threads=1, q_method="box")
+    m, v = q_train.mean(), q_train.var()
+    box_lim = box.limits[0.99]
+    assert box_lim.q - box_lim.q_offset == pytest.approx(v / (2 * m) * stats.chi2.ppf(0.99, 2 * m**2 / v), rel=1e-7)
+    # without the adjustment the limit is the bare formula
+    bare = score(model, array_source(calibration["X_new"][:50]), threads=1, adjust_q=False)
+    assert bare.limits[0.99].q_offset == 0.0
+    assert bare.limits[0.99].q == pytest.approx(res.limits[0.99].q - res.limits[0.99].q_offset, rel=1e-12)
+    assert box.q_method == "box"
+
+
+def test_flagged_fraction_is_calibrated_on_samples_from_the_model_distribution(calibration):
+    res = score(calibration["fit"].model, array_source(calibration["X_new"]), threads=1)
+    d = res.diagnostics
+    assert len(d) >= 4000
+    lim = res.limits[0.95]
+    # reference: definition of a 95% limit; tolerance ±2 points from the issue (binomial SD 0.34 points)
+    assert abs(np.mean(d["t2"] > lim.t2) - 0.05) <= 0.02
+    assert abs(np.mean(d["q"] > lim.q) - 0.05) <= 0.02
+    # at the default 0.99 the flags are rare (expected 2% for either limit, 1% each)
+    assert np.mean(d["flag"] != "within") <= 0.04
+
+
+def test_gross_outliers_are_flagged(calibration):
+    X = calibration["X_new"][:60].copy()
+    sd = calibration["X_train"].std(axis=0)
+    # planted contamination: 10 samples with 8 SD added to a quarter of the features
+    X[:10, :10] += 8 * sd[:10]
+    # planted: 10 samples far along the first planted axis (12 SD of that axis)
+    X[10:20] += 12 * np.sqrt(calibration["spikes"][0]) * calibration["U"][:, 0]
+    res = score(calibration["fit"].model, array_source(X), threads=1)
+    flags = res.diagnostics["flag"].to_numpy()
+    assert set(flags[:10]) <= {"q", "both"}
+    assert set(flags[10:20]) <= {"t2", "both"}
+    assert np.mean(flags[20:] != "within") <= 0.1
+
+
+def test_missing_features_filled_with_the_training_mean(planted):
+    P = planted(100, 30, rank=3, seed=8)
+    ids = np.array([f"g{j}" for j in range(30)])
+    model = fit(array_source(P.X, feature_ids=ids), n_components=3, threads=1).model
+    keep = np.arange(30) >= 3  # the new file lacks g0, g1, g2
+    src = array_source(P.X[:20, keep], feature_ids=ids[keep])
+    with pytest.raises(InputError, match="3 of the model's 30 features are missing"):
+        score(model, src, threads=1)
+    res = score(model, src, fill_missing="mean", threads=1, max_missing_fraction=0.05)
+    # reference: the same samples with the absent features set to their training mean
+    # (numpy mean of the planted matrix), which add nothing to the scores
+    full = P.X[:20].copy()
+    full[:, :3] = P.X[:, :3].mean(axis=0)
+    ref = score(model, array_source(full, feature_ids=ids), threads=1)
+    np.testing.assert_allclose(res.scores.iloc[:, 1:].to_numpy(), ref.scores.iloc[:, 1:].to_numpy(), atol=1e-10)
+    np.testing.assert_allclose(res.diagnostics["missing_fraction"], 3 / 30)
+    assert set(res.diagnostics["flag"]) == {"missing"}  # 0.1 > max_missing_fraction 0.05
+    relaxed = score(model, src, fill_missing="mean", threads=1, max_missing_fraction=0.2)
+    assert "missing" not in set(relaxed.diagnostics["flag"])
+
+
+def test_shrinkage_correction_divides_scores_by_stored_factors(calibration):
+    model = calibration["fit"].model
+    X = array_source(calibration["X_new"][:40])
+    raw = score(model, X, threads=1)
+    corrected = score(model, X, threads=1, correct_shrinkage=True)
+    f = model.extras["shrinkage_factor"]
+    # reference: the stored factors (their estimate is tested in test_shrinkage.py)
+    np.testing.assert_allclose(corrected.scores.iloc[:, 1:].to_numpy(), raw.scores.iloc[:, 1:].to_numpy() / f)
+    assert corrected.limits[0.99].q == pytest.approx(raw.limits[0.99].q, rel=1e-12)
+    assert corrected.limits[0.99].t2 == raw.limits[0.99].t2
+
+
+def test_bad_options_raise_option_errors(calibration):
+    model = calibration["fit"].model
+    X = array_source(calibration["X_new"][:10])
+    with pytest.raises(OptionError, match="--confidence"):
+        score(model, X, confidence=1.0)
+    with pytest.raises(OptionError, match="--fill-missing"):
+        score(model, X, fill_missing="median")
+    with pytest.raises(OptionError, match="--max-missing-fraction"):
+        score(model, X, max_missing_fraction=2)
+
+
+# ------------------------------------------------------------------------------- CLI
+
+
+@pytest.fixture
+def cli_setup(tmp_path, write_matrix, planted):
+    P = planted(60, 25, rank=3, seed=4)
+    ids = [f"g{j}" for j in range(25)]
+    train = write_matrix(P.X, "tsv", feature_ids=ids, name="train")
+    result = fit(train, n_components=3, threads=1)
+    result.model.save(tmp_path / "model")
+    return {"P": P, "ids": ids, "train": train, "model": tmp_path / "model", "fit": result}
+
+
+def _no_output(out):
+    leftovers = [p.name for p in out.parent.iterdir() if p.name.startswith(f".{out.name}")]
+    return not out.exists() and not leftovers
+
+
+def test_cli_score_writes_scores_diagnostics_and_manifest(cli_setup, tmp_path):
+    out = tmp_path / "scored"
+    r = runner.invoke(app, ["score", str(cli_setup["model"]), str(cli_setup["train"]), "--out", str(out), "--threads", "1"])
+    assert r.exit_code == 0, r.output
+    assert "within limits" in r.output
+    scores = pd.read_csv(out / "scores.tsv", sep="\t")
+    diag = pd.read_csv(out / "diagnostics.tsv", sep="\t")
+    assert list(diag.columns) == ["sample_id", "t2", "t2_limit", "q", "q_limit", "flag", "missing_fraction"]
+    # reference: the fit's training scores (written with 8 significant digits)
+    np.testing.assert_allclose(scores[["PC1", "PC2", "PC3"]].to_numpy(), cli_setup["fit"].scores, rtol=1e-6, atol=1e-6)
+    manifest = json.loads((out / "manifest.json").read_text())
+    # reference: hashlib SHA-256 of model.json, computed here
+    import hashlib
+
+    assert manifest["model"]["checksum"] == hashlib.sha256((cli_setup["model"] / "model.json").read_bytes()).hexdigest()
+    assert manifest["counts"]["samples"] == 60
+
+
+def test_cli_missing_features_without_fill_is_an_error(cli_setup, tmp_path, write_matrix):
+    X = cli_setup["P"].X[:, 2:]
+    path = write_matrix(X, "tsv", feature_ids=cli_setup["ids"][2:], name="partial")
+    out = tmp_path / "out"
+    r = runner.invoke(app, ["score", str(cli_setup["model"]), str(path), "--out", str(out)])
+    assert r.exit_code == 2
+    assert "2 of the model's 25 features are missing (first: g0, g1)" in r.stderr
+    assert "--fill-missing mean" in r.stderr and "Traceback" not in r.output
+    assert _no_output(out)
+    r = runner.invoke(app, ["score", str(cli_setup["model"]), str(path), "--out", str(out), "--fill-missing", "mean"])
+    assert r.exit_code == 0, r.output
+    np.testing.assert_allclose(pd.read_csv(out / "diagnostics.tsv", sep="\t")["missing_fraction"], 2 / 25)
+
+
+def test_cli_tampered_model_array_is_an_error(cli_setup, tmp_path):
+    model = tmp_path / "tampered"
+    shutil.copytree(cli_setup["model"], model)
+    arr = np.load(model / "components.npy")
+    arr[0, 0] += 1e-3
+    np.save(model / "components.npy", arr)
+    out = tmp_path / "out"
+    r = runner.invoke(app, ["score", str(model), str(cli_setup["train"]), "--out", str(out)])
+    assert r.exit_code == 2
+    assert "components.npy: checksum does not match" in r.stderr
+    assert _no_output(out)
+
+
+def test_cli_missing_model_array_is_an_error(cli_setup, tmp_path):
+    model = tmp_path / "incomplete"
+    shutil.copytree(cli_setup["model"], model)
+    (model / "extra_residual_moments.npy").unlink()
+    out = tmp_path / "out"
+    r = runner.invoke(app, ["score", str(model), str(cli_setup["train"]), "--out", str(out)])
+    assert r.exit_code == 2
+    assert "extra_residual_moments.npy: missing from the model" in r.stderr
+    assert _no_output(out)
+
+
+def test_cli_wrong_model_version_is_an_error(cli_setup, tmp_path):
+    model = tmp_path / "newer"
+    shutil.copytree(cli_setup["model"], model)
+    meta = json.loads((model / "model.json").read_text())
+    meta["version"] = 99
+    (model / "model.json").write_text(json.dumps(meta))
+    out = tmp_path / "out"
+    r = runner.invoke(app, ["score", str(model), str(cli_setup["train"]), "--out", str(out)])
+    assert r.exit_code == 2
+    assert "model format version 99 is not supported" in r.stderr
+    assert _no_output(out)
+    with pytest.raises(ModelError):
+        load_model(model)
+
+
+def test_cli_non_model_directory_is_an_error(cli_setup, tmp_path):
+    other = tmp_path / "not_a_model"
+    other.mkdir()
+    (other / "notes.txt").write_text("hello\n")
+    out = tmp_path / "out"
+    r = runner.invoke(app, ["score", str(other), str(cli_setup["train"]), "--out", str(out)])
+    assert r.exit_code == 2
+    assert "not a model directory" in r.stderr
+    assert _no_output(out)
+
+
+def test_cli_no_overlapping_feature_ids_is_an_error(cli_setup, tmp_path, write_matrix):
+    path = write_matrix(cli_setup["P"].X, "tsv", feature_ids=[f"other{j}" for j in range(25)], name="foreign")
+    out = tmp_path / "out"
+    r = runner.invoke(app, ["score", str(cli_setup["model"]), str(path), "--out", str(out), "--fill-missing", "mean"])
+    assert r.exit_code == 2
+    assert "none of the model's 25 feature ids occur in this file" in r.stderr
+    assert _no_output(out)
+
+
+def test_model_stores_what_the_limits_need(cli_setup):
+    model = load_model(cli_setup["model"])
+    result = cli_setup["fit"]
+    # θ1 is exact: total variance minus the variance of the k axes; reference: numpy
+    # eigvalsh of the population covariance of the standardized training matrix
+    X = cli_setup["P"].X
+    Z = (X - X.mean(axis=0)) / X.std(axis=0)
+    eig = np.sort(np.linalg.eigvalsh(Z.T @ Z / Z.shape[0]))[::-1]
+    assert model.extras["residual_moments"][0] == pytest.approx(eig[3:].sum(), rel=1e-8)
+    q = result.sample_sq_dist - np.sum(result.scores**2, axis=1)
+    np.testing.assert_allclose(model.extras["residual_mean_var"], [q.mean(), q.var()], rtol=1e-8)

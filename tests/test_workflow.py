@@ -1,0 +1,71 @@
+"""The example Snakemake workflow in ``workflows/`` runs end to end.
+
+Run with ``snakemake --cores 1`` in a temporary copy (skipped when Snakemake is not
+installed or the Snakefile is missing). The fitted axes are checked against a dense
+reference computed here from the simulated counts with numpy/LAPACK (eigenvalues of the
+sample Gram matrix of the standardized log counts-per-million, scipy.linalg.eigvalsh).
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import json
+import os
+import pathlib
+import shutil
+import subprocess
+import sys
+
+import numpy as np
+import pandas as pd
+import pytest
+
+WORKFLOWS = pathlib.Path(__file__).resolve().parents[1] / "workflows"
+SNAKEFILE = WORKFLOWS / "Snakefile"
+
+
+@pytest.mark.filterwarnings("ignore:Object at .snakemake_timestamp")
+@pytest.mark.skipif(importlib.util.find_spec("snakemake") is None, reason="snakemake is not installed")
+@pytest.mark.skipif(not SNAKEFILE.is_file(), reason=f"no workflow yet: {SNAKEFILE} is missing")
+def test_snakemake_workflow_runs(tmp_path):
+    import scipy.linalg
+    import zarr
+
+    work = tmp_path / "workflow"
+    shutil.copytree(WORKFLOWS, work, ignore=shutil.ignore_patterns(".snakemake", "results"))
+    env = dict(os.environ)
+    # the workflow's shell commands call `axiscope` from the environment running the tests
+    env["PATH"] = os.path.dirname(sys.executable) + os.pathsep + env.get("PATH", "")
+    env.setdefault("OPENBLAS_NUM_THREADS", "1")
+    k = 4
+    cmd = [sys.executable, "-m", "snakemake", "--cores", "1", "--config", f"components={k}", "out=results"]
+    run = subprocess.run(cmd, cwd=work, env=env, capture_output=True, text=True, timeout=300, check=False)
+    assert run.returncode == 0, run.stderr[-3000:]
+
+    fit_dir = work / "results" / "fit"
+    manifest = json.loads((fit_dir / "manifest.json").read_text())
+    components = pd.read_csv(fit_dir / "components.tsv", sep="\t")
+    scores = pd.read_csv(fit_dir / "sample_scores.tsv", sep="\t")
+    assert len(components) == k
+    assert (fit_dir / "model" / "model.json").is_file()
+
+    # the reference: the simulated matrix read with zarr itself, preprocessed densely
+    reference = pathlib.Path(manifest["input"]["path"])
+    if not reference.is_absolute():
+        reference = work / reference
+    group = zarr.open_group(str(reference), mode="r")
+    arrays = {name: a for name, a in group.members(max_depth=None) if isinstance(a, zarr.Array)}
+    matrix = next(a for a in arrays.values() if a.ndim == 2)
+    counts = np.asarray(matrix[...], dtype=np.float64)
+    assert list(manifest["input"]["shape"]) == list(counts.shape)
+    assert len(scores) == counts.shape[0]
+    if "sample_ids" in arrays:
+        assert list(scores.sample_id) == [str(v) for v in arrays["sample_ids"][...]]
+    # counts per million, log(1 + x), standardized with the population SD
+    A = np.log1p(counts * (1e6 / counts.sum(axis=1, keepdims=True)))
+    sd = A.std(axis=0)
+    Z = (A[:, sd > 0] - A[:, sd > 0].mean(axis=0)) / sd[sd > 0]
+    n = Z.shape[0]
+    eig = scipy.linalg.eigvalsh(Z @ Z.T)[::-1][:k]  # reference: LAPACK syevr via scipy
+    np.testing.assert_allclose(components.variance, eig / n, rtol=1e-4)
+    np.testing.assert_allclose(components.variance_ratio, eig / n / Z.shape[1], rtol=1e-4)
