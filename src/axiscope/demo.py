@@ -15,10 +15,12 @@ import numpy as np
 
 from .simulate import Cohort, simulate_cohort, write_cohort
 
-__all__ = ["make_demo_data", "DEMO_FIT_OPTIONS"]
+__all__ = ["make_demo_data", "DEMO_FIT_OPTIONS", "DEMO_TECHNICAL"]
 
 #: Preprocessing of the demo counts: counts per million, then log(1 + x), standardized.
 DEMO_FIT_OPTIONS = {"normalize_total": 1e6, "log1p": True, "scale": "unit"}
+#: Annotations of the demo that describe how samples were processed, not their biology.
+DEMO_TECHNICAL = ["batch", "depth", "rna_quality"]
 
 
 def _subset(cohort: Cohort, rows: np.ndarray) -> Cohort:

@@ -126,7 +126,10 @@ def spiked_shrinkage(
     lam = variance * to_sample
     total = float(total_variance) * to_sample
     gamma = p / (n - 1.0)
-    sigma2 = max((total - lam.sum()) / (p - k), np.finfo(float).tiny)
+    residual = total - lam.sum()
+    if not residual > 1e-9 * total:  # the axes hold all the variance: no noise to shrink by
+        return ShrinkageEstimate(np.ones(k), np.full(k, np.nan), 0.0, gamma)
+    sigma2 = residual / (p - k)
     spike = np.full(k, np.nan)
     for _ in range(_MAX_ITERATIONS):
         spike = _invert_spike(lam / sigma2, gamma)

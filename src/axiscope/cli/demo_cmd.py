@@ -7,11 +7,14 @@ import time
 from pathlib import Path
 from typing import Annotated
 
+import pandas as pd
 import typer
 
-from ..demo import DEMO_FIT_OPTIONS, make_demo_data
+from ..demo import DEMO_FIT_OPTIONS, DEMO_TECHNICAL, make_demo_data
+from ..describe import describe
 from ..fit import fit
 from ..preprocess import PreprocessSpec
+from ..scoring import score
 from ..writers import atomic_directory, check_target
 from ._app import app, progress_display, say, setup_logging, user_errors
 from ._options import Overwrite, Quiet, Threads
@@ -27,7 +30,7 @@ def demo_command(
     overwrite: Overwrite = False,
     quiet: Quiet = False,
 ) -> None:
-    """Simulate a synthetic RNA-sequencing cohort, fit it, and show what the axes mean."""
+    """Simulate a synthetic RNA-sequencing cohort, fit it, describe the axes, score a new batch."""
     setup_logging(quiet)
     t0 = time.perf_counter()
     with user_errors():
@@ -39,14 +42,29 @@ def demo_command(
                 result = fit(data["reference"], n_components=components,
                              preprocess=PreprocessSpec(**DEMO_FIT_OPTIONS), threads=threads,
                              progress=progress)
-            result.write(tmp / "fit", command_line=sys.argv)
+                description = describe(result, annotations=data["reference_annotations"],
+                                       technical=DEMO_TECHNICAL, exclude_columns=["corrupted"], top=5)
+                result.write(tmp / "fit", command_line=sys.argv)
+                description.write(tmp / "fit")
+                scored = score(tmp / "fit" / "model", data["new"], threads=threads, progress=progress)
+                scored.write(tmp / "score", command_line=sys.argv)
+            corrupted = pd.read_csv(data["new_annotations"], sep="\t")["corrupted"].to_numpy(dtype=bool)
     print_fit_summary(result, out / "fit", quiet)
-    top = result.top_features(5)
-    for axis in ("PC1", "PC2"):
-        pos = top[(top.axis == axis) & (top.direction == "positive")].feature_id.tolist()
-        neg = top[(top.axis == axis) & (top.direction == "negative")].feature_id.tolist()
-        say(f"  {axis}: top positive genes {', '.join(pos)}; top negative {', '.join(neg)}", quiet)
-    say(f"  demo data in {out / 'data'}", quiet)
+    for axis in ("PC1", "PC2", "PC3"):
+        say(f"  {description.summaries[axis]}", quiet)
+        genes = description.features[description.features.axis == axis]
+        up = ", ".join(genes[genes.direction == "positive"].feature_id.head(5))
+        down = ", ".join(genes[genes.direction == "negative"].feature_id.head(5))
+        say(f"    genes most correlated: + {up}; − {down}", quiet)
+    flags = scored.diagnostics["flag"]
+    flagged = (flags != "within").to_numpy()
+    say(
+        f"scored {len(flags)} new samples: {int(flagged.sum())} flagged as not described by the model "
+        f"({int((flagged & corrupted).sum())} of the {int(corrupted.sum())} deliberately corrupted ones); "
+        f"results in {out / 'score'}",
+        quiet,
+    )
+    say(f"demo data in {out / 'data'}; {time.perf_counter() - t0:.1f} s in all", quiet)
 
 
 @app.command("simulate")

@@ -134,7 +134,14 @@ def print_fit_summary(result, out: Path, quiet: bool) -> None:
         quiet,
     )
     if m["options"]["method"] == "randomized":
-        say(f"  last relative change of the leading singular values: {acc['last_relative_change']:.1e}", quiet)
+        say(
+            f"  accuracy: leading singular values settled to a relative change of "
+            f"{acc['last_relative_change']:.1e}; residual norm bound {acc['residual_norm_bound']:.3g} "
+            f"(first singular value {result.model.singular_values[0]:.3g})",
+            quiet,
+        )
+    if m["n_missing_imputed"]:
+        say(f"  {m['n_missing_imputed']} missing cells imputed with the feature mean", quiet)
     table = result.components_table().head(5)
     parts = [f"{a} {100 * r:.1f}%" for a, r in zip(table.axis, table.variance_ratio)]
     say("  variance ratio: " + ", ".join(parts), quiet)
