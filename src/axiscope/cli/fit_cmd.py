@@ -136,8 +136,9 @@ def print_fit_summary(result, out: Path, quiet: bool) -> None:
     if m["options"]["method"] == "randomized":
         say(
             f"  accuracy: leading singular values settled to a relative change of "
-            f"{acc['last_relative_change']:.1e}; residual norm bound {acc['residual_norm_bound']:.3g} "
-            f"(first singular value {result.model.singular_values[0]:.3g})",
+            f"{acc['last_relative_change']:.1e} per pass; what the basis leaves out has spectral "
+            f"norm ≤ {acc['residual_norm_bound']:.3g} (Halko et al. 2011, §4.3; σ1 = "
+            f"{result.model.singular_values[0]:.3g})",
             quiet,
         )
     if m["n_missing_imputed"]:
