@@ -163,29 +163,36 @@ def project(
 
     dtype = source.dtype
     mean_t, inv_t, V_t = mean.astype(dtype), inv.astype(dtype), V.astype(dtype)
+    fill_centred = ((fill - mean) * inv).astype(dtype)
     all_total = match.total_columns.shape[0] == p_in
+    # the common case of the same features in the same order needs no gathered copy
+    same_columns = match.model_columns.shape[0] == p_in and bool(
+        np.array_equal(match.model_columns, np.arange(p_in)))
 
     def task(block):
-        # one gathered copy of the model's columns, then everything in place in the input dtype
-        x = block[:, match.model_columns]
+        # at most one gathered copy of the model's columns, then everything in place in the input dtype
         if total is not None:
             sums = _row_sums(block if all_total else block[:, match.total_columns])
+        x = block if same_columns else block[:, match.model_columns]
+        if total is not None:
             factor = np.where(sums > 0, total / np.where(sums > 0, sums, 1), 0.0)
             x *= factor.astype(dtype)[:, None]
         if spec.log1p:
             np.log1p(x, out=x)
-        bad = first_nonfinite(x) if not np.isfinite(np.add.reduce(x, axis=1)).all() else None
-        n_bad = np.zeros(x.shape[0])
-        if bad is not None:
-            if spec.missing != "mean" and not fill_missing:
-                return None, bad
-            mask = ~np.isfinite(x)
-            n_bad = mask.sum(axis=1)
-            x = np.where(mask, fill.astype(dtype), x)
         x -= mean_t
         x *= inv_t
         scores = (x @ V_t).astype(np.float64)
         sq = np.einsum("ij,ij->i", x, x, dtype=np.float64)
+        n_bad = np.zeros(x.shape[0])
+        if not np.isfinite(sq).all():  # non-finite cells: an error, or the training mean
+            bad = first_nonfinite(x)
+            if spec.missing != "mean" and not fill_missing:
+                return None, bad
+            mask = ~np.isfinite(x)
+            n_bad = mask.sum(axis=1)
+            x = np.where(mask, fill_centred, x)
+            scores = (x @ V_t).astype(np.float64)
+            sq = np.einsum("ij,ij->i", x, x, dtype=np.float64)
         return (scores, sq, n_bad), None
 
     counts = [int(rows[a:b].sum()) for a, b in spans]
