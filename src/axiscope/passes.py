@@ -1,15 +1,17 @@
 """Streaming passes over blocks of samples, on Dask.
 
 A pass applies a task to every block of a row-chunked Dask array and folds the results,
-in block order, into an accumulator. Blocks are computed a window at a time, so at most
-a window of blocks and their partial results are held, and the fold order (hence the
-rounding) does not depend on the number of threads.
+in block order, into an accumulator. Only the blocks being worked on and results waiting
+for an earlier block are held, and the fold order (hence the rounding) does not depend on
+the number of threads.
 """
 
 from __future__ import annotations
 
 import time
+from collections import deque
 from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -64,37 +66,77 @@ class PassRunner:
     ) -> None:
         """Compute ``task(block, *args)`` for every row block and call ``fold(result, index, start)``.
 
-        ``fold`` is called in block order.
+        ``fold`` is called on the calling thread, in block order. On the threaded scheduler
+        the whole pass is one Dask computation, and each result is folded as soon as the
+        blocks before it are done (no barrier between groups of blocks); a block's result is
+        held only until then. On a distributed cluster blocks are computed a window at a time.
         """
         t0 = time.perf_counter()
         blocks = X.to_delayed().ravel()
-        starts = np.concatenate([[0], np.cumsum(X.chunks[0])])[:-1]
+        starts = [int(v) for v in np.concatenate([[0], np.cumsum(X.chunks[0])])[:-1]]
         n = len(blocks)
-        window = max(1, 2 * self.threads)
         if self.progress:
             self.progress(name, 0, n)
+        if _local_scheduler():
+            self._run_pipelined(name, blocks, starts, task, fold, args)
+        else:
+            self._run_windowed(name, blocks, starts, task, fold, args)
+        self.records.append(PassRecord(name, source, time.perf_counter() - t0, n))
+
+    def _run_pipelined(self, name, blocks, starts, task, fold, args) -> None:
+        """Blocks in order on a pool of threads, at most ``2·threads`` in flight, folded in order.
+
+        Each block's Dask graph is computed with the synchronous scheduler inside a pool
+        thread, so the reading order, the memory held and the fold order are ours to fix.
+        """
+        n = len(blocks)
+        window = 2 * self.threads
+
+        def work(i):
+            (block,) = dask.compute(blocks[i], scheduler="synchronous")
+            return task(block, *args)
+
+        with ThreadPoolExecutor(max_workers=self.threads, thread_name_prefix="axiscope") as pool:
+            pending: deque = deque()
+            submitted = 0
+            try:
+                for i in range(n):
+                    while submitted < n and len(pending) < window:
+                        pending.append(pool.submit(work, submitted))
+                        submitted += 1
+                    result = pending.popleft().result()
+                    fold(result, i, starts[i])
+                    del result
+                    if self.progress:
+                        self.progress(name, i + 1, n)
+            finally:
+                for future in pending:
+                    future.cancel()
+
+    def _run_windowed(self, name, blocks, starts, task, fold, args) -> None:
+        n = len(blocks)
+        window = max(1, 2 * self.threads)
         for lo in range(0, n, window):
             hi = min(n, lo + window)
             work = [dask.delayed(task)(blocks[i], *args) for i in range(lo, hi)]
-            results = dask.compute(*work, **_scheduler_options(self.threads))
+            results = dask.compute(*work)
             for offset, result in enumerate(results):
-                fold(result, lo + offset, int(starts[lo + offset]))
+                fold(result, lo + offset, starts[lo + offset])
             if self.progress:
                 self.progress(name, hi, n)
-        self.records.append(PassRecord(name, source, time.perf_counter() - t0, n))
 
 
-def _scheduler_options(threads: int) -> dict:
-    """Threaded scheduler unless a distributed client has been made the default."""
-    if dask.config.get("scheduler", None) not in (None, "threads", "threading"):
-        return {}
+def _local_scheduler() -> bool:
+    """True unless a distributed client (or another scheduler) has been made the default."""
+    if dask.config.get("scheduler", None) not in (None, "threads", "threading", "sync", "synchronous"):
+        return False
     try:  # a distributed client registers itself as the default scheduler
         from distributed import default_client  # type: ignore[import-not-found]
 
         default_client()
-        return {}
+        return False
     except (ImportError, ValueError):
-        return {"scheduler": "threads", "num_workers": threads}
+        return True
 
 
 def array_from_blocks(
@@ -104,17 +146,15 @@ def array_from_blocks(
     dtype: np.dtype,
     name: str,
 ) -> da.Array:
-    """A lazy Dask array, chunked along rows, whose ``i``-th row block is ``load(i)``."""
-    parts = [
-        da.from_delayed(
-            dask.delayed(load, pure=True)(i, dask_key_name=f"{name}-{i}"),
-            shape=(rows, n_cols),
-            dtype=dtype,
-            meta=np.empty((0, 0), dtype=dtype),
-        )
-        for i, rows in enumerate(n_rows_per_block)
-    ]
-    return da.concatenate(parts, axis=0)
+    """A lazy Dask array, chunked along rows, whose ``i``-th row block is ``load(i)``.
+
+    One task per block and nothing else in the graph, so a block is released as soon as
+    the task using it is done (an array assembled with ``concatenate`` keeps its pieces
+    alive until the end of a computation).
+    """
+    graph = {(name, i, 0): (load, i) for i in range(len(n_rows_per_block))}
+    return da.Array(graph, name, chunks=(tuple(n_rows_per_block), (n_cols,)), dtype=dtype,
+                    meta=np.empty((0, 0), dtype=dtype))
 
 
 def blas_threads(threads: int):
