@@ -96,14 +96,14 @@ def _filled(block: np.ndarray, fill: np.ndarray | None) -> np.ndarray:
     return block
 
 
-def _products(block, W, offset, mean, d, fill, want_gram, want_norms):
-    """Block products ``Y_b = X̃_b·W'`` (and ``X_bᵀ·Y_b``, ``‖x̃_i‖²``) for one block."""
+def _products(block, W, offset, mean, d, fill, gram_width, want_norms):
+    """Block products ``Y_b = X̃_b·W'``, ``X_bᵀ·Y_b[:, :gram_width]`` and ``‖x̃_i‖²`` for one block."""
     block = _filled(block, fill)
     y = (block @ W).astype(np.float64)
     y -= offset
     gram = None
-    if want_gram:
-        gram = (block.T @ y.astype(block.dtype, copy=False)).astype(np.float64)
+    if gram_width:
+        gram = (block.T @ y[:, :gram_width].astype(block.dtype)).astype(np.float64)
     norms = None
     if want_norms:
         centred = block - mean.astype(block.dtype)
@@ -127,14 +127,19 @@ class _Operator:
     def shape(self) -> tuple[int, int]:
         return self.X.shape
 
-    def apply(self, W: np.ndarray, *, gram: bool, norms: bool, name: str):
-        """One pass: ``X̃·W`` (n × m), optionally ``X̃ᵀ·X̃·W`` (p × m) and ``‖x̃_i‖²``."""
+    def apply(self, W: np.ndarray, *, gram: bool | int, norms: bool, name: str):
+        """One pass: ``X̃·W`` (n × m), optionally ``X̃ᵀ·X̃·W`` and ``‖x̃_i‖²``.
+
+        ``gram`` is False, True (all columns of ``W``) or the number of leading columns of
+        ``W`` for which ``X̃ᵀ·X̃·W`` is wanted.
+        """
         n, p = self.shape
+        gram = W.shape[1] if gram is True else int(gram)
         dw = self.d[:, None] * W
         offset = self.mean @ dw
         W_cast = dw.astype(self.X.dtype)
         Y = np.empty((n, W.shape[1]))
-        acc = {"gram": np.zeros((p, W.shape[1])) if gram else None}
+        acc = {"gram": np.zeros((p, gram)) if gram else None}
         row_norms = np.empty(n) if norms else None
 
         def fold(result, index, start):
@@ -151,7 +156,7 @@ class _Operator:
         )
         Z = None
         if gram:
-            Z = self.d[:, None] * (acc["gram"] - np.outer(self.mean, Y.sum(axis=0)))
+            Z = self.d[:, None] * (acc["gram"] - np.outer(self.mean, Y[:, :gram].sum(axis=0)))
         return Y, Z, row_norms
 
 
@@ -247,13 +252,11 @@ def randomized_factorization(
         first = i == 0
         W = np.hstack([Q, probes]) if first else Q
         last_fixed = not auto and i == n_pass - 1
-        Y, Z, norms = op.apply(W, gram=not last_fixed, norms=first,
+        Y, Z, norms = op.apply(W, gram=0 if last_fixed else Q.shape[1], norms=first,
                                name="power iteration 1" if first else f"power iteration {i + 1}")
         done += 1
         if first:
             row_norms, Yp, Y = norms, Y[:, l:], Y[:, :l]
-            if Z is not None:
-                Z = Z[:, :l] if Z.shape[1] > l else Z
         K = np.hstack([K, Q])
         B = np.hstack([B, Y])
         s, W = _ritz(B)

@@ -83,13 +83,16 @@ def plan_blocks(
     sample_chunk: int | None = None,
     cache_features: int | None = None,
     scratch: Path | None = None,
+    reread_cheap: bool = False,
 ) -> BlockPlan:
     """Choose block rows, Krylov basis width and cache location to stay within ``budget``.
 
     Memory held: the Krylov basis and its image, ``(n + p)·max_basis`` float64 (at most a
     quarter of the budget, between ``2·l`` and ``8·l`` columns); vectors of per-feature
     statistics; a window of ``2·threads`` blocks, each with one work array of its size and a
-    ``p × l`` partial product; and the cache when it is kept in memory.
+    ``p × l`` partial product; and the cache when it is kept in memory. When the cache
+    does not fit and ``reread_cheap`` (an uncompressed input needing no per-sample
+    transform), later passes re-read the input instead of writing a scratch copy of it.
     """
     cache_features = n_features if cache_features is None else cache_features
     l = sketch_width
@@ -121,6 +124,8 @@ def plan_blocks(
     cache_bytes = n_samples * cache_features * itemsize
     if fixed + window * (partial + rows * row_bytes) + cache_bytes <= budget:
         cache = "memory"
+    elif reread_cheap:  # the input is an uncompressed file: reading it again is as cheap as a scratch copy
+        cache = "source"
     elif scratch_has_room(scratch, cache_bytes):
         cache = "scratch"
     else:
@@ -401,7 +406,8 @@ def _fit(src, spec, k, oversample, power_iterations, tol, method, rng, budget, t
     cache_features = spec.top_variable if spec.top_variable else p_all
     plan = plan_blocks(n_all, p_all, src.dtype.itemsize, sketch_width=l, threads=threads,
                        budget=budget, sample_chunk=src.sample_chunk,
-                       cache_features=min(cache_features, p_all), scratch=scratch_dir)
+                       cache_features=min(cache_features, p_all), scratch=scratch_dir,
+                       reread_cheap=src.plain_reads and not (spec.log1p or spec.normalize_total))
     if method == "auto":
         dense_bytes = 8 * n * min(cache_features, p_all)
         small = min(n, p_all) <= EXACT_MAX_SIDE and dense_bytes * 3 <= budget

@@ -150,6 +150,10 @@ class _Backend:
     def read(self, start: int, stop: int, samples_in: str, dtype: np.dtype) -> np.ndarray:
         raise NotImplementedError
 
+    def plain_rows(self, samples_in: str) -> bool:
+        """Whether sample blocks are plain positioned reads (re-reading costs no decoding)."""
+        return False
+
     def close(self) -> None:
         """Release file handles (default: nothing to release)."""
 
@@ -168,10 +172,30 @@ def _slab_key(start: int, stop: int, samples_in: str) -> tuple[slice, slice]:
     return (slice(None), slice(start, stop))
 
 
-class _Hdf5Backend(_Backend):
-    """HDF5 dataset via h5py; reads are serialised with a lock."""
+def _pread_rows(fd: int, offset: int, start: int, stop: int, n_cols: int,
+                stored: np.dtype, dtype: np.dtype) -> np.ndarray:
+    """Rows ``start..stop`` of a C-ordered 2-D array at byte ``offset`` of a file, by ``os.preadv``."""
+    direct = stored == dtype  # native float32/float64: no conversion needed
+    buffer = np.empty((stop - start, n_cols), dtype=dtype if direct else stored)
+    view = memoryview(buffer.reshape(-1).view(np.uint8))
+    position = offset + start * n_cols * stored.itemsize
+    done = 0
+    while done < len(view):
+        count = os.preadv(fd, [view[done:]], position + done)
+        if count == 0:
+            raise EOFError("file ends early; it may be truncated")
+        done += count
+    return buffer if direct else buffer.astype(dtype, order="C")
 
-    def __init__(self, handle: Any, dataset: Any) -> None:
+
+class _Hdf5Backend(_Backend):
+    """HDF5 dataset via h5py; reads are serialised with a lock.
+
+    A contiguous, unfiltered dataset of a native numeric type is read in sample-row
+    blocks with positioned reads of the file itself: no library lock, no decoding.
+    """
+
+    def __init__(self, handle: Any, dataset: Any, path: pathlib.Path) -> None:
         self._handle = handle
         self._dataset = dataset
         self._lock = threading.Lock()
@@ -179,8 +203,25 @@ class _Hdf5Backend(_Backend):
         self.file_shape = (int(dataset.shape[0]), int(dataset.shape[1]))
         chunks = dataset.chunks
         self.disk_chunks = (int(chunks[0]), int(chunks[1])) if chunks else None
+        self._offset: int | None = None
+        self._fd: int | None = None
+        if chunks is None and self.stored_dtype.isnative and self.stored_dtype.kind in "fiub":
+            try:
+                plist = dataset.id.get_create_plist()
+                offset = dataset.id.get_offset()
+                if plist.get_nfilters() == 0 and offset is not None:
+                    self._offset = int(offset)
+                    self._fd = os.open(path, os.O_RDONLY)
+            except Exception:  # any doubt: read through the library
+                self._offset = self._fd = None
+
+    def plain_rows(self, samples_in: str) -> bool:
+        return self._fd is not None and samples_in == "rows"
 
     def read(self, start: int, stop: int, samples_in: str, dtype: np.dtype) -> np.ndarray:
+        if self.plain_rows(samples_in):
+            return _pread_rows(self._fd, self._offset, start, stop, self.file_shape[1],
+                               self.stored_dtype, dtype)
         with self._lock:
             block = self._dataset[_slab_key(start, stop, samples_in)]
         return _orient_block(block, samples_in, dtype)
@@ -190,6 +231,9 @@ class _Hdf5Backend(_Backend):
             if self._handle is not None:
                 self._handle.close()
                 self._handle = None
+            if self._fd is not None:
+                os.close(self._fd)
+                self._fd = None
 
 
 class _ZarrBackend(_Backend):
@@ -235,17 +279,10 @@ class _NpyBackend(_Backend):
         if self._fd is None:
             raise ValueError("source is closed")
         n_features = self.file_shape[1] if samples_in == "rows" else self.file_shape[0]
-        direct = self.stored_dtype == dtype  # native float32/float64: no conversion needed
-        buffer = np.empty((stop - start, n_features), dtype=dtype if direct else self.stored_dtype)
-        view = memoryview(buffer.reshape(-1).view(np.uint8))
-        position = self._offset + start * n_features * self.stored_dtype.itemsize
-        done = 0
-        while done < len(view):
-            count = os.preadv(self._fd, [view[done:]], position + done)
-            if count == 0:
-                raise EOFError("file ends early; it may be truncated")
-            done += count
-        return buffer if direct else buffer.astype(dtype, order="C")
+        return _pread_rows(self._fd, self._offset, start, stop, n_features, self.stored_dtype, dtype)
+
+    def plain_rows(self, samples_in: str) -> bool:
+        return self._fd is not None and self._contiguous(samples_in)
 
     def _map(self) -> np.memmap:
         """Memory map of the array, created on first use."""
@@ -310,6 +347,10 @@ class MatrixSource:
         Decoded size of the logical matrix.
     file_size : int
         Bytes on disk (summed over all files of a Zarr directory).
+    plain_reads : bool
+        Whether sample blocks are read by plain positioned reads of an uncompressed file
+        (contiguous HDF5 or ``.npy`` with samples contiguous), so that reading again costs
+        no decoding.
     ids_source : dict
         Where the ids came from, keys ``"samples"`` and ``"features"``.
     """
@@ -336,6 +377,9 @@ class MatrixSource:
         self.ids_source = ids_source
         self.nbytes = self.shape[0] * self.shape[1] * self.dtype.itemsize
         self.file_size = _file_size(path)
+        #: Sample blocks are plain positioned reads of an uncompressed file: reading
+        #: them again costs no decoding.
+        self.plain_reads: bool = backend.plain_rows(samples_in)
 
     def _where(self) -> str:
         """``path`` plus the dataset name, for messages."""
@@ -618,7 +662,7 @@ def _open_hdf5(path: pathlib.Path, *, dataset: str | None, sample_ids: str | Non
 
         name, obj = _select_matrix(path, dataset, _hdf5_candidates(handle), lookup)
         name = obj.name
-        backend = _Hdf5Backend(handle, obj)
+        backend = _Hdf5Backend(handle, obj, path)
         if samples_in == "columns" and backend.disk_chunks is None:
             logger.warning("%s: dataset %s is stored contiguously; reading samples as columns reads "
                            "strided slabs and may be slow (a chunked copy reads faster)", path.name, name)
