@@ -37,6 +37,11 @@ logger = logging.getLogger(__name__)
 N_PROBES = 10
 #: Largest number of power iterations taken by ``power_iterations="auto"``.
 MAX_AUTO_ITERATIONS = 30
+#: ``power_iterations="auto"`` also stops when every leading Ritz pair has a relative
+#: residual ``‖X̃ᵀX̃v − s²v‖ / s²`` below this: then each ``s²`` is within that residual of an
+#: eigenvalue, and the angle of ``v`` to its eigenvector is at most the residual divided by
+#: the relative gap (Parlett, "The Symmetric Eigenvalue Problem", 1998, §11.5).
+RESIDUAL_TOL = 1e-4
 
 
 @dataclass
@@ -57,6 +62,8 @@ class Factorization:
     converged : bool
     ritz_change : float
         Largest relative change of the leading singular values in the last iteration.
+    ritz_residual : float
+        Largest relative residual ``‖X̃ᵀX̃v − s²v‖ / s²`` of the leading Ritz pairs.
     residual_bound : float
         Probabilistic upper bound on ``‖X̃ − X̃·Q·Qᵀ‖₂`` (Halko et al. 2011, §4.3, with
         probability at least ``1 − 10**-10``); NaN for the exact path (where it is the
@@ -71,6 +78,7 @@ class Factorization:
     power_iterations: int = 0
     converged: bool = True
     ritz_change: float = 0.0
+    ritz_residual: float = float("nan")
     residual_bound: float = float("nan")
     ritz_history: list = field(default_factory=list)
 
@@ -189,8 +197,9 @@ def randomized_factorization(
         Extra dimensions of each block, ``l = n_components + oversample``.
     power_iterations : int or "auto", default="auto"
         Applications of ``X̃ᵀX̃`` after the first sketch. ``"auto"`` stops when the leading
-        singular values are estimated to be within ``tol`` (relative) of their limit,
-        after at most ``MAX_AUTO_ITERATIONS``.
+        singular values are estimated to be within ``tol`` (relative) of their limit, or
+        when every leading Ritz pair has a relative residual below ``RESIDUAL_TOL``, after
+        at most ``MAX_AUTO_ITERATIONS``.
     tol : float, default=1e-6
     rng : numpy.random.Generator
         Source of the Gaussian test matrices.
@@ -243,8 +252,9 @@ def randomized_factorization(
     n_pass = MAX_AUTO_ITERATIONS + 1 if auto else int(power_iterations) + 1
     K = np.empty((p, 0))
     B = np.empty((n, 0))
+    AK = np.empty((p, 0))  # X̃ᵀX̃·K, for the residuals of the Ritz vectors
     history: list[np.ndarray] = []
-    change, estimate = np.inf, np.inf
+    change, estimate, worst_residual = np.inf, np.inf, np.inf
     converged = not auto
     row_norms = Yp = None
     done = 0
@@ -261,6 +271,9 @@ def randomized_factorization(
         B = np.hstack([B, Y])
         s, W = _ritz(B)
         ritz = s[:k].copy()
+        if Z is not None:
+            AK = np.hstack([AK, Z])
+            worst_residual = _relative_residual(K, AK, W[:, :k], ritz)
         if history:
             previous = history[-1]
             new_change = float(np.max(np.abs(ritz - previous) / np.maximum(ritz, np.finfo(float).tiny)))
@@ -269,7 +282,8 @@ def randomized_factorization(
             change = new_change
         history.append(ritz)
         room = min(n, p) - K.shape[1]
-        if Z is None or (auto and estimate < tol) or room <= 0:
+        settled = estimate < tol or worst_residual < RESIDUAL_TOL
+        if Z is None or (auto and settled) or room <= 0:
             converged = True
             break
         if i == n_pass - 1:
@@ -284,6 +298,7 @@ def randomized_factorization(
             keep = max_basis - l
             K = K @ W[:, :keep]
             B = B @ W[:, :keep]
+            AK = AK @ W[:, :keep]
 
     components = K @ W[:, :k]
     scores = B @ W[:, :k]
@@ -305,6 +320,7 @@ def randomized_factorization(
         power_iterations=done - 1,
         converged=converged,
         ritz_change=float(change) if np.isfinite(change) else float("nan"),
+        ritz_residual=worst_residual if np.isfinite(worst_residual) else float("nan"),
         residual_bound=bound,
         ritz_history=[h.tolist() for h in history],
     )
@@ -333,6 +349,13 @@ def _new_block(Z: np.ndarray, K: np.ndarray) -> np.ndarray:
     keep = sv > 1e-10 * max(scale, np.finfo(float).tiny)
     Q = U[:, keep]
     return _orthonormal(_project_out(Q, K)) if Q.shape[1] else Q
+
+
+def _relative_residual(K: np.ndarray, AK: np.ndarray, W: np.ndarray, s: np.ndarray) -> float:
+    """Largest ``‖X̃ᵀX̃v − s²v‖ / s²`` over the Ritz pairs ``(s, v = K·w)``."""
+    s2 = np.maximum(s**2, np.finfo(float).tiny)
+    residual = AK @ W - (K @ W) * s2
+    return float(np.max(np.linalg.norm(residual, axis=0) / s2))
 
 
 def _project_out(Z: np.ndarray, K: np.ndarray) -> np.ndarray:

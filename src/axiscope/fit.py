@@ -97,7 +97,7 @@ def plan_blocks(
     cache_features = n_features if cache_features is None else cache_features
     l = sketch_width
     width = l + N_PROBES
-    per_column = 8 * (n_samples + n_features)
+    per_column = 8 * (n_samples + 2 * n_features)
     max_basis = int(min(8 * l, max(2 * l, (budget // 4) // per_column)))
     fixed = per_column * (max_basis + 2 * width) + 8 * 12 * n_features
     window = 2 * threads
@@ -577,6 +577,7 @@ def _fit(src, spec, k, oversample, power_iterations, tol, method, rng, budget, t
             "power_iterations_run": fac.power_iterations,
             "converged": fac.converged,
             "last_relative_change": fac.ritz_change,
+            "max_relative_ritz_residual": fac.ritz_residual,
             "residual_norm_bound": fac.residual_bound,
             "residual_norm_bound_relative": fac.residual_bound / float(fac.singular_values[0])
             if fac.singular_values[0] > 0 else float("nan"),
