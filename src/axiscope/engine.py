@@ -263,7 +263,7 @@ def randomized_factorization(
         W = np.hstack([Q, probes]) if first else Q
         last_fixed = not auto and i == n_pass - 1
         Y, Z, norms = op.apply(W, gram=0 if last_fixed else Q.shape[1], norms=first,
-                               name="power iteration 1" if first else f"power iteration {i + 1}")
+                               name=f"iteration {i + 1}")
         done += 1
         if first:
             row_norms, Yp, Y = norms, Y[:, l:], Y[:, :l]
