@@ -374,3 +374,23 @@ def test_bad_option_values(small_h5, tmp_path):
         assert res.exit_code == 2, args
         assert needle in res.stderr and "Traceback" not in res.stderr
         assert not (tmp_path / "o").exists()
+
+
+def test_wide_fits_also_write_loadings_as_zarr(tmp_path, monkeypatch):
+    # Above the feature threshold the loadings also go to Zarr with their ids; the TSV
+    # written beside them is the reference (the same model read back two ways).
+    import zarr
+
+    from axiscope import writers
+    from axiscope.fit import fit
+    from axiscope.readers import array_source
+
+    monkeypatch.setattr(writers, "ZARR_FEATURE_THRESHOLD", 10)
+    X = np.random.default_rng(3).standard_normal((40, 30))
+    result = fit(array_source(X), n_components=3)
+    result.write(tmp_path / "out")
+    group = zarr.open_group(str(tmp_path / "out" / "feature_loadings.zarr"), mode="r")
+    table = pd.read_csv(tmp_path / "out" / "feature_loadings.tsv", sep="\t")
+    assert list(group.attrs["columns"]) == ["PC1", "PC2", "PC3"]
+    assert list(group["row_ids"][:]) == table["feature_id"].tolist()
+    np.testing.assert_allclose(group["values"][:], table[["PC1", "PC2", "PC3"]].to_numpy(), rtol=1e-7)
