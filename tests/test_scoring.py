@@ -315,6 +315,28 @@ def test_cli_wrong_model_version_is_an_error(cli_setup, tmp_path):
         load_model(model)
 
 
+@pytest.mark.parametrize("edit", ["n_samples", "drop_preprocessing"])
+def test_cli_edited_model_description_is_an_error(cli_setup, tmp_path, edit):
+    # An edited model.json (a changed sample count would silently move the T² limit) or a
+    # malformed one is refused with one line, exit 2 and no output.
+    model = tmp_path / "edited"
+    shutil.copytree(cli_setup["model"], model)
+    meta = json.loads((model / "model.json").read_text())
+    if edit == "n_samples":
+        meta["n_samples"] = 5000
+    else:
+        del meta["preprocessing"]
+    (model / "model.json").write_text(json.dumps(meta))
+    out = tmp_path / "out"
+    r = runner.invoke(app, ["score", str(model), str(cli_setup["train"]), "--out", str(out)])
+    assert r.exit_code == 2
+    assert "model.json" in r.stderr and "Traceback" not in r.stderr
+    assert len(r.stderr.strip().splitlines()) == 1
+    assert _no_output(out)
+    with pytest.raises(ModelError):
+        load_model(model)
+
+
 def test_cli_non_model_directory_is_an_error(cli_setup, tmp_path):
     other = tmp_path / "not_a_model"
     other.mkdir()
@@ -346,3 +368,25 @@ def test_model_stores_what_the_limits_need(cli_setup):
     assert model.extras["residual_moments"][0] == pytest.approx(eig[3:].sum(), rel=1e-8)
     q = result.sample_sq_dist - np.sum(result.scores**2, axis=1)
     np.testing.assert_allclose(model.extras["residual_mean_var"], [q.mean(), q.var()], rtol=1e-8)
+
+
+def test_q_calibrated_when_features_far_outnumber_training_samples():
+    # Simulation whose truth is planted: new samples drawn from the training distribution
+    # (3 spikes + unit noise, 300 training samples × 4,000 features, default unit scaling).
+    # At 0.95 confidence 5% ± 2% of them should exceed the Q limit (issue's calibration
+    # tolerance); this regime needs the offset for axes fitted to the training samples and
+    # for scales estimated from them.
+    rng = np.random.default_rng(0)
+    n, p, m = 300, 4000, 4000
+    spikes = np.array([8.0, 6.0, 4.0])
+    U = np.linalg.qr(rng.standard_normal((p, 3)))[0]
+
+    def draw(count):
+        return (rng.standard_normal((count, 3)) * np.sqrt(spikes * p / 50)) @ U.T + rng.standard_normal((count, p)) + 3.0
+
+    model = fit(array_source(draw(n)), n_components=3, threads=1).model
+    res = score(model, array_source(draw(m)), confidence=0.95, correct_shrinkage=True, threads=1)
+    q_rate = float(np.mean(res.diagnostics["q"] > res.limits[0.95].q))
+    t2_rate = float(np.mean(res.diagnostics["t2"] > res.limits[0.95].t2))
+    assert 0.03 <= q_rate <= 0.07, q_rate
+    assert 0.03 <= t2_rate <= 0.07, t2_rate

@@ -110,6 +110,7 @@ class Model:
             "info": self.info,
             "checksums": checksums,
         }
+        meta["description_checksum"] = _description_checksum(meta)
         (directory / "model.json").write_text(json.dumps(meta, indent=2) + "\n")
 
     def checksum(self, directory: Path) -> str:
@@ -137,6 +138,9 @@ def load_model(directory: Path) -> Model:
             f"{meta_path}: model format version {version} is not supported by this axiscope "
             f"(reads version {MODEL_VERSION}); use the axiscope version that wrote it or refit"
         )
+    if meta.get("description_checksum") != _description_checksum(meta):
+        raise ModelError(f"{meta_path}: its contents do not match their checksum; the model was "
+                         "modified or damaged, refit or restore it")
     checksums = meta.get("checksums", {})
     arrays = {}
     names = list(_ARRAYS) + [f"extra_{n}" for n in meta.get("extras", [])]
@@ -151,6 +155,24 @@ def load_model(directory: Path) -> Model:
         except ValueError as exc:
             raise ModelError(f"{path}: unreadable array ({exc}); refit or restore the model") from exc
     extras = {n: arrays[f"extra_{n}"] for n in meta.get("extras", [])}
+    p, k = arrays["components"].shape if arrays["components"].ndim == 2 else (-1, -1)
+    if any(arrays[name].shape != (p,) for name in ("feature_ids", "mean", "scale", "std")) or \
+            arrays["singular_values"].shape != (k,):
+        raise ModelError(f"{directory}: array shapes do not agree with each other; refit or restore the model")
+    try:
+        return _build(meta, arrays, extras)
+    except (KeyError, TypeError, ValueError) as exc:
+        raise ModelError(f"{meta_path}: malformed model description ({exc.__class__.__name__}: {exc}); "
+                         "refit or restore the model") from exc
+
+
+def _description_checksum(meta: dict) -> str:
+    """SHA-256 of the canonical JSON of a model description, without its own checksum."""
+    body = {key: value for key, value in meta.items() if key != "description_checksum"}
+    return hashlib.sha256(json.dumps(body, sort_keys=True).encode()).hexdigest()
+
+
+def _build(meta: dict, arrays: dict, extras: dict) -> Model:
     return Model(
         spec=PreprocessSpec(**meta["preprocessing"]),
         feature_ids=arrays["feature_ids"],

@@ -194,7 +194,7 @@ class ControlLimits:
 def residual_excess(model: Model) -> float:
     """Expected excess of a new sample's Q over the mean training Q.
 
-    ``Σ_j λ_j(1 − f_j²) + 2θ1/n``. First term: the training samples helped choose the axes,
+    ``Σ_j λ_j(1 − f_j²) + 2θ1/n`` (+ ``2θ1/(n − 3)`` when features are scaled). First term: the training samples helped choose the axes,
     so the axes take up more of their variance (``λ_j``, population convention) than of a
     new sample's (``f_j²·λ_j`` with ``f_j`` the shrinkage factor, :mod:`axiscope.shrinkage`);
     the difference is left in a new sample's residual. Second term: the training residuals
@@ -211,7 +211,13 @@ def residual_excess(model: Model) -> float:
         )
     f = np.asarray(factor, dtype=np.float64)
     theta1 = float(moments[0])
-    return float(np.sum(model.variance * (1.0 - f**2)) + 2.0 * theta1 / model.n_samples)
+    excess = np.sum(model.variance * (1.0 - f**2)) + 2.0 * theta1 / model.n_samples
+    if model.spec.scale != "none" and model.n_samples > 3:
+        # Scales estimated from the training samples: a new sample's standardized values
+        # carry σ²/s², whose mean for a chi-square s² on n − 1 degrees of freedom is
+        # (n − 1)/(n − 3), i.e. about 2/(n − 3) more residual variance.
+        excess += 2.0 * theta1 / (model.n_samples - 3)
+    return float(excess)
 
 
 def model_limits(model: Model, confidence: float, *, q_method: str = "jackson-mudholkar",
