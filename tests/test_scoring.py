@@ -390,3 +390,25 @@ def test_q_calibrated_when_features_far_outnumber_training_samples():
     t2_rate = float(np.mean(res.diagnostics["t2"] > res.limits[0.95].t2))
     assert 0.03 <= q_rate <= 0.07, q_rate
     assert 0.03 <= t2_rate <= 0.07, t2_rate
+
+
+@pytest.mark.parametrize("center", [True, False])
+def test_absent_features_and_missing_cells_both_take_the_training_mean(center):
+    # Documented behaviour: an absent feature and a missing cell both count as the training
+    # mean of that feature; the reference is the same samples with that mean written in.
+    rng = np.random.default_rng(1)
+    X = rng.gamma(2.0, size=(300, 50))
+    ids = [f"f{i}" for i in range(50)]
+    model = fit(array_source(X, feature_ids=ids), n_components=4,
+                preprocess=PreprocessSpec(center=center), threads=1).model
+    filled = X[:5].copy()
+    filled[:, 7] = model.extras["feature_mean"][7]
+    reference = score(model, array_source(filled, feature_ids=ids), threads=1)
+    holes = X[:5].copy()
+    holes[:, 7] = np.nan
+    absent = np.delete(X[:5], 7, axis=1)
+    for new, new_ids in ((holes, ids), (absent, ids[:7] + ids[8:])):
+        res = score(model, array_source(new, feature_ids=new_ids), fill_missing="mean",
+                    max_missing_fraction=1.0, threads=1)
+        np.testing.assert_allclose(res.scores[model.axis_names], reference.scores[model.axis_names], atol=1e-10)
+        np.testing.assert_allclose(res.diagnostics["q"], reference.diagnostics["q"], rtol=1e-9, atol=1e-9)

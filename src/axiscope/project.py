@@ -164,6 +164,12 @@ def project(
     dtype = source.dtype
     mean_t, inv_t, V_t = mean.astype(dtype), inv.astype(dtype), V.astype(dtype)
     fill_centred = ((fill - mean) * inv).astype(dtype)
+    # An absent feature takes its training mean too: a constant contribution to every
+    # sample (zero when features are centred).
+    absent = ~present
+    absent_value = (model.extras.get("feature_mean", model.mean)[absent] - model.mean[absent]) / model.scale[absent]
+    absent_scores = absent_value @ model.components[absent]
+    absent_sq = float(absent_value @ absent_value)
     all_total = match.total_columns.shape[0] == p_in
     # the common case of the same features in the same order needs no gathered copy
     same_columns = match.model_columns.shape[0] == p_in and bool(
@@ -212,8 +218,8 @@ def project(
                 f"or infinite; fix the input or pass --fill-missing mean to use the training mean"
             )
         s, q, nb = out
-        scores[start : start + s.shape[0]] = s
-        sq[start : start + s.shape[0]] = q
+        scores[start : start + s.shape[0]] = s + absent_scores
+        sq[start : start + s.shape[0]] = q + absent_sq
         n_bad[start : start + s.shape[0]] = nb
 
     runner = PassRunner(threads=threads, progress=progress)
