@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import logging
 from collections.abc import Iterable, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -39,7 +39,7 @@ __all__ = [
     "split_names",
     "sample_flags",
     "correlation_test",
-    "v_test",
+    "category_test_value",
     "correlation_ratio",
     "benjamini_hochberg",
     "quantitative_associations",
@@ -151,6 +151,7 @@ class AnnotationSet:
     Attributes
     ----------
     sample_ids : ndarray of str, shape (n,)
+        The (active) samples the annotations are aligned to.
     quantitative : dict of str to ndarray of float, shape (n,)
         NaN where the value is missing.
     qualitative : dict of str to ndarray of object, shape (n,)
@@ -169,7 +170,6 @@ class AnnotationSet:
     technical: list[str]
     variables: pd.DataFrame
     source: str = "annotations"
-    skipped: dict[str, str] = field(default_factory=dict)
 
     def subset(self, rows: np.ndarray) -> "AnnotationSet":
         """The same annotations for a subset of samples (bool mask or indices)."""
@@ -180,7 +180,6 @@ class AnnotationSet:
             list(self.technical),
             self.variables.copy(),
             self.source,
-            dict(self.skipped),
         )
 
     def take(self, sample_ids: Sequence[str]) -> "AnnotationSet":
@@ -204,8 +203,13 @@ def load_annotations(
     exclude: Iterable[str] | str | None = None,
     allow_missing: bool = False,
     where: str | None = None,
+    active: np.ndarray | None = None,
 ) -> AnnotationSet:
     """Read (if a path), align and type the annotations of ``sample_ids``.
+
+    Alignment (strict by default) covers every sample in ``sample_ids``, supplementary ones
+    included; the type and status of each column and the counts of the variables table are
+    decided on the active samples only, since only they are tested against the axes.
 
     Parameters
     ----------
@@ -225,6 +229,14 @@ def load_annotations(
         See :func:`align_annotations`.
     where : str, optional
         Name of the table in messages (default: its path).
+    active : ndarray of bool, shape (n,), optional
+        The samples used to build the axes (default: all). The returned set holds these
+        samples only.
+
+    Returns
+    -------
+    AnnotationSet
+        Over the active samples, in the order of ``sample_ids``.
     """
     if isinstance(table, pd.DataFrame):
         where = where or "annotations"
@@ -259,11 +271,17 @@ def load_annotations(
     if both:
         raise OptionError(f"column(s) {', '.join(sorted(both))} are declared both categorical and quantitative; choose one")
     frame = align_annotations(frame, sample_ids, where=where, allow_missing=allow_missing)
+    ids = np.asarray(sample_ids, dtype=object)
+    if active is not None:
+        active = np.asarray(active, dtype=bool)
+        if active.shape != ids.shape:
+            raise OptionError(f"{where}: the active-sample mask has {active.shape[0]} entries for {ids.shape[0]} samples")
+        frame = frame.iloc[np.flatnonzero(active)]
+        ids = ids[active]
 
     quant: dict[str, np.ndarray] = {}
     qual: dict[str, np.ndarray] = {}
     rows = []
-    skipped: dict[str, str] = {}
     n = len(frame)
     for column in frame.columns:
         if column in exclude_l:
@@ -319,7 +337,6 @@ def load_annotations(
             else:
                 qual[column] = labels
         if status != "used":
-            skipped[column] = status
             logger.warning("%s: annotation column %r %s; it is not analysed", where, column, status)
         if n_used < n and status == "used":
             logger.info("%s: column %r has %d missing values; they are ignored for this column", where, column, n - n_used)
@@ -333,7 +350,7 @@ def load_annotations(
             "status": status,
         })
     variables = pd.DataFrame(rows, columns=["variable", "kind", "technical", "n_used", "n_missing", "n_levels", "status"])
-    return AnnotationSet(np.asarray(sample_ids, dtype=object), quant, qual, technical_l, variables, where, skipped)
+    return AnnotationSet(ids, quant, qual, technical_l, variables, where)
 
 
 def sample_flags(table: pd.DataFrame, column: str, sample_ids: Sequence[str], *, where: str = "annotations",
@@ -410,7 +427,7 @@ def correlation_p_value(r: np.ndarray, n: int | np.ndarray) -> np.ndarray:
     return np.where(df > 0, p, np.nan)
 
 
-def v_test(mean_group: np.ndarray, n_group: int, mean_all: np.ndarray, var_all: np.ndarray, n: int) -> np.ndarray:
+def category_test_value(mean_group: np.ndarray, n_group: int, mean_all: np.ndarray, var_all: np.ndarray, n: int) -> np.ndarray:
     """Test value of a category: standardized difference of its mean from the overall mean.
 
     ``v = (x̄_g − x̄) / sqrt( (n − n_g)/(n − 1) · s²/n_g )`` where ``s²`` is the population
@@ -435,7 +452,7 @@ def correlation_ratio(y: np.ndarray, labels: np.ndarray) -> tuple[float, float, 
 
     Returns
     -------
-    eta2, f_statistic, p_value : float
+    ratio, f_statistic, p_value : float
         ``F = (SS_between/(G − 1)) / (SS_within/(n − G))`` on ``(G − 1, n − G)`` degrees of
         freedom (one-way analysis of variance).
     """
@@ -448,13 +465,13 @@ def correlation_ratio(y: np.ndarray, labels: np.ndarray) -> tuple[float, float, 
     ss_total = float(np.sum((y - grand) ** 2))
     ss_between = float(np.sum(counts * (means - grand) ** 2))
     ss_within = max(ss_total - ss_between, 0.0)
-    eta2 = ss_between / ss_total if ss_total > 0 else np.nan
+    ratio = ss_between / ss_total if ss_total > 0 else np.nan
     if G < 2 or n <= G:
-        return eta2, np.nan, np.nan
+        return ratio, np.nan, np.nan
     with np.errstate(invalid="ignore", divide="ignore"):
         f = (ss_between / (G - 1)) / (ss_within / (n - G))
     p = float(sps.f.sf(f, G - 1, n - G)) if np.isfinite(f) else (0.0 if ss_within == 0 else np.nan)
-    return eta2, float(f), p
+    return ratio, float(f), p
 
 
 def benjamini_hochberg(p: np.ndarray, axis: int = 0) -> np.ndarray:
@@ -505,7 +522,7 @@ def category_statistics(labels: np.ndarray, scores: np.ndarray, axis_names: Sequ
 
     Samples with a missing label are ignored; the overall mean and variance of the scores
     are taken over the samples used. Columns: variable, category, axis, count, n,
-    mean_score, v_test, p_value (two-sided, normal approximation), technical.
+    mean_score, test_value, p_value (two-sided, normal approximation), technical.
     """
     F = np.asarray(scores, dtype=np.float64)
     ok = np.array([v is not None for v in labels], dtype=bool)
@@ -519,12 +536,12 @@ def category_statistics(labels: np.ndarray, scores: np.ndarray, axis_names: Sequ
         member = lab == category
         n_g = int(member.sum())
         mean_g = Fu[member].mean(axis=0)
-        v = v_test(mean_g, n_g, mean_all, var_all, n)
+        v = category_test_value(mean_g, n_g, mean_all, var_all, n)
         p = 2.0 * sps.norm.sf(np.abs(v))
         for j, axis in enumerate(axis_names):
             rows.append((variable, str(category), axis, n_g, n, mean_g[j], v[j], p[j], technical))
     return pd.DataFrame(rows, columns=["variable", "category", "axis", "count", "n", "mean_score",
-                                       "v_test", "p_value", "technical"])
+                                       "test_value", "p_value", "technical"])
 
 
 def qualitative_associations(annotations: AnnotationSet, scores: np.ndarray,
@@ -534,7 +551,7 @@ def qualitative_associations(annotations: AnnotationSet, scores: np.ndarray,
     Returns
     -------
     ratios : DataFrame
-        variable, axis, n, n_levels, eta2, f_statistic, p_value, p_adjusted, technical.
+        variable, axis, n, n_levels, correlation_ratio, f_statistic, p_value, p_adjusted, technical.
     categories : DataFrame
         See :func:`category_statistics`.
     """
@@ -546,13 +563,13 @@ def qualitative_associations(annotations: AnnotationSet, scores: np.ndarray,
         lab = np.asarray(labels, dtype=object)[ok]
         n_levels = len(pd.unique(lab))
         for j, axis in enumerate(axis_names):
-            eta2, f, p = correlation_ratio(F[ok, j], lab)
-            rows.append((name, axis, int(ok.sum()), n_levels, eta2, f, p, technical))
+            ratio, f, p = correlation_ratio(F[ok, j], lab)
+            rows.append((name, axis, int(ok.sum()), n_levels, ratio, f, p, technical))
         cats.append(category_statistics(labels, F, axis_names, variable=name, technical=technical))
-    ratios = pd.DataFrame(rows, columns=["variable", "axis", "n", "n_levels", "eta2", "f_statistic", "p_value", "technical"])
+    ratios = pd.DataFrame(rows, columns=["variable", "axis", "n", "n_levels", "correlation_ratio", "f_statistic", "p_value", "technical"])
     ratios.insert(7, "p_adjusted", _adjust_by_axis(ratios))
     categories = pd.concat(cats, ignore_index=True) if cats else pd.DataFrame(
-        columns=["variable", "category", "axis", "count", "n", "mean_score", "v_test", "p_value", "technical"])
+        columns=["variable", "category", "axis", "count", "n", "mean_score", "test_value", "p_value", "technical"])
     return ratios, categories
 
 

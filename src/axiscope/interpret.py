@@ -54,11 +54,13 @@ __all__ = [
     "sample_quality",
     "sample_contributions",
     "read_feature_statistics",
+    "read_result_table",
+    "check_result_table",
 ]
 
 logger = logging.getLogger(__name__)
 
-_QUANTITIES = ("loading", "correlation", "contribution", "cos2")
+_QUANTITIES = ("loading", "correlation", "contribution", "sq_cosine")
 
 
 # --------------------------------------------------------------------------- samples
@@ -80,19 +82,19 @@ def sample_quality(sample_ids: Sequence[str], scores: np.ndarray, sq_dist: np.nd
     Returns
     -------
     DataFrame
-        sample_id, status, sq_dist, ``cos2_<axis>`` for each axis, and ``quality`` (the sum
+        sample_id, status, sq_dist, ``sq_cosine_<axis>`` for each axis, and ``quality`` (the sum
         over the ``k`` axes: the share of the sample's squared distance they represent).
         Samples at the centre (zero distance) get NaN.
     """
     F = np.asarray(scores, dtype=np.float64)
     d = np.asarray(sq_dist, dtype=np.float64)
     with np.errstate(invalid="ignore", divide="ignore"):
-        cos2 = np.where(d[:, None] > 0, F**2 / d[:, None], np.nan)
-    df = pd.DataFrame(cos2, columns=[f"cos2_{a}" for a in axis_names])
+        sq_cos = np.where(d[:, None] > 0, F**2 / d[:, None], np.nan)
+    df = pd.DataFrame(sq_cos, columns=[f"sq_cosine_{a}" for a in axis_names])
     df.insert(0, "sq_dist", d)
     df.insert(0, "status", status)
     df.insert(0, "sample_id", np.asarray(sample_ids))
-    df["quality"] = cos2.sum(axis=1)
+    df["quality"] = sq_cos.sum(axis=1)
     return df
 
 
@@ -108,8 +110,8 @@ def sample_contributions(sample_ids: Sequence[str], scores: np.ndarray, singular
     F = np.asarray(scores, dtype=np.float64)
     s2 = np.asarray(singular_values, dtype=np.float64) ** 2
     with np.errstate(invalid="ignore", divide="ignore"):
-        ctr = 100.0 * F**2 / s2
-    df = pd.DataFrame(ctr, columns=[f"contribution_{a}" for a in axis_names])
+        contrib = 100.0 * F**2 / s2
+    df = pd.DataFrame(contrib, columns=[f"contribution_{a}" for a in axis_names])
     df.insert(0, "sample_id", np.asarray(sample_ids))
     return df
 
@@ -132,7 +134,7 @@ class FeatureAxisStatistics:
         Pearson correlation between the (transformed) feature and the scores.
     contribution : ndarray, shape (p, k)
         Percent of the axis built from the feature (``100·loading²``; NaN if supplementary).
-    cos2 : ndarray, shape (p, k)
+    sq_cosine : ndarray, shape (p, k)
         Squared cosine of the feature with the axis.
     n_samples : int
         Number of active samples the correlations are computed on.
@@ -144,7 +146,7 @@ class FeatureAxisStatistics:
     loading: np.ndarray
     correlation: np.ndarray
     contribution: np.ndarray
-    cos2: np.ndarray
+    sq_cosine: np.ndarray
     n_samples: int
     axis_names: list[str]
 
@@ -156,14 +158,20 @@ class FeatureAxisStatistics:
         """Two-sided p-values of the correlations (t-test on n − 2 df), shape (p, k)."""
         return correlation_p_value(self.correlation, self.n_samples)
 
-    def adjusted_p_values(self) -> np.ndarray:
-        """Benjamini–Hochberg adjusted p-values over all features, per axis, shape (p, k)."""
-        return benjamini_hochberg(self.p_values(), axis=0)
+    def adjusted_p_values(self, p_values: np.ndarray | None = None) -> np.ndarray:
+        """Benjamini–Hochberg adjusted p-values over all features, per axis, shape (p, k).
+
+        ``p_values`` (from :meth:`p_values`) avoids computing them a second time.
+        """
+        return benjamini_hochberg(self.p_values() if p_values is None else p_values, axis=0)
 
     def concat(self, other: "FeatureAxisStatistics") -> "FeatureAxisStatistics":
         """Active and supplementary features together (``other`` after ``self``)."""
         if other.axis_names != self.axis_names or other.n_samples != self.n_samples:
-            raise ValueError("feature statistics of different fits cannot be combined")
+            raise OptionError(
+                f"feature statistics of different fits cannot be combined (axes {self.axis_names} on "
+                f"{self.n_samples} samples vs {other.axis_names} on {other.n_samples}); compute both from the same fit"
+            )
         return FeatureAxisStatistics(
             np.concatenate([self.feature_ids, other.feature_ids]),
             np.concatenate([self.supplementary, other.supplementary]),
@@ -212,35 +220,95 @@ class FeatureAxisStatistics:
         return path
 
 
+_REFIT = "restore the file written by 'axiscope fit' or refit"
+
+
+def read_result_table(path: Path, *, required: Sequence[str], numeric: Sequence[str] = ()) -> pd.DataFrame:
+    """Read a TSV table written by ``axiscope fit``, checking its columns.
+
+    Parameters
+    ----------
+    path : path
+    required : sequence of str
+        Columns that must be present.
+    numeric : sequence of str
+        Columns (among ``required``) that must hold numbers; converted to float64.
+
+    Raises
+    ------
+    InputError
+        The file is not a readable table, lacks a column, or holds text in a numeric column.
+    """
+    path = Path(path)
+    try:
+        table = pd.read_csv(path, sep="\t", dtype={"sample_id": str, "feature_id": str})
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError, ValueError, OSError) as exc:
+        first = str(exc).strip().splitlines()
+        reason = first[0] if first else exc.__class__.__name__
+        raise InputError(f"{path}: not a readable table ({reason}); {_REFIT}") from exc
+    return check_result_table(table, path, required=required, numeric=numeric)
+
+
+def check_result_table(table: pd.DataFrame, path: Path, *, required: Sequence[str],
+                       numeric: Sequence[str] = ()) -> pd.DataFrame:
+    """Check that ``table`` (read from ``path``) has the ``required`` columns and numbers in ``numeric``."""
+    lacking = [c for c in required if c not in table.columns]
+    if lacking:
+        raise InputError(f"{path}: missing column(s) {', '.join(lacking)}; {_REFIT}")
+    for column in numeric:
+        try:
+            table[column] = table[column].astype(np.float64)
+        except (ValueError, TypeError) as exc:
+            raise InputError(f"{path}: column {column} holds values that are not numbers; {_REFIT}") from exc
+    return table
+
+
 def read_feature_statistics(directory: Path, *, name: str = "feature_statistics",
                             n_samples: int | None = None) -> FeatureAxisStatistics | None:
     """Read what :meth:`FeatureAxisStatistics.write` wrote into ``directory``; None if absent.
 
     ``n_samples`` (the number of active samples, e.g. ``model.n_samples``) is needed for
-    p-values when reading the TSV form, which does not store it.
+    p-values when reading the TSV form, which does not store it; the Zarr form stores it.
+
+    Raises
+    ------
+    OptionError
+        The TSV form is found but ``n_samples`` is not given.
+    InputError
+        The file is unreadable or lacks columns/arrays.
     """
     directory = Path(directory)
     tsv, store = directory / f"{name}.tsv", directory / f"{name}.zarr"
     if store.is_dir():
         import zarr
 
-        group = zarr.open_group(str(store), mode="r")
-        return FeatureAxisStatistics(
-            np.asarray(group["feature_ids"][:], dtype=object),
-            np.asarray(group["supplementary"][:], dtype=bool),
-            *(np.asarray(group[q][:], dtype=np.float64) for q in _QUANTITIES),
-            int(group.attrs["n_samples"]), list(group.attrs["axis_names"]),
-        )
+        try:
+            group = zarr.open_group(str(store), mode="r")
+            return FeatureAxisStatistics(
+                np.asarray(group["feature_ids"][:], dtype=object),
+                np.asarray(group["supplementary"][:], dtype=bool),
+                *(np.asarray(group[q][:], dtype=np.float64) for q in _QUANTITIES),
+                int(group.attrs["n_samples"]), list(group.attrs["axis_names"]),
+            )
+        except (KeyError, ValueError, TypeError, OSError) as exc:
+            raise InputError(f"{store}: incomplete or unreadable feature statistics ({exc.__class__.__name__}: "
+                             f"{exc}); {_REFIT}") from exc
     if not tsv.is_file():
         return None
-    df = pd.read_csv(tsv, sep="\t", dtype={"feature_id": str})
+    if n_samples is None:
+        raise OptionError(f"{tsv}: the number of active samples is needed for p-values; pass n_samples "
+                          "(e.g. model.n_samples)")
+    df = read_result_table(tsv, required=["feature_id", "status"])
     axes = [c[len("loading_"):] for c in df.columns if c.startswith("loading_")]
-    n_samples = int(n_samples or 0)
+    if not axes:
+        raise InputError(f"{tsv}: no loading_<axis> column; {_REFIT}")
+    value_columns = [f"{q}_{a}" for q in _QUANTITIES for a in axes]
+    df = check_result_table(df, tsv, required=value_columns, numeric=value_columns)
     return FeatureAxisStatistics(
         df["feature_id"].to_numpy(dtype=object),
         (df["status"] == "supplementary").to_numpy(),
         *(df[[f"{q}_{a}" for a in axes]].to_numpy(dtype=np.float64) for q in _QUANTITIES),
-        n_samples, axes,
+        int(n_samples), axes,
     )
 
 
@@ -278,14 +346,14 @@ def feature_statistics(model: Model) -> FeatureAxisStatistics:
         sd_f = np.sqrt(np.maximum(s**2 / n - f_bar**2, 0.0))
         corr = np.clip(cov / (sd_t[:, None] * sd_f), -1.0, 1.0)
         norm2 = n * (sd_t**2 + mu_t**2)
-        cos2 = V**2 * s**2 / norm2[:, None]
+        sq_cos = V**2 * s**2 / norm2[:, None]
     return FeatureAxisStatistics(
         feature_ids=np.asarray(model.feature_ids),
         supplementary=np.zeros(V.shape[0], dtype=bool),
         loading=V,
         correlation=corr,
         contribution=100.0 * V**2,
-        cos2=cos2,
+        sq_cosine=sq_cos,
         n_samples=int(model.n_samples),
         axis_names=model.axis_names,
     )
@@ -299,7 +367,6 @@ def supplementary_feature_statistics(
     columns: np.ndarray | None = None,
     rows: np.ndarray | None = None,
     spec: PreprocessSpec | None = None,
-    total_columns: np.ndarray | None = None,
     axis_names: Sequence[str] | None = None,
     sample_ids: Sequence[str] | None = None,
     memory_limit: int | str | None = None,
@@ -322,9 +389,6 @@ def supplementary_feature_statistics(
     spec : PreprocessSpec, optional
         Per-sample transforms (total normalisation, log1p), centring and scaling replayed
         on the columns, as in the fit (default: standardized, no transform).
-    total_columns : ndarray of int, optional
-        Columns summed for total normalisation (default: all columns of ``source``, as in
-        the fit).
     sample_ids : sequence of str, optional
         Ids of the scored samples; checked against ``source`` when given.
     memory_limit, threads, progress
@@ -337,8 +401,10 @@ def supplementary_feature_statistics(
 
     Notes
     -----
-    Memory: ``O(p_sup·k)`` float64 accumulators and results plus a window of ``2·threads``
-    row blocks, sized to stay within ``memory_limit``. Non-finite cells are an error
+    Memory: ``O(p_sup·k)`` float64 accumulators (cross-products, and with imputation the
+    scores of missing cells) plus a window of ``2·threads`` row blocks during the pass, then
+    the results (correlation, loading, squared cosine and the NaN contribution); both
+    phases are sized to stay within ``memory_limit``. Non-finite cells are an error
     unless ``spec.missing == "mean"``, in which case they count as the feature mean.
     """
     spec = spec or PreprocessSpec()
@@ -364,14 +430,23 @@ def supplementary_feature_statistics(
     budget = default_memory_limit() if memory_limit is None else parse_memory(memory_limit)
     threads = max(1, int(threads or os.cpu_count() or 1))
     itemsize = source.dtype.itemsize
-    fixed = 8 * p * (4 * k + 6) + 8 * n * k * 2  # accumulators and results
+    missing_ok = spec.missing == "mean"
+    step = 65536  # features finished at a time, so that temporaries stay small
+    # during the pass: (p, k) accumulators of cross-products and, with imputation, of the
+    # scores of missing cells; five length-p vectors (sums, squares, counts, shift, column
+    # indices); the scores; and a window of row blocks
+    accumulators = 8 * p * (k * (2 if missing_ok else 1) + 5) + 8 * n * k * 2
+    # after the pass: correlation, loading, squared cosine and the NaN contribution returned
+    # (p, k each), the SD and ids (p each), and the temporaries of one step of features
+    results = 8 * p * (4 * k + 2) + 8 * min(p, step) * (4 * k + 8)
     window = 2 * threads
     row_bytes = p_all * itemsize * 2 + p * 8 * 3 + 8 * p * k // max(1, n)
-    room = budget - fixed
-    if room < window * row_bytes:
+    room = budget - accumulators
+    needed = max(accumulators + window * row_bytes, accumulators + results)
+    if needed > budget:
         raise OptionError(
             f"memory limit {format_bytes(budget)} is too small for statistics of {p} supplementary "
-            f"features on {k} axes (needs at least {format_bytes(fixed + window * row_bytes)}); raise --memory-limit"
+            f"features on {k} axes (needs at least {format_bytes(needed)}); raise --memory-limit"
         )
     block_rows = int(max(1, min(room // (window * row_bytes), n_all)))
     if source.sample_chunk and block_rows >= source.sample_chunk:
@@ -380,8 +455,6 @@ def supplementary_feature_statistics(
     spans = [(a, b) for a, b in spans if rows[a:b].any()]
     counts = [int(rows[a:b].sum()) for a, b in spans]
     starts = np.concatenate([[0], np.cumsum(counts)])[:-1]
-    tot_cols = None if total_columns is None else np.asarray(total_columns, dtype=np.int64)
-    missing_ok = spec.missing == "mean"
 
     def load(i: int) -> np.ndarray:
         a, b = spans[i]
@@ -389,14 +462,7 @@ def supplementary_feature_statistics(
         return block if rows[a:b].all() else block[rows[a:b]]
 
     def task(block: np.ndarray):
-        if spec.normalize_total is not None and tot_cols is not None:
-            sums = np.nansum(block[:, tot_cols], axis=1, dtype=np.float64)
-            factor = np.where(sums > 0, spec.normalize_total / np.where(sums > 0, sums, 1), 0.0)
-            block *= factor.astype(block.dtype)[:, None]
-            if spec.log1p:
-                np.log1p(block, out=block)
-        else:
-            block = transform_block(block, spec)
+        block = transform_block(block, spec)  # totals over all columns of the source, as in the fit
         x = block[:, cols] if p != p_all else block
         del block
         x = x.astype(np.float64)
@@ -449,9 +515,8 @@ def supplementary_feature_statistics(
     s2 = np.asarray(singular_values, dtype=np.float64) ** 2
     corr = np.empty((p, k))
     loading = np.empty((p, k))
-    cos2 = np.empty((p, k))
+    sq_cos = np.empty((p, k))
     sd_x = np.empty(p)
-    step = 65536  # features finished at a time, so that temporaries stay small
     with np.errstate(invalid="ignore", divide="ignore"):
         for lo in range(0, p, step):
             sl = slice(lo, min(p, lo + step))
@@ -480,14 +545,14 @@ def supplementary_feature_statistics(
                 xf = (cross + mean[:, None] * (f_tot - f_present)) / scale[:, None]
                 norm2 = (m2 + n * mean**2) / scale**2
             loading[sl] = xf / s2
-            cos2[sl] = xf**2 / (s2 * norm2[:, None])
+            sq_cos[sl] = xf**2 / (s2 * norm2[:, None])
     del state
     constant = ~(sd_x > 0)
     if constant.any():
         logger.warning("%d supplementary features are constant over the active samples; their "
                        "correlations are undefined (NaN)", int(constant.sum()))
         corr[constant] = np.nan
-        cos2[constant] = np.nan
+        sq_cos[constant] = np.nan
         loading[constant] = np.nan
     return FeatureAxisStatistics(
         feature_ids=np.asarray(source.feature_ids, dtype=object)[cols],
@@ -495,7 +560,7 @@ def supplementary_feature_statistics(
         loading=loading,
         correlation=corr,
         contribution=np.full((p, k), np.nan),
-        cos2=cos2,
+        sq_cosine=sq_cos,
         n_samples=n,
         axis_names=names,
     )
