@@ -47,12 +47,12 @@ def test_correlation_ratio_matches_f_oneway():
     rng = np.random.default_rng(1)
     labels = np.array(["a"] * 7 + ["b"] * 12 + ["c"] * 5, dtype=object)
     y = rng.standard_normal(24) + np.where(labels == "b", 1.0, 0.0)
-    eta2, f, p = correlation_ratio(y, labels)
+    ratio, f, p = correlation_ratio(y, labels)
     ref = sps.f_oneway(*(y[labels == g] for g in ("a", "b", "c")))  # reference: scipy.stats.f_oneway
     assert f == pytest.approx(ref.statistic, rel=1e-10)
     assert p == pytest.approx(ref.pvalue, rel=1e-9)
     # η² from F: η² = F(G−1) / (F(G−1) + n − G) (one-way ANOVA identity, common practice, no source)
-    assert eta2 == pytest.approx(ref.statistic * 2 / (ref.statistic * 2 + 21), rel=1e-10)
+    assert ratio == pytest.approx(ref.statistic * 2 / (ref.statistic * 2 + 21), rel=1e-10)
 
 
 def test_benjamini_hochberg_matches_scipy():
@@ -68,7 +68,7 @@ def test_benjamini_hochberg_matches_scipy():
     np.testing.assert_allclose(out[keep], sps.false_discovery_control(with_nan[keep]), rtol=1e-12)
 
 
-def test_v_test_on_a_hand_checkable_table():
+def test_category_test_value_on_a_hand_checkable_table():
     # six samples with scores 1..6 on one axis; category "hi" = the last two
     scores = np.array([[1.0], [2.0], [3.0], [4.0], [5.0], [6.0]])
     labels = np.array(["lo", "lo", "lo", "lo", "hi", "hi"], dtype=object)
@@ -79,10 +79,10 @@ def test_v_test_on_a_hand_checkable_table():
     n, n_g, mean, mean_g = 6, 2, 3.5, 5.5
     s2 = sum((v - mean) ** 2 for v in range(1, 7)) / n  # 17.5 / 6
     expected = (mean_g - mean) / math.sqrt((n - n_g) / (n - 1) * s2 / n_g)  # = 2 / sqrt(7/6) ≈ 1.8516
-    assert hi.v_test == pytest.approx(expected, rel=1e-12)
+    assert hi.test_value == pytest.approx(expected, rel=1e-12)
     assert hi.mean_score == pytest.approx(5.5) and hi["count"] == 2
     lo = table[table.category == "lo"].iloc[0]
-    assert lo.v_test == pytest.approx((2.5 - 3.5) / math.sqrt((6 - 4) / 5 * s2 / 4), rel=1e-12)
+    assert lo.test_value == pytest.approx((2.5 - 3.5) / math.sqrt((6 - 4) / 5 * s2 / 4), rel=1e-12)
 
 
 def _write(tmp_path, text, name="ann.tsv"):
@@ -166,3 +166,28 @@ def test_dataframe_input_equals_file_input(tmp_path):
     two = load_annotations(path, ["a", "b", "c", "d"])
     np.testing.assert_array_equal(one.quantitative["x"], two.quantitative["x"])
     assert list(one.qualitative["g"]) == list(two.qualitative["g"]) == ["u", "v", "u", None]
+
+
+def test_typing_and_counts_use_the_active_samples_only(caplog):
+    # 40 samples, the last 8 supplementary: "site" is "south" exactly on them (one level
+    # among the active samples) and "depth" is empty only on them (nothing missing)
+    ids = [f"s{i:02d}" for i in range(40)]
+    sup = np.arange(40) >= 32
+    rng = np.random.default_rng(4)
+    table = pd.DataFrame({
+        "sample_id": ids,
+        "site": np.where(sup, "south", "north"),
+        "depth": [None if s else float(v) for s, v in zip(sup, rng.uniform(1, 2, 40))],
+        "group": rng.choice(["a", "b"], 40),
+    })
+    with caplog.at_level(logging.WARNING, logger="axiscope"):
+        ann = load_annotations(table, ids, active=~sup)
+    var = ann.variables.set_index("variable")
+    assert var.loc["site", "n_levels"] == 1 and var.loc["site", "status"].startswith("skipped: a single level")
+    assert "site" not in ann.qualitative and "'site'" in caplog.text
+    assert var.loc["depth", "n_used"] == 32 and var.loc["depth", "n_missing"] == 0
+    assert var.loc["group", "n_used"] == 32
+    assert list(ann.sample_ids) == ids[:32] and ann.quantitative["depth"].shape == (32,)
+    # strict alignment still covers the supplementary samples
+    with pytest.raises(InputError, match="8 of 40 samples have no row"):
+        load_annotations(table.iloc[:32], ids, active=~sup)

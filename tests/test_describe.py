@@ -2,6 +2,7 @@
 
 Data: an invented matrix whose truth is planted: a continuous latent variable drives
 features f000–f009 (PC1) and a two-level annotation drives features f020–f029 (PC2).
+References: numpy.corrcoef, scipy.stats.f_oneway (named beside each check).
 """
 
 from __future__ import annotations
@@ -11,11 +12,12 @@ import json
 import numpy as np
 import pandas as pd
 import pytest
+from scipy import stats as sps
 from typer.testing import CliRunner
 
 from axiscope import fit
 from axiscope.cli import app
-from axiscope.describe import describe
+from axiscope.describe import describe, interpret_fit, plan_interpretation
 from axiscope.readers import array_source
 
 N, P = 120, 60
@@ -64,7 +66,7 @@ def test_description_names_the_planted_drivers(planted):
         assert not any(word in summary.lower() for word in CAUSAL), summary
     # the categories reported on PC2 carry test values beyond ±2 with opposite signs
     cats = d.categories[(d.categories.axis == "PC2") & (d.categories.variable == "run")]
-    assert (cats.v_test.abs() >= 2).all() and np.sign(cats.v_test).sum() == 0
+    assert (cats.test_value.abs() >= 2).all() and np.sign(cats.test_value).sum() == 0
     assert "# PC2" in d.markdown["PC2"] and "run" in d.markdown["PC2"]
 
 
@@ -125,19 +127,32 @@ def test_cli_fit_with_supplementary_samples_and_features_then_describe(tmp_path,
     assert set(dropped[dropped.reason == "supplementary"].feature_id) == {"f025", "f059"}
     desc = pd.read_csv(out / "axis_description.tsv", sep="\t").set_index("axis")
     assert desc.loc["PC2", "batch_warning"]
-    assert "batch effect" in res.output
+    assert res.output.count("batch effect") == 1  # logged once, not printed a second time
 
     # describe an existing result without refitting: same statistics
     res2 = runner.invoke(app, ["describe", str(out), "--annotations", str(tmp_path / "ann.tsv"),
-                               "--categorical", "holdout", "--technical", "run", "-q"])
+                               "--ignore", "holdout", "--technical", "run", "-q"])
     assert res2.exit_code == 0, res2.output
+    assert "holdout" not in set(pd.read_csv(out / "description" / "annotation_variables.tsv", sep="\t").variable)
     again = pd.read_csv(out / "description" / "annotation_qualitative.tsv", sep="\t")
     first = pd.read_csv(out / "annotation_qualitative.tsv", sep="\t")
     merged = first.merge(again, on=["variable", "axis"])
-    np.testing.assert_allclose(merged.eta2_x, merged.eta2_y, rtol=1e-6)
+    assert len(merged) == len(first) > 0
+    np.testing.assert_allclose(merged.correlation_ratio_x, merged.correlation_ratio_y, rtol=1e-6)
+    # correlation ratio of 'run' on PC2 from the one-way ANOVA F of scipy.stats.f_oneway on
+    # the active scores, through η² = F(G−1) / (F(G−1) + n − G) (one-way ANOVA identity)
+    run = ann.set_index("sample_id").loc[active_ids, "run"].to_numpy()
+    pc2 = scores["PC2"].to_numpy()
+    ref = sps.f_oneway(pc2[run == "A"], pc2[run == "B"])  # reference: scipy.stats.f_oneway
+    n_act, groups = pc2.shape[0], 2
+    eta_ref = ref.statistic * (groups - 1) / (ref.statistic * (groups - 1) + n_act - groups)
+    row = first[(first.variable == "run") & (first.axis == "PC2")].iloc[0]
+    assert row.correlation_ratio == pytest.approx(eta_ref, rel=1e-5)
+    assert row.p_value == pytest.approx(ref.pvalue, rel=1e-4, abs=1e-300)
     q1 = pd.read_csv(out / "sample_quality.tsv", sep="\t")
     q2 = pd.read_csv(out / "description" / "sample_quality.tsv", sep="\t")
-    np.testing.assert_allclose(q1.filter(like="cos2_"), q2.filter(like="cos2_"), rtol=1e-6)
+    assert q1.filter(like="sq_cosine_").shape[1] == 3
+    np.testing.assert_allclose(q1.filter(like="sq_cosine_"), q2.filter(like="sq_cosine_"), rtol=1e-6)
     manifest = json.loads((out / "manifest.json").read_text())
     assert manifest["n_active_samples"] == 100
 
@@ -182,6 +197,53 @@ def test_cli_single_level_category_is_reported_and_skipped(tmp_path, planted):
     variables = pd.read_csv(out / "annotation_variables.tsv", sep="\t").set_index("variable")
     assert variables.loc["site", "status"].startswith("skipped")
     assert "site" not in set(pd.read_csv(out / "annotation_qualitative.tsv", sep="\t").variable)
+
+
+def test_annotations_are_typed_on_the_active_samples_of_a_fit(caplog):
+    # 40 samples, 8 supplementary: 'site' is "south" exactly on the 8 (one level among the
+    # active samples) and 'depth' is empty only on them (no missing value among the active)
+    rng = np.random.default_rng(5)
+    X = rng.standard_normal((40, 12))
+    ids = np.array([f"s{i:02d}" for i in range(40)], dtype=object)
+    sup = np.arange(40) % 5 == 4
+    table = pd.DataFrame({
+        "sample_id": ids,
+        "held": np.where(sup, "true", "false"),
+        "site": np.where(sup, "south", "north"),
+        "depth": [None if s else float(v) for s, v in zip(sup, rng.uniform(1, 2, 40))],
+        "group": rng.choice(["a", "b"], 40),
+    })
+    src = array_source(X, sample_ids=ids)
+    plan = plan_interpretation(src, annotations=table, supplementary_samples_column="held")
+    assert plan.active is not None and (~plan.active).sum() == 8
+    r = fit(src, n_components=2, method="exact", active=plan.active)
+    d = interpret_fit(plan, r, src, threads=1)
+    var = d.variables.set_index("variable")
+    assert "held" not in var.index
+    assert var.loc["site", "n_levels"] == 1 and var.loc["site", "status"].startswith("skipped: a single level")
+    assert var.loc["depth", "status"] == "used" and var.loc["depth", "n_used"] == 32
+    assert var.loc["depth", "n_missing"] == 0
+    assert set(d.quantitative.variable) == {"depth"} and set(d.qualitative.variable) == {"group"}
+    assert (d.sample_quality.status == "supplementary").sum() == 8
+
+
+def test_describe_command_on_a_garbled_scores_table(tmp_path, planted):
+    base = _write_inputs(tmp_path, planted)
+    out = tmp_path / "res"
+    runner = CliRunner()
+    assert runner.invoke(app, base + ["--out", str(out)]).exit_code == 0
+    (out / "sample_scores.tsv").write_text("sample_id\tPC1\tPC2\tPC3\ns000\t1\t2\t3\n\x00\x01\t4\t5\t6\t7\t8\n")
+    res = runner.invoke(app, ["describe", str(out), "-q"])
+    assert res.exit_code == 2
+    assert "Traceback" not in res.output
+    lines = res.output.strip().splitlines()
+    assert len(lines) == 1, res.output
+    assert lines[0].startswith("error:") and "sample_scores.tsv" in lines[0] and "refit" in lines[0]
+    assert not (out / "description").exists()
+    # text in a score column is caught the same way
+    (out / "sample_scores.tsv").write_text("sample_id\tPC1\tPC2\tPC3\ns000\t1\tabc\t3\n")
+    res = runner.invoke(app, ["describe", str(out), "-q"])
+    assert res.exit_code == 2 and "column PC2" in res.output and "Traceback" not in res.output
 
 
 def test_describe_command_on_a_missing_directory(tmp_path):

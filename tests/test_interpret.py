@@ -16,8 +16,10 @@ import pytest
 from scipy import stats as sps
 
 from axiscope import PreprocessSpec, fit, open_matrix
+from axiscope.errors import InputError, OptionError
 from axiscope.interpret import (
     feature_statistics,
+    FeatureAxisStatistics,
     read_feature_statistics,
     sample_contributions,
     sample_quality,
@@ -56,13 +58,13 @@ def test_identities_exact_full_rank():
     X = _planted(9, 25, seed=1)
     r = fit(array_source(X), n_components=8, method="exact")
     names = r.axis_names
-    ctr = sample_contributions(r.sample_ids, r.scores, r.model.singular_values, names)
-    np.testing.assert_allclose(ctr[[f"contribution_{a}" for a in names]].sum(axis=0), 100.0, rtol=1e-10)
+    contrib = sample_contributions(r.sample_ids, r.scores, r.model.singular_values, names)
+    np.testing.assert_allclose(contrib[[f"contribution_{a}" for a in names]].sum(axis=0), 100.0, rtol=1e-10)
     q = sample_quality(r.sample_ids, r.scores, r.sample_sq_dist, names)
     np.testing.assert_allclose(q["quality"], 1.0, rtol=1e-8)
     fs = feature_statistics(r.model)
     np.testing.assert_allclose(fs.contribution.sum(axis=0), 100.0, rtol=1e-10)
-    np.testing.assert_allclose(fs.cos2.sum(axis=1), 1.0, rtol=1e-8)
+    np.testing.assert_allclose(fs.sq_cosine.sum(axis=1), 1.0, rtol=1e-8)
     # unit scaling: correlation = loading × sqrt(variance of the axis)
     np.testing.assert_allclose(fs.correlation, r.model.components * np.sqrt(r.model.variance), atol=1e-12)
 
@@ -98,8 +100,8 @@ def test_closed_form_correlations_match_direct_computation(spec):
     # squared cosine: (x̃ᵀu_a)² / ‖x̃‖² with x̃ the preprocessed column (definition)
     Xt = (Y - r.model.mean) / r.model.scale
     U = r.scores / r.model.singular_values
-    cos2 = (Xt.T @ U) ** 2 / (Xt**2).sum(axis=0)[:, None]
-    np.testing.assert_allclose(fs.cos2, cos2, atol=1e-9)
+    sq_cos = (Xt.T @ U) ** 2 / (Xt**2).sum(axis=0)[:, None]
+    np.testing.assert_allclose(fs.sq_cosine, sq_cos, atol=1e-9)
     top = r.top_features(3)
     assert {"correlation", "contribution"} <= set(top.columns)
     row = top.iloc[0]
@@ -120,9 +122,20 @@ def test_streaming_statistics_of_active_features_reproduce_the_closed_form(spec)
                                          columns=r.preprocessing.kept, spec=spec, memory_limit="64MB", threads=1)
     fs = feature_statistics(r.model)
     np.testing.assert_allclose(s.correlation, fs.correlation, atol=1e-6)
-    np.testing.assert_allclose(s.cos2, fs.cos2, atol=1e-6)
+    np.testing.assert_allclose(s.sq_cosine, fs.sq_cosine, atol=1e-6)
     np.testing.assert_allclose(s.loading, fs.loading, atol=1e-6)
     assert np.isnan(s.contribution).all() and s.supplementary.all()
+    # outside reference, by definition with numpy on the preprocessed columns (centred or
+    # not): loading in the units of the active ones x̃ᵀF / s², squared cosine (x̃ᵀu)² / ‖x̃‖²
+    Y = _transformed(X, spec)[:, r.preprocessing.kept]
+    Xt = (Y - r.model.mean) / r.model.scale
+    s2 = r.model.singular_values**2
+    U = r.scores / r.model.singular_values
+    # (atol 1e-6: the float32 counts are transformed in float32 by the pass, in float64 here)
+    np.testing.assert_allclose(s.loading, (Xt.T @ r.scores) / s2, atol=1e-6)
+    np.testing.assert_allclose(s.sq_cosine, (Xt.T @ U) ** 2 / (Xt**2).sum(axis=0)[:, None], atol=1e-6)
+    if not spec.center:  # the uncentred case really is uncentred: x̃ has a non-zero mean
+        assert np.abs(Xt.mean(axis=0)).max() > 0.1
 
 
 def test_supplementary_features_and_dropped_reason():
@@ -153,7 +166,7 @@ def test_supplementary_features_with_missing_values_use_the_mean():
     for j in range(4):
         ref = np.corrcoef(filled[:, j], r.scores.T)[0, 1:]  # reference: numpy.corrcoef on mean-imputed data
         np.testing.assert_allclose(s.correlation[j], ref, atol=1e-10)
-    with pytest.raises(Exception, match="NaN or infinite"):
+    with pytest.raises(InputError, match="NaN or infinite"):
         supplementary_feature_statistics(array_source(Z), r.scores, r.model.singular_values, threads=1)
 
 
@@ -212,3 +225,23 @@ def test_feature_statistics_for_a_million_features_stay_under_budget(tmp_path):
     assert back.feature_ids[999_999] == stats.feature_ids[999_999]
     np.testing.assert_array_equal(back.correlation[:5], stats.correlation[:5])
     assert time.perf_counter() - t0 < 60
+
+
+def test_feature_statistics_io_errors_are_typed(tmp_path):
+    X = _planted(30, 8, seed=13)
+    r = fit(array_source(X), n_components=2, method="exact")
+    fs = feature_statistics(r.model)
+    fs.write(tmp_path)
+    with pytest.raises(OptionError, match="number of active samples"):
+        read_feature_statistics(tmp_path)
+    back = read_feature_statistics(tmp_path, n_samples=r.model.n_samples)
+    # the p-values read back equal those of the original (t-test on n − 2 df)
+    np.testing.assert_allclose(back.p_values(), fs.p_values(), rtol=1e-6)
+    path = tmp_path / "feature_statistics.tsv"
+    path.write_text("feature_id\tstatus\tloading_PC1\nf0\tactive\n1\t2\t3\t4\t5\n")
+    with pytest.raises(InputError, match="feature_statistics.tsv.*restore the file"):
+        read_feature_statistics(tmp_path, n_samples=30)
+    other = FeatureAxisStatistics(fs.feature_ids, fs.supplementary, fs.loading, fs.correlation,
+                                  fs.contribution, fs.sq_cosine, 31, fs.axis_names)
+    with pytest.raises(OptionError, match="cannot be combined"):
+        fs.concat(other)

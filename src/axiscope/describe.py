@@ -24,12 +24,19 @@ from typing import TYPE_CHECKING
 import numpy as np
 import pandas as pd
 
-from .annotations import AnnotationSet, load_annotations, qualitative_associations, quantitative_associations
+from .annotations import (
+    AnnotationSet,
+    benjamini_hochberg,
+    load_annotations,
+    qualitative_associations,
+    quantitative_associations,
+)
 from .errors import InputError
 from .interpret import (
     FeatureAxisStatistics,
     feature_statistics,
     read_feature_statistics,
+    read_result_table,
     sample_contributions,
     sample_quality,
 )
@@ -123,7 +130,7 @@ class Description:
         axes_dir = directory / "axes"
         axes_dir.mkdir(exist_ok=True)
         for axis, text in self.markdown.items():
-            (axes_dir / f"{axis}.md").write_text(text)
+            (axes_dir / f"{axis}.md").write_text(text, encoding="utf-8")
 
 
 def describe(
@@ -155,7 +162,10 @@ def describe(
     annotations : path, DataFrame or AnnotationSet, optional
         Sample annotations, matched by ``id_column`` (see
         :func:`axiscope.annotations.load_annotations` for the other options). They must
-        cover the active and the supplementary samples.
+        cover the active and the supplementary samples; columns are typed and counted on
+        the active samples.
+    exclude_columns : column names, optional
+        Annotation columns not to analyse (e.g. the true/false supplementary-samples flag).
     supplementary_features : FeatureAxisStatistics, optional
         From :func:`axiscope.interpret.supplementary_feature_statistics`.
     supplementary_samples : SupplementarySamples, optional
@@ -193,9 +203,11 @@ def describe(
         if isinstance(annotations, AnnotationSet):
             ann = annotations.take(ids)
         else:
+            active = np.zeros(all_ids.shape[0], dtype=bool)
+            active[: len(ids)] = True
             ann = load_annotations(annotations, all_ids, id_column=id_column, categorical=categorical,
                                    quantitative=quantitative, technical=technical, exclude=exclude_columns,
-                                   allow_missing=allow_missing).take(ids)
+                                   allow_missing=allow_missing, active=active).take(ids)
     return describe_axes(
         axis_names=model.axis_names, variance_ratio=model.variance_ratio,
         singular_values=model.singular_values, sample_ids=np.asarray(ids), scores=scores,
@@ -215,15 +227,13 @@ def _load_result_dir(directory: Path) -> dict:
             raise InputError(f"{directory}: not an axiscope fit result ({path.name} is missing); "
                              "pass the --out folder of 'axiscope fit'")
     try:
-        manifest = json.loads(manifest_path.read_text())
+        manifest = json.loads(manifest_path.read_text(encoding="utf-8"))
     except (json.JSONDecodeError, UnicodeDecodeError) as exc:
         raise InputError(f"{manifest_path}: unreadable ({exc.__class__.__name__}); refit or restore the result") from exc
+    if not isinstance(manifest, dict):
+        raise InputError(f"{manifest_path}: not an axiscope manifest; refit or restore the result")
     model = load_model(directory / "model")
-    table = pd.read_csv(scores_path, sep="\t", dtype={"sample_id": str})
-    missing_axes = [a for a in model.axis_names if a not in table.columns]
-    if "sample_id" not in table.columns or missing_axes:
-        raise InputError(f"{scores_path}: expected columns sample_id and {', '.join(model.axis_names)}; "
-                         "restore the file written by 'axiscope fit'")
+    table = read_result_table(scores_path, required=["sample_id"] + model.axis_names, numeric=model.axis_names)
     scores = table[model.axis_names].to_numpy(dtype=np.float64)
     n_active = manifest.get("n_active_samples", scores.shape[0])
     if scores.shape[0] != model.n_samples or scores.shape[0] != n_active:
@@ -241,17 +251,18 @@ def _load_result_dir(directory: Path) -> dict:
         sup = stored.supplementary
         feats = active_feats.concat(FeatureAxisStatistics(
             stored.feature_ids[sup], sup[sup], stored.loading[sup], stored.correlation[sup],
-            stored.contribution[sup], stored.cos2[sup], model.n_samples, model.axis_names))
+            stored.contribution[sup], stored.sq_cosine[sup], model.n_samples, model.axis_names))
     supplementary = None
     sup_path = directory / "supplementary_sample_scores.tsv"
     if sup_path.is_file():
-        sup_table = pd.read_csv(sup_path, sep="\t", dtype={"sample_id": str})
+        numeric = model.axis_names + ["sq_dist"]
+        sup_table = read_result_table(sup_path, required=["sample_id"] + numeric, numeric=numeric)
         supplementary = SupplementarySamples(sup_table["sample_id"].to_numpy(dtype=object),
                                              sup_table[model.axis_names].to_numpy(dtype=np.float64),
                                              sup_table["sq_dist"].to_numpy(dtype=np.float64))
     return {"model": model, "sample_ids": table["sample_id"].to_numpy(dtype=object), "scores": scores,
             "sq_dist": np.asarray(sq_dist, dtype=np.float64), "features": feats,
-            "supplementary": supplementary, "manifest": manifest}
+            "supplementary": supplementary}
 
 
 def describe_axes(
@@ -309,7 +320,7 @@ def describe_axes(
                        f"before interpreting {axis}")
             warnings.append(warning)
             logger.warning("%s", warning)
-        sig_cats = cats[(cats.axis == axis) & (cats.v_test.abs() >= v_threshold)]
+        sig_cats = cats[(cats.axis == axis) & (cats.test_value.abs() >= v_threshold)]
         summary = _summary(axis, ratio, ftab, strongest, sig_cats, alpha, annotations is not None, bool(warning),
                            min_strength)
         pos = ftab[ftab.direction == "positive"].feature_id.tolist()
@@ -341,8 +352,8 @@ def _empty_annotations(sample_ids) -> AnnotationSet:
 
 def _top_features(stats: FeatureAxisStatistics, top: int) -> pd.DataFrame:
     """The ``top`` features of largest positive and negative correlation on each axis."""
-    p_adj = stats.adjusted_p_values()
     p_raw = stats.p_values()
+    p_adj = benjamini_hochberg(p_raw, axis=0)
     frames = []
     for j, axis in enumerate(stats.axis_names):
         r = stats.correlation[:, j]
@@ -362,10 +373,10 @@ def _top_features(stats: FeatureAxisStatistics, top: int) -> pd.DataFrame:
                 "status": np.where(stats.supplementary[part], "supplementary", "active"),
                 "correlation": r[part], "p_value": p_raw[part, j], "p_adjusted": p_adj[part, j],
                 "loading": stats.loading[part, j], "contribution": stats.contribution[part, j],
-                "cos2": stats.cos2[part, j],
+                "sq_cosine": stats.sq_cosine[part, j],
             }))
     columns = ["axis", "direction", "rank", "feature_id", "status", "correlation", "p_value", "p_adjusted",
-               "loading", "contribution", "cos2"]
+               "loading", "contribution", "sq_cosine"]
     return pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=columns)
 
 
@@ -375,10 +386,10 @@ def _extreme_samples(ids, F, quality: pd.DataFrame, axis_names, m) -> pd.DataFra
     m = min(m, F.shape[0])
     for j, axis in enumerate(axis_names):
         score = F[:, j]
-        cos2 = quality[f"cos2_{axis}"].to_numpy()
+        sq_cos = quality[f"sq_cosine_{axis}"].to_numpy()
         order = np.argsort(score, kind="stable")
-        cos_order = np.argsort(np.where(np.isfinite(cos2), cos2, -np.inf), kind="stable")
-        finite_cos = cos_order[np.isfinite(cos2[cos_order])]
+        cos_order = np.argsort(np.where(np.isfinite(sq_cos), sq_cos, -np.inf), kind="stable")
+        finite_cos = cos_order[np.isfinite(sq_cos[cos_order])]
         lists = {
             "highest_score": order[::-1][:m],
             "lowest_score": order[:m],
@@ -387,8 +398,8 @@ def _extreme_samples(ids, F, quality: pd.DataFrame, axis_names, m) -> pd.DataFra
         }
         for name, idx in lists.items():
             for rank, i in enumerate(idx, start=1):
-                rows.append((axis, name, rank, ids[i], score[i], cos2[i]))
-    return pd.DataFrame(rows, columns=["axis", "list", "rank", "sample_id", "score", "cos2"])
+                rows.append((axis, name, rank, ids[i], score[i], sq_cos[i]))
+    return pd.DataFrame(rows, columns=["axis", "list", "rank", "sample_id", "score", "sq_cosine"])
 
 
 def _strongest(axis: str, quant: pd.DataFrame, qual: pd.DataFrame, alpha: float) -> dict | None:
@@ -402,7 +413,7 @@ def _strongest(axis: str, quant: pd.DataFrame, qual: pd.DataFrame, alpha: float)
                     "correlation": float(row.correlation), "technical": bool(row.technical)}
     c = qual[(qual.axis == axis) & (qual.p_adjusted < alpha)]
     for row in c.itertuples():
-        strength = float(row.eta2)
+        strength = float(row.correlation_ratio)
         if best is None or strength > best["strength"]:
             best = {"variable": row.variable, "kind": "qualitative", "measure": "η²", "strength": strength,
                     "technical": bool(row.technical)}
@@ -417,8 +428,8 @@ def _summary(axis, ratio, ftab, strongest, sig_cats, alpha, annotated, warned, m
         var = strongest["variable"]
         if strongest["kind"] == "qualitative":
             cats = sig_cats[sig_cats.variable == var]
-            pos = cats[cats.v_test > 0].sort_values("v_test", ascending=False).category.tolist()
-            neg = cats[cats.v_test < 0].sort_values("v_test").category.tolist()
+            pos = cats[cats.test_value > 0].sort_values("test_value", ascending=False).category.tolist()
+            neg = cats[cats.test_value < 0].sort_values("test_value").category.tolist()
             if pos and neg:
                 parts.append(f"separates {var} {pos[0]} (higher scores) from {var} {neg[0]} (lower scores)")
             elif pos:
@@ -492,14 +503,14 @@ def _markdown(axis, ratio, summary, warning, ftab, quant, qual, cats, samples, a
                              [[r.variable, r.n, r.correlation, r.p_adjusted, "yes" if r.technical else ""]
                               for r in q.itertuples()]))
         out.append(f"### Qualitative annotations (adjusted p < {alpha:g})\n")
-        c = qual[qual.p_adjusted < alpha].sort_values("eta2", ascending=False)
+        c = qual[qual.p_adjusted < alpha].sort_values("correlation_ratio", ascending=False)
         out.append(_md_table(["annotation", "n", "levels", "η²", "adjusted p", "technical"],
-                             [[r.variable, r.n, r.n_levels, r.eta2, r.p_adjusted, "yes" if r.technical else ""]
+                             [[r.variable, r.n, r.n_levels, r.correlation_ratio, r.p_adjusted, "yes" if r.technical else ""]
                               for r in c.itertuples()]))
         out.append(f"### Categories with |test value| ≥ {v_threshold:g}\n")
-        s = cats.sort_values("v_test", ascending=False)
+        s = cats.sort_values("test_value", ascending=False)
         out.append(_md_table(["annotation", "category", "count", "mean score", "test value"],
-                             [[r.variable, r.category, r.count, r.mean_score, r.v_test] for r in s.itertuples()]))
+                             [[r.variable, r.category, r.count, r.mean_score, r.test_value] for r in s.itertuples()]))
     out.append("## Samples\n")
     titles = {"highest_score": "Highest scores", "lowest_score": "Lowest scores",
               "best_represented": "Best represented (largest squared cosine)",
@@ -508,7 +519,7 @@ def _markdown(axis, ratio, summary, warning, ftab, quant, qual, cats, samples, a
         sub = samples[samples.list == name]
         out.append(f"### {title}\n")
         out.append(_md_table(["rank", "sample", "score", "squared cosine"],
-                             [[r.rank, r.sample_id, r.score, r.cos2] for r in sub.itertuples()]))
+                             [[r.rank, r.sample_id, r.score, r.sq_cosine] for r in sub.itertuples()]))
     out.append("\n_Associations only: these statistics do not show what causes the axis._\n")
     return "\n".join(out)
 
@@ -527,7 +538,7 @@ class InterpretationPlan:
     exclude : ndarray of bool, shape (n_features,) or None
         Supplementary features (None: none).
     annotations : AnnotationSet or None
-        Aligned to all the samples of the source.
+        Aligned to the active samples of the source (typed and counted on them).
     """
 
     active: np.ndarray | None
@@ -543,7 +554,10 @@ def read_feature_list(path: str | Path, feature_ids: Sequence[str]) -> np.ndarra
     path = Path(path)
     if not path.is_file():
         raise InputError(f"{path}: no such feature list; check --supplementary-features")
-    wanted = [line.strip() for line in path.read_text().splitlines()]
+    try:
+        wanted = [line.strip() for line in path.read_text(encoding="utf-8").splitlines()]
+    except UnicodeDecodeError as exc:
+        raise InputError(f"{path}: not a UTF-8 text file; list one feature id per line") from exc
     wanted = [w for w in wanted if w and not w.startswith("#")]
     if not wanted:
         raise InputError(f"{path}: lists no feature id; put one id per line")
@@ -582,9 +596,6 @@ def plan_interpretation(
         where = str(annotations) if not isinstance(annotations, pd.DataFrame) else "annotations"
         frame = read_annotations(annotations, id_column=id_column) if not isinstance(annotations, pd.DataFrame) \
             else annotations
-        ann = load_annotations(frame, source.sample_ids, id_column=id_column, categorical=categorical,
-                               quantitative=quantitative, technical=technical,
-                               exclude=supplementary_samples_column, allow_missing=allow_missing, where=where)
         if supplementary_samples_column:
             table = frame if frame.index.name == id_column else frame.set_index(id_column)
             flags = sample_flags(table, supplementary_samples_column, source.sample_ids, where=where,
@@ -593,6 +604,10 @@ def plan_interpretation(
                 raise InputError(f"{where}: every sample is flagged in {supplementary_samples_column!r}; "
                                  "leave at least two samples active")
             active = ~flags if flags.any() else None
+        ann = load_annotations(frame, source.sample_ids, id_column=id_column, categorical=categorical,
+                               quantitative=quantitative, technical=technical,
+                               exclude=supplementary_samples_column, allow_missing=allow_missing, where=where,
+                               active=active)
     elif supplementary_samples_column:
         raise InputError("--supplementary-samples-column needs --annotations")
     exclude = None

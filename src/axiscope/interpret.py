@@ -454,7 +454,6 @@ def supplementary_feature_statistics(
     spans = [(a, min(n_all, a + block_rows)) for a in range(0, n_all, block_rows)]
     spans = [(a, b) for a, b in spans if rows[a:b].any()]
     counts = [int(rows[a:b].sum()) for a, b in spans]
-    starts = np.concatenate([[0], np.cumsum(counts)])[:-1]
 
     def load(i: int) -> np.ndarray:
         a, b = spans[i]

@@ -24,17 +24,22 @@ Quantitative = Annotated[list[str] | None, typer.Option(
     "--quantitative", help="Annotation columns that must be numeric (repeatable or comma-separated).")]
 Technical = Annotated[list[str] | None, typer.Option(
     "--technical", help="Annotation columns describing processing (batch, depth, ...): an axis led by one is flagged.")]
+Ignore = Annotated[list[str] | None, typer.Option(
+    "--ignore", help="Annotation columns not to analyse, e.g. a true/false supplementary-samples flag "
+                     "(repeatable or comma-separated).")]
 AllowMissingAnnotations = Annotated[bool, typer.Option(
     "--allow-missing-annotations", help="Drop unmatched annotation rows and samples with a warning instead of failing.")]
 Top = Annotated[int, typer.Option("--top", min=1, help="Features listed per side of each axis.")]
 
 
 def print_axis_summaries(description: Description, quiet: bool, limit: int = 5) -> None:
-    """The one-sentence summary of the first axes and the batch warnings."""
+    """The one-sentence summary of the first axes.
+
+    The batch warnings are not repeated here: the library logs them, and the command's
+    logging setup already shows them once on standard error.
+    """
     for sentence in description.axes["summary"].head(limit):
         say(f"  {sentence}", quiet)
-    for warning in description.warnings:
-        say(f"  warning: {warning}", quiet)
 
 
 @app.command("describe")
@@ -45,6 +50,7 @@ def describe_command(
     categorical: Categorical = None,
     quantitative: Quantitative = None,
     technical: Technical = None,
+    ignore: Ignore = None,
     allow_missing_annotations: AllowMissingAnnotations = False,
     top: Top = 10,
     out: Annotated[Path | None, typer.Option("--out", "-o", help="Where to write (default: RESULT_DIR/description).")] = None,
@@ -58,7 +64,8 @@ def describe_command(
         check_target(target, overwrite)
         description = describe(
             result_dir, annotations=annotations, id_column=id_column, categorical=categorical,
-            quantitative=quantitative, technical=technical, allow_missing=allow_missing_annotations, top=top,
+            quantitative=quantitative, technical=technical, exclude_columns=ignore,
+            allow_missing=allow_missing_annotations, top=top,
         )
         with atomic_directory(target, overwrite=overwrite) as tmp:
             description.write(tmp)
