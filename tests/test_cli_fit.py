@@ -10,7 +10,6 @@ directory left beside it.
 from __future__ import annotations
 
 import json
-import pathlib
 
 import h5py
 import numpy as np

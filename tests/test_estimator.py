@@ -114,9 +114,12 @@ def test_save_then_score_from_the_cli(wine, tmp_path):
     reordered.to_csv(tmp_path / "new.tsv", sep="\t", index=False)
     r = runner.invoke(app, ["score", str(tmp_path / "model"), str(tmp_path / "new.tsv"), "--out", str(tmp_path / "scored")])
     assert r.exit_code == 0, r.output
-    scores = pd.read_csv(tmp_path / "scored" / "scores.tsv", sep="\t")
-    # reference: the estimator's own transform (CLI output has 8 significant digits)
-    np.testing.assert_allclose(scores[["PC1", "PC2", "PC3"]].to_numpy(), est.transform(df), rtol=1e-6, atol=1e-6)
+    scores = pd.read_csv(tmp_path / "scored" / "scores.tsv", sep="\t")[["PC1", "PC2", "PC3"]].to_numpy()
+    # reference: scikit-learn StandardScaler (population SD) + PCA (full LAPACK SVD); axes
+    # aligned by sign; the CLI writes 8 significant digits
+    T_ref = make_pipeline(StandardScaler(), PCA(n_components=3, svd_solver="full")).fit(X).transform(X)
+    np.testing.assert_allclose(_align(scores, T_ref), T_ref, rtol=1e-6, atol=1e-6)
+    # format round trip (save → load, same code path): the loaded estimator transforms alike
     loaded = AxiscopePCA.load(tmp_path / "model")
     np.testing.assert_allclose(loaded.transform(df), est.transform(df), atol=1e-12)
     assert loaded.get_params()["n_components"] == 3

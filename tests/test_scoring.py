@@ -111,7 +111,8 @@ def test_t2_limit_matches_f_distribution_formula(calibration):
         # new observation, k(n−1)(n+1)/(n(n−k))·F(k, n−k), with scipy.stats.f
         expected = k * (n - 1) * (n + 1) / (n * (n - k)) * stats.f.ppf(level, k, n - k)
         assert res.limits[level].t2 == pytest.approx(expected, rel=1e-12)
-    assert np.all(res.diagnostics["t2_limit"] == res.limits[0.99].t2)
+        if level == 0.99:  # the diagnostics column carries the limit at the requested confidence
+            np.testing.assert_allclose(res.diagnostics["t2_limit"], expected, rtol=1e-12)
 
 
 def test_q_limit_matches_jackson_mudholkar_formula(calibration):
@@ -122,6 +123,8 @@ def test_q_limit_matches_jackson_mudholkar_formula(calibration):
     model = calibration["fit"].model
     res = score(model, array_source(calibration["X_new"][:50]), threads=1)
     assert res.q_method == "jackson-mudholkar"
+    # the manifest says that θ2, θ3 are estimates from the residuals, not eigenvalue moments
+    assert "var(Q) = 2 theta2 and E[(Q - theta1)^3] = 8 theta3" in res.manifest["limits"]["q"]
     Z = StandardScaler().fit_transform(X_train)
     # reference: numpy.linalg.eigvalsh of the (population) covariance; θ1 = sum of the
     # eigenvalues left out of the model
@@ -144,6 +147,8 @@ def test_q_limit_matches_jackson_mudholkar_formula(calibration):
                              + theta2 * h0 * (h0 - 1) / theta1**2) ** (1 / h0)
         # the library adds the expected excess of new samples' residuals (tested below)
         assert res.limits[level].q - res.limits[level].q_offset == pytest.approx(expected, rel=1e-7)
+        if level == 0.99:  # the diagnostics column carries the limit at the requested confidence
+            np.testing.assert_allclose(res.diagnostics["q_limit"] - res.limits[level].q_offset, expected, rtol=1e-7)
     # Box (1954): g·χ²_h with g = var/(2 mean), h = 2 mean²/var (scipy.stats.chi2)
     box = score(model, array_source(calibration["X_new"][:50]), threads=1, q_method="box")
     m, v = q_train.mean(), q_train.var()
@@ -204,15 +209,21 @@ def test_missing_features_filled_with_the_training_mean(planted):
 
 
 def test_shrinkage_correction_divides_scores_by_stored_factors(calibration):
+    from sklearn.decomposition import PCA
+    from sklearn.preprocessing import StandardScaler
+
     model = calibration["fit"].model
-    X = array_source(calibration["X_new"][:40])
-    raw = score(model, X, threads=1)
-    corrected = score(model, X, threads=1, correct_shrinkage=True)
-    f = model.extras["shrinkage_factor"]
-    # reference: the stored factors (their estimate is tested in test_shrinkage.py)
-    np.testing.assert_allclose(corrected.scores.iloc[:, 1:].to_numpy(), raw.scores.iloc[:, 1:].to_numpy() / f)
-    assert corrected.limits[0.99].q == pytest.approx(raw.limits[0.99].q, rel=1e-12)
-    assert corrected.limits[0.99].t2 == raw.limits[0.99].t2
+    X_train, X_new = calibration["X_train"], calibration["X_new"][:40]
+    corrected = score(model, array_source(X_new), threads=1, correct_shrinkage=True)
+    f = model.extras["shrinkage_factor"]  # their estimate is tested in test_shrinkage.py
+    # reference: scikit-learn StandardScaler + PCA (LAPACK) scores divided by the stored
+    # factors; T² (textbook definition) from those corrected scores
+    scaler = StandardScaler().fit(X_train)
+    pca = PCA(n_components=3, svd_solver="full").fit(scaler.transform(X_train))
+    T = pca.transform(scaler.transform(X_new)) / f
+    got = corrected.scores.iloc[:, 1:].to_numpy()
+    np.testing.assert_allclose(np.abs(got), np.abs(T), rtol=1e-8, atol=1e-10)
+    np.testing.assert_allclose(corrected.diagnostics["t2"], np.sum(T**2 / pca.explained_variance_, axis=1), rtol=1e-8)
 
 
 def test_bad_options_raise_option_errors(calibration):
@@ -358,16 +369,25 @@ def test_cli_no_overlapping_feature_ids_is_an_error(cli_setup, tmp_path, write_m
 
 
 def test_model_stores_what_the_limits_need(cli_setup):
+    from sklearn.decomposition import PCA
+    from sklearn.preprocessing import StandardScaler
+
     model = load_model(cli_setup["model"])
-    result = cli_setup["fit"]
+    theta = model.extras["residual_moments"]
     # θ1 is exact: total variance minus the variance of the k axes; reference: numpy
     # eigvalsh of the population covariance of the standardized training matrix
     X = cli_setup["P"].X
-    Z = (X - X.mean(axis=0)) / X.std(axis=0)
+    Z = StandardScaler().fit_transform(X)  # population SD, as the model
     eig = np.sort(np.linalg.eigvalsh(Z.T @ Z / Z.shape[0]))[::-1]
-    assert model.extras["residual_moments"][0] == pytest.approx(eig[3:].sum(), rel=1e-8)
-    q = result.sample_sq_dist - np.sum(result.scores**2, axis=1)
-    np.testing.assert_allclose(model.extras["residual_mean_var"], [q.mean(), q.var()], rtol=1e-8)
+    assert theta[0] == pytest.approx(eig[3:].sum(), rel=1e-8)
+    # θ2, θ3: estimates from the training residuals through var(Q) = 2θ2 and
+    # E[(Q − θ1)³] = 8θ3 (Gaussian quadratic forms, Jackson & Mudholkar 1979); reference:
+    # residuals of scikit-learn PCA (full LAPACK SVD) of the standardized matrix, central
+    # moments with scipy.stats.moment
+    pca = PCA(n_components=3, svd_solver="full").fit(Z)
+    q = np.sum((Z - pca.inverse_transform(pca.transform(Z))) ** 2, axis=1)
+    assert q.mean() == pytest.approx(theta[0], rel=1e-8)  # Box's mean is θ1
+    np.testing.assert_allclose(theta[1:], [stats.moment(q, 2) / 2, stats.moment(q, 3) / 8], rtol=1e-6)
 
 
 def test_q_calibrated_when_features_far_outnumber_training_samples():
@@ -412,3 +432,42 @@ def test_absent_features_and_missing_cells_both_take_the_training_mean(center):
                     max_missing_fraction=1.0, threads=1)
         np.testing.assert_allclose(res.scores[model.axis_names], reference.scores[model.axis_names], atol=1e-10)
         np.testing.assert_allclose(res.diagnostics["q"], reference.diagnostics["q"], rtol=1e-9, atol=1e-9)
+
+
+def test_q_limit_falls_back_to_box_with_a_warning_when_h0_is_not_positive(calibration, caplog):
+    import dataclasses
+
+    model = calibration["fit"].model
+    theta1, theta2, _ = model.extras["residual_moments"]
+    # planted: a third moment so large that h0 = 1 − 2θ1θ3/(3θ2²) < 0
+    theta3 = 3 * theta2**2 / theta1
+    skewed = dataclasses.replace(model, extras={**model.extras, "residual_moments": np.array([theta1, theta2, theta3])})
+    with caplog.at_level("WARNING", logger="axiscope.scoring"):
+        res = score(skewed, array_source(calibration["X_new"][:20]), threads=1)
+    assert res.q_method == "box" and res.manifest["options"]["q_limit_method"] == "box"
+    assert "h0" in caplog.text and "Box" in caplog.text
+    assert res.manifest["limits"]["q"].startswith("Box (1954)")
+    for level in (0.99, 0.95):
+        # reference: Box (1954) g·χ²_h with mean θ1 and variance 2θ2 (scipy.stats.chi2)
+        m, v = theta1, 2 * theta2
+        lim = res.limits[level]
+        assert lim.q - lim.q_offset == pytest.approx(v / (2 * m) * stats.chi2.ppf(level, 2 * m**2 / v), rel=1e-10)
+
+
+@pytest.mark.filterwarnings("ignore:invalid value encountered in log1p:RuntimeWarning")
+def test_negative_values_under_log1p_get_a_clear_message(caplog):
+    # reference: numpy.log1p is −inf at −1 and NaN below (the real log's domain); a model with
+    # log1p in its preprocessing cannot score such values, and the message should say why
+    rng = np.random.default_rng(2)
+    counts = rng.poisson(20.0, size=(80, 12)).astype(float)
+    ids = [f"g{j}" for j in range(12)]
+    model = fit(array_source(counts, feature_ids=ids), n_components=2,
+                preprocess=PreprocessSpec(log1p=True), threads=1).model
+    bad = counts[:6].copy()
+    bad[3, 5] = -2.0  # planted: one negative value
+    with pytest.raises(InputError, match=r"NaN or infinite.*log1p.*negative values"):
+        score(model, array_source(bad, feature_ids=ids), threads=1)
+    with caplog.at_level("WARNING", logger="axiscope.scoring"):
+        res = score(model, array_source(bad, feature_ids=ids), fill_missing="mean", threads=1)
+    assert "1 cells of 1 samples" in caplog.text and "log1p" in caplog.text
+    np.testing.assert_allclose(res.diagnostics["missing_fraction"], np.where(np.arange(6) == 3, 1 / 12, 0.0))

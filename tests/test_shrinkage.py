@@ -19,6 +19,11 @@ from axiscope.shrinkage import spiked_shrinkage
 
 
 def test_factors_from_exact_asymptotic_eigenvalues():
+    # A consistency check of the inversion and of the noise iteration only: the inputs are
+    # made with the same asymptotic formula that the code inverts, so an error in the
+    # formula itself would pass here. The real guard is the simulation test below
+    # (test_corrected_held_out_scores_match_training_variance_in_spiked_simulation), which
+    # checks the corrected scores of held-out samples drawn from a planted spiked model.
     n, p, sigma2 = 501, 10_000, 2.0
     gamma = p / (n - 1)
     spikes = np.array([80.0, 40.0, 15.0])  # in units of σ², all above 1 + √γ ≈ 5.5

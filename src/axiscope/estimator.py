@@ -95,6 +95,10 @@ class AxiscopePCA(TransformerMixin, BaseEstimator):
     feature_ids_ : ndarray of str
         Ids under which the features are stored in the model (the column names, or
         generated ids ``feature_000001``…), used to match features when transforming.
+    kept_features_ : ndarray of int, shape (n_kept,)
+        Column of ``X`` (index into ``feature_ids_``) of each feature used by the axes, in
+        the model's order (rows of ``model_.components``); the other columns were dropped
+        by the preprocessing (constant or filtered).
     """
 
     def __init__(
@@ -296,11 +300,12 @@ class AxiscopePCA(TransformerMixin, BaseEstimator):
         model = load_model(Path(directory))
         spec = model.spec
         seed = model.info.get("estimator", {}).get("random_state_seed")
+        method = model.info.get("method")
         est = cls(
             n_components=model.n_components, center=spec.center, scale=spec.scale, log1p=spec.log1p,
             normalize_total=spec.normalize_total, min_variance=spec.min_variance,
             top_variable=spec.top_variable, missing=spec.missing,
-            method=model.info.get("method", "auto") if model.info.get("method") in METHODS else "auto",
+            method=method if method in METHODS else "auto",
             random_state=seed,
         )
         est._set_fitted(model)

@@ -184,7 +184,8 @@ def project(
             factor = np.where(sums > 0, total / np.where(sums > 0, sums, 1), 0.0)
             x *= factor.astype(dtype)[:, None]
         if spec.log1p:
-            np.log1p(x, out=x)
+            with np.errstate(invalid="ignore", divide="ignore"):  # values <= -1: reported below
+                np.log1p(x, out=x)
         x -= mean_t
         x *= inv_t
         scores = (x @ V_t).astype(np.float64)
@@ -209,13 +210,16 @@ def project(
     n_bad = np.empty(m)
     ids = np.asarray(source.sample_ids)[rows]
 
+    hint = (" after log1p, which turns values <= -1 into NaN or -inf (check for negative values, "
+            "e.g. data already log-transformed)") if spec.log1p else ""
+
     def fold(result, index, start):
         out, bad = result
         if bad is not None:
             r, c = bad
             raise InputError(
                 f"{where}: sample {ids[start + r]!r}, feature {model.feature_ids[present][c]!r} is NaN "
-                f"or infinite; fix the input or pass --fill-missing mean to use the training mean"
+                f"or infinite{hint}; fix the input or pass --fill-missing mean to use the training mean"
             )
         s, q, nb = out
         scores[start : start + s.shape[0]] = s + absent_scores

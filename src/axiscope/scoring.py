@@ -17,17 +17,20 @@ Each is compared with a control limit at the requested confidence (and at 0.95):
   88–95, doi:10.1080/00224065.1992.11979383);
 * Q: the approximation of Jackson & Mudholkar (1979, "Control procedures for residuals
   associated with principal component analysis", Technometrics 21(3), 341–349,
-  doi:10.1080/00401706.1979.10489779) from the moments ``θ_r = Σ_{j>k} λ_j^r`` of the
-  residual eigenvalues, or Box's (1954) scaled chi-square ``g·χ²_h`` matching the mean and
-  variance of the training residuals (Box 1954, Annals of Mathematical Statistics 25(2),
-  290–302, doi:10.1214/aoms/1177728786).
+  doi:10.1080/00401706.1979.10489779), written in terms of ``θ_r = Σ_{j>k} λ_j^r``, the
+  moments of the residual eigenvalues; or Box's (1954) scaled chi-square ``g·χ²_h``
+  matching the mean ``θ1`` and variance ``2θ2`` of the training residuals (Box 1954,
+  Annals of Mathematical Statistics 25(2), 290–302, doi:10.1214/aoms/1177728786).
 
-What the limits need from the training data is stored in the model at fit time by
-:func:`training_extras`: ``θ1`` exactly (total variance minus the variance of the ``k``
-axes), ``θ2`` and ``θ3`` estimated from the cumulants of the training residuals (for a
-Gaussian sample ``Q = Σ λ_j z_j²`` has cumulants ``κ1 = θ1``, ``κ2 = 2θ2``, ``κ3 = 8θ3``),
-the mean and variance of the training residuals, and per-axis shrinkage factors
-(:mod:`axiscope.shrinkage`).
+The residual eigenvalues beyond the ``k`` axes are not computed, so only ``θ1`` is the
+eigenvalue moment itself (total variance minus the variance of the ``k`` axes). ``θ2`` and
+``θ3`` are *estimates* from the variance and the third central moment of the training
+residuals ``Q``, through the identities that hold for a Gaussian sample
+(``Q = Σ_{j>k} λ_j z_j²``): ``var(Q) = 2θ2`` and ``E[(Q − θ1)³] = 8θ3``. For Gaussian data
+they are unbiased up to ``O(1/n)``; otherwise they fit the limit to the observed spread and
+skew of the residuals rather than to the eigenvalues. :func:`training_extras` stores
+``(θ1, θ2, θ3)`` and per-axis shrinkage factors (:mod:`axiscope.shrinkage`) in the model
+at fit time.
 """
 
 from __future__ import annotations
@@ -71,6 +74,11 @@ Q_LIMIT_METHODS = ("jackson-mudholkar", "box")
 FLAGS = ("within", "t2", "q", "both", "missing")
 #: Confidence always reported besides the requested one.
 SECONDARY_CONFIDENCE = 0.95
+#: Added to messages about non-finite values when the model's preprocessing has log1p.
+_LOG1P_HINT = (
+    " (the model's preprocessing applies log1p, which turns values <= -1 into NaN or -inf: "
+    "check the input for negative values, e.g. data that are already log-transformed)"
+)
 
 
 # ----------------------------------------------------------------------- at fit time
@@ -101,17 +109,18 @@ def training_extras(
     Returns
     -------
     dict
-        ``residual_moments`` (θ1, θ2, θ3), ``residual_mean_var`` (mean and population
-        variance of the training residuals ``Q``), ``shrinkage_factor`` (k,).
+        ``residual_moments`` (θ1, θ2, θ3), ``shrinkage_factor`` (k,).
 
     Notes
     -----
     θ1 is exact: the sum of the residual eigenvalues is the total variance minus the
-    variance of the ``k`` axes (population convention, ``s²/n``). θ2 and θ3 would need all
-    residual eigenvalues; they are estimated from the second and third central moments
-    of the training residuals, which is exact in expectation for Gaussian data
-    (``Var Q = 2θ2``, ``E(Q − θ1)³ = 8θ3``) and otherwise matches the limit to the observed
-    spread and skew of the residuals. No pass over the data is needed.
+    variance of the ``k`` axes (population convention, ``s²/n``). θ2 and θ3 are not the
+    residual eigenvalue moments ``Σ λ_j²``, ``Σ λ_j³`` (those would need all residual
+    eigenvalues): they are estimated from the population variance ``m2`` and the third
+    central moment ``m3`` of the training residuals ``Q`` through the Gaussian identities
+    ``var(Q) = 2θ2`` and ``E[(Q − θ1)³] = 8θ3``, i.e. ``θ2 = m2/2``, ``θ3 = m3/8``. The mean
+    and variance used by Box's limit are ``θ1`` and ``2θ2``. No pass over the data is
+    needed.
     """
     s = np.asarray(singular_values, dtype=np.float64)
     scores = np.asarray(scores, dtype=np.float64)
@@ -125,7 +134,6 @@ def training_extras(
     shrink = spiked_shrinkage(variance, n_samples=n, n_features=n_features, total_variance=total_inertia)
     return {
         "residual_moments": np.array([theta1, m2 / 2.0, m3 / 8.0]),
-        "residual_mean_var": np.array([float(q.mean()), m2]),
         "shrinkage_factor": shrink.factor,
     }
 
@@ -145,27 +153,48 @@ def t2_limit(confidence: float, n_components: int, n_samples: int) -> float:
     return float(k * (n - 1) * (n + 1) / (n * (n - k)) * stats.f.ppf(confidence, k, n - k))
 
 
+def _jackson_mudholkar_base(confidence: float, theta1: float, theta2: float,
+                             theta3: float) -> tuple[float, float, str | None]:
+    """``(h0, base, reason)`` of the Jackson–Mudholkar formula; ``reason`` says why it is unusable."""
+    if not (theta1 > 0 and theta2 > 0):
+        return float("nan"), float("nan"), (
+            f"theta1 = {theta1:.4g} and theta2 = {theta2:.4g} must be positive (no residual "
+            "variance left outside the axes)")
+    h0 = 1.0 - 2.0 * theta1 * theta3 / (3.0 * theta2**2)
+    if not h0 > 0:
+        return h0, float("nan"), (
+            f"h0 = 1 - 2 theta1 theta3 / (3 theta2^2) = {h0:.4g} <= 0: the training residuals are "
+            "more skewed than a Gaussian quadratic form allows")
+    c = stats.norm.ppf(confidence)
+    base = c * np.sqrt(2.0 * theta2 * h0**2) / theta1 + 1.0 + theta2 * h0 * (h0 - 1.0) / theta1**2
+    if not base > 0:
+        return h0, base, (
+            f"the bracket of the formula is {base:.4g} <= 0 at confidence {confidence:g} "
+            "(theta2 large for theta1)")
+    return h0, base, None
+
+
 def q_limit_jackson_mudholkar(confidence: float, theta1: float, theta2: float, theta3: float) -> float:
     """Jackson & Mudholkar (1979) limit of the squared prediction error.
 
     ``Q_α = θ1·[c_α·sqrt(2θ2h0²)/θ1 + 1 + θ2h0(h0 − 1)/θ1²]^(1/h0)``,
     ``h0 = 1 − 2θ1θ3/(3θ2²)``, ``c_α`` the standard normal quantile at ``confidence``.
-    NaN when the moments do not allow it (``θ1, θ2 <= 0``, ``h0 <= 0`` or a negative base).
+    In the paper ``θ_r`` are the moments of the residual eigenvalues; the limits of
+    :func:`score` pass ``θ1`` exact and ``θ2``, ``θ3`` estimated from the training
+    residuals (see :func:`training_extras`). NaN when the values do not allow it
+    (``θ1, θ2 <= 0``, ``h0 <= 0`` or a non-positive bracket).
     """
-    if not (theta1 > 0 and theta2 > 0):
-        return float("nan")
-    h0 = 1.0 - 2.0 * theta1 * theta3 / (3.0 * theta2**2)
-    if not h0 > 0:
-        return float("nan")
-    c = stats.norm.ppf(confidence)
-    base = c * np.sqrt(2.0 * theta2 * h0**2) / theta1 + 1.0 + theta2 * h0 * (h0 - 1.0) / theta1**2
-    if not base > 0:
+    h0, base, reason = _jackson_mudholkar_base(confidence, theta1, theta2, theta3)
+    if reason is not None:
         return float("nan")
     return float(theta1 * base ** (1.0 / h0))
 
 
 def q_limit_box(confidence: float, mean: float, variance: float) -> float:
-    """Box (1954) limit: ``g·χ²⁻¹(confidence; h)`` with ``g = var/(2·mean)``, ``h = 2·mean²/var``."""
+    """Box (1954) limit: ``g·χ²⁻¹(confidence; h)`` with ``g = var/(2·mean)``, ``h = 2·mean²/var``.
+
+    :func:`score` passes the mean ``θ1`` and the variance ``2θ2`` of the training residuals.
+    """
     if not (mean > 0 and variance > 0):
         return float("nan")
     g = variance / (2.0 * mean)
@@ -202,14 +231,8 @@ def residual_excess(model: Model) -> float:
     ``(n−1)/n`` of the residual variance) while a new sample also carries the error of that
     mean (``+1/n``). Both vanish when samples far outnumber features.
     """
-    factor = model.extras.get("shrinkage_factor")
-    moments = model.extras.get("residual_moments")
-    if factor is None or moments is None:
-        raise ModelError(
-            "the model stores no shrinkage factors (written by an older axiscope); refit it, "
-            "or score without --correct-shrinkage and with --no-adjust-q"
-        )
-    f = np.asarray(factor, dtype=np.float64)
+    f, moments = _require(model, "shrinkage_factor", "residual_moments",
+                          hint="refit it, or score without --correct-shrinkage and with --no-adjust-q")
     theta1 = float(moments[0])
     excess = np.sum(model.variance * (1.0 - f**2)) + 2.0 * theta1 / model.n_samples
     if model.spec.scale != "none" and model.n_samples > 3:
@@ -220,29 +243,65 @@ def residual_excess(model: Model) -> float:
     return float(excess)
 
 
-def model_limits(model: Model, confidence: float, *, q_method: str = "jackson-mudholkar",
-                 q_offset: float = 0.0) -> tuple[ControlLimits, str]:
-    """Limits for ``model`` at ``confidence`` and the name of the Q method actually used.
-
-    ``q_offset`` is added to the Q limit (see :func:`residual_excess`).
-    """
-    moments = model.extras.get("residual_moments")
-    mean_var = model.extras.get("residual_mean_var")
-    if moments is None or mean_var is None:
+def _require(model: Model, *names: str, hint: str = "refit it to score new samples") -> list[np.ndarray]:
+    """The model's extras ``names`` as float64 arrays; a clear error when one is absent."""
+    absent = [name for name in names if model.extras.get(name) is None]
+    if absent:
         raise ModelError(
-            "the model stores no training residual statistics (it was written by an older "
-            "axiscope); refit it to score new samples with control limits"
+            f"the model stores no {', '.join(absent)} (it was written by an older axiscope); {hint}"
         )
+    return [np.asarray(model.extras[name], dtype=np.float64) for name in names]
+
+
+def choose_q_method(model: Model, requested: str, lowest_confidence: float) -> tuple[str, str | None]:
+    """The Q method to use for all levels, and why Jackson–Mudholkar was given up (or None).
+
+    Whether Jackson–Mudholkar applies does not depend on the level except through the
+    bracket of the formula, which grows with the confidence: checking it at the lowest
+    level checks it at every higher one.
+    """
+    if requested != "jackson-mudholkar":
+        return requested, None
+    (moments,) = _require(model, "residual_moments")
+    _, _, reason = _jackson_mudholkar_base(lowest_confidence, *map(float, moments))
+    return ("box", reason) if reason is not None else (requested, None)
+
+
+def model_limits(model: Model, confidence: float, *, q_method: str = "jackson-mudholkar",
+                 q_offset: float = 0.0) -> ControlLimits:
+    """Limits for ``model`` at ``confidence`` with the given Q method (no fallback).
+
+    ``q_offset`` is added to the Q limit (see :func:`residual_excess`). Box's limit uses
+    the mean ``θ1`` and variance ``2θ2`` of the training residuals. Use
+    :func:`choose_q_method` to decide the method first.
+    """
+    (moments,) = _require(model, "residual_moments")
+    theta1, theta2, theta3 = map(float, moments)
     t2 = t2_limit(confidence, model.n_components, model.n_samples)
-    used = q_method
     if q_method == "jackson-mudholkar":
-        q = q_limit_jackson_mudholkar(confidence, *map(float, moments))
-        if not np.isfinite(q):
-            used = "box"
-            q = q_limit_box(confidence, *map(float, mean_var))
+        q = q_limit_jackson_mudholkar(confidence, theta1, theta2, theta3)
     else:
-        q = q_limit_box(confidence, *map(float, mean_var))
-    return ControlLimits(float(confidence), t2, q + q_offset, q_offset), used
+        q = q_limit_box(confidence, theta1, 2.0 * theta2)
+    return ControlLimits(float(confidence), t2, q + q_offset, q_offset)
+
+
+def q_limit_description(method: str, adjust_q: bool) -> str:
+    """How the Q limit was computed, for the manifest."""
+    if method == "jackson-mudholkar":
+        text = (
+            "Jackson & Mudholkar (1979) with theta1 exact (total variance minus the variance of "
+            "the k axes); theta2 and theta3 are not the residual eigenvalue moments but "
+            "estimates from the variance and third central moment of the training residuals "
+            "through the Gaussian identities var(Q) = 2 theta2 and E[(Q - theta1)^3] = 8 theta3"
+        )
+    else:
+        text = (
+            "Box (1954) scaled chi-square g chi2(h) matching the mean (theta1) and variance "
+            "(2 theta2) of the training residuals"
+        )
+    if adjust_q:
+        text += "; plus q_offset, the expected excess of new samples' residuals"
+    return text
 
 
 # ---------------------------------------------------------------------------- results
@@ -397,24 +456,13 @@ def score(
         model_info.update(path=str(model_dir), checksum=model.checksum(model_dir))
     levels = sorted({float(confidence), SECONDARY_CONFIDENCE}, reverse=True)
     factor = np.ones(model.n_components)
-    offset = 0.0
-    if adjust_q:
-        offset = residual_excess(model)
     if correct_shrinkage:
-        residual_excess(model)  # clear error when the model has no factors
-        factor = np.asarray(model.extras["shrinkage_factor"], dtype=np.float64)
-    limits = {}
-    methods = set()
-    for level in levels:
-        limits[level], used = model_limits(model, level, q_method=q_method, q_offset=offset)
-        methods.add(used)
-    used_method = "box" if "box" in methods else q_method
-    if used_method != q_method:
-        logger.info(
-            "the stored residual moments do not allow the Jackson-Mudholkar Q limit (h0 <= 0: "
-            "residuals more skewed than a Gaussian quadratic form); using Box's scaled chi-square"
-        )
-        limits = {level: model_limits(model, level, q_method="box", q_offset=offset)[0] for level in levels}
+        (factor,) = _require(model, "shrinkage_factor", hint="refit it, or score without --correct-shrinkage")
+    offset = residual_excess(model) if adjust_q else 0.0
+    used_method, reason = choose_q_method(model, q_method, min(levels))
+    if reason is not None:
+        logger.warning("Jackson-Mudholkar Q limit not usable (%s); using Box's scaled chi-square", reason)
+    limits = {level: model_limits(model, level, q_method=used_method, q_offset=offset) for level in levels}
 
     owned = not isinstance(source, MatrixSource)
     src = open_matrix(source, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
@@ -462,8 +510,8 @@ def score(
             "missing_fraction": proj.missing_fraction,
         }
     )
-    counts = {f: int(np.sum(flag == f)) for f in FLAGS}
-    manifest = {
+    result = ScoreResult(scores_df, diagnostics, limits, used_method)
+    result.manifest = {
         "axiscope_version": __version__,
         "model": {
             **model_info,
@@ -482,14 +530,7 @@ def score(
         },
         "limits": {
             "t2": "F distribution, k(n-1)(n+1)/(n(n-k)) F(k, n-k) (Tracy, Young & Mason 1992)",
-            "q": (
-                "Jackson & Mudholkar (1979): theta1 exact from the eigenvalues, theta2 and "
-                "theta3 from the cumulants of the training residuals"
-                + ("; plus q_offset, the expected excess of new samples' residuals" if adjust_q else "")
-                if used_method == "jackson-mudholkar"
-                else "Box (1954) scaled chi-square from the mean and variance of the training residuals"
-                + ("; plus q_offset, the expected excess of new samples' residuals" if adjust_q else "")
-            ),
+            "q": q_limit_description(used_method, adjust_q),
             "levels": [limits[level].to_dict() for level in levels],
         },
         "shrinkage_factor": factor.tolist() if correct_shrinkage else None,
@@ -498,12 +539,8 @@ def score(
             "model_features_matched": int(proj.match.present.sum()),
             "model_features_filled": int(proj.match.n_missing),
             "extra_features_ignored": int(proj.match.n_extra),
-            "flags": counts,
-            "flagged_at": {
-                f"{level:g}": int(np.sum((t2 > limits[level].t2) | (q > limits[level].q)
-                                         | (proj.missing_fraction > max_missing_fraction)))
-                for level in levels
-            },
+            "flags": result.counts(),
+            "flagged_at": {f"{level:g}": int(result.flagged(level).sum()) for level in levels},
         },
         "passes": [
             {"name": r.name, "read_from": r.source, "seconds": round(r.seconds, 3), "blocks": r.n_blocks}
@@ -516,4 +553,13 @@ def score(
             "%d of the model's %d features are missing from %s and were filled with their training mean",
             proj.match.n_missing, model.n_features, input_info["path"],
         )
-    return ScoreResult(scores_df, diagnostics, {lv: limits[lv] for lv in levels}, used_method, manifest)
+    if model.spec.log1p:
+        # cells filled because they were non-finite after the transforms (absent features excluded)
+        filled_cells = np.rint(proj.missing_fraction * model.n_features) - proj.match.n_missing
+        if np.any(filled_cells > 0):
+            logger.warning(
+                "%d cells of %d samples in %s were NaN or infinite after the stored transforms and "
+                "were filled with the training mean%s",
+                int(filled_cells.sum()), int(np.sum(filled_cells > 0)), input_info["path"], _LOG1P_HINT,
+            )
+    return result

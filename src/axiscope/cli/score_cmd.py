@@ -49,7 +49,7 @@ def score_command(
     confidence: Annotated[float, typer.Option(help="Confidence of the T² and Q limits used for flags (between 0.5 and 1; 0.95 is also reported).")] = 0.99,
     correct_shrinkage: Annotated[bool, typer.Option("--correct-shrinkage", help="Undo the shrinkage of projected scores when features far outnumber training samples; T² then uses the corrected scores (without it T² under-flags in that regime).")] = False,
     adjust_q: Annotated[bool, typer.Option(help="Raise the Q limits by the expected excess of new samples' residuals over the training ones (matters when features far outnumber training samples).")] = True,
-    q_limit: Annotated[QLimit, typer.Option(help="Q limit: Jackson-Mudholkar (falls back to Box when the moments do not allow it) or Box's scaled chi-square.")] = QLimit.jackson_mudholkar,
+    q_limit: Annotated[QLimit, typer.Option(help="Q limit: Jackson-Mudholkar (theta1 exact, theta2 and theta3 estimated from the variance and skew of the training residuals; falls back to Box, with a warning, when they do not allow it) or Box's scaled chi-square.")] = QLimit.jackson_mudholkar,
     dataset: Dataset = None,
     sample_ids: SampleIds = None,
     feature_ids: FeatureIds = None,
