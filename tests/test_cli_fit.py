@@ -393,3 +393,16 @@ def test_wide_fits_also_write_loadings_as_zarr(tmp_path, monkeypatch):
     assert list(group.attrs["columns"]) == ["PC1", "PC2", "PC3"]
     assert list(group["row_ids"][:]) == table["feature_id"].tolist()
     np.testing.assert_allclose(group["values"][:], table[["PC1", "PC2", "PC3"]].to_numpy(), rtol=1e-7)
+
+
+@pytest.mark.parametrize("args", [["fit", "x.h5", "--out", "o", "--scale", "zscore"],
+                                  ["fit", "x.h5", "--out", "o", "--bogus"],
+                                  ["fit", "x.h5", "--out", "o", "-k", "0"]])
+def test_console_script_reports_usage_errors_in_one_line(args, capsys):
+    # The console entry point shows command-line usage errors like input errors: one line
+    # on standard error and exit code 2 (common practice for usage errors, no source).
+    from axiscope.cli import main
+
+    assert main(args) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("error: ") and "axiscope fit --help" in err[0]

@@ -90,9 +90,27 @@ def progress_display(quiet: bool) -> Iterator[Callable[[str, int, int], None] | 
 
 
 def main(argv: list[str] | None = None) -> int:
-    """Entry point of the ``axiscope`` console script."""
+    """Entry point of the ``axiscope`` console script.
+
+    Usage errors of the command line (an unknown option, a value out of range) are shown
+    like every other error: one line on standard error, exit code 2.
+    """
     try:
-        app(args=argv, prog_name="axiscope", standalone_mode=True)
+        result = app(args=argv, prog_name="axiscope", standalone_mode=False)
     except SystemExit as exc:
         return int(exc.code or 0)
-    return 0
+    except Exception as exc:  # the parser's own exceptions, recognised by their interface
+        if type(exc).__name__ == "NoArgsIsHelpError" and hasattr(exc, "show"):
+            exc.show()
+            return 0
+        if type(exc).__name__ == "Abort":
+            typer.echo("error: interrupted; nothing was written", err=True)
+            return 130
+        if hasattr(exc, "format_message") and hasattr(exc, "exit_code"):
+            ctx = getattr(exc, "ctx", None)
+            where = ctx.command_path if ctx is not None else "axiscope"
+            message = " ".join(exc.format_message().split())
+            typer.echo(f"error: {message} (see '{where} --help')", err=True)
+            return int(exc.exit_code)
+        raise
+    return result if isinstance(result, int) else 0
