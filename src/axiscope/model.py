@@ -138,7 +138,10 @@ def load_model(directory: Path) -> Model:
             f"{meta_path}: model format version {version} is not supported by this axiscope "
             f"(reads version {MODEL_VERSION}); use the axiscope version that wrote it or refit"
         )
-    if meta.get("description_checksum") != _description_checksum(meta):
+    if "description_checksum" not in meta:
+        raise ModelError(f"{meta_path}: no checksum of the model description (written by an earlier "
+                         "development version of axiscope); refit the model")
+    if meta["description_checksum"] != _description_checksum(meta):
         raise ModelError(f"{meta_path}: its contents do not match their checksum; the model was "
                          "modified or damaged, refit or restore it")
     checksums = meta.get("checksums", {})
