@@ -183,6 +183,7 @@ def randomized_factorization(
     runner: PassRunner | None = None,
     source: str = "data",
     max_basis: int | None = None,
+    sketch_from: da.Array | None = None,
 ) -> Factorization:
     """Leading ``n_components`` singular triplets of ``X̃`` by randomized block Krylov iteration.
 
@@ -212,6 +213,9 @@ def randomized_factorization(
         Records passes and reports progress.
     max_basis : int, optional
         Largest width of the Krylov basis before it is restarted (default ``8·l``).
+    sketch_from : dask.array.Array, optional
+        The same matrix read another way (for example from the input while it fills the
+        cache that ``X`` reads), used for the first sketch pass only.
 
     Returns
     -------
@@ -241,8 +245,10 @@ def randomized_factorization(
     op = _Operator(X, np.asarray(mean, float), np.asarray(inverse_scale, float), fill, runner, source)
 
     if start is None:
+        sketch_op = op if sketch_from is None else _Operator(
+            sketch_from, op.mean, op.d, fill, runner, "input")
         omega = rng.standard_normal((p, l))
-        _, Z, _ = op.apply(omega, gram=True, norms=False, name="sketch")
+        _, Z, _ = sketch_op.apply(omega, gram=True, norms=False, name="sketch")
     else:
         Z = start
     Q = _orthonormal(Z)

@@ -503,13 +503,12 @@ def _fit(src, spec, k, oversample, power_iterations, tol, method, rng, budget, t
             fac = exact_factorization(X_exact, mean_c, d_c, n_components=k, fill=fill_c,
                                       runner=runner, source=iter_source if X_first is None else "input")
         else:
-            if start is None and X_first is not None:
-                # the sketch pass reads the input (filling the cache) instead of the cache
-                start = _sketch(X_first, mean_c, d_c, fill_c, l, rng, runner)
+            # without a fused start, the sketch pass reads the input (filling the cache)
             fac = randomized_factorization(
                 X_iter, mean_c, d_c, n_components=k, oversample=oversample,
                 power_iterations=power_iterations, tol=tol, rng=rng, start=start,
                 fill=fill_c, runner=runner, source=iter_source, max_basis=plan.max_basis,
+                sketch_from=X_first,
             )
     finally:
         if cache is not None:
@@ -631,15 +630,6 @@ def _statistics_pass(X, spec, omega, runner, src, active):
                _stats_task, fold, omega32)
     merged: BlockStats = state["stats"]
     return FeatureStatistics.from_block_stats(merged), state["sketch"]
-
-
-def _sketch(X, mean, d, fill, l, rng, runner):
-    from .engine import _Operator
-
-    op = _Operator(X, mean, d, fill, runner, "input")
-    omega = rng.standard_normal((X.shape[1], l))
-    _, Z, _ = op.apply(omega, gram=True, norms=False, name="sketch")
-    return Z
 
 
 def _mtime(path: Path) -> str | None:

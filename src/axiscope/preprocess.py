@@ -22,6 +22,7 @@ __all__ = [
     "BlockStats",
     "FeatureStatistics",
     "Preprocessing",
+    "row_totals",
     "transform_block",
     "block_statistics",
     "first_nonfinite",
@@ -88,19 +89,31 @@ class PreprocessSpec:
         return asdict(self)
 
 
-def transform_block(block: np.ndarray, spec: PreprocessSpec) -> np.ndarray:
+def row_totals(block: np.ndarray) -> np.ndarray:
+    """Row sums in float64, skipping non-finite cells (copying only blocks that have some)."""
+    totals = np.add.reduce(block, axis=1, dtype=np.float64)
+    if not np.isfinite(totals).all():
+        totals = np.add.reduce(np.where(np.isfinite(block), block, 0), axis=1, dtype=np.float64)
+    return totals
+
+
+def transform_block(block: np.ndarray, spec: PreprocessSpec, *,
+                    totals: np.ndarray | None = None) -> np.ndarray:
     """Apply the per-sample transforms of ``spec`` to a block of samples, in its own dtype.
 
     The block is modified in place when a transform applies; callers pass fresh blocks.
+    ``totals`` (one per row) replaces the row sums of ``block`` for total normalisation,
+    for blocks that hold only some of the features the totals run over. Values ≤ −1 give
+    NaN or −inf under ``log1p``; callers report non-finite cells.
     """
     if spec.normalize_total is not None:
-        totals = np.add.reduce(block, axis=1, dtype=np.float64)
-        if not np.isfinite(totals).all():  # skip NaN cells, copying only such blocks
-            totals = np.add.reduce(np.where(np.isfinite(block), block, 0), axis=1, dtype=np.float64)
+        if totals is None:
+            totals = row_totals(block)
         factors = np.where(totals > 0, spec.normalize_total / np.where(totals > 0, totals, 1), 0)
         block *= factors.astype(block.dtype)[:, None]
     if spec.log1p:
-        np.log1p(block, out=block)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            np.log1p(block, out=block)
     return block
 
 

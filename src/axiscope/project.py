@@ -19,7 +19,7 @@ from .fit import plan_blocks
 from .memory import default_memory_limit, parse_memory
 from .model import Model
 from .passes import PassRunner, Progress, array_from_blocks, blas_threads
-from .preprocess import first_nonfinite
+from .preprocess import first_nonfinite, row_totals, transform_block
 from .readers import MatrixSource
 
 __all__ = ["FeatureMatch", "match_features", "Projection", "project"]
@@ -154,7 +154,6 @@ def project(
     inv = (1.0 / model.scale)[present]
     V = model.components[present]
     fill = model.extras.get("feature_mean", model.mean)[present]
-    total = spec.normalize_total
 
     def load(i):
         a, b = spans[i]
@@ -177,15 +176,11 @@ def project(
 
     def task(block):
         # at most one gathered copy of the model's columns, then everything in place in the input dtype
-        if total is not None:
-            sums = _row_sums(block if all_total else block[:, match.total_columns])
+        totals = None
+        if spec.normalize_total is not None:
+            totals = row_totals(block if all_total else block[:, match.total_columns])
         x = block if same_columns else block[:, match.model_columns]
-        if total is not None:
-            factor = np.where(sums > 0, total / np.where(sums > 0, sums, 1), 0.0)
-            x *= factor.astype(dtype)[:, None]
-        if spec.log1p:
-            with np.errstate(invalid="ignore", divide="ignore"):  # values <= -1: reported below
-                np.log1p(x, out=x)
+        x = transform_block(x, spec, totals=totals)
         x -= mean_t
         x *= inv_t
         scores = (x @ V_t).astype(np.float64)
@@ -233,10 +228,3 @@ def project(
     missing_fraction = (n_bad + match.n_missing) / model.n_features
     return Projection(ids, scores, sq, residual, missing_fraction, match, runner)
 
-
-def _row_sums(block: np.ndarray) -> np.ndarray:
-    """Row sums in float64, ignoring non-finite cells (copying only when there are some)."""
-    sums = np.add.reduce(block, axis=1, dtype=np.float64)
-    if not np.isfinite(sums).all():
-        sums = np.nansum(np.where(np.isfinite(block), block, 0), axis=1, dtype=np.float64)
-    return sums
