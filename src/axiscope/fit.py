@@ -35,7 +35,7 @@ from .preprocess import (
     first_nonfinite,
     transform_block,
 )
-from .readers import MatrixSource, open_matrix
+from .readers import MatrixSource, opened
 from .scoring import training_extras  # diagnostics and shrinkage stored in the model
 
 __all__ = ["fit", "FitResult", "BlockPlan", "plan_blocks", "METHODS"]
@@ -367,16 +367,10 @@ def fit(
     if scratch_dir is not None and not scratch_dir.is_dir():
         raise OptionError(f"--scratch {scratch_dir}: no such directory; create it or choose another")
 
-    owned = not isinstance(source, MatrixSource)
-    src = open_matrix(source, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
-                      samples_in=samples_in) if owned else source
-    try:
-        with blas_threads(threads):
-            return _fit(src, spec, n_components, oversample, power_iterations, tol, method, rng,
-                        budget, threads, scratch_dir, active, exclude_features, progress, t_start, seed)
-    finally:
-        if owned:
-            src.close()
+    with opened(source, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
+                samples_in=samples_in) as src, blas_threads(threads):
+        return _fit(src, spec, n_components, oversample, power_iterations, tol, method, rng,
+                    budget, threads, scratch_dir, active, exclude_features, progress, t_start, seed)
 
 
 def _fit(src, spec, k, oversample, power_iterations, tol, method, rng, budget, threads,

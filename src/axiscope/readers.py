@@ -22,6 +22,7 @@ samples x features, ``"columns"`` if it is features x samples. Everything expose
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import gzip
 import logging
@@ -38,7 +39,7 @@ import numpy as np
 
 from axiscope.errors import InputError, OptionError
 
-__all__ = ["SAMPLES_IN", "MatrixSource", "array_source", "describe_source", "open_matrix"]
+__all__ = ["SAMPLES_IN", "MatrixSource", "array_source", "describe_source", "open_matrix", "opened"]
 
 logger = logging.getLogger(__name__)
 
@@ -927,6 +928,16 @@ def describe_source(source: MatrixSource) -> dict[str, Any]:
         "first_sample_ids": [str(v) for v in source.sample_ids[:_ID_HEAD]],
         "first_feature_ids": [str(v) for v in source.feature_ids[:_ID_HEAD]],
     }
+
+
+@contextlib.contextmanager
+def opened(source: MatrixSource | str | os.PathLike[str], **options: Any) -> Iterator[MatrixSource]:
+    """A source as given, or the matrix at a path opened with ``options`` and closed after."""
+    if isinstance(source, MatrixSource):
+        yield source
+        return
+    with open_matrix(source, **options) as src:
+        yield src
 
 
 # ------------------------------------------------------------------------ in-memory arrays

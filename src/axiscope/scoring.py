@@ -48,7 +48,7 @@ from scipy import stats
 from . import __version__
 from .errors import ModelError, OptionError
 from .model import MODEL_VERSION, Model, load_model
-from .readers import MatrixSource, open_matrix
+from .readers import MatrixSource, opened
 from .shrinkage import spiked_shrinkage
 
 # Note: axiscope.project imports axiscope.fit, which imports training_extras from here, so
@@ -464,10 +464,8 @@ def score(
         logger.warning("Jackson-Mudholkar Q limit not usable (%s); using Box's scaled chi-square", reason)
     limits = {level: model_limits(model, level, q_method=used_method, q_offset=offset) for level in levels}
 
-    owned = not isinstance(source, MatrixSource)
-    src = open_matrix(source, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
-                      samples_in=samples_in) if owned else source
-    try:
+    with opened(source, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
+                samples_in=samples_in) as src:
         proj = project(model, src, fill_missing=fill, memory_limit=memory_limit, threads=threads,
                        progress=progress)
         input_info = {
@@ -478,9 +476,6 @@ def score(
             "shape": list(src.shape),
             "dtype": str(src.dtype),
         }
-    finally:
-        if owned:
-            src.close()
 
     scores = proj.scores / factor
     axis_var = model.singular_values**2 / max(model.n_samples - 1, 1)
