@@ -249,37 +249,15 @@ class FitResult:
             manifest["command_line"] = command_line
         write_json(manifest, directory / "manifest.json")
 
-    def dropped_features(self, supplementary: np.ndarray | None = None) -> pd.DataFrame:
-        """Features left out of the axes, with the reason and their statistics.
-
-        Reasons: ``supplementary`` (excluded on purpose with ``exclude_features``),
-        ``constant`` or ``filtered``. ``supplementary`` (bool, one per input feature) is the
-        mask given to :func:`fit`; without it, excluded features are recognised as the
-        dropped ones that are neither constant nor below the filters (exact unless
-        ``top_variable`` is set, where an excluded feature of low variance reads "filtered").
-        """
+    def dropped_features(self) -> pd.DataFrame:
+        """Features left out of the axes, with the reason (``supplementary``, ``constant`` or
+        ``filtered``) and their statistics."""
         stats, prep = self.statistics, self.preprocessing
         dropped = np.setdiff1d(np.arange(self.input_feature_ids.shape[0]), prep.kept)
-        eps = np.finfo(np.float32).eps
-        const = stats.variance[dropped] <= (eps * np.maximum(np.abs(stats.mean[dropped]), 1.0)) ** 2
-        if prep.spec.scale == "binomial":
-            f = stats.mean[dropped] / 2
-            const |= 2 * f * (1 - f) <= 0
-        if supplementary is not None:
-            sup = np.asarray(supplementary, dtype=bool)[dropped]
-        elif prep.dropped.get("supplementary"):
-            var = stats.variance[dropped]
-            sup = ~const
-            if prep.spec.min_variance is not None:
-                sup &= var >= prep.spec.min_variance
-            if prep.spec.top_variable is not None and prep.kept.size:
-                sup &= var > stats.variance[prep.kept].min()
-        else:
-            sup = np.zeros(dropped.shape[0], dtype=bool)
         return pd.DataFrame(
             {
                 "feature_id": self.input_feature_ids[dropped],
-                "reason": np.where(sup, "supplementary", np.where(const, "constant", "filtered")),
+                "reason": prep.reason[dropped].astype(str),
                 "mean": stats.mean[dropped],
                 "variance": stats.variance[dropped],
             }

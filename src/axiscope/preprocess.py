@@ -249,6 +249,8 @@ class Preprocessing:
         return float(np.sum(centred_var / self.scale**2))
 
     mean_raw: np.ndarray = field(default_factory=lambda: np.empty(0))
+    #: Why each input feature was left out ("supplementary", "constant", "filtered"; "" if kept).
+    reason: np.ndarray = field(default_factory=lambda: np.empty(0, dtype=object))
 
     @classmethod
     def from_statistics(cls, spec: PreprocessSpec, stats: FeatureStatistics,
@@ -288,6 +290,11 @@ class Preprocessing:
             dropped["top_variable"] = int(keep.sum() - spec.top_variable)
             keep = chosen
         kept = np.flatnonzero(keep)
+        reason = np.full(p, "", dtype=object)
+        reason[~keep] = "filtered"
+        reason[~keep & constant] = "constant"
+        if exclude is not None:
+            reason[np.asarray(exclude, dtype=bool)] = "supplementary"
         std = np.sqrt(var[kept])
         if spec.scale == "unit":
             scale = std.copy()
@@ -305,4 +312,5 @@ class Preprocessing:
             std=std,
             dropped=dropped,
             mean_raw=mean[kept].copy(),
+            reason=reason,
         )

@@ -12,7 +12,7 @@ from ..describe import interpret_fit, plan_interpretation, read_feature_list
 from ..fit import fit
 from ..preprocess import PreprocessSpec
 from ..readers import open_matrix
-from ..writers import atomic_directory, check_target, write_table
+from ..writers import atomic_directory, check_target
 from ._app import app, progress_display, say, setup_logging, user_errors
 from ._options import (
     Dataset,
@@ -116,8 +116,6 @@ def fit_command(
                                             threads=threads, progress=progress)
         with atomic_directory(out, overwrite=overwrite) as tmp:
             result.write(tmp, top=top, parquet=format is TableFormat.parquet, command_line=sys.argv)
-            if prepared.exclude is not None:
-                write_table(result.dropped_features(supplementary=prepared.exclude), tmp / "dropped_features.tsv")
             description.write(tmp)
     print_fit_summary(result, out, quiet)
     print_axis_summaries(description, quiet)
