@@ -124,7 +124,7 @@ def worker_floor(job: dict) -> dict:
 
 
 def worker_score(job: dict) -> dict:
-    from axiscope.scoring import score
+    from axiscope.scoring.score import score
 
     t0 = time.perf_counter()
     result = score(job["model"], job["new"], dataset="X", memory_limit=job["memory_limit"], threads=job["threads"])

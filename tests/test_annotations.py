@@ -15,18 +15,18 @@ import pandas as pd
 import pytest
 from scipy import stats as sps
 
-from axiscope.annotations import (
-    benjamini_hochberg,
+from axiscope.errors import InputError, OptionError
+from axiscope.explain.annotations import (
     category_statistics,
     correlation_ratio,
     correlation_test,
     load_annotations,
     qualitative_associations,
     quantitative_associations,
-    sample_flags,
     read_annotations,
+    sample_flags,
 )
-from axiscope.errors import InputError, OptionError
+from axiscope.model.statistics import benjamini_hochberg
 
 
 def test_correlation_and_p_value_match_pearsonr():

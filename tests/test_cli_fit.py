@@ -19,7 +19,7 @@ import zarr
 from typer.testing import CliRunner
 
 from axiscope.cli import app
-from axiscope.model import load_model
+from axiscope.model.store import load_model
 
 runner = CliRunner()
 
@@ -380,9 +380,9 @@ def test_wide_fits_also_write_loadings_as_zarr(tmp_path, monkeypatch):
     # written beside them is the reference (the same model read back two ways).
     import zarr
 
-    from axiscope import writers
-    from axiscope.fit import fit
-    from axiscope.readers import array_source
+    from axiscope.io import output as writers
+    from axiscope.fitting.run import fit
+    from axiscope.io.readers import array_source
 
     monkeypatch.setattr(writers, "ZARR_FEATURE_THRESHOLD", 10)
     X = np.random.default_rng(3).standard_normal((40, 30))

@@ -19,11 +19,11 @@ import numpy as np
 import pytest
 import scipy.linalg
 
-from axiscope.engine import randomized_factorization
-from axiscope.fit import fit
-from axiscope.passes import PassRunner
-from axiscope.preprocess import PreprocessSpec
-from axiscope.readers import array_source
+from axiscope.core.engine import randomized_factorization
+from axiscope.core.passes import PassRunner
+from axiscope.core.preprocess import PreprocessSpec
+from axiscope.fitting.run import fit
+from axiscope.io.readers import array_source
 
 SV_RTOL = 1e-4  # issue 2, "Tests"
 SINE_TOL = 1e-3  # issue 2, "Tests"

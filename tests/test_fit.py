@@ -23,9 +23,9 @@ from sklearn.datasets import load_breast_cancer, load_digits, load_iris
 from sklearn.decomposition import PCA
 from sklearn.preprocessing import StandardScaler
 
-from axiscope.fit import fit
-from axiscope.preprocess import PreprocessSpec
-from axiscope.readers import array_source
+from axiscope.core.preprocess import PreprocessSpec
+from axiscope.fitting.run import fit
+from axiscope.io.readers import array_source
 
 DATASETS = {"iris": load_iris, "breast_cancer": load_breast_cancer, "digits": load_digits}
 

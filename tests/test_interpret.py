@@ -17,16 +17,16 @@ from scipy import stats as sps
 
 from axiscope import PreprocessSpec, fit, open_matrix
 from axiscope.errors import InputError, OptionError
-from axiscope.interpret import (
-    feature_statistics,
+from axiscope.explain.supplementary import supplementary_feature_statistics
+from axiscope.io.readers import array_source
+from axiscope.model.project import project
+from axiscope.model.statistics import (
     FeatureAxisStatistics,
+    feature_statistics,
     read_feature_statistics,
     sample_contributions,
     sample_quality,
-    supplementary_feature_statistics,
 )
-from axiscope.project import project
-from axiscope.readers import array_source
 
 
 def _planted(n, p, seed=0, rank=3):

@@ -17,10 +17,10 @@ import textwrap
 import numpy as np
 import pytest
 
+from axiscope.core.memory import format_bytes, parse_memory
 from axiscope.errors import OptionError
-from axiscope.fit import fit
-from axiscope.memory import format_bytes, parse_memory
-from axiscope.readers import array_source
+from axiscope.fitting.run import fit
+from axiscope.io.readers import array_source
 
 
 @pytest.mark.parametrize(
@@ -126,8 +126,8 @@ _RSS_SCRIPT = textwrap.dedent(
     """
     import json, sys
     import numpy as np
-    from axiscope.fit import fit
-    from axiscope.readers import array_source
+    from axiscope.fitting.run import fit
+    from axiscope.io.readers import array_source
 
     def status(key):
         with open("/proc/self/status") as handle:

@@ -4,10 +4,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from axiscope import passes
-from axiscope.fit import fit
-from axiscope.passes import PassRunner, array_from_blocks
-from axiscope.readers import array_source
+from axiscope.core import passes
+from axiscope.core.passes import PassRunner, array_from_blocks
+from axiscope.fitting.run import fit
+from axiscope.io.readers import array_source
 
 
 def test_blocks_are_folded_in_order_with_their_offsets():

@@ -19,7 +19,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from axiscope.errors import InputError, OptionError
-from axiscope.readers import SAMPLES_IN, MatrixSource, describe_source, open_matrix
+from axiscope.io.readers import SAMPLES_IN, MatrixSource, describe_source, open_matrix
 
 # ------------------------------------------------------------------------------ helpers
 

@@ -20,8 +20,8 @@ from typer.testing import CliRunner
 from axiscope import PreprocessSpec, fit, load_model
 from axiscope.cli import app
 from axiscope.errors import InputError, ModelError, OptionError
-from axiscope.readers import array_source
-from axiscope.scoring import score
+from axiscope.io.readers import array_source
+from axiscope.scoring.score import score
 
 runner = CliRunner()
 
@@ -442,7 +442,7 @@ def test_q_limit_falls_back_to_box_with_a_warning_when_h0_is_not_positive(calibr
     # planted: a third moment so large that h0 = 1 − 2θ1θ3/(3θ2²) < 0
     theta3 = 3 * theta2**2 / theta1
     skewed = dataclasses.replace(model, extras={**model.extras, "residual_moments": np.array([theta1, theta2, theta3])})
-    with caplog.at_level("WARNING", logger="axiscope.scoring"):
+    with caplog.at_level("WARNING", logger="axiscope.scoring.score"):
         res = score(skewed, array_source(calibration["X_new"][:20]), threads=1)
     assert res.q_method == "box" and res.manifest["options"]["q_limit_method"] == "box"
     assert "h0" in caplog.text and "Box" in caplog.text
@@ -467,7 +467,7 @@ def test_negative_values_under_log1p_get_a_clear_message(caplog):
     bad[3, 5] = -2.0  # planted: one negative value
     with pytest.raises(InputError, match=r"NaN or infinite.*log1p.*negative values"):
         score(model, array_source(bad, feature_ids=ids), threads=1)
-    with caplog.at_level("WARNING", logger="axiscope.scoring"):
+    with caplog.at_level("WARNING", logger="axiscope.scoring.score"):
         res = score(model, array_source(bad, feature_ids=ids), fill_missing="mean", threads=1)
     assert "1 cells of 1 samples" in caplog.text and "log1p" in caplog.text
     np.testing.assert_allclose(res.diagnostics["missing_fraction"], np.where(np.arange(6) == 3, 1 / 12, 0.0))

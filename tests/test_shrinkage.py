@@ -13,9 +13,9 @@ import numpy as np
 import pytest
 
 from axiscope import PreprocessSpec, fit
-from axiscope.readers import array_source
-from axiscope.scoring import score
-from axiscope.shrinkage import spiked_shrinkage
+from axiscope.io.readers import array_source
+from axiscope.model.shrinkage import spiked_shrinkage
+from axiscope.scoring.score import score
 
 
 def test_factors_from_exact_asymptotic_eigenvalues():

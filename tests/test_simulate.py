@@ -10,7 +10,14 @@ import pytest
 import zarr
 from scipy import stats
 
-from axiscope.simulate import BATCHES, CORRUPTION_KINDS, STATES, Cohort, simulate_cohort, write_cohort
+from axiscope.demo.cohort import (
+    BATCHES,
+    CORRUPTION_KINDS,
+    STATES,
+    Cohort,
+    simulate_cohort,
+    write_cohort,
+)
 
 N_SAMPLES = 300
 N_GENES = 800

@@ -20,13 +20,17 @@ from pathlib import Path
 import numpy as np
 from sklearn.base import BaseEstimator, TransformerMixin
 from sklearn.utils import check_random_state
-from sklearn.utils.validation import _check_feature_names_in, check_is_fitted, validate_data
+from sklearn.utils.validation import (
+    _check_feature_names_in,
+    check_is_fitted,
+    validate_data,
+)
 
+from .core.preprocess import MISSING, SCALES, PreprocessSpec
 from .errors import AxiscopeError
-from .fit import METHODS, fit
-from .model import Model, load_model
-from .preprocess import MISSING, SCALES, PreprocessSpec
-from .readers import array_source
+from .fitting.run import METHODS, fit
+from .io.readers import array_source
+from .model.store import Model, load_model
 
 __all__ = ["AxiscopePCA"]
 
@@ -233,7 +237,7 @@ class AxiscopePCA(TransformerMixin, BaseEstimator):
 
     def transform(self, X):
         """Scores of the samples of ``X`` on the fitted axes, shape (n_samples, n_components_)."""
-        from .project import project
+        from .model.project import project
 
         check_is_fitted(self)
         X = validate_data(self, X, reset=False, dtype=[np.float64, np.float32],
@@ -285,7 +289,7 @@ class AxiscopePCA(TransformerMixin, BaseEstimator):
 
         The directory can be passed to ``axiscope score`` or :func:`axiscope.scoring.score`.
         """
-        from .writers import atomic_directory
+        from .io.output import atomic_directory
 
         check_is_fitted(self)
         with atomic_directory(Path(directory), overwrite=overwrite) as tmp:

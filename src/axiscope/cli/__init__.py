@@ -8,10 +8,9 @@ from __future__ import annotations
 
 import sys
 
-from ._app import app, main
-
 # Importing the command modules registers their commands on the app.
 from . import demo_cmd, describe_cmd, fit_cmd, inspect_cmd, score_cmd  # noqa: E402,F401
+from ._app import app, main
 
 __all__ = ["app", "main"]
 

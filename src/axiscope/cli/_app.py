@@ -68,7 +68,13 @@ def progress_display(quiet: bool) -> Iterator[Callable[[str, int, int], None] | 
         yield None
         return
     from rich.console import Console
-    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+    from rich.progress import (
+        BarColumn,
+        MofNCompleteColumn,
+        Progress,
+        TextColumn,
+        TimeElapsedColumn,
+    )
 
     bars = Progress(
         TextColumn("{task.description:<22}"),

@@ -10,12 +10,12 @@ from typing import Annotated
 import pandas as pd
 import typer
 
-from ..demo import DEMO_FIT_OPTIONS, DEMO_TECHNICAL, make_demo_data
-from ..describe import describe
-from ..fit import fit
-from ..preprocess import PreprocessSpec
-from ..scoring import score
-from ..writers import atomic_directory, check_target
+from ..core.preprocess import PreprocessSpec
+from ..demo.layout import DEMO_FIT_OPTIONS, DEMO_TECHNICAL, make_demo_data
+from ..explain.describe import describe
+from ..fitting.run import fit
+from ..io.output import atomic_directory, check_target
+from ..scoring.score import score
 from ._app import app, progress_display, say, setup_logging, user_errors
 from ._options import Overwrite, Quiet, Threads
 from .fit_cmd import print_fit_summary

@@ -10,8 +10,8 @@ from typing import Annotated
 
 import typer
 
-from ..describe import Description, describe
-from ..writers import atomic_directory, check_target
+from ..explain.describe import Description, describe
+from ..io.output import atomic_directory, check_target
 from ._app import app, say, setup_logging, user_errors
 from ._options import Overwrite, Quiet
 

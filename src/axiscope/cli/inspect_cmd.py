@@ -7,11 +7,19 @@ from typing import Annotated
 
 import typer
 
-from ..fit import plan_blocks
-from ..memory import default_memory_limit, format_bytes, parse_memory
-from ..readers import describe_source, open_matrix
+from ..core.memory import default_memory_limit, format_bytes, parse_memory
+from ..core.plan import plan_blocks
+from ..io.readers import describe_source, open_matrix
 from ._app import app, setup_logging, user_errors
-from ._options import Dataset, FeatureIds, InputPath, MemoryLimit, SampleIds, SamplesIn, SamplesInOpt
+from ._options import (
+    Dataset,
+    FeatureIds,
+    InputPath,
+    MemoryLimit,
+    SampleIds,
+    SamplesIn,
+    SamplesInOpt,
+)
 
 
 @app.command("inspect")

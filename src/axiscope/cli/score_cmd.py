@@ -9,8 +9,8 @@ from typing import Annotated
 
 import typer
 
-from ..scoring import score
-from ..writers import atomic_directory, check_target
+from ..io.output import atomic_directory, check_target
+from ..scoring.score import score
 from ._app import app, progress_display, say, setup_logging, user_errors
 from ._options import (
     Dataset,

@@ -14,8 +14,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import ModelError
-from .preprocess import PreprocessSpec
+from ..core.preprocess import PreprocessSpec
+from ..errors import ModelError
 
 __all__ = ["Model", "MODEL_FORMAT", "MODEL_VERSION", "load_model"]
 

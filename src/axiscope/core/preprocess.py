@@ -13,7 +13,7 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
-from .errors import OptionError
+from ..errors import OptionError
 
 __all__ = [
     "SCALES",

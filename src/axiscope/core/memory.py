@@ -5,7 +5,7 @@ from __future__ import annotations
 import os
 import re
 
-from .errors import OptionError
+from ..errors import OptionError
 
 __all__ = ["parse_memory", "default_memory_limit", "format_bytes"]
 

@@ -13,20 +13,18 @@ import platform
 import sys
 import time
 import uuid
-from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from . import __version__
-from .cache import BlockCache, scratch_has_room
-from .engine import N_PROBES, Factorization, exact_factorization, randomized_factorization
-from .errors import InputError, OptionError
-from .memory import default_memory_limit, format_bytes, parse_memory
-from .model import Model
-from .passes import PassRunner, Progress, array_from_blocks, blas_threads
-from .preprocess import (
+from .. import __version__
+from ..core.cache import BlockCache
+from ..core.engine import exact_factorization, randomized_factorization
+from ..core.memory import default_memory_limit, parse_memory
+from ..core.passes import PassRunner, Progress, array_from_blocks, blas_threads
+from ..core.plan import plan_blocks
+from ..core.preprocess import (
     BlockStats,
     FeatureStatistics,
     Preprocessing,
@@ -35,235 +33,21 @@ from .preprocess import (
     first_nonfinite,
     transform_block,
 )
-from .readers import MatrixSource, opened
-from .scoring import training_extras  # diagnostics and shrinkage stored in the model
+from ..errors import InputError, OptionError
+from ..io.readers import MatrixSource, opened
+from ..model.store import Model
+from ..model.training import (
+    training_extras,  # diagnostics and shrinkage stored in the model
+)
+from .result import FitResult
 
-__all__ = ["fit", "FitResult", "BlockPlan", "plan_blocks", "METHODS"]
+__all__ = ["fit", "METHODS"]
 
 logger = logging.getLogger(__name__)
 
 METHODS = ("auto", "randomized", "exact")
 #: ``method="auto"`` uses LAPACK when the smaller side of the matrix is at most this.
 EXACT_MAX_SIDE = 300
-_MAX_BLOCK_BYTES = 128 * 2**20
-
-
-@dataclass
-class BlockPlan:
-    """How the matrix is cut into row blocks and where transformed blocks are kept."""
-
-    block_rows: int
-    cache: str  # "memory" | "scratch" | "source"
-    budget: int
-    fixed_bytes: int
-    block_bytes: int
-    cache_bytes: int
-    max_basis: int
-
-    def to_dict(self) -> dict:
-        return {
-            "block_rows": self.block_rows,
-            "cache": self.cache,
-            "memory_limit": self.budget,
-            "fixed_bytes": self.fixed_bytes,
-            "block_bytes": self.block_bytes,
-            "cache_bytes": self.cache_bytes,
-            "max_basis": self.max_basis,
-        }
-
-
-def plan_blocks(
-    n_samples: int,
-    n_features: int,
-    itemsize: int,
-    *,
-    sketch_width: int,
-    threads: int,
-    budget: int,
-    sample_chunk: int | None = None,
-    cache_features: int | None = None,
-    scratch: Path | None = None,
-    reread_cheap: bool = False,
-) -> BlockPlan:
-    """Choose block rows, Krylov basis width and cache location to stay within ``budget``.
-
-    Memory held: the Krylov basis and its image, ``(n + p)·max_basis`` float64 (at most a
-    quarter of the budget, between ``2·l`` and ``8·l`` columns); vectors of per-feature
-    statistics; a window of ``2·threads`` blocks, each with one work array of its size and a
-    ``p × l`` partial product; and the cache when it is kept in memory. When the cache
-    does not fit and ``reread_cheap`` (an uncompressed input needing no per-sample
-    transform), later passes re-read the input instead of writing a scratch copy of it.
-    """
-    cache_features = n_features if cache_features is None else cache_features
-    l = sketch_width
-    width = l + N_PROBES
-    per_column = 8 * (n_samples + 2 * n_features)
-    max_basis = int(min(8 * l, max(2 * l, (budget // 4) // per_column)))
-    fixed = per_column * (max_basis + 2 * width) + 8 * 12 * n_features
-    window = 2 * threads
-    row_bytes = 2 * n_features * itemsize + 8 * width
-    partial = 8 * n_features * width
-    room = budget - fixed - window * partial
-    if room < window * row_bytes:
-        need = fixed + window * (partial + row_bytes)
-        raise OptionError(
-            f"memory limit {format_bytes(budget)} is too small for {n_samples} samples × "
-            f"{n_features} features with {l} sketch columns (needs at least "
-            f"{format_bytes(need)}); raise --memory-limit or lower --components"
-        )
-    rows = int(min(room // (window * row_bytes), _MAX_BLOCK_BYTES // max(1, n_features * itemsize)))
-    rows = max(1, min(rows, n_samples))
-    if n_samples >= 512:  # enough blocks to keep every thread busy
-        rows = min(rows, -(-n_samples // (2 * threads)))
-    if sample_chunk and sample_chunk < n_samples:
-        # whole on-disk chunks per block, so no chunk is decoded twice
-        if rows >= sample_chunk:
-            rows = (rows // sample_chunk) * sample_chunk
-        elif window * sample_chunk * row_bytes <= room:
-            rows = sample_chunk
-    cache_bytes = n_samples * cache_features * itemsize
-    if fixed + window * (partial + rows * row_bytes) + cache_bytes <= budget:
-        cache = "memory"
-    elif reread_cheap:  # the input is an uncompressed file: reading it again is as cheap as a scratch copy
-        cache = "source"
-    elif scratch_has_room(scratch, cache_bytes):
-        cache = "scratch"
-    else:
-        logger.warning(
-            "no room for a %s scratch file in %s; every pass will re-read and decode the input",
-            format_bytes(cache_bytes), scratch or "the temporary directory",
-        )
-        cache = "source"
-    return BlockPlan(rows, cache, budget, fixed, rows * n_features * itemsize, cache_bytes, max_basis)
-
-
-@dataclass
-class FitResult:
-    """What a fit produced: the model, per-sample results and a record of the run.
-
-    Attributes
-    ----------
-    model : Model
-    sample_ids : ndarray of str, shape (n,)
-        Ids of the active samples, in input order.
-    scores : ndarray, shape (n, k)
-        Principal component scores of the active samples.
-    sample_sq_dist : ndarray, shape (n,)
-        Squared distance of each sample to the centre in the preprocessed space.
-    factorization : Factorization
-    preprocessing : Preprocessing
-    statistics : FeatureStatistics
-        Statistics of every input feature (before selection).
-    input_feature_ids : ndarray of str
-    manifest : dict
-        Settings, sizes, passes over the data, timings and accuracy of the run.
-    """
-
-    model: Model
-    sample_ids: np.ndarray
-    scores: np.ndarray
-    sample_sq_dist: np.ndarray
-    factorization: Factorization
-    preprocessing: Preprocessing
-    statistics: FeatureStatistics
-    input_feature_ids: np.ndarray
-    manifest: dict = field(default_factory=dict)
-
-    @property
-    def axis_names(self) -> list[str]:
-        return self.model.axis_names
-
-    def components_table(self) -> pd.DataFrame:
-        """One row per axis: singular value, variance (s²/n), variance ratio, cumulative ratio."""
-        m = self.model
-        ratio = m.variance_ratio
-        return pd.DataFrame(
-            {
-                "axis": m.axis_names,
-                "singular_value": m.singular_values,
-                "variance": m.variance,
-                "variance_ratio": ratio,
-                "cumulative_ratio": np.cumsum(ratio),
-            }
-        )
-
-    def sample_scores(self) -> pd.DataFrame:
-        df = pd.DataFrame(self.scores, columns=self.axis_names)
-        df.insert(0, "sample_id", self.sample_ids)
-        return df
-
-    def feature_loadings(self) -> pd.DataFrame:
-        df = pd.DataFrame(self.model.components, columns=self.axis_names)
-        df.insert(0, "feature_id", self.model.feature_ids)
-        return df
-
-    def top_features(self, n: int = 25) -> pd.DataFrame:
-        """The ``n`` features with the largest positive and negative loadings on each axis.
-
-        Columns: axis, direction, rank, feature_id, loading, correlation (between the
-        feature and the scores) and contribution (percent of the axis, ``100·loading²``);
-        see :func:`axiscope.interpret.feature_statistics`.
-        """
-        from .interpret import feature_statistics
-
-        stats = feature_statistics(self.model)
-        V = self.model.components
-        ids = np.asarray(self.model.feature_ids)
-        rows = []
-        n = min(n, V.shape[0])
-        for j, axis in enumerate(self.axis_names):
-            order = np.argsort(V[:, j], kind="stable")
-            for direction, idx in (("positive", order[::-1][:n]), ("negative", order[:n])):
-                for rank, i in enumerate(idx, start=1):
-                    if (V[i, j] > 0) != (direction == "positive"):
-                        break
-                    rows.append((axis, direction, rank, ids[i], V[i, j], stats.correlation[i, j],
-                                 stats.contribution[i, j]))
-        return pd.DataFrame(rows, columns=["axis", "direction", "rank", "feature_id", "loading",
-                                           "correlation", "contribution"])
-
-    def write(self, directory: Path, *, top: int = 25, parquet: bool = False,
-              command_line: list[str] | None = None) -> None:
-        """Write the tables, the model and the manifest into an existing directory.
-
-        Callers wanting atomic output wrap this in :func:`axiscope.writers.atomic_directory`.
-        """
-        from .writers import ZARR_FEATURE_THRESHOLD, write_json, write_table, write_zarr_matrix
-
-        directory = Path(directory)
-        directory.mkdir(parents=True, exist_ok=True)
-        write_table(self.components_table(), directory / "components.tsv", parquet=parquet)
-        write_table(self.sample_scores(), directory / "sample_scores.tsv", parquet=parquet)
-        loadings = self.feature_loadings()
-        write_table(loadings, directory / "feature_loadings.tsv", parquet=parquet)
-        if loadings.shape[0] > ZARR_FEATURE_THRESHOLD:
-            write_zarr_matrix(directory / "feature_loadings.zarr", self.model.components,
-                              self.model.feature_ids, self.axis_names)
-        write_table(self.top_features(top), directory / "top_features.tsv", parquet=parquet)
-        dropped = np.setdiff1d(np.arange(self.input_feature_ids.shape[0]), self.preprocessing.kept)
-        if dropped.size:
-            write_table(self.dropped_features(), directory / "dropped_features.tsv")
-        self.model.save(directory / "model")
-        manifest = dict(self.manifest)
-        if command_line is not None:
-            manifest["command_line"] = command_line
-        write_json(manifest, directory / "manifest.json")
-
-    def dropped_features(self) -> pd.DataFrame:
-        """Features left out of the axes, with the reason (``supplementary``, ``constant`` or
-        ``filtered``) and their statistics."""
-        stats, prep = self.statistics, self.preprocessing
-        dropped = np.setdiff1d(np.arange(self.input_feature_ids.shape[0]), prep.kept)
-        return pd.DataFrame(
-            {
-                "feature_id": self.input_feature_ids[dropped],
-                "reason": prep.reason[dropped].astype(str),
-                "mean": stats.mean[dropped],
-                "variance": stats.variance[dropped],
-            }
-        )
-
-
 def fit(
     source: MatrixSource | str | os.PathLike,
     *,

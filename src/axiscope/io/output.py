@@ -6,15 +6,16 @@ import contextlib
 import os
 import shutil
 import tempfile
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from .errors import OptionError
+from ..errors import InputError, OptionError
 
-__all__ = ["atomic_directory", "write_table", "write_json", "ZARR_FEATURE_THRESHOLD"]
+__all__ = ["atomic_directory", "check_target", "write_table", "write_json", "write_zarr_matrix",
+           "read_result_table", "check_result_table", "REFIT_HINT", "ZARR_FEATURE_THRESHOLD"]
 
 #: Above this many features, per-feature tables are also written as Zarr arrays with ids.
 ZARR_FEATURE_THRESHOLD = 200_000
@@ -87,3 +88,47 @@ def write_zarr_matrix(path: Path, values: np.ndarray, row_ids: np.ndarray, colum
     ids = group.create_array("row_ids", shape=(len(row_ids),), dtype=str)
     ids[:] = np.asarray(row_ids, dtype=str)
     group.attrs["columns"] = list(columns)
+
+
+#: Appended to messages about damaged result files.
+REFIT_HINT = "restore the file written by 'axiscope fit' or refit"
+
+
+def read_result_table(path: Path, *, required: Sequence[str], numeric: Sequence[str] = ()) -> pd.DataFrame:
+    """Read a TSV table written by ``axiscope fit``, checking its columns.
+
+    Parameters
+    ----------
+    path : path
+    required : sequence of str
+        Columns that must be present.
+    numeric : sequence of str
+        Columns (among ``required``) that must hold numbers; converted to float64.
+
+    Raises
+    ------
+    InputError
+        The file is not a readable table, lacks a column, or holds text in a numeric column.
+    """
+    path = Path(path)
+    try:
+        table = pd.read_csv(path, sep="\t", dtype={"sample_id": str, "feature_id": str})
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError, ValueError, OSError) as exc:
+        first = str(exc).strip().splitlines()
+        reason = first[0] if first else exc.__class__.__name__
+        raise InputError(f"{path}: not a readable table ({reason}); {REFIT_HINT}") from exc
+    return check_result_table(table, path, required=required, numeric=numeric)
+
+
+def check_result_table(table: pd.DataFrame, path: Path, *, required: Sequence[str],
+                       numeric: Sequence[str] = ()) -> pd.DataFrame:
+    """Check that ``table`` (read from ``path``) has the ``required`` columns and numbers in ``numeric``."""
+    lacking = [c for c in required if c not in table.columns]
+    if lacking:
+        raise InputError(f"{path}: missing column(s) {', '.join(lacking)}; {REFIT_HINT}")
+    for column in numeric:
+        try:
+            table[column] = table[column].astype(np.float64)
+        except (ValueError, TypeError) as exc:
+            raise InputError(f"{path}: column {column} holds values that are not numbers; {REFIT_HINT}") from exc
+    return table

@@ -28,7 +28,8 @@ import numpy as np
 import pandas as pd
 from scipy import stats as sps
 
-from .errors import InputError, OptionError
+from ..errors import InputError, OptionError
+from ..model.statistics import benjamini_hochberg, correlation_p_value
 
 __all__ = [
     "MISSING_TOKENS",
@@ -417,16 +418,6 @@ def correlation_test(x: np.ndarray, scores: np.ndarray) -> tuple[np.ndarray, np.
     return r, correlation_p_value(r, n), n
 
 
-def correlation_p_value(r: np.ndarray, n: int | np.ndarray) -> np.ndarray:
-    """Two-sided p-value of Pearson correlations ``r`` on ``n`` samples (t on n − 2 df)."""
-    r = np.asarray(r, dtype=np.float64)
-    df = np.asarray(n, dtype=np.float64) - 2
-    with np.errstate(invalid="ignore", divide="ignore"):
-        t2 = r * r * df / np.maximum(1.0 - r * r, 0.0)
-        p = 2.0 * sps.t.sf(np.sqrt(t2), df)
-    return np.where(df > 0, p, np.nan)
-
-
 def category_test_value(mean_group: np.ndarray, n_group: int, mean_all: np.ndarray, var_all: np.ndarray, n: int) -> np.ndarray:
     """Test value of a category: standardized difference of its mean from the overall mean.
 
@@ -472,32 +463,6 @@ def correlation_ratio(y: np.ndarray, labels: np.ndarray) -> tuple[float, float, 
         f = (ss_between / (G - 1)) / (ss_within / (n - G))
     p = float(sps.f.sf(f, G - 1, n - G)) if np.isfinite(f) else (0.0 if ss_within == 0 else np.nan)
     return ratio, float(f), p
-
-
-def benjamini_hochberg(p: np.ndarray, axis: int = 0) -> np.ndarray:
-    """Benjamini–Hochberg adjusted p-values along ``axis``; NaN entries are ignored.
-
-    ``p_adj(i) = min_{j ≥ i} (m / j · p(j))`` over the ``m`` finite p-values sorted in
-    increasing order, capped at 1 (Benjamini & Hochberg 1995, doi:10.1111/j.2517-6161.1995.tb02031.x).
-    """
-    p = np.asarray(p, dtype=np.float64)
-    moved = np.moveaxis(p, axis, -1)
-    out = np.full(moved.shape, np.nan)
-    flat_in = moved.reshape(-1, moved.shape[-1])
-    flat_out = out.reshape(-1, moved.shape[-1])
-    for row in range(flat_in.shape[0]):
-        values = flat_in[row]
-        ok = np.flatnonzero(np.isfinite(values))
-        m = ok.size
-        if m == 0:
-            continue
-        order = np.argsort(values[ok], kind="stable")
-        ranked = values[ok][order] * m / np.arange(1, m + 1)
-        ranked = np.minimum.accumulate(ranked[::-1])[::-1]
-        adjusted = np.empty(m)
-        adjusted[order] = np.minimum(ranked, 1.0)
-        flat_out[row, ok] = adjusted
-    return np.moveaxis(flat_out.reshape(moved.shape), -1, axis)
 
 
 def quantitative_associations(annotations: AnnotationSet, scores: np.ndarray, axis_names: Sequence[str]) -> pd.DataFrame:

@@ -24,26 +24,26 @@ from typing import TYPE_CHECKING
 import numpy as np
 import pandas as pd
 
+from ..errors import InputError
+from ..io.output import read_result_table
+from ..model.statistics import (
+    FeatureAxisStatistics,
+    benjamini_hochberg,
+    feature_statistics,
+    read_feature_statistics,
+    sample_contributions,
+    sample_quality,
+)
+from ..model.store import load_model
 from .annotations import (
     AnnotationSet,
-    benjamini_hochberg,
     load_annotations,
     qualitative_associations,
     quantitative_associations,
 )
-from .errors import InputError
-from .interpret import (
-    FeatureAxisStatistics,
-    feature_statistics,
-    read_feature_statistics,
-    read_result_table,
-    sample_contributions,
-    sample_quality,
-)
-from .model import load_model
 
 if TYPE_CHECKING:
-    from .fit import FitResult
+    from ..fitting.result import FitResult
 
 __all__ = ["Description", "SupplementarySamples", "InterpretationPlan", "describe", "describe_axes",
            "plan_interpretation", "interpret_fit", "read_feature_list"]
@@ -109,7 +109,7 @@ class Description:
 
     def write(self, directory: Path, *, features: bool = True) -> None:
         """Write every table, ``axes/PC{j}.md`` and the feature statistics into ``directory``."""
-        from .writers import write_table
+        from ..io.output import write_table
 
         directory = Path(directory)
         directory.mkdir(parents=True, exist_ok=True)
@@ -626,8 +626,8 @@ def interpret_fit(plan: InterpretationPlan, result: "FitResult", source, *, top:
 
     ``options`` go to :func:`describe` (``n_samples``, ``alpha``, ``v_threshold``, ``min_strength``).
     """
-    from .interpret import supplementary_feature_statistics
-    from .project import project
+    from ..model.project import project
+    from .supplementary import supplementary_feature_statistics
 
     sup_samples = None
     if plan.active is not None and not plan.active.all():

@@ -14,13 +14,13 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .errors import InputError
-from .fit import plan_blocks
-from .memory import default_memory_limit, parse_memory
-from .model import Model
-from .passes import PassRunner, Progress, array_from_blocks, blas_threads
-from .preprocess import first_nonfinite, row_totals, transform_block
-from .readers import MatrixSource
+from ..core.memory import default_memory_limit, parse_memory
+from ..core.passes import PassRunner, Progress, array_from_blocks, blas_threads
+from ..core.plan import plan_blocks
+from ..core.preprocess import first_nonfinite, row_totals, transform_block
+from ..errors import InputError
+from ..io.readers import MatrixSource
+from .store import Model
 
 __all__ = ["FeatureMatch", "match_features", "Projection", "project"]
 

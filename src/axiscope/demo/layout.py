@@ -13,7 +13,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .simulate import Cohort, simulate_cohort, write_cohort
+from .cohort import Cohort, simulate_cohort, write_cohort
 
 __all__ = ["make_demo_data", "DEMO_FIT_OPTIONS", "DEMO_TECHNICAL"]
 

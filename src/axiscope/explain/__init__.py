@@ -1,0 +1,1 @@
+"""What the axes mean: sample annotations, supplementary elements and per-axis explanations."""

@@ -1,0 +1,147 @@
+"""What a fit produced: the model, per-sample results, and the tables people use."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from ..core.engine import Factorization
+from ..core.preprocess import FeatureStatistics, Preprocessing
+from ..model.statistics import feature_statistics
+from ..model.store import Model
+
+__all__ = ["FitResult"]
+
+
+@dataclass
+class FitResult:
+    """What a fit produced: the model, per-sample results and a record of the run.
+
+    Attributes
+    ----------
+    model : Model
+    sample_ids : ndarray of str, shape (n,)
+        Ids of the active samples, in input order.
+    scores : ndarray, shape (n, k)
+        Principal component scores of the active samples.
+    sample_sq_dist : ndarray, shape (n,)
+        Squared distance of each sample to the centre in the preprocessed space.
+    factorization : Factorization
+    preprocessing : Preprocessing
+    statistics : FeatureStatistics
+        Statistics of every input feature (before selection).
+    input_feature_ids : ndarray of str
+    manifest : dict
+        Settings, sizes, passes over the data, timings and accuracy of the run.
+    """
+
+    model: Model
+    sample_ids: np.ndarray
+    scores: np.ndarray
+    sample_sq_dist: np.ndarray
+    factorization: Factorization
+    preprocessing: Preprocessing
+    statistics: FeatureStatistics
+    input_feature_ids: np.ndarray
+    manifest: dict = field(default_factory=dict)
+
+    @property
+    def axis_names(self) -> list[str]:
+        return self.model.axis_names
+
+    def components_table(self) -> pd.DataFrame:
+        """One row per axis: singular value, variance (s²/n), variance ratio, cumulative ratio."""
+        m = self.model
+        ratio = m.variance_ratio
+        return pd.DataFrame(
+            {
+                "axis": m.axis_names,
+                "singular_value": m.singular_values,
+                "variance": m.variance,
+                "variance_ratio": ratio,
+                "cumulative_ratio": np.cumsum(ratio),
+            }
+        )
+
+    def sample_scores(self) -> pd.DataFrame:
+        df = pd.DataFrame(self.scores, columns=self.axis_names)
+        df.insert(0, "sample_id", self.sample_ids)
+        return df
+
+    def feature_loadings(self) -> pd.DataFrame:
+        df = pd.DataFrame(self.model.components, columns=self.axis_names)
+        df.insert(0, "feature_id", self.model.feature_ids)
+        return df
+
+    def top_features(self, n: int = 25) -> pd.DataFrame:
+        """The ``n`` features with the largest positive and negative loadings on each axis.
+
+        Columns: axis, direction, rank, feature_id, loading, correlation (between the
+        feature and the scores) and contribution (percent of the axis, ``100·loading²``);
+        see :func:`axiscope.interpret.feature_statistics`.
+        """
+
+        stats = feature_statistics(self.model)
+        V = self.model.components
+        ids = np.asarray(self.model.feature_ids)
+        rows = []
+        n = min(n, V.shape[0])
+        for j, axis in enumerate(self.axis_names):
+            order = np.argsort(V[:, j], kind="stable")
+            for direction, idx in (("positive", order[::-1][:n]), ("negative", order[:n])):
+                for rank, i in enumerate(idx, start=1):
+                    if (V[i, j] > 0) != (direction == "positive"):
+                        break
+                    rows.append((axis, direction, rank, ids[i], V[i, j], stats.correlation[i, j],
+                                 stats.contribution[i, j]))
+        return pd.DataFrame(rows, columns=["axis", "direction", "rank", "feature_id", "loading",
+                                           "correlation", "contribution"])
+
+    def write(self, directory: Path, *, top: int = 25, parquet: bool = False,
+              command_line: list[str] | None = None) -> None:
+        """Write the tables, the model and the manifest into an existing directory.
+
+        Callers wanting atomic output wrap this in :func:`axiscope.writers.atomic_directory`.
+        """
+        from ..io.output import (
+            ZARR_FEATURE_THRESHOLD,
+            write_json,
+            write_table,
+            write_zarr_matrix,
+        )
+
+        directory = Path(directory)
+        directory.mkdir(parents=True, exist_ok=True)
+        write_table(self.components_table(), directory / "components.tsv", parquet=parquet)
+        write_table(self.sample_scores(), directory / "sample_scores.tsv", parquet=parquet)
+        loadings = self.feature_loadings()
+        write_table(loadings, directory / "feature_loadings.tsv", parquet=parquet)
+        if loadings.shape[0] > ZARR_FEATURE_THRESHOLD:
+            write_zarr_matrix(directory / "feature_loadings.zarr", self.model.components,
+                              self.model.feature_ids, self.axis_names)
+        write_table(self.top_features(top), directory / "top_features.tsv", parquet=parquet)
+        dropped = np.setdiff1d(np.arange(self.input_feature_ids.shape[0]), self.preprocessing.kept)
+        if dropped.size:
+            write_table(self.dropped_features(), directory / "dropped_features.tsv")
+        self.model.save(directory / "model")
+        manifest = dict(self.manifest)
+        if command_line is not None:
+            manifest["command_line"] = command_line
+        write_json(manifest, directory / "manifest.json")
+
+    def dropped_features(self) -> pd.DataFrame:
+        """Features left out of the axes, with the reason (``supplementary``, ``constant`` or
+        ``filtered``) and their statistics."""
+        stats, prep = self.statistics, self.preprocessing
+        dropped = np.setdiff1d(np.arange(self.input_feature_ids.shape[0]), prep.kept)
+        return pd.DataFrame(
+            {
+                "feature_id": self.input_feature_ids[dropped],
+                "reason": prep.reason[dropped].astype(str),
+                "mean": stats.mean[dropped],
+                "variance": stats.variance[dropped],
+            }
+        )
