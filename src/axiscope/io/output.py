@@ -17,6 +17,9 @@ from ..errors import InputError, OptionError
 __all__ = ["atomic_directory", "check_target", "write_table", "write_json", "write_zarr_matrix",
            "read_result_table", "check_result_table", "REFIT_HINT", "ZARR_FEATURE_THRESHOLD"]
 
+#: Default number of features listed per side of each axis, by every command and function.
+DEFAULT_TOP_FEATURES = 20
+
 #: Above this many features, per-feature tables are also written as Zarr arrays with ids.
 ZARR_FEATURE_THRESHOLD = 200_000
 
@@ -62,18 +65,29 @@ def write_table(df: pd.DataFrame, path: Path, *, parquet: bool = False) -> None:
 
 
 def write_json(obj: dict, path: Path) -> None:
+    """Write strict JSON (RFC 8259): NaN and infinities become ``null``, never bare ``NaN``."""
     import json
 
-    Path(path).write_text(json.dumps(obj, indent=2, default=_json_default) + "\n")
+    text = json.dumps(_strict(obj), indent=2, allow_nan=False)
+    Path(path).write_text(text + "\n", encoding="utf-8")
 
 
-def _json_default(value):
-    if isinstance(value, np.generic):
-        return value.item()
+def _strict(value):
+    """``value`` with numpy scalars and arrays, paths and tuples made plain; non-finite floats → None."""
+    if isinstance(value, dict):
+        return {str(k): _strict(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_strict(v) for v in value]
     if isinstance(value, np.ndarray):
-        return value.tolist()
+        return _strict(value.tolist())
+    if isinstance(value, np.generic):
+        value = value.item()
+    if isinstance(value, float) and not np.isfinite(value):
+        return None
     if isinstance(value, Path):
         return str(value)
+    if value is None or isinstance(value, (str, int, float, bool)):
+        return value
     raise TypeError(f"not JSON serialisable: {type(value).__name__}")
 
 
