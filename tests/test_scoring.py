@@ -20,7 +20,7 @@ from typer.testing import CliRunner
 from axiscope import PreprocessSpec, fit, load_model
 from axiscope.cli import app
 from axiscope.errors import InputError, ModelError, OptionError
-from axiscope.io.readers import array_source
+from axiscope.io import array_source
 from axiscope.scoring.score import score
 
 runner = CliRunner()

@@ -19,7 +19,7 @@ from ..core.passes import PassRunner, Progress, array_from_blocks, blas_threads
 from ..core.plan import plan_blocks
 from ..core.preprocess import first_nonfinite, row_totals, transform_block
 from ..errors import InputError
-from ..io.readers import MatrixSource
+from ..io import MatrixSource
 from .store import Model
 
 __all__ = ["FeatureMatch", "match_features", "Projection", "project"]

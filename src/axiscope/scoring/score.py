@@ -47,7 +47,7 @@ from scipy import stats
 
 from .. import __version__
 from ..errors import ModelError, OptionError
-from ..io.readers import MatrixSource, opened
+from ..io import MatrixSource, opened
 from ..model.store import MODEL_VERSION, Model, load_model
 
 # Note: axiscope.project imports axiscope.fit, which imports training_extras from here, so
