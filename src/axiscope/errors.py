@@ -4,10 +4,18 @@ Every error that a user can fix by changing the input or the options derives fro
 :class:`AxiscopeError`. Its message is one line that already names the file or location
 and says what to do; the command-line layer prints it and exits with code 2.
 
-Messages name the arguments of the Python API (``n_components``, ``memory_limit``), written
-bare, never quoted, so that the command line can rewrite each of them into its option
-spelling (``--components``, ``--memory-limit``); see :func:`axiscope.cli._app.user_errors`.
-Ids, dataset names and values in a message are quoted and are never rewritten.
+Messages name the arguments of the Python API, never command-line options, and the
+command line rewrites them into its option spellings
+(:func:`axiscope.cli._app.to_option_spellings`). Write them so that the rewriting finds them:
+
+* a name with an underscore stands bare anywhere: ``"check feature_ids and samples_in"``
+  (→ ``check --feature-ids and --samples-in``);
+* a one-word name is also plain English (``out``, ``missing``, ``dataset``), so it is
+  rewritten only as ``name=value``: ``"confidence=1.5 is out of range"``
+  (→ ``--confidence 1.5 is out of range``), ``"choose one with dataset=..."``;
+* flags as ``name=True`` / ``name=False`` (``adjust_q=False`` → ``--no-adjust-q``);
+* ids, dataset names, column names and values are quoted (``'sample_ids'``) and are never
+  rewritten; neither are names inside paths or file names.
 """
 
 from __future__ import annotations
