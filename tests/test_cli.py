@@ -159,7 +159,7 @@ def test_help_loads_no_numerical_library():
     assert not loaded & set(HEAVY), sorted(loaded & set(HEAVY))
 
 
-@pytest.mark.parametrize("name", ["score", "fit", "inspect", "demo"])
+@pytest.mark.parametrize("name", _commands())
 def test_a_command_s_help_loads_no_numerical_library(name):
     code, loaded, out = _modules_loaded([name, "--help"])
     assert code == 0 and "Usage:" in out

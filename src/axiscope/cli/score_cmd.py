@@ -17,7 +17,6 @@ from ._options import (
     Dataset,
     FeatureIds,
     FormatOpt,
-    InputPath,
     MemoryLimit,
     OutDir,
     Overwrite,
