@@ -202,7 +202,7 @@ def fitted(tmp_path_factory):
     X = rng.standard_normal((40, 6)) @ rng.standard_normal((6, 6))
     folder = tmp_path_factory.mktemp("fitted")
     ids = [f"g{j}" for j in range(6)]
-    fit(array_source(X, feature_ids=ids), n_components=2, threads=1).write(folder / "result")
+    fit(array_source(X, feature_ids=ids), n_components=2).write(folder / "result")
     np.save(folder / "new.npy", X[:10])
     (folder / "features.txt").write_text("\n".join(ids) + "\n")
     return folder
