@@ -382,7 +382,7 @@ def test_wide_fits_also_write_loadings_as_zarr(tmp_path, monkeypatch):
 
     from axiscope.io import output as writers
     from axiscope.fitting.run import fit
-    from axiscope.io.readers import array_source
+    from axiscope.io import array_source
 
     monkeypatch.setattr(writers, "ZARR_FEATURE_THRESHOLD", 10)
     X = np.random.default_rng(3).standard_normal((40, 30))

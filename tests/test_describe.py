@@ -18,7 +18,7 @@ from typer.testing import CliRunner
 from axiscope import fit
 from axiscope.cli import app
 from axiscope.explain.describe import describe, interpret_fit, plan_interpretation
-from axiscope.io.readers import array_source
+from axiscope.io import array_source
 
 N, P = 120, 60
 CAUSAL = ("cause", "driven", "due to", "because", "effect of", "determin", "leads to", "results in")

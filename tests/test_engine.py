@@ -23,7 +23,7 @@ from axiscope.core.engine import randomized_factorization
 from axiscope.core.passes import PassRunner
 from axiscope.core.preprocess import PreprocessSpec
 from axiscope.fitting.run import fit
-from axiscope.io.readers import array_source
+from axiscope.io import array_source
 
 SV_RTOL = 1e-4  # issue 2, "Tests"
 SINE_TOL = 1e-3  # issue 2, "Tests"

@@ -25,7 +25,7 @@ from sklearn.preprocessing import StandardScaler
 
 from axiscope.core.preprocess import PreprocessSpec
 from axiscope.fitting.run import fit
-from axiscope.io.readers import array_source
+from axiscope.io import array_source
 
 DATASETS = {"iris": load_iris, "breast_cancer": load_breast_cancer, "digits": load_digits}
 

@@ -18,7 +18,7 @@ from scipy import stats as sps
 from axiscope import PreprocessSpec, fit, open_matrix
 from axiscope.errors import InputError, OptionError
 from axiscope.explain.supplementary import supplementary_feature_statistics
-from axiscope.io.readers import array_source
+from axiscope.io import array_source
 from axiscope.model.project import project
 from axiscope.model.statistics import (
     FeatureAxisStatistics,

@@ -20,7 +20,7 @@ import pytest
 from axiscope.core.memory import format_bytes, parse_memory
 from axiscope.errors import OptionError
 from axiscope.fitting.run import fit
-from axiscope.io.readers import array_source
+from axiscope.io import array_source
 
 
 @pytest.mark.parametrize(
@@ -127,7 +127,7 @@ _RSS_SCRIPT = textwrap.dedent(
     import json, sys
     import numpy as np
     from axiscope.fitting.run import fit
-    from axiscope.io.readers import array_source
+    from axiscope.io import array_source
 
     def status(key):
         with open("/proc/self/status") as handle:

@@ -7,7 +7,7 @@ import numpy as np
 from axiscope.core import passes
 from axiscope.core.passes import PassRunner, array_from_blocks
 from axiscope.fitting.run import fit
-from axiscope.io.readers import array_source
+from axiscope.io import array_source
 
 
 def test_blocks_are_folded_in_order_with_their_offsets():

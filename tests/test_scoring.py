@@ -20,7 +20,7 @@ from typer.testing import CliRunner
 from axiscope import PreprocessSpec, fit, load_model
 from axiscope.cli import app
 from axiscope.errors import InputError, ModelError, OptionError
-from axiscope.io.readers import array_source
+from axiscope.io import array_source
 from axiscope.scoring.score import score
 
 runner = CliRunner()
@@ -111,8 +111,10 @@ def test_t2_limit_matches_f_distribution_formula(calibration):
         # new observation, k(n−1)(n+1)/(n(n−k))·F(k, n−k), with scipy.stats.f
         expected = k * (n - 1) * (n + 1) / (n * (n - k)) * stats.f.ppf(level, k, n - k)
         assert res.limits[level].t2 == pytest.approx(expected, rel=1e-12)
-        if level == 0.99:  # the diagnostics column carries the limit at the requested confidence
-            np.testing.assert_allclose(res.diagnostics["t2_limit"], expected, rtol=1e-12)
+        # diagnostics.tsv carries the limit at the requested confidence and the one at 0.95
+        column = "t2_limit" if level == 0.99 else "t2_limit_95"
+        np.testing.assert_allclose(res.diagnostics[column], expected, rtol=1e-12)
+    np.testing.assert_array_equal(res.diagnostics["confidence"], 0.99)
 
 
 def test_q_limit_matches_jackson_mudholkar_formula(calibration):
@@ -147,8 +149,9 @@ def test_q_limit_matches_jackson_mudholkar_formula(calibration):
                              + theta2 * h0 * (h0 - 1) / theta1**2) ** (1 / h0)
         # the library adds the expected excess of new samples' residuals (tested below)
         assert res.limits[level].q - res.limits[level].q_offset == pytest.approx(expected, rel=1e-7)
-        if level == 0.99:  # the diagnostics column carries the limit at the requested confidence
-            np.testing.assert_allclose(res.diagnostics["q_limit"] - res.limits[level].q_offset, expected, rtol=1e-7)
+        # diagnostics.tsv carries the limit at the requested confidence and the one at 0.95
+        column = "q_limit" if level == 0.99 else "q_limit_95"
+        np.testing.assert_allclose(res.diagnostics[column] - res.limits[level].q_offset, expected, rtol=1e-7)
     # Box (1954): g·χ²_h with g = var/(2 mean), h = 2 mean²/var (scipy.stats.chi2)
     box = score(model, array_source(calibration["X_new"][:50]), threads=1, q_method="box")
     m, v = q_train.mean(), q_train.var()
@@ -195,6 +198,9 @@ def test_missing_features_filled_with_the_training_mean(planted):
     src = array_source(P.X[:20, keep], feature_ids=ids[keep])
     with pytest.raises(InputError, match="3 of the model's 30 features are missing"):
         score(model, src, threads=1)
+    one_short = array_source(P.X[:20, 1:], feature_ids=ids[1:])
+    with pytest.raises(InputError, match=r"1 of the model's 30 features is missing \(first: 'g0'\); supply it or"):
+        score(model, one_short, threads=1)
     res = score(model, src, fill_missing="mean", threads=1, max_missing_fraction=0.05)
     # reference: the same samples with the absent features set to their training mean
     # (numpy mean of the planted matrix), which add nothing to the scores
@@ -229,12 +235,15 @@ def test_shrinkage_correction_divides_scores_by_stored_factors(calibration):
 def test_bad_options_raise_option_errors(calibration):
     model = calibration["fit"].model
     X = array_source(calibration["X_new"][:10])
-    with pytest.raises(OptionError, match="--confidence"):
+    # The Python API's messages name its arguments (the command line's name options).
+    with pytest.raises(OptionError, match=r"^confidence=1\.0 is out of range; choose a value between 0\.5 and 1"):
         score(model, X, confidence=1.0)
-    with pytest.raises(OptionError, match="--fill-missing"):
+    with pytest.raises(OptionError, match=r"^fill_missing='median' is not supported"):
         score(model, X, fill_missing="median")
-    with pytest.raises(OptionError, match="--max-missing-fraction"):
+    with pytest.raises(OptionError, match=r"^max_missing_fraction=2 is out of range"):
         score(model, X, max_missing_fraction=2)
+    with pytest.raises(OptionError, match=r"^q_method='median' is not valid; use one of: jackson-mudholkar, box$"):
+        score(model, X, q_method="median")
 
 
 # ------------------------------------------------------------------------------- CLI
@@ -262,7 +271,8 @@ def test_cli_score_writes_scores_diagnostics_and_manifest(cli_setup, tmp_path):
     assert "within limits" in r.output
     scores = pd.read_csv(out / "scores.tsv", sep="\t")
     diag = pd.read_csv(out / "diagnostics.tsv", sep="\t")
-    assert list(diag.columns) == ["sample_id", "t2", "t2_limit", "q", "q_limit", "flag", "missing_fraction"]
+    assert list(diag.columns) == ["sample_id", "t2", "q", "flag", "missing_fraction", "confidence", "t2_limit",
+                                  "q_limit", "t2_limit_95", "q_limit_95"]
     # reference: the fit's training scores (written with 8 significant digits)
     np.testing.assert_allclose(scores[["PC1", "PC2", "PC3"]].to_numpy(), cli_setup["fit"].scores, rtol=1e-6, atol=1e-6)
     manifest = json.loads((out / "manifest.json").read_text())
@@ -279,8 +289,8 @@ def test_cli_missing_features_without_fill_is_an_error(cli_setup, tmp_path, writ
     out = tmp_path / "out"
     r = runner.invoke(app, ["score", str(cli_setup["model"]), str(path), "--out", str(out)])
     assert r.exit_code == 2
-    assert "2 of the model's 25 features are missing (first: g0, g1)" in r.stderr
-    assert "--fill-missing mean" in r.stderr and "Traceback" not in r.output
+    assert "2 of the model's 25 features are missing (first: 'g0', 'g1')" in r.stderr
+    assert "pass --fill-missing 'mean'" in r.stderr and "Traceback" not in r.output
     assert _no_output(out)
     r = runner.invoke(app, ["score", str(cli_setup["model"]), str(path), "--out", str(out), "--fill-missing", "mean"])
     assert r.exit_code == 0, r.output
@@ -355,7 +365,7 @@ def test_cli_non_model_directory_is_an_error(cli_setup, tmp_path):
     out = tmp_path / "out"
     r = runner.invoke(app, ["score", str(other), str(cli_setup["train"]), "--out", str(out)])
     assert r.exit_code == 2
-    assert "not a model directory" in r.stderr
+    assert "neither a model folder (no model.json) nor the result folder of a fit" in r.stderr
     assert _no_output(out)
 
 
@@ -364,7 +374,8 @@ def test_cli_no_overlapping_feature_ids_is_an_error(cli_setup, tmp_path, write_m
     out = tmp_path / "out"
     r = runner.invoke(app, ["score", str(cli_setup["model"]), str(path), "--out", str(out), "--fill-missing", "mean"])
     assert r.exit_code == 2
-    assert "none of the model's 25 feature ids occur in this file" in r.stderr
+    assert "no feature id of the model occurs in this file (the model has 25 features" in r.stderr
+    assert "check --feature-ids and --samples-in" in r.stderr
     assert _no_output(out)
 
 
@@ -469,5 +480,48 @@ def test_negative_values_under_log1p_get_a_clear_message(caplog):
         score(model, array_source(bad, feature_ids=ids), threads=1)
     with caplog.at_level("WARNING", logger="axiscope.scoring.score"):
         res = score(model, array_source(bad, feature_ids=ids), fill_missing="mean", threads=1)
-    assert "1 cells of 1 samples" in caplog.text and "log1p" in caplog.text
+    assert "1 cell in 1 sample in <array> was NaN or infinite" in caplog.text and "log1p" in caplog.text
     np.testing.assert_allclose(res.diagnostics["missing_fraction"], np.where(np.arange(6) == 3, 1 / 12, 0.0))
+
+
+def test_a_missing_feature_is_reported_in_the_singular(planted, caplog):
+    P = planted(60, 13, rank=2, seed=5)
+    ids = np.array([f"g{j}" for j in range(13)])
+    model = fit(array_source(P.X, feature_ids=ids), n_components=2, threads=1).model
+    with caplog.at_level("WARNING", logger="axiscope.scoring.score"):
+        score(model, array_source(P.X[:5, 1:], feature_ids=ids[1:]), fill_missing="mean", threads=1)
+    assert "1 of the model's 13 features is missing from <array> and was filled with its training mean" in caplog.text
+
+
+# ------------------------------------------------------------- fit folders and formats
+
+
+def test_score_accepts_the_result_folder_of_a_fit(cli_setup, tmp_path):
+    result_dir = tmp_path / "fitted"
+    cli_setup["fit"].write(result_dir)
+    via_model = score(result_dir / "model", cli_setup["train"], threads=1)
+    via_result = score(result_dir, cli_setup["train"], threads=1)
+    pd.testing.assert_frame_equal(via_result.scores, via_model.scores)
+    assert via_result.manifest["model"]["path"] == str(result_dir / "model")
+    out = tmp_path / "scored"
+    r = runner.invoke(app, ["score", str(result_dir), str(cli_setup["train"]), "--out", str(out), "-q"])
+    assert r.exit_code == 0, r.stderr
+    # reference: the scores of the model/ folder itself (the TSV holds 8 significant digits)
+    np.testing.assert_allclose(pd.read_csv(out / "scores.tsv", sep="\t")[["PC1", "PC2", "PC3"]],
+                               via_model.scores[["PC1", "PC2", "PC3"]], rtol=1e-7, atol=1e-9)
+
+
+def test_cli_score_parquet_copies_every_table(cli_setup, tmp_path):
+    out = tmp_path / "scored"
+    r = runner.invoke(app, ["score", str(cli_setup["model"]), str(cli_setup["train"]), "--out", str(out),
+                            "--format", "parquet", "-q"])
+    assert r.exit_code == 0, r.stderr
+    tables = sorted(p.stem for p in out.glob("*.tsv"))
+    assert tables == ["diagnostics", "scores"]
+    for name in tables:  # reference: the TSV written beside it (8 significant digits)
+        tsv = pd.read_csv(out / f"{name}.tsv", sep="\t")
+        parquet = pd.read_parquet(out / f"{name}.parquet")
+        assert list(parquet.columns) == list(tsv.columns)
+        numeric = tsv.select_dtypes("number").columns
+        np.testing.assert_allclose(parquet[numeric].to_numpy(float), tsv[numeric].to_numpy(float), rtol=1e-7)
+        assert (parquet["sample_id"].astype(str) == tsv["sample_id"].astype(str)).all()

@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 
 from axiscope import PreprocessSpec, fit
-from axiscope.io.readers import array_source
+from axiscope.io import array_source
 from axiscope.model.shrinkage import spiked_shrinkage
 from axiscope.scoring.score import score
 

@@ -29,7 +29,7 @@ from sklearn.utils.validation import (
 from .core.preprocess import MISSING, SCALES, PreprocessSpec
 from .errors import AxiscopeError
 from .fitting.run import METHODS, fit
-from .io.readers import array_source
+from .io import array_source
 from .model.store import Model, load_model
 
 __all__ = ["AxiscopePCA"]

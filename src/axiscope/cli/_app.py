@@ -1,19 +1,59 @@
-"""The typer application, error handling, logging and progress display shared by commands."""
+"""The typer application, error handling, logging and progress display shared by commands.
+
+Kept light: importing this module (and so ``axiscope --help``) loads typer and the
+standard library only. Command modules import the library inside their functions.
+"""
 
 from __future__ import annotations
 
 import contextlib
 import logging
+import re
 import sys
 from collections.abc import Callable, Iterator
+from typing import Annotated, Any
 
 import typer
+from typer.core import TyperGroup
 
 from ..errors import AxiscopeError
 
+__all__ = ["app", "main", "fail", "say", "setup_logging", "progress_display", "user_errors",
+           "to_option_spellings", "COMMAND_ORDER"]
+
+#: The commands in the order of the work. A command not named here (the explanation of
+#: the axes, and any stage added later) is listed after ``fit`` and before ``score``.
+COMMAND_ORDER = ("inspect", "fit", "score", "demo", "simulate")
+_UNLISTED_AFTER = "fit"
+
+_HELP = "Principal component analysis of large, wide numeric tables, out of core."
+
+
+class _CommandList(TyperGroup):
+    """Lists commands in the order of the work, each with its whole first sentence."""
+
+    def list_commands(self, ctx: Any) -> list[str]:
+        after = COMMAND_ORDER.index(_UNLISTED_AFTER) + 0.5
+        names = list(self.commands)
+        return sorted(names, key=lambda name: COMMAND_ORDER.index(name) if name in COMMAND_ORDER else after)
+
+    def format_commands(self, ctx: Any, formatter: Any) -> None:
+        # A command's short_help, or its help up to the end of the first sentence; never
+        # cut to the terminal width with "...": long lines are wrapped instead.
+        rows = []
+        for name in self.list_commands(ctx):
+            command = self.get_command(ctx, name)
+            if command is not None and not command.hidden:
+                rows.append((name, command.get_short_help_str(limit=sys.maxsize)))
+        if rows:
+            with formatter.section("Commands"):
+                formatter.write_dl(rows)
+
+
 app = typer.Typer(
     name="axiscope",
-    help="Principal component analysis of large, wide numeric tables, out of core.",
+    cls=_CommandList,
+    help=_HELP,
     no_args_is_help=True,
     add_completion=False,
     pretty_exceptions_enable=False,
@@ -21,20 +61,82 @@ app = typer.Typer(
 )
 
 
-class _OneLine(logging.Formatter):
-    def format(self, record: logging.LogRecord) -> str:
-        return f"{record.levelname.lower()}: {record.getMessage()}"
+# -------------------------------------------------------------- --version, running command
 
 
-def setup_logging(quiet: bool) -> None:
-    """Send the library's warnings to standard error, one line each."""
-    logger = logging.getLogger("axiscope")
-    logger.handlers.clear()
-    handler = logging.StreamHandler(sys.stderr)
-    handler.setFormatter(_OneLine())
-    logger.addHandler(handler)
-    logger.setLevel(logging.WARNING)
-    logger.propagate = False
+def _print_version(value: bool) -> None:
+    if value:
+        from .. import __version__
+
+        typer.echo(f"axiscope {__version__}")
+        raise typer.Exit()
+
+
+#: Option spellings of the running command's parameters (see :func:`user_errors`).
+_running: dict[str, Any] = {}
+
+
+@app.callback()
+def _root(
+    ctx: typer.Context,
+    version: Annotated[bool, typer.Option("--version", callback=_print_version, is_eager=True,
+                                          help="Print the version of axiscope and exit.")] = False,
+) -> None:
+    """Principal component analysis of large, wide numeric tables, out of core."""
+    command = ctx.command.get_command(ctx, ctx.invoked_subcommand) if ctx.invoked_subcommand else None
+    _running.clear()
+    if command is not None:
+        _running.update({param.name: param for param in command.params
+                         if param.param_type_name == "option" and param.name})
+        ctx.call_on_close(_running.clear)
+
+
+# ----------------------------------------------------------------------- error messages
+
+
+def _spelling(param: Any, value: str | None) -> str:
+    """How a parameter is written on the command line (``value``: a ``True``/``False`` after ``=``)."""
+    long = [opt for opt in param.opts if opt.startswith("--")]
+    primary = long[0] if long else param.opts[0]
+    if value == "False" and getattr(param, "is_flag", False):
+        off = [opt for opt in param.secondary_opts if opt.startswith("--")]
+        return off[0] if off else f"without {primary}"
+    return primary
+
+
+def to_option_spellings(message: str, params: dict[str, Any]) -> str:
+    """Rewrite the Python argument names in ``message`` into the option spellings of ``params``.
+
+    ``params`` maps each argument name to its click parameter (``opts``, ``secondary_opts``,
+    ``is_flag``). A name is rewritten where it stands as a word of its own, not inside
+    quotes, a path or a file name, and
+
+    * anywhere when it holds an underscore (``memory_limit`` → ``--memory-limit``);
+    * only when followed by ``=`` otherwise, since one-word names (``out``, ``missing``,
+      ``dataset``) are also plain English.
+
+    ``name=value`` becomes ``--option value`` (``confidence=1.5`` → ``--confidence 1.5``);
+    ``flag=True`` becomes the flag and ``flag=False`` its negative form
+    (``adjust_q=False`` → ``--no-adjust-q``).
+    """
+    if not params:
+        return message
+    names = "|".join(re.escape(name) for name in sorted(params, key=len, reverse=True))
+    pattern = re.compile(
+        rf"(?<![\w'\"/.-])(?P<name>{names})(?![\w'\"/-]|\.\w)(?P<eq>=(?P<bool>(?:True|False)\b)?)?"
+    )
+
+    def replace(match: re.Match[str]) -> str:
+        name, param = match["name"], params[match["name"]]
+        if "_" not in name and match["eq"] is None:
+            return match.group(0)
+        if match["bool"] is not None and getattr(param, "is_flag", False):
+            return _spelling(param, match["bool"])
+        if match["eq"] is not None:
+            return _spelling(param, None) + " " + (match["bool"] or "")
+        return _spelling(param, None)
+
+    return pattern.sub(replace, message)
 
 
 def fail(message: str) -> typer.Exit:
@@ -45,14 +147,38 @@ def fail(message: str) -> typer.Exit:
 
 @contextlib.contextmanager
 def user_errors() -> Iterator[None]:
-    """Turn library errors into one line on standard error and exit code 2."""
+    """Turn library errors into one line on standard error and exit code 2.
+
+    The library's messages name Python arguments; the line printed names the running
+    command's options instead (:func:`to_option_spellings`), so the message tells a
+    command-line user what to type.
+    """
     try:
         yield
     except AxiscopeError as exc:
-        raise fail(str(exc)) from None
+        raise fail(to_option_spellings(str(exc), dict(_running))) from None
     except KeyboardInterrupt:
         typer.echo("error: interrupted; nothing was written", err=True)
         raise typer.Exit(code=130) from None
+
+
+# ------------------------------------------------------------------------ output helpers
+
+
+class _OneLine(logging.Formatter):
+    def format(self, record: logging.LogRecord) -> str:
+        return f"{record.levelname.lower()}: {to_option_spellings(record.getMessage(), dict(_running))}"
+
+
+def setup_logging(quiet: bool) -> None:
+    """Send the library's warnings to standard error, one line each, in option spellings."""
+    logger = logging.getLogger("axiscope")
+    logger.handlers.clear()
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(_OneLine())
+    logger.addHandler(handler)
+    logger.setLevel(logging.WARNING)
+    logger.propagate = False
 
 
 def say(message: str, quiet: bool) -> None:
@@ -63,7 +189,10 @@ def say(message: str, quiet: bool) -> None:
 
 @contextlib.contextmanager
 def progress_display(quiet: bool) -> Iterator[Callable[[str, int, int], None] | None]:
-    """A progress callback with one bar per pass on a terminal; None in pipelines or quiet."""
+    """A progress callback with one bar per pass on a terminal; None in pipelines or quiet.
+
+    rich is imported here, only when bars are drawn.
+    """
     if quiet or not sys.stderr.isatty():
         yield None
         return
@@ -93,6 +222,9 @@ def progress_display(quiet: bool) -> Iterator[Callable[[str, int, int], None] | 
 
     with bars:
         yield update
+
+
+# ---------------------------------------------------------------------------- entry point
 
 
 def main(argv: list[str] | None = None) -> int:

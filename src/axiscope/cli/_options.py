@@ -1,4 +1,4 @@
-"""Option declarations shared by several commands."""
+"""Option declarations shared by several commands (typer and the standard library only)."""
 
 from __future__ import annotations
 
@@ -36,13 +36,25 @@ class TableFormat(str, Enum):
     parquet = "parquet"
 
 
-InputPath = Annotated[Path, typer.Argument(help="Matrix file: .h5/.hdf5, Zarr directory, .npy, .csv/.tsv[.gz].")]
+InputPath = Annotated[Path, typer.Argument(
+    help="Matrix file: .h5/.hdf5, Zarr directory, .npy, .csv/.tsv/.txt (optionally .gz).")]
 OutDir = Annotated[Path, typer.Option("--out", "-o", help="Output directory (written atomically).")]
-Dataset = Annotated[str | None, typer.Option(help="2-D dataset inside an HDF5 file or Zarr store.")]
-SampleIds = Annotated[str | None, typer.Option(help="Dataset in the same file, or a one-column text file, with sample ids.")]
-FeatureIds = Annotated[str | None, typer.Option(help="Dataset in the same file, or a one-column text file, with feature ids.")]
+Dataset = Annotated[str | None, typer.Option(
+    help="2-D dataset inside an HDF5 file or Zarr store.", show_default="the only 2-D numeric one")]
+SampleIds = Annotated[str | None, typer.Option(
+    help="Dataset in the same file, or a one-column text file, with sample ids.",
+    show_default="a dataset named sample_ids, else sample_000001, ...")]
+FeatureIds = Annotated[str | None, typer.Option(
+    help="Dataset in the same file, or a one-column text file, with feature ids.",
+    show_default="a dataset named feature_ids, else feature_000001, ...")]
 SamplesInOpt = Annotated[SamplesIn, typer.Option(help="Whether samples are the file's rows or its columns.")]
-MemoryLimit = Annotated[str | None, typer.Option(help="Memory budget for data, e.g. 512MB or 4GB (default: half the RAM).")]
-Threads = Annotated[int | None, typer.Option(min=1, help="Blocks processed at once (default: number of cores).")]
+MemoryLimit = Annotated[str | None, typer.Option(
+    help="Memory budget for data, e.g. 512MB or 4GB.", show_default="half the RAM")]
+Threads = Annotated[int | None, typer.Option(
+    min=1, help="Blocks processed at once.", show_default="number of cores")]
 Overwrite = Annotated[bool, typer.Option(help="Replace an existing output directory.")]
-Quiet = Annotated[bool, typer.Option("--quiet", "-q", help="No progress bars or summary.")]
+Quiet = Annotated[bool, typer.Option("--quiet", "-q", help="No progress bars or summary.", show_default="off")]
+#: ``--format``: the writer of the command's tables takes ``parquet=format is TableFormat.parquet``
+#: and passes it on to every table it writes.
+FormatOpt = Annotated[TableFormat, typer.Option(
+    "--format", help="tsv: tab-separated tables; parquet: every table also as a Parquet file of the same name.")]

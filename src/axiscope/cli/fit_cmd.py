@@ -12,7 +12,7 @@ from ..core.preprocess import PreprocessSpec
 from ..explain.describe import interpret_fit, plan_interpretation, read_feature_list
 from ..fitting.run import fit
 from ..io.output import atomic_directory, check_target
-from ..io.readers import open_matrix
+from ..io import open_matrix
 from ._app import app, progress_display, say, setup_logging, user_errors
 from ._options import (
     Dataset,

@@ -9,7 +9,7 @@ import typer
 
 from ..core.memory import default_memory_limit, format_bytes, parse_memory
 from ..core.plan import plan_blocks
-from ..io.readers import describe_source, open_matrix
+from ..io import describe_source, open_matrix
 from ._app import app, setup_logging, user_errors
 from ._options import (
     Dataset,

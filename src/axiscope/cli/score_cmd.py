@@ -1,4 +1,7 @@
-"""``axiscope score``: place new samples on a saved model's axes and flag the ones it does not describe."""
+"""``axiscope score``: place new samples on a saved model's axes and flag the ones it does not describe.
+
+The library is imported inside the command, so that listing the commands stays fast.
+"""
 
 from __future__ import annotations
 
@@ -9,13 +12,11 @@ from typing import Annotated
 
 import typer
 
-from ..io.output import atomic_directory, check_target
-from ..scoring.score import score
 from ._app import app, progress_display, say, setup_logging, user_errors
 from ._options import (
     Dataset,
     FeatureIds,
-    InputPath,
+    FormatOpt,
     MemoryLimit,
     OutDir,
     Overwrite,
@@ -23,6 +24,7 @@ from ._options import (
     SampleIds,
     SamplesIn,
     SamplesInOpt,
+    TableFormat,
     Threads,
 )
 
@@ -36,20 +38,38 @@ class QLimit(str, Enum):
     box = "box"
 
 
-ModelDir = Annotated[Path, typer.Argument(help="Model folder (the model/ folder written by 'axiscope fit' or AxiscopePCA.save).")]
+ModelDir = Annotated[Path, typer.Argument(
+    metavar="MODEL", help="The result folder of 'axiscope fit', or its model/ subfolder.")]
+NewInput = Annotated[Path, typer.Argument(
+    metavar="INPUT", help="Matrix of new samples: .h5/.hdf5, Zarr directory, .npy, .csv/.tsv/.txt (optionally .gz).")]
 
 
-@app.command("score")
+@app.command("score", short_help="Place new samples on a fit's axes and flag those it does not describe.")
 def score_command(
-    model_dir: ModelDir,
-    input: InputPath,
+    model: ModelDir,
+    source: NewInput,
     out: OutDir,
-    fill_missing: Annotated[FillMissing | None, typer.Option(help="mean: model features absent from INPUT take their training mean (otherwise an error).")] = None,
-    max_missing_fraction: Annotated[float, typer.Option(min=0.0, max=1.0, help="Flag samples with a larger fraction of filled features.")] = 0.1,
-    confidence: Annotated[float, typer.Option(help="Confidence of the T² and Q limits used for flags (between 0.5 and 1; 0.95 is also reported).")] = 0.99,
-    correct_shrinkage: Annotated[bool, typer.Option("--correct-shrinkage", help="Undo the shrinkage of projected scores when features far outnumber training samples; T² then uses the corrected scores (without it T² under-flags in that regime).")] = False,
-    adjust_q: Annotated[bool, typer.Option(help="Raise the Q limits by the expected excess of new samples' residuals over the training ones (matters when features far outnumber training samples).")] = True,
-    q_limit: Annotated[QLimit, typer.Option(help="Q limit: Jackson-Mudholkar (theta1 exact, theta2 and theta3 estimated from the variance and skew of the training residuals; falls back to Box, with a warning, when they do not allow it) or Box's scaled chi-square.")] = QLimit.jackson_mudholkar,
+    fill_missing: Annotated[FillMissing | None, typer.Option(
+        help="mean: model features absent from INPUT, and NaN cells, take their training mean.",
+        show_default="none: an absent feature is an error")] = None,
+    max_missing_fraction: Annotated[float, typer.Option(
+        min=0.0, max=1.0, help="Flag samples with a larger fraction of filled features.")] = 0.1,
+    confidence: Annotated[float, typer.Option(
+        help="Confidence of the T² and Q limits used for flags (between 0.5 and 1; the limits at 0.95 "
+             "are also written).")] = 0.99,
+    correct_shrinkage: Annotated[bool, typer.Option(
+        "--correct-shrinkage", show_default="off",
+        help="Undo the shrinkage of projected scores when features far outnumber training samples; T² "
+             "then uses the corrected scores (without it T² under-flags in that regime).")] = False,
+    adjust_q: Annotated[bool, typer.Option(
+        help="Raise the Q limits by the expected excess of new samples' residuals over the training "
+             "ones (matters when features far outnumber training samples).")] = True,
+    q_method: Annotated[QLimit, typer.Option(
+        "--q-limit",
+        help="Q limit: Jackson-Mudholkar (theta1 exact, theta2 and theta3 estimated from the variance "
+             "and skew of the training residuals; falls back to Box, with a warning, when they do not "
+             "allow it) or Box's scaled chi-square.")] = QLimit.jackson_mudholkar,
+    format: FormatOpt = TableFormat.tsv,
     dataset: Dataset = None,
     sample_ids: SampleIds = None,
     feature_ids: FeatureIds = None,
@@ -59,30 +79,39 @@ def score_command(
     overwrite: Overwrite = False,
     quiet: Quiet = False,
 ) -> None:
-    """Score INPUT against the model in MODEL_DIR; write scores, diagnostics and a manifest to --out."""
+    """Place the samples of INPUT on the axes of MODEL and flag those the model does not describe.
+
+    Writes scores.tsv (the samples' scores), diagnostics.tsv (T², Q, their limits and a
+    flag per sample) and manifest.json to --out.
+    """
+    from ..io.output import atomic_directory, check_target
+    from ..scoring.score import score
+
     setup_logging(quiet)
     with user_errors():
         check_target(out, overwrite)
         with progress_display(quiet) as progress:
             result = score(
-                model_dir, input, fill_missing=fill_missing.value if fill_missing else None,
+                model, source, fill_missing=fill_missing.value if fill_missing else None,
                 max_missing_fraction=max_missing_fraction, confidence=confidence,
-                correct_shrinkage=correct_shrinkage, adjust_q=adjust_q, q_method=q_limit.value,
+                correct_shrinkage=correct_shrinkage, adjust_q=adjust_q, q_method=q_method.value,
                 memory_limit=memory_limit, threads=threads, progress=progress, dataset=dataset,
                 sample_ids=sample_ids, feature_ids=feature_ids, samples_in=samples_in.value,
             )
         with atomic_directory(out, overwrite=overwrite) as tmp:
-            result.write(tmp, command_line=sys.argv)
+            result.write(tmp, parquet=format is TableFormat.parquet, command_line=sys.argv)
     print_score_summary(result, out, quiet)
 
 
 def print_score_summary(result, out: Path, quiet: bool) -> None:
     """A few lines: samples scored, features matched, counts within and flagged, where files are."""
+    from ..errors import counted
+
     m = result.manifest
     c = m["counts"]
     say(
-        f"scored {c['samples']} samples on {m['model']['n_components']} axes "
-        f"({c['model_features_matched']} model features matched, {c['model_features_filled']} filled, "
+        f"scored {counted(c['samples'], 'sample')} on {counted(m['model']['n_components'], 'axis', 'axes')} "
+        f"({counted(c['model_features_matched'], 'model feature')} matched, {c['model_features_filled']} filled, "
         f"{c['extra_features_ignored']} extra ignored; {m['seconds']:.1f} s)",
         quiet,
     )

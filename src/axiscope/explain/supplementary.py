@@ -40,7 +40,7 @@ from ..core.memory import default_memory_limit, format_bytes, parse_memory
 from ..core.passes import PassRunner, Progress, array_from_blocks
 from ..core.preprocess import PreprocessSpec, first_nonfinite, transform_block
 from ..errors import InputError, OptionError
-from ..io.readers import MatrixSource
+from ..io import MatrixSource
 from ..model.statistics import FeatureAxisStatistics
 
 __all__ = ["supplementary_feature_statistics"]

@@ -34,7 +34,7 @@ from ..core.preprocess import (
     transform_block,
 )
 from ..errors import InputError, OptionError
-from ..io.readers import MatrixSource, opened
+from ..io import MatrixSource, opened
 from ..model.store import Model
 from ..model.training import (
     training_extras,  # diagnostics and shrinkage stored in the model

@@ -28,9 +28,9 @@ def check_target(out: Path, overwrite: bool) -> None:
     """Refuse an existing output directory unless ``overwrite``."""
     out = Path(out)
     if out.exists() and not overwrite:
-        raise OptionError(f"{out}: already exists; choose another --out or pass --overwrite")
+        raise OptionError(f"{out}: already exists; choose another directory or pass overwrite=True")
     if out.exists() and not out.is_dir():
-        raise OptionError(f"{out}: exists and is not a directory; choose another --out")
+        raise OptionError(f"{out}: exists and is not a directory; choose another directory")
 
 
 @contextlib.contextmanager

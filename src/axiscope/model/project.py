@@ -18,8 +18,8 @@ from ..core.memory import default_memory_limit, parse_memory
 from ..core.passes import PassRunner, Progress, array_from_blocks, blas_threads
 from ..core.plan import plan_blocks
 from ..core.preprocess import first_nonfinite, row_totals, transform_block
-from ..errors import InputError
-from ..io.readers import MatrixSource
+from ..errors import InputError, agree, counted
+from ..io import MatrixSource
 from .store import Model
 
 __all__ = ["FeatureMatch", "match_features", "Projection", "project"]
@@ -62,15 +62,17 @@ def match_features(model: Model, feature_ids: np.ndarray, *, where: str, fill_mi
     present = cols >= 0
     if not present.any():
         raise InputError(
-            f"{where}: none of the model's {len(wanted)} feature ids occur in this file "
-            f"(e.g. model {wanted[0]!r}, file {next(iter(position), '')!r}); check --feature-ids and --samples-in"
+            f"{where}: no feature id of the model occurs in this file (the model has "
+            f"{counted(len(wanted), 'feature')}, e.g. {wanted[0]!r}; the file has e.g. "
+            f"{next(iter(position), '')!r}); check feature_ids and samples_in"
         )
     missing = np.flatnonzero(~present)
     if missing.size and not fill_missing:
-        examples = ", ".join(wanted[i] for i in missing[:10])
+        examples = ", ".join(repr(wanted[i]) for i in missing[:10])
         raise InputError(
-            f"{where}: {missing.size} of the model's {len(wanted)} features are missing "
-            f"(first: {examples}); supply them or pass --fill-missing mean"
+            f"{where}: {missing.size} of the model's {counted(len(wanted), 'feature')} "
+            f"{agree(missing.size, 'is', 'are')} missing (first: {examples}); supply "
+            f"{agree(missing.size, 'it', 'them')} or pass fill_missing='mean'"
         )
     training_inputs = model.extras.get("input_feature_ids")
     if training_inputs is not None:
@@ -214,7 +216,7 @@ def project(
             r, c = bad
             raise InputError(
                 f"{where}: sample {ids[start + r]!r}, feature {model.feature_ids[present][c]!r} is NaN "
-                f"or infinite{hint}; fix the input or pass --fill-missing mean to use the training mean"
+                f"or infinite{hint}; fix the input or pass fill_missing='mean' to use the training mean"
             )
         s, q, nb = out
         scores[start : start + s.shape[0]] = s + absent_scores

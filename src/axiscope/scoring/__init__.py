@@ -1,5 +1,6 @@
 """Placing new samples on a saved model's axes, with out-of-model diagnostics."""
 
-from .score import FLAGS, Q_LIMIT_METHODS, ControlLimits, ScoreResult, score
+from .score import DIAGNOSTICS_COLUMNS, FLAGS, Q_LIMIT_METHODS, ControlLimits, ScoreResult, model_directory, score
 
-__all__ = ["FLAGS", "Q_LIMIT_METHODS", "ControlLimits", "ScoreResult", "score"]
+__all__ = ["DIAGNOSTICS_COLUMNS", "FLAGS", "Q_LIMIT_METHODS", "ControlLimits", "ScoreResult", "model_directory",
+           "score"]

@@ -1,7 +1,7 @@
 """Scoring new samples against a saved model, with out-of-model diagnostics.
 
 :func:`score` places a batch of new samples on a fitted model's axes in one streaming pass
-(:func:`axiscope.project.project`: features matched by id, the stored preprocessing
+(:func:`axiscope.model.project.project`: features matched by id, the stored preprocessing
 replayed) and computes two distances per sample:
 
 * Hotelling's T² inside the model's ``k``-dimensional space,
@@ -28,9 +28,9 @@ eigenvalue moment itself (total variance minus the variance of the ``k`` axes). 
 residuals ``Q``, through the identities that hold for a Gaussian sample
 (``Q = Σ_{j>k} λ_j z_j²``): ``var(Q) = 2θ2`` and ``E[(Q − θ1)³] = 8θ3``. For Gaussian data
 they are unbiased up to ``O(1/n)``; otherwise they fit the limit to the observed spread and
-skew of the residuals rather than to the eigenvalues. :func:`training_extras` stores
-``(θ1, θ2, θ3)`` and per-axis shrinkage factors (:mod:`axiscope.shrinkage`) in the model
-at fit time.
+skew of the residuals rather than to the eigenvalues.
+:func:`axiscope.model.training.training_extras` stores ``(θ1, θ2, θ3)`` and per-axis
+shrinkage factors (:mod:`axiscope.model.shrinkage`) in the model at fit time.
 """
 
 from __future__ import annotations
@@ -46,19 +46,19 @@ import pandas as pd
 from scipy import stats
 
 from .. import __version__
-from ..errors import ModelError, OptionError
-from ..io.readers import MatrixSource, opened
+from ..errors import ModelError, OptionError, agree, counted
+from ..io import MatrixSource, opened
+from ..model.project import project
 from ..model.store import MODEL_VERSION, Model, load_model
-
-# Note: axiscope.project imports axiscope.fit, which imports training_extras from here, so
-# project is imported inside score() rather than at the top of this module.
 
 __all__ = [
     "Q_LIMIT_METHODS",
     "FLAGS",
     "ControlLimits",
+    "DIAGNOSTICS_COLUMNS",
     "ScoreResult",
     "score",
+    "model_directory",
     "t2_limit",
     "q_limit_jackson_mudholkar",
     "q_limit_box",
@@ -72,6 +72,9 @@ Q_LIMIT_METHODS = ("jackson-mudholkar", "box")
 FLAGS = ("within", "t2", "q", "both", "missing")
 #: Confidence always reported besides the requested one.
 SECONDARY_CONFIDENCE = 0.95
+#: Columns of ``diagnostics.tsv``, in order.
+DIAGNOSTICS_COLUMNS = ("sample_id", "t2", "q", "flag", "missing_fraction", "confidence", "t2_limit",
+                       "q_limit", "t2_limit_95", "q_limit_95")
 #: Added to messages about non-finite values when the model's preprocessing has log1p.
 _LOG1P_HINT = (
     " (the model's preprocessing applies log1p, which turns values <= -1 into NaN or -inf: "
@@ -122,7 +125,7 @@ def q_limit_jackson_mudholkar(confidence: float, theta1: float, theta2: float, t
     ``h0 = 1 − 2θ1θ3/(3θ2²)``, ``c_α`` the standard normal quantile at ``confidence``.
     In the paper ``θ_r`` are the moments of the residual eigenvalues; the limits of
     :func:`score` pass ``θ1`` exact and ``θ2``, ``θ3`` estimated from the training
-    residuals (see :func:`training_extras`). NaN when the values do not allow it
+    residuals (see :func:`axiscope.model.training.training_extras`). NaN when the values do not allow it
     (``θ1, θ2 <= 0``, ``h0 <= 0`` or a non-positive bracket).
     """
     h0, base, reason = _jackson_mudholkar_base(confidence, theta1, theta2, theta3)
@@ -166,14 +169,15 @@ def residual_excess(model: Model) -> float:
 
     ``Σ_j λ_j(1 − f_j²) + 2θ1/n`` (+ ``2θ1/(n − 3)`` when features are scaled). First term: the training samples helped choose the axes,
     so the axes take up more of their variance (``λ_j``, population convention) than of a
-    new sample's (``f_j²·λ_j`` with ``f_j`` the shrinkage factor, :mod:`axiscope.shrinkage`);
+    new sample's (``f_j²·λ_j`` with ``f_j`` the shrinkage factor, :mod:`axiscope.model.shrinkage`);
     the difference is left in a new sample's residual. Second term: the training residuals
     are measured from the training mean with the ``1/n`` convention (expected
     ``(n−1)/n`` of the residual variance) while a new sample also carries the error of that
     mean (``+1/n``). Both vanish when samples far outnumber features.
     """
     f, moments = _require(model, "shrinkage_factor", "residual_moments",
-                          hint="refit it, or score without --correct-shrinkage and with --no-adjust-q")
+                          hint="refit it, or score without the corrections that need them: "
+                          "correct_shrinkage=False, adjust_q=False")
     theta1 = float(moments[0])
     excess = np.sum(model.variance * (1.0 - f**2)) + 2.0 * theta1 / model.n_samples
     if model.spec.scale != "none" and model.n_samples > 3:
@@ -257,8 +261,11 @@ class ScoreResult:
     scores : DataFrame
         ``sample_id``, ``PC1`` … ``PCk``.
     diagnostics : DataFrame
-        ``sample_id``, ``t2``, ``t2_limit``, ``q``, ``q_limit``, ``flag`` (one of
-        ``within``, ``t2``, ``q``, ``both``, ``missing``) and ``missing_fraction``.
+        One row per sample, the columns of :data:`DIAGNOSTICS_COLUMNS`: ``sample_id``,
+        ``t2`` and ``q``; ``flag`` (one of ``within``, ``t2``, ``q``, ``both``,
+        ``missing``) at the requested confidence; ``missing_fraction``; ``confidence``
+        and the limits ``t2_limit`` and ``q_limit`` at that confidence; ``t2_limit_95``
+        and ``q_limit_95``, the limits at 0.95.
     limits : dict of float to ControlLimits
         Limits at the requested confidence and at 0.95.
     q_method : str
@@ -286,17 +293,19 @@ class ScoreResult:
         d = self.diagnostics
         return ((d["t2"] > lim.t2) | (d["q"] > lim.q) | (d["flag"] == "missing")).to_numpy()
 
-    def write(self, directory: Path, *, command_line: list[str] | None = None) -> None:
+    def write(self, directory: Path, *, parquet: bool = False, command_line: list[str] | None = None) -> None:
         """Write ``scores.tsv``, ``diagnostics.tsv`` and ``manifest.json`` into ``directory``.
 
-        Callers wanting atomic output wrap this in :func:`axiscope.writers.atomic_directory`.
+        With ``parquet``, every table also gets a Parquet copy (``scores.parquet``,
+        ``diagnostics.parquet``). Callers wanting atomic output wrap this in
+        :func:`axiscope.io.output.atomic_directory`.
         """
         from ..io.output import write_json, write_table
 
         directory = Path(directory)
         directory.mkdir(parents=True, exist_ok=True)
-        write_table(self.scores, directory / "scores.tsv")
-        write_table(self.diagnostics, directory / "diagnostics.tsv")
+        write_table(self.scores, directory / "scores.tsv", parquet=parquet)
+        write_table(self.diagnostics, directory / "diagnostics.tsv", parquet=parquet)
         manifest = dict(self.manifest)
         if command_line is not None:
             manifest["command_line"] = command_line
@@ -306,12 +315,28 @@ class ScoreResult:
 # ----------------------------------------------------------------------------- scoring
 
 
+def model_directory(path: str | os.PathLike) -> Path:
+    """The model folder given either itself or the result folder of a fit that holds it.
+
+    A folder with a ``model.json`` is a model folder; a folder without one but with a
+    ``model/model.json`` is the result folder of ``axiscope fit``. Anything else is left
+    to :func:`axiscope.model.load_model` to report, except a folder that is neither.
+    """
+    path = Path(path)
+    if not path.is_dir() or (path / "model.json").exists():
+        return path
+    if (path / "model" / "model.json").exists():
+        return path / "model"
+    raise ModelError(f"{path}: neither a model folder (no model.json) nor the result folder of a fit "
+                     "(no model/model.json); pass the folder written by 'axiscope fit' or its model/ subfolder")
+
+
 def _fill_option(fill_missing) -> bool:
     if fill_missing is None or fill_missing is False:
         return False
     if fill_missing is True or fill_missing == "mean":
         return True
-    raise OptionError(f"--fill-missing {fill_missing!r} is not supported; use 'mean' or leave it out")
+    raise OptionError(f"fill_missing={fill_missing!r} is not supported; use 'mean' or leave it out")
 
 
 def score(
@@ -337,11 +362,12 @@ def score(
     Parameters
     ----------
     model : Model or path
-        A fitted model, or its directory (the ``model/`` folder written by ``axiscope fit``
-        or :meth:`axiscope.estimator.AxiscopePCA.save`); a directory is verified (format
-        version and checksums) by :func:`axiscope.model.load_model`.
+        A fitted model, or its folder: the result folder of ``axiscope fit`` (or of
+        :meth:`axiscope.fitting.FitResult.write`), its ``model/`` subfolder, or a folder
+        written by :meth:`axiscope.estimator.AxiscopePCA.save`. A folder is verified
+        (format version and checksums) by :func:`axiscope.model.load_model`.
     source : MatrixSource or path
-        The new samples. A path is opened with :func:`axiscope.readers.open_matrix` using
+        The new samples. A path is opened with :func:`axiscope.io.open_matrix` using
         ``dataset``, ``sample_ids``, ``feature_ids`` and ``samples_in``.
     fill_missing : {"mean"} or None, default=None
         Model features absent from the input (and NaN cells) take their training mean,
@@ -354,7 +380,7 @@ def score(
         are reported as well.
     correct_shrinkage : bool, default=False
         Divide the projected scores by the per-axis shrinkage factors stored in the model
-        (:mod:`axiscope.shrinkage`) before writing them and computing T². Worth it when
+        (:mod:`axiscope.model.shrinkage`) before writing them and computing T². Worth it when
         features far outnumber the training samples.
     adjust_q : bool, default=True
         Raise the Q limits by the expected excess of new samples' residuals over the
@@ -377,28 +403,29 @@ def score(
     One streaming pass over the input; memory is the model plus a window of blocks plus
     ``O(m·k)`` for the ``m`` scored samples.
     """
-    from ..model.project import project
-
     t0 = time.perf_counter()
     fill = _fill_option(fill_missing)
     if not 0.5 < confidence < 1:
-        raise OptionError(f"--confidence must be between 0.5 and 1 (exclusive), got {confidence}")
+        raise OptionError(f"confidence={confidence} is out of range; choose a value between 0.5 and 1 "
+                          "(both excluded)")
     if not 0 <= max_missing_fraction <= 1:
-        raise OptionError(f"--max-missing-fraction must be between 0 and 1, got {max_missing_fraction}")
+        raise OptionError(f"max_missing_fraction={max_missing_fraction} is out of range; choose a value "
+                          "between 0 and 1")
     if q_method not in Q_LIMIT_METHODS:
-        raise OptionError(f"--q-limit {q_method!r} is not one of {', '.join(Q_LIMIT_METHODS)}")
+        raise OptionError(f"q_method={q_method!r} is not valid; use one of: {', '.join(Q_LIMIT_METHODS)}")
 
     model_info: dict = {"format_version": MODEL_VERSION}
     if isinstance(model, Model):
         model_info.update(path=None, checksum=None)
     else:
-        model_dir = Path(model)
+        model_dir = model_directory(model)
         model = load_model(model_dir)
         model_info.update(path=str(model_dir), checksum=model.checksum(model_dir))
     levels = sorted({float(confidence), SECONDARY_CONFIDENCE}, reverse=True)
     factor = np.ones(model.n_components)
     if correct_shrinkage:
-        (factor,) = _require(model, "shrinkage_factor", hint="refit it, or score without --correct-shrinkage")
+        (factor,) = _require(model, "shrinkage_factor",
+                             hint="refit it, or score without the correction that needs it: correct_shrinkage=False")
     offset = residual_excess(model) if adjust_q else 0.0
     used_method, reason = choose_q_method(model, q_method, min(levels))
     if reason is not None:
@@ -435,16 +462,21 @@ def score(
     ids = np.asarray(proj.sample_ids, dtype=str)
     scores_df = pd.DataFrame(scores, columns=model.axis_names)
     scores_df.insert(0, "sample_id", ids)
+    secondary = limits[SECONDARY_CONFIDENCE]
     diagnostics = pd.DataFrame(
         {
             "sample_id": ids,
             "t2": t2,
-            "t2_limit": main.t2,
             "q": q,
-            "q_limit": main.q,
             "flag": flag,
             "missing_fraction": proj.missing_fraction,
-        }
+            "confidence": float(confidence),
+            "t2_limit": main.t2,
+            "q_limit": main.q,
+            "t2_limit_95": secondary.t2,
+            "q_limit_95": secondary.q,
+        },
+        columns=list(DIAGNOSTICS_COLUMNS),
     )
     result = ScoreResult(scores_df, diagnostics, limits, used_method)
     result.manifest = {
@@ -485,17 +517,21 @@ def score(
         "seconds": round(time.perf_counter() - t0, 3),
     }
     if proj.match.n_missing:
+        n_missing = proj.match.n_missing
         logger.warning(
-            "%d of the model's %d features are missing from %s and were filled with their training mean",
-            proj.match.n_missing, model.n_features, input_info["path"],
+            "%d of the model's %s %s missing from %s and %s filled with %s training mean",
+            n_missing, counted(model.n_features, "feature"), agree(n_missing, "is", "are"),
+            input_info["path"], agree(n_missing, "was", "were"), agree(n_missing, "its", "their"),
         )
     if model.spec.log1p:
         # cells filled because they were non-finite after the transforms (absent features excluded)
         filled_cells = np.rint(proj.missing_fraction * model.n_features) - proj.match.n_missing
         if np.any(filled_cells > 0):
+            n_cells, n_rows = int(filled_cells.sum()), int(np.sum(filled_cells > 0))
             logger.warning(
-                "%d cells of %d samples in %s were NaN or infinite after the stored transforms and "
-                "were filled with the training mean%s",
-                int(filled_cells.sum()), int(np.sum(filled_cells > 0)), input_info["path"], _LOG1P_HINT,
+                "%s in %s in %s %s NaN or infinite after the stored transforms and %s filled with the "
+                "training mean%s",
+                counted(n_cells, "cell"), counted(n_rows, "sample"), input_info["path"],
+                agree(n_cells, "was", "were"), agree(n_cells, "was", "were"), _LOG1P_HINT,
             )
     return result

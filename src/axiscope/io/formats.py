@@ -1,0 +1,99 @@
+"""Opening a matrix file: which format a path holds, and the reader that opens it.
+
+A new input format is a module beside this one with an ``open_<format>(path, *, dataset,
+sample_ids, feature_ids, samples_in) -> MatrixSource`` function, a line in
+:func:`detect_format` and an entry in :data:`OPENERS`.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import pathlib
+from collections.abc import Iterator
+from typing import Any
+
+from ..errors import InputError, OptionError
+from .hdf5 import SUFFIXES as HDF5_SUFFIXES
+from .hdf5 import open_hdf5
+from .npy import open_npy
+from .source import SAMPLES_IN, MatrixSource
+from .text import open_text, text_suffix
+from .zarr_store import MARKERS as ZARR_MARKERS
+from .zarr_store import is_zarr_dir, open_zarr
+
+__all__ = ["OPENERS", "SUPPORTED", "detect_format", "open_matrix", "opened"]
+
+#: The reader of each format.
+OPENERS = {"hdf5": open_hdf5, "zarr": open_zarr, "npy": open_npy, "text": open_text}
+#: What the readers accept, for messages.
+SUPPORTED = ".h5, .hdf5, .npy, .csv, .tsv, .txt (optionally .gz) or a Zarr directory"
+
+
+def detect_format(path: pathlib.Path) -> str:
+    """Format name from the path (extension, or Zarr markers for a directory)."""
+    if path.is_dir():
+        if is_zarr_dir(path):
+            return "zarr"
+        raise InputError(f"{path}: is a directory but not a Zarr store (no {', '.join(ZARR_MARKERS)}); "
+                         f"pass a file: {SUPPORTED}")
+    suffix = path.suffix.lower()
+    if suffix in HDF5_SUFFIXES:
+        return "hdf5"
+    if suffix == ".npy":
+        return "npy"
+    if text_suffix(path) is not None:
+        return "text"
+    raise InputError(f"{path.name}: unknown file type {suffix or '(no extension)'!r}; supported: {SUPPORTED}")
+
+
+def open_matrix(path: str | os.PathLike[str], *, dataset: str | None = None,
+                sample_ids: str | None = None, feature_ids: str | None = None,
+                samples_in: str = "rows") -> MatrixSource:
+    """Open a 2-D numeric matrix for block-wise reading.
+
+    Parameters
+    ----------
+    path : str or path-like
+        HDF5 file, Zarr directory, ``.npy`` file or delimited text file.
+    dataset : str, optional
+        Dataset/array inside an HDF5 file or Zarr store. Default: the only 2-D numeric
+        one (searched recursively).
+    sample_ids, feature_ids : str, optional
+        Name of a 1-D dataset in the same HDF5 file / Zarr store, or path of a one-column
+        text file. Default: datasets named ``sample_ids`` / ``feature_ids`` if present,
+        else generated ids. Not allowed for text input, whose ids come from the file.
+    samples_in : {"rows", "columns"}
+        Whether samples are the rows or the columns of the stored matrix.
+
+    Returns
+    -------
+    MatrixSource
+
+    Raises
+    ------
+    InputError
+        If the file is missing, unsupported, unreadable or inconsistent.
+    OptionError
+        If ``samples_in`` is invalid, or ``dataset``/ids options do not apply to the format.
+    """
+    if samples_in not in SAMPLES_IN:
+        raise OptionError(f"samples_in={samples_in!r} is not valid; use one of: {', '.join(SAMPLES_IN)}")
+    path = pathlib.Path(path)
+    if not path.exists():
+        raise InputError(f"{path}: no such file; check the path")
+    kind = detect_format(path)
+    if kind in ("npy", "text") and dataset is not None:
+        raise OptionError(f"{path.name}: dataset={dataset!r} only applies to HDF5 and Zarr input; leave it out")
+    return OPENERS[kind](path, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
+                         samples_in=samples_in)
+
+
+@contextlib.contextmanager
+def opened(source: MatrixSource | str | os.PathLike[str], **options: Any) -> Iterator[MatrixSource]:
+    """A source as given, or the matrix at a path opened with ``options`` and closed after."""
+    if isinstance(source, MatrixSource):
+        yield source
+        return
+    with open_matrix(source, **options) as src:
+        yield src
