@@ -212,7 +212,8 @@ def classify_column(name: str, values: pd.Series, *, declared: str | None = None
     ----------
     name : str
     values : Series of str or None, shape (n,)
-        The column as text, aligned to the samples that built the axes.
+        The column as text, aligned to the samples that built the axes (None or NaN where
+        missing).
     declared : {"numeric", "categorical"}, optional
         What the user declared; otherwise the column's content decides (see the module
         description).
@@ -225,7 +226,8 @@ def classify_column(name: str, values: pd.Series, *, declared: str | None = None
         A column declared numeric holds text, or a column is numeric except for a few values.
     """
     cells = values.to_numpy(dtype=object)
-    present = np.array([v is not None for v in cells], dtype=bool)
+    present = ~pd.isna(cells)
+    cells = np.where(present, cells, None)
     numbers = pd.to_numeric(pd.Series(cells, dtype=object), errors="coerce").to_numpy(dtype=np.float64)
     numeric = present & np.isfinite(numbers)
     bad = present & ~numeric

@@ -222,11 +222,17 @@ def annotation_shares(annotations: AnnotationSet, scores: np.ndarray,
             categories.append(category_deviations(annotations.categorical[name], F, axis_names,
                                                   annotation=name, technical=technical))
     shares = pd.DataFrame(rows, columns=SHARE_COLUMNS)
-    shares["p_adjusted"] = benjamini_hochberg(shares["p_value"].to_numpy(dtype=np.float64))
+    shares["p_adjusted"] = _adjusted(shares["p_value"])
     order = {a: i for i, a in enumerate(axis_names)}
     shares = shares.assign(_axis=shares["axis"].map(order)).sort_values(
         ["_axis", "r_squared"], ascending=[True, False], kind="stable").drop(columns="_axis")
     cats = (pd.concat(categories, ignore_index=True) if categories
             else pd.DataFrame(columns=CATEGORY_COLUMNS))
-    cats["p_adjusted"] = benjamini_hochberg(cats["p_value"].to_numpy(dtype=np.float64)) if len(cats) else []
+    cats["p_adjusted"] = _adjusted(cats["p_value"])
     return shares.reset_index(drop=True), cats
+
+
+def _adjusted(p_values: pd.Series) -> np.ndarray:
+    """Benjamini–Hochberg over all the rows of a table (none: nothing to adjust)."""
+    p = p_values.to_numpy(dtype=np.float64)
+    return benjamini_hochberg(p) if p.size else p
