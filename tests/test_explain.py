@@ -434,3 +434,19 @@ def test_explain_command_on_a_missing_directory(tmp_path):
     res = CliRunner().invoke(app, ["explain", str(tmp_path / "nothing"), "--out", str(tmp_path / "d")])
     assert res.exit_code == 2 and "no such result directory" in res.output
     assert not (tmp_path / "d").exists()
+
+
+def test_the_explain_command_module_loads_no_numerical_library():
+    # the command imports the library inside its function, so that --help stays fast
+    import subprocess
+    import sys
+
+    code = (
+        "import sys, types, importlib, axiscope\n"
+        "pkg = types.ModuleType('axiscope.cli'); pkg.__path__ = [axiscope.__path__[0] + '/cli']\n"
+        "sys.modules['axiscope.cli'] = pkg\n"
+        "importlib.import_module('axiscope.cli.explain_cmd')\n"
+        "print(','.join(m for m in ('numpy', 'pandas', 'scipy', 'dask') if m in sys.modules))\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == ""

@@ -8,3 +8,7 @@ record set and its entry point :func:`explain_axes`), :mod:`.pages` (the Markdow
 axis), :mod:`.legend` (the meaning of every column), :mod:`.saved` (reading a fit's result
 directory) and :mod:`.plan` (explaining at fit time).
 """
+
+from .cards import AxisCards, explain_axes
+
+__all__ = ["AxisCards", "explain_axes"]

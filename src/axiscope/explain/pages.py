@@ -120,7 +120,7 @@ def render_page(axis: str, records: pd.DataFrame, usage: pd.DataFrame, *, annota
     if len(reading):
         out.append(f"**Reading.** {markdown_text(reading['text'].iloc[0])}\n")
     for text in _section(records, "warning")["text"]:
-        out.append(f"> **Possible batch effect.** {markdown_text(text)}\n")
+        out.append(f"> **Possible batch effect.** {markdown_text(text)}.\n")
     used = ["variance", "variance_ratio", "cumulative_ratio", "above_noise"]
     out.append("## How much it carries\n")
     out.append(_carries(_section(records, "carries")))
