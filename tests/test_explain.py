@@ -398,7 +398,7 @@ def test_annotations_are_treated_on_the_samples_that_built_the_axes():
     plan = plan_explanation(src, annotations=table, supplementary_samples_column="held")
     assert plan.active is not None and (~plan.active).sum() == 8
     r = fit(src, n_components=2, method="exact", active=plan.active)
-    cards = explain_fit(plan, r, src, threads=1)
+    cards = explain_fit(plan, r, src, threads=1, samples_per_list=40)
     use = cards.annotation_use.set_index("annotation")
     assert "held" not in use.index
     assert use.loc["site", "n_categories"] == 1 and use.loc["site", "note"].startswith("skipped: a single category")
@@ -406,7 +406,9 @@ def test_annotations_are_treated_on_the_samples_that_built_the_axes():
     assert set(cards.lines_up.annotation) == {"depth", "group"}
     assert cards.sample_statistics.supplementary.sum() == 8
     # supplementary samples sit in the lists like the others, flagged
-    assert set(cards.ends.sample_id) | set(cards.off_axis.sample_id) <= set(ids)
+    for (axis, side), rows in cards.ends.groupby(["axis", "side"]):
+        assert len(rows) == 40 and set(rows[rows.supplementary].sample_id) == set(ids[sup])
+        assert rows[rows.supplementary].contribution_pct.isna().all()
     # their squared cosines add up to at most 1 over all axes of the full space
     assert (cards.sample_statistics.represented_share <= 1 + 1e-12).all()
 
