@@ -16,6 +16,7 @@ import pytest
 from scipy import stats as sps
 
 from axiscope import PreprocessSpec, fit, open_matrix
+from axiscope.core.preprocess import SCALES
 from axiscope.errors import InputError, OptionError
 from axiscope.explain.supplementary import supplementary_feature_statistics
 from axiscope.io import array_source
@@ -24,9 +25,11 @@ from axiscope.model.statistics import (
     FeatureAxisStatistics,
     feature_statistics,
     read_feature_statistics,
-    sample_contributions,
-    sample_quality,
+    sample_statistics,
 )
+
+#: The genotype-dosage scaling, whatever its option name (the only scale besides unit and none).
+GENOTYPE_SCALE = next(s for s in SCALES if s not in ("unit", "none"))
 
 
 def _planted(n, p, seed=0, rank=3):
@@ -58,10 +61,10 @@ def test_identities_exact_full_rank():
     X = _planted(9, 25, seed=1)
     r = fit(array_source(X), n_components=8, method="exact")
     names = r.axis_names
-    contrib = sample_contributions(r.sample_ids, r.scores, r.model.singular_values, names)
-    np.testing.assert_allclose(contrib[[f"contribution_{a}" for a in names]].sum(axis=0), 100.0, rtol=1e-10)
-    q = sample_quality(r.sample_ids, r.scores, r.sample_sq_dist, names)
-    np.testing.assert_allclose(q["quality"], 1.0, rtol=1e-8)
+    q = sample_statistics(r.sample_ids, r.scores, r.sample_sq_dist, names, singular_values=r.model.singular_values)
+    np.testing.assert_allclose(q[[f"contribution_pct_{a}" for a in names]].sum(axis=0), 100.0, rtol=1e-10)
+    np.testing.assert_allclose(q["represented_share"], 1.0, rtol=1e-8)
+    assert not q["supplementary"].any()
     fs = feature_statistics(r.model)
     np.testing.assert_allclose(fs.contribution.sum(axis=0), 100.0, rtol=1e-10)
     np.testing.assert_allclose(fs.sq_cosine.sum(axis=1), 1.0, rtol=1e-8)
@@ -76,13 +79,13 @@ def test_identities_exact_full_rank():
         PreprocessSpec(scale="none"),
         PreprocessSpec(scale="none", center=False),
         PreprocessSpec(normalize_total=1e4, log1p=True),
-        PreprocessSpec(scale="binomial"),
+        PreprocessSpec(scale=GENOTYPE_SCALE),
     ],
-    ids=["unit", "none", "uncentred", "log-cpm", "binomial"],
+    ids=["unit", "none", "uncentred", "log-cpm", "genotype"],
 )
 def test_closed_form_correlations_match_direct_computation(spec):
     rng = np.random.default_rng(3)
-    if spec.scale == "binomial":
+    if spec.scale == GENOTYPE_SCALE:
         freq = rng.uniform(0.1, 0.9, 40)
         X = rng.binomial(2, freq, (60, 40)).astype(np.float64)
         X[:30, :8] = rng.binomial(2, 0.95, (30, 8))
@@ -184,8 +187,9 @@ def test_supplementary_samples_reproduce_active_scores_and_leave_axes_unchanged(
     np.testing.assert_allclose(np.abs(r.model.components), np.abs(alone.model.components), atol=1e-10)
     np.testing.assert_allclose(r.model.singular_values, alone.model.singular_values, rtol=1e-12)
     sup = project(r.model, array_source(X), rows=~active, threads=1)
-    q = sample_quality(sup.sample_ids, sup.scores, sup.sq_dist, r.axis_names, status="supplementary")
-    assert ((q.quality > 0) & (q.quality <= 1 + 1e-12)).all()
+    q = sample_statistics(sup.sample_ids, sup.scores, sup.sq_dist, r.axis_names, supplementary=True)
+    assert ((q.represented_share > 0) & (q.represented_share <= 1 + 1e-12)).all()
+    assert q["supplementary"].all() and q.filter(like="contribution_pct_").isna().all().all()
 
 
 def test_feature_statistics_for_a_million_features_stay_under_budget(tmp_path):
@@ -238,10 +242,37 @@ def test_feature_statistics_io_errors_are_typed(tmp_path):
     # the p-values read back equal those of the original (t-test on n − 2 df)
     np.testing.assert_allclose(back.p_values(), fs.p_values(), rtol=1e-6)
     path = tmp_path / "feature_statistics.tsv"
-    path.write_text("feature_id\tstatus\tloading_PC1\nf0\tactive\n1\t2\t3\t4\t5\n")
+    path.write_text("feature_id\tsupplementary\tloading_PC1\nf0\tfalse\n1\t2\t3\t4\t5\n")
     with pytest.raises(InputError, match="feature_statistics.tsv.*restore the file"):
         read_feature_statistics(tmp_path, n_samples=30)
     other = FeatureAxisStatistics(fs.feature_ids, fs.supplementary, fs.loading, fs.correlation,
                                   fs.contribution, fs.sq_cosine, 31, fs.axis_names)
     with pytest.raises(OptionError, match="cannot be combined"):
         fs.concat(other)
+
+
+WEIRD_IDS = ["plain", "pipe|id", "tab\tid", "new\nline", "carriage\rreturn", 'say "hi"', "<script>alert(1)</script>",
+             "#hash", " padded ", "comma,id"]
+
+
+def test_feature_statistics_table_keeps_weird_ids_whole(tmp_path):
+    # the ids come back exactly through pandas (reference: pandas.read_csv) and Python's csv
+    # module (reference: csv.reader), whatever they hold; the Parquet copy too (pyarrow)
+    import csv
+
+    import pandas as pd
+
+    X = _planted(40, len(WEIRD_IDS), seed=17)
+    r = fit(array_source(X, feature_ids=WEIRD_IDS), n_components=2, method="exact")
+    fs = feature_statistics(r.model)
+    path = fs.write(tmp_path, parquet=True)
+    back = read_feature_statistics(tmp_path, n_samples=r.model.n_samples)
+    assert list(back.feature_ids) == list(fs.feature_ids)
+    np.testing.assert_allclose(back.correlation, fs.correlation, rtol=1e-7)
+    with path.open(newline="", encoding="utf-8") as handle:
+        rows = list(csv.reader(handle, delimiter="\t"))
+    assert [row[0] for row in rows[1:]] == list(fs.feature_ids)
+    assert {len(row) for row in rows} == {len(rows[0])}
+    assert rows[0][:2] == ["feature_id", "supplementary"] and "contribution_pct_PC1" in rows[0]
+    parquet = pd.read_parquet(path.with_suffix(".parquet"))
+    assert list(parquet.feature_id) == list(fs.feature_ids)

@@ -12,7 +12,6 @@ import typer
 
 from ..core.preprocess import PreprocessSpec
 from ..demo.layout import DEMO_FIT_OPTIONS, DEMO_TECHNICAL, make_demo_data
-from ..explain.describe import describe
 from ..fitting.run import fit
 from ..io.output import atomic_directory, check_target
 from ..scoring.score import score
@@ -42,20 +41,22 @@ def demo_command(
                 result = fit(data["reference"], n_components=components,
                              preprocess=PreprocessSpec(**DEMO_FIT_OPTIONS), threads=threads,
                              progress=progress)
-                description = describe(result, annotations=data["reference_annotations"],
-                                       technical=DEMO_TECHNICAL, exclude_columns=["corrupted"], top=5)
+                from ..explain.cards import explain_axes
+
+                cards = explain_axes(result, annotations=data["reference_annotations"],
+                                     technical=DEMO_TECHNICAL, ignore=["corrupted"], top=5)
                 result.write(tmp / "fit", command_line=sys.argv)
-                description.write(tmp / "fit")
+                cards.write(tmp / "fit")
                 scored = score(tmp / "fit" / "model", data["new"], threads=threads, progress=progress)
                 scored.write(tmp / "score", command_line=sys.argv)
             corrupted = pd.read_csv(data["new_annotations"], sep="\t")["corrupted"].to_numpy(dtype=bool)
     print_fit_summary(result, out / "fit", quiet)
-    for axis in ("PC1", "PC2", "PC3"):
-        say(f"  {description.summaries[axis]}", quiet)
-        genes = description.features[description.features.axis == axis]
-        up = ", ".join(genes[genes.direction == "positive"].feature_id.head(5))
-        down = ", ".join(genes[genes.direction == "negative"].feature_id.head(5))
-        say(f"    genes most correlated: + {up}; − {down}", quiet)
+    for axis in cards.axis_names[:3]:
+        say(f"  {cards.reading(axis)}", quiet)
+        genes = cards.built_from[cards.built_from["axis"] == axis]
+        up = ", ".join(genes[genes["side"] == "positive"]["feature_id"].head(5))
+        down = ", ".join(genes[genes["side"] == "negative"]["feature_id"].head(5))
+        say(f"    genes with the largest loadings: + {up}; − {down}", quiet)
     flags = scored.diagnostics["flag"]
     flagged = (flags != "within").to_numpy()
     say(

@@ -9,7 +9,6 @@ from typing import Annotated
 import typer
 
 from ..core.preprocess import PreprocessSpec
-from ..explain.describe import interpret_fit, plan_interpretation, read_feature_list
 from ..fitting.run import fit
 from ..io.output import atomic_directory, check_target
 from ..io import open_matrix
@@ -31,14 +30,15 @@ from ._options import (
     TableFormat,
     Threads,
 )
-from .describe_cmd import (
-    AllowMissingAnnotations,
+from .explain_cmd import (
+    AllowMissing,
     AnnotationsFile,
     Categorical,
     IdColumn,
-    Quantitative,
+    Ignore,
+    Numeric,
     Technical,
-    print_axis_summaries,
+    print_axis_readings,
 )
 
 
@@ -79,15 +79,16 @@ def fit_command(
     annotations: AnnotationsFile = None,
     id_column: IdColumn = "sample_id",
     categorical: Categorical = None,
-    quantitative: Quantitative = None,
+    numeric: Numeric = None,
     technical: Technical = None,
+    ignore: Ignore = None,
     supplementary_features: Annotated[Path | None, typer.Option(help="Text file with one feature id per line: left out of the axes and reported as supplementary.")] = None,
     supplementary_samples_column: Annotated[str | None, typer.Option(help="true/false annotation column: true rows are left out of the fit and projected afterwards.")] = None,
-    allow_missing_annotations: AllowMissingAnnotations = False,
+    allow_missing: AllowMissing = False,
     overwrite: Overwrite = False,
     quiet: Quiet = False,
 ) -> None:
-    """Fit principal axes to INPUT and write tables, the model, a manifest and the axis descriptions to --out."""
+    """Fit principal axes to INPUT and write tables, the model, a manifest and the axis cards to --out."""
     setup_logging(quiet)
     with user_errors():
         check_target(out, overwrite)
@@ -97,13 +98,14 @@ def fit_command(
         )
         with open_matrix(input, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
                          samples_in=samples_in.value) as src:
-            prepared = plan_interpretation(
-                src, annotations=annotations, id_column=id_column, categorical=categorical,
-                quantitative=quantitative, technical=technical,
+            from ..explain.plan import explain_fit, plan_explanation, read_feature_list
+
+            prepared = plan_explanation(
+                src, annotations=annotations, id_column=id_column, categorical=categorical, numeric=numeric,
+                technical=technical, ignore=ignore,
                 supplementary_features=read_feature_list(supplementary_features, src.feature_ids)
                 if supplementary_features else None,
-                supplementary_samples_column=supplementary_samples_column,
-                allow_missing=allow_missing_annotations,
+                supplementary_samples_column=supplementary_samples_column, allow_missing=allow_missing,
             )
             with progress_display(quiet) as progress:
                 result = fit(
@@ -112,13 +114,13 @@ def fit_command(
                     seed=seed, memory_limit=memory_limit, threads=threads, scratch=scratch,
                     progress=progress, active=prepared.active, exclude_features=prepared.exclude,
                 )
-                description = interpret_fit(prepared, result, src, top=top, memory_limit=memory_limit,
-                                            threads=threads, progress=progress)
+                cards = explain_fit(prepared, result, src, top=top, memory_limit=memory_limit,
+                                    threads=threads, progress=progress)
         with atomic_directory(out, overwrite=overwrite) as tmp:
             result.write(tmp, top=top, parquet=format is TableFormat.parquet, command_line=sys.argv)
-            description.write(tmp)
+            cards.write(tmp, parquet=format is TableFormat.parquet)
     print_fit_summary(result, out, quiet)
-    print_axis_summaries(description, quiet)
+    print_axis_readings(cards, quiet)
 
 
 def print_fit_summary(result, out: Path, quiet: bool) -> None:

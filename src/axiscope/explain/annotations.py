@@ -1,20 +1,20 @@
-"""Sample annotations: reading, alignment by sample id, and their association with the axes.
+"""Sample annotations: reading, alignment by sample id, and how each column is treated.
 
-Annotations are passive (supplementary) variables: they never take part in building the
-axes. Numeric columns are quantitative unless declared categorical; text columns (and
-true/false columns) are qualitative. For each quantitative annotation and axis the
-correlation with the scores is reported with a two-sided t-test on ``n − 2`` degrees of
-freedom; for each qualitative annotation, the barycentre (mean score), count and test
-value of every category, and the correlation ratio η² with its F-test.
+Annotations never take part in building the axes; :mod:`axiscope.explain.associations`
+measures how much of each axis they account for. Each column is treated either as
+**numeric** (its values are numbers) or as **categorical** (its values name groups), and
+the decision is written down for the user in :attr:`AnnotationSet.usage`:
 
-References
-----------
-Lebart, L., Morineau, A. & Piron, M. (1995). *Statistique exploratoire multidimensionnelle*.
-Dunod, Paris (test values, section on supplementary elements).
+- text columns and true/false columns are categorical;
+- numeric columns are numeric, except columns of whole numbers with few distinct values
+  (class labels such as 0–9, coded groups), which are categorical: a correlation with a
+  label code means nothing. Name such a column in ``numeric`` to treat it as numbers, or a
+  numeric column in ``categorical`` to treat its values as groups.
 
-Benjamini, Y. & Hochberg, Y. (1995). Controlling the false discovery rate: a practical and
-powerful approach to multiple testing. *J. R. Stat. Soc. B* 57(1), 289–300.
-doi:10.1111/j.2517-6161.1995.tb02031.x
+Loading happens in small steps: read the table as text (:func:`read_annotations`), check
+the declared column names, align the rows to the samples (:func:`align_annotations`), keep
+the samples that built the axes, then decide how each column is treated
+(:func:`classify_column`).
 """
 
 from __future__ import annotations
@@ -26,26 +26,20 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-from scipy import stats as sps
 
 from ..errors import InputError, OptionError
-from ..model.statistics import benjamini_hochberg, correlation_p_value
 
 __all__ = [
     "MISSING_TOKENS",
+    "MAX_CODE_CATEGORIES",
     "AnnotationSet",
+    "ColumnTreatment",
     "read_annotations",
     "align_annotations",
     "load_annotations",
+    "classify_column",
     "split_names",
     "sample_flags",
-    "correlation_test",
-    "category_test_value",
-    "correlation_ratio",
-    "benjamini_hochberg",
-    "quantitative_associations",
-    "qualitative_associations",
-    "category_statistics",
 ]
 
 logger = logging.getLogger(__name__)
@@ -53,9 +47,17 @@ logger = logging.getLogger(__name__)
 #: Cell values read as missing in an annotation table.
 MISSING_TOKENS = frozenset({"", "NA", "N/A", "NaN", "nan", "null", "NULL", "None"})
 #: A text column whose non-missing values are numbers in at least this fraction is taken
-#: for a quantitative column with typos (common practice, no source).
+#: for a numeric column with typos (common practice, no source).
 _MOSTLY_NUMERIC = 0.9
-_TRUE = frozenset({"true"})
+#: A column of whole numbers with at most this many distinct values, each seen at least
+#: twice on average, holds codes (class labels 0–9, coded groups) and is treated as
+#: categorical (common practice, no source).
+MAX_CODE_CATEGORIES = 12
+#: Categorical columns with more distinct values than this, all different, look like ids.
+_ID_LIKE_MIN = 10
+
+_USAGE_COLUMNS = ["annotation", "treated_as", "technical", "used", "n_used", "n_missing",
+                  "n_categories", "note"]
 
 
 def split_names(values: Iterable[str] | str | None) -> list[str]:
@@ -71,6 +73,9 @@ def split_names(values: Iterable[str] | str | None) -> list[str]:
             if name and name not in out:
                 out.append(name)
     return out
+
+
+# --------------------------------------------------------------------------- reading
 
 
 def read_annotations(path: str | Path, *, id_column: str = "sample_id") -> pd.DataFrame:
@@ -91,7 +96,7 @@ def read_annotations(path: str | Path, *, id_column: str = "sample_id") -> pd.Da
     """
     path = Path(path)
     if not path.is_file():
-        raise InputError(f"{path}: no such annotation file; check --annotations")
+        raise InputError(f"{path}: no such annotation file; check annotations")
     try:
         table = pd.read_csv(path, sep="\t", dtype=str, keep_default_na=False, na_filter=False)
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
@@ -99,23 +104,47 @@ def read_annotations(path: str | Path, *, id_column: str = "sample_id") -> pd.Da
                          "save it as TSV with a header line") from exc
     table.columns = [str(c).strip() for c in table.columns]
     if id_column not in table.columns:
-        shown = ", ".join(repr(c) for c in list(table.columns)[:10])
-        raise InputError(f"{path}: no column {id_column!r} (columns: {shown}); "
-                         "name the sample-id column with --id-column")
+        raise InputError(f"{path}: no column {id_column!r} (columns: {_shown(table.columns)}); "
+                         "name the sample-id column with id_column")
     ids = table[id_column].str.strip()
     empty = np.flatnonzero(ids.isin(MISSING_TOKENS).to_numpy())
     if empty.size:
         raise InputError(f"{path}: {empty.size} rows have an empty {id_column!r} (first on line "
                          f"{empty[0] + 2}); give every row a sample id")
-    duplicated = ids[ids.duplicated(keep=False)].unique()
-    if duplicated.size:
-        examples = ", ".join(repr(x) for x in duplicated[:5])
-        raise InputError(f"{path}: {duplicated.size} sample ids occur more than once in column "
-                         f"{id_column!r} (e.g. {examples}); keep one row per sample")
+    _refuse_duplicates(pd.Index(ids.to_numpy(dtype=object)), str(path), f" in column {id_column!r}")
     table = table.drop(columns=[id_column])
     table.index = pd.Index(ids.to_numpy(dtype=object), name=id_column)
     table = table.apply(lambda s: s.str.strip())
-    return table.mask(table.isin(MISSING_TOKENS), None)
+    return table.astype(object).mask(table.isin(MISSING_TOKENS), None)
+
+
+def _frame_as_text(frame: pd.DataFrame, id_column: str, where: str) -> pd.DataFrame:
+    """A caller's DataFrame in the form :func:`read_annotations` returns."""
+    frame = frame.copy()
+    if id_column in frame.columns:
+        frame = frame.set_index(id_column)
+    elif frame.index.name != id_column:
+        raise InputError(f"{where}: no column {id_column!r} (columns: {_shown(frame.columns)}); "
+                         "name the sample-id column with id_column")
+    _refuse_duplicates(frame.index, where, "")
+    frame.index = pd.Index([str(i) for i in frame.index], dtype=object, name=id_column)
+    frame.columns = [str(c).strip() for c in frame.columns]
+
+    def cell(value):
+        if value is None or (isinstance(value, float) and np.isnan(value)) or value is pd.NA:
+            return None
+        text = str(value).strip()
+        return None if text in MISSING_TOKENS else text
+
+    return frame.astype(object).apply(lambda s: s.map(cell)).astype(object)
+
+
+def _refuse_duplicates(index: pd.Index, where: str, column_text: str) -> None:
+    duplicated = index[index.duplicated(keep=False)].unique()
+    if len(duplicated):
+        examples = ", ".join(repr(x) for x in duplicated[:5])
+        raise InputError(f"{where}: {len(duplicated)} sample ids occur more than once{column_text} "
+                         f"(e.g. {examples}); keep one row per sample")
 
 
 def align_annotations(table: pd.DataFrame, sample_ids: Sequence[str], *, where: str = "annotations",
@@ -140,46 +169,165 @@ def align_annotations(table: pd.DataFrame, sample_ids: Sequence[str], *, where: 
                          f"(e.g. {', '.join(repr(x) for x in extra[:5])})")
         message = f"{where}: " + "; ".join(parts)
         if not allow_missing:
-            raise InputError(message + "; fix the ids (see --id-column) or pass --allow-missing-annotations")
+            raise InputError(message + "; fix the ids (see id_column) or set allow_missing")
         logger.warning("%s; unmatched rows are dropped and samples without a row count as missing", message)
     return table.reindex(ids)
 
 
+# --------------------------------------------------------------------------- treating columns
+
+
+@dataclass
+class ColumnTreatment:
+    """How one annotation column is treated.
+
+    Attributes
+    ----------
+    treated_as : {"numeric", "categorical"}
+    values : ndarray or None
+        float64 with NaN for missing values (numeric), or object with ``None`` for missing
+        values (categorical); None when the column is not used.
+    n_used : int
+        Samples with a value.
+    n_categories : int or None
+    note : str
+        Why the column is treated this way or skipped, in words for the user ("" when
+        nothing needs saying).
+    used : bool
+    """
+
+    treated_as: str
+    values: np.ndarray | None
+    n_used: int
+    n_categories: int | None
+    note: str
+    used: bool
+
+
+def classify_column(name: str, values: pd.Series, *, declared: str | None = None,
+                    where: str = "annotations") -> ColumnTreatment:
+    """Decide whether one annotation column is numeric or categorical, and whether it is usable.
+
+    Parameters
+    ----------
+    name : str
+    values : Series of str or None, shape (n,)
+        The column as text, aligned to the samples that built the axes (None or NaN where
+        missing).
+    declared : {"numeric", "categorical"}, optional
+        What the user declared; otherwise the column's content decides (see the module
+        description).
+    where : str
+        Name of the table in messages.
+
+    Raises
+    ------
+    InputError
+        A column declared numeric holds text, or a column is numeric except for a few values.
+    """
+    cells = values.to_numpy(dtype=object)
+    present = ~pd.isna(cells)
+    cells = np.where(present, cells, None)
+    numbers = pd.to_numeric(pd.Series(cells, dtype=object), errors="coerce").to_numpy(dtype=np.float64)
+    numeric = present & np.isfinite(numbers)
+    bad = present & ~numeric
+    n_used = int(present.sum())
+    if declared == "numeric" and bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        raise InputError(f"{where}: column {name!r} is declared numeric but sample {values.index[i]!r} has "
+                         f"{cells[i]!r} ({int(bad.sum())} values are not numbers); fix them or leave the cells empty")
+    if declared is None and n_used and numeric.any() and bad.any() and numeric.sum() >= _MOSTLY_NUMERIC * n_used:
+        i = int(np.flatnonzero(bad)[0])
+        raise InputError(f"{where}: column {name!r} is numeric except for {int(bad.sum())} values (e.g. sample "
+                         f"{values.index[i]!r}: {cells[i]!r}); fix them, leave missing cells empty, or name "
+                         f"the column in categorical")
+    all_numbers = n_used > 0 and not bad.any()
+    if declared == "numeric" or (declared is None and all_numbers):
+        return _numeric_or_codes(name, np.where(numeric, numbers, np.nan), n_used, declared == "numeric")
+    return _categorical(cells, present, n_used)
+
+
+def _numeric_or_codes(name: str, x: np.ndarray, n_used: int, declared: bool) -> ColumnTreatment:
+    """A column of numbers: numeric, unless it holds a few whole-number codes (and was not declared)."""
+    finite = x[np.isfinite(x)]
+    levels = np.unique(finite)
+    whole = bool(finite.size) and bool(np.all(finite == np.round(finite)))
+    if not declared and whole and 2 <= levels.size <= MAX_CODE_CATEGORIES and levels.size <= n_used / 2:
+        labels = np.array([None if not np.isfinite(v) else _code_label(v) for v in x], dtype=object)
+        note = (f"whole numbers with {levels.size} distinct values ({_code_label(levels[0])}–"
+                f"{_code_label(levels[-1])}), taken for category codes; name {name!r} in numeric to treat "
+                "them as numbers")
+        treatment = _categorical(labels, np.isfinite(x), n_used)
+        if treatment.used:
+            treatment.note = note
+        return treatment
+    note = ""
+    if whole and not declared:
+        note = (f"whole numbers with {levels.size} distinct values, treated as numbers; name {name!r} in "
+                "categorical if they are codes")
+    if n_used < 3:
+        return ColumnTreatment("numeric", None, n_used, None, f"skipped: only {n_used} values", False)
+    if levels.size < 2:
+        return ColumnTreatment("numeric", None, n_used, None, "skipped: constant", False)
+    return ColumnTreatment("numeric", x, n_used, None, note, True)
+
+
+def _categorical(cells: np.ndarray, present: np.ndarray, n_used: int) -> ColumnTreatment:
+    labels = np.array([str(v) if ok else None for v, ok in zip(cells, present)], dtype=object)
+    levels = pd.unique(labels[present])
+    if _is_boolean(levels):
+        labels = np.array([None if v is None else v.lower() for v in labels], dtype=object)
+        levels = pd.unique(labels[present])
+    n_levels = len(levels)
+    if n_levels < 2:
+        note = f"skipped: a single category ({levels[0]!r})" if n_levels == 1 else "skipped: no values"
+        return ColumnTreatment("categorical", None, n_used, n_levels, note, False)
+    if n_levels == n_used and n_used > _ID_LIKE_MIN:
+        return ColumnTreatment("categorical", None, n_used, n_levels,
+                               "skipped: every value differs (an identifier?)", False)
+    return ColumnTreatment("categorical", labels, n_used, n_levels, "", True)
+
+
+def _code_label(value: float) -> str:
+    return str(int(value))
+
+
 @dataclass
 class AnnotationSet:
-    """Annotations aligned to samples, split into quantitative and qualitative variables.
+    """Annotations aligned to samples, each column treated as numeric or categorical.
 
     Attributes
     ----------
     sample_ids : ndarray of str, shape (n,)
-        The (active) samples the annotations are aligned to.
-    quantitative : dict of str to ndarray of float, shape (n,)
+        The samples the annotations are aligned to (those that built the axes).
+    numeric : dict of str to ndarray of float, shape (n,)
         NaN where the value is missing.
-    qualitative : dict of str to ndarray of object, shape (n,)
+    categorical : dict of str to ndarray of object, shape (n,)
         ``None`` where the value is missing.
     technical : list of str
-        Columns marked as technical (processing batch, depth, quality ...).
-    variables : DataFrame
-        One row per column: kind, number of values used and missing, technical flag, and
-        the status (``used`` or why it was skipped).
+        Columns marked as technical (processing batch, run, depth, quality ...).
+    usage : DataFrame
+        One row per column: ``annotation``, ``treated_as``, ``technical``, ``used``,
+        ``n_used``, ``n_missing``, ``n_categories`` and a ``note`` saying why it was skipped or
+        how to change its treatment.
     source : str
     """
 
     sample_ids: np.ndarray
-    quantitative: dict[str, np.ndarray]
-    qualitative: dict[str, np.ndarray]
+    numeric: dict[str, np.ndarray]
+    categorical: dict[str, np.ndarray]
     technical: list[str]
-    variables: pd.DataFrame
+    usage: pd.DataFrame
     source: str = "annotations"
 
     def subset(self, rows: np.ndarray) -> "AnnotationSet":
         """The same annotations for a subset of samples (bool mask or indices)."""
         return AnnotationSet(
             self.sample_ids[rows],
-            {k: v[rows] for k, v in self.quantitative.items()},
-            {k: v[rows] for k, v in self.qualitative.items()},
+            {k: v[rows] for k, v in self.numeric.items()},
+            {k: v[rows] for k, v in self.categorical.items()},
             list(self.technical),
-            self.variables.copy(),
+            self.usage.copy(),
             self.source,
         )
 
@@ -192,6 +340,11 @@ class AnnotationSet:
                              f"(e.g. {', '.join(repr(x) for x in missing[:5])}); fix the ids")
         return self.subset(position)
 
+    @classmethod
+    def empty(cls, sample_ids: Sequence[str]) -> "AnnotationSet":
+        """No annotation at all, for ``sample_ids``."""
+        return cls(np.asarray(sample_ids, dtype=object), {}, {}, [], pd.DataFrame(columns=_USAGE_COLUMNS))
+
 
 def load_annotations(
     table: str | Path | pd.DataFrame,
@@ -199,18 +352,18 @@ def load_annotations(
     *,
     id_column: str = "sample_id",
     categorical: Iterable[str] | str | None = None,
-    quantitative: Iterable[str] | str | None = None,
+    numeric: Iterable[str] | str | None = None,
     technical: Iterable[str] | str | None = None,
-    exclude: Iterable[str] | str | None = None,
+    ignore: Iterable[str] | str | None = None,
     allow_missing: bool = False,
     where: str | None = None,
     active: np.ndarray | None = None,
 ) -> AnnotationSet:
-    """Read (if a path), align and type the annotations of ``sample_ids``.
+    """Read (if a path), align and treat the annotations of ``sample_ids``.
 
     Alignment (strict by default) covers every sample in ``sample_ids``, supplementary ones
-    included; the type and status of each column and the counts of the variables table are
-    decided on the active samples only, since only they are tested against the axes.
+    included; how each column is treated and the counts of the usage table are decided on
+    the samples that built the axes only, since only they are tested against the axes.
 
     Parameters
     ----------
@@ -218,20 +371,20 @@ def load_annotations(
         A TSV file, or a DataFrame with an ``id_column`` column (or indexed by sample id).
     sample_ids : sequence of str, shape (n,)
     id_column : str, default="sample_id"
-    categorical, quantitative : column names, optional
-        Force a column to be qualitative, or declare it quantitative (then every
-        non-missing value must be a number).
+    categorical, numeric : column names, optional
+        Treat a column's values as groups, or as numbers (then every non-missing value must
+        be a number). Without them the content decides (see the module description).
     technical : column names, optional
-        Columns describing processing rather than biology; an axis most strongly associated
-        with one of them gets a batch warning.
-    exclude : column names, optional
+        Columns describing processing rather than biology (batch, run, depth, quality); an
+        axis that lines up with one of them more than with any other annotation is flagged.
+    ignore : column names, optional
         Columns not to analyse (e.g. the supplementary-samples flag).
     allow_missing : bool, default=False
         See :func:`align_annotations`.
     where : str, optional
         Name of the table in messages (default: its path).
     active : ndarray of bool, shape (n,), optional
-        The samples used to build the axes (default: all). The returned set holds these
+        The samples that built the axes (default: all). The returned set holds these
         samples only.
 
     Returns
@@ -241,36 +394,12 @@ def load_annotations(
     """
     if isinstance(table, pd.DataFrame):
         where = where or "annotations"
-        frame = table.copy()
-        if id_column in frame.columns:
-            frame = frame.set_index(id_column)
-        elif frame.index.name != id_column:
-            shown = ", ".join(repr(c) for c in list(frame.columns)[:10])
-            raise InputError(f"{where}: no column {id_column!r} (columns: {shown}); name the sample-id column with --id-column")
-        if frame.index.duplicated().any():
-            dup = frame.index[frame.index.duplicated()].unique()
-            raise InputError(f"{where}: {len(dup)} sample ids occur more than once "
-                             f"(e.g. {', '.join(repr(x) for x in dup[:5])}); keep one row per sample")
-        frame.index = frame.index.astype(str)
-        frame = frame.astype(object).where(frame.notna(), None)
-        frame = frame.apply(lambda s: s.map(lambda v: None if v is None or str(v).strip() in MISSING_TOKENS else str(v).strip()))
+        frame = _frame_as_text(table, id_column, where)
     else:
         where = where or str(table)
         frame = read_annotations(table, id_column=id_column)
-    categorical_l = split_names(categorical)
-    quantitative_l = split_names(quantitative)
+    declared = _declared_treatments(frame.columns, categorical, numeric, technical, where)
     technical_l = split_names(technical)
-    exclude_l = split_names(exclude)
-    for option, names in (("--categorical", categorical_l), ("--quantitative", quantitative_l),
-                          ("--technical", technical_l)):
-        unknown = [c for c in names if c not in frame.columns]
-        if unknown:
-            shown = ", ".join(repr(c) for c in frame.columns[:15])
-            raise OptionError(f"{option}: no column {', '.join(repr(c) for c in unknown)} in {where} "
-                              f"(columns: {shown}); check the spelling")
-    both = set(categorical_l) & set(quantitative_l)
-    if both:
-        raise OptionError(f"column(s) {', '.join(sorted(both))} are declared both categorical and quantitative; choose one")
     frame = align_annotations(frame, sample_ids, where=where, allow_missing=allow_missing)
     ids = np.asarray(sample_ids, dtype=object)
     if active is not None:
@@ -279,79 +408,52 @@ def load_annotations(
             raise OptionError(f"{where}: the active-sample mask has {active.shape[0]} entries for {ids.shape[0]} samples")
         frame = frame.iloc[np.flatnonzero(active)]
         ids = ids[active]
-
-    quant: dict[str, np.ndarray] = {}
-    qual: dict[str, np.ndarray] = {}
+    ignored = set(split_names(ignore))
+    numeric_cols: dict[str, np.ndarray] = {}
+    categorical_cols: dict[str, np.ndarray] = {}
     rows = []
-    n = len(frame)
     for column in frame.columns:
-        if column in exclude_l:
+        if column in ignored:
             continue
-        values = frame[column]
-        present = values.notna().to_numpy()
-        n_used = int(present.sum())
-        numbers = pd.to_numeric(values, errors="coerce").to_numpy(dtype=float)
-        numeric = present & np.isfinite(numbers)
-        bad = present & ~numeric
-        kind = "qualitative"
-        status = "used"
-        if column in quantitative_l:
-            if bad.any():
-                i = int(np.flatnonzero(bad)[0])
-                raise InputError(
-                    f"{where}: column {column!r} is declared quantitative but sample {frame.index[i]!r} "
-                    f"has {values.iloc[i]!r} ({int(bad.sum())} non-numeric values); fix them or leave the cells empty"
-                )
-            kind = "quantitative"
-        elif column not in categorical_l and n_used and numeric.any():
-            if not bad.any():
-                kind = "quantitative"
-            elif numeric.sum() >= _MOSTLY_NUMERIC * n_used:
-                i = int(np.flatnonzero(bad)[0])
-                raise InputError(
-                    f"{where}: column {column!r} is numeric except for {int(bad.sum())} values (e.g. sample "
-                    f"{frame.index[i]!r}: {values.iloc[i]!r}); fix them, leave missing cells empty, or pass "
-                    f"--categorical {column}"
-                )
-        if kind == "quantitative":
-            x = np.where(numeric, numbers, np.nan)
-            if n_used < 3:
-                status = f"skipped: only {n_used} values"
-            elif np.nanstd(x) == 0:
-                status = "skipped: constant"
-            else:
-                quant[column] = x
-            n_levels = np.nan
-        else:
-            labels = np.array([str(v) if ok else None for v, ok in zip(values.to_numpy(dtype=object), present)],
-                              dtype=object)
-            levels = pd.unique(labels[present])
-            n_levels = len(levels)
-            if _is_boolean(levels):
-                labels = np.array([None if v is None else ("true" if v.lower() in _TRUE else "false")
-                                   for v in labels], dtype=object)
-                n_levels = len(pd.unique(labels[present]))
-            if n_levels < 2:
-                status = f"skipped: a single level ({levels[0]!r})" if n_levels == 1 else "skipped: no values"
-            elif n_levels == n_used and n_used > 10:
-                status = "skipped: every value differs (an identifier?)"
-            else:
-                qual[column] = labels
-        if status != "used":
-            logger.warning("%s: annotation column %r %s; it is not analysed", where, column, status)
-        if n_used < n and status == "used":
-            logger.info("%s: column %r has %d missing values; they are ignored for this column", where, column, n - n_used)
-        rows.append({
-            "variable": column,
-            "kind": kind,
-            "technical": column in technical_l,
-            "n_used": n_used,
-            "n_missing": n - n_used,
-            "n_levels": n_levels,
-            "status": status,
-        })
-    variables = pd.DataFrame(rows, columns=["variable", "kind", "technical", "n_used", "n_missing", "n_levels", "status"])
-    return AnnotationSet(ids, quant, qual, technical_l, variables, where)
+        treatment = classify_column(column, frame[column], declared=declared.get(column), where=where)
+        _report(where, column, treatment, len(frame))
+        if treatment.used:
+            target = numeric_cols if treatment.treated_as == "numeric" else categorical_cols
+            target[column] = treatment.values
+        rows.append([column, treatment.treated_as, column in technical_l, treatment.used, treatment.n_used,
+                     len(frame) - treatment.n_used, treatment.n_categories, treatment.note])
+    usage = pd.DataFrame(rows, columns=_USAGE_COLUMNS)
+    return AnnotationSet(ids, numeric_cols, categorical_cols, technical_l, usage, where)
+
+
+def _declared_treatments(columns: Iterable[str], categorical, numeric, technical, where: str) -> dict[str, str]:
+    """The treatment the user declared for each named column; unknown names are an error."""
+    columns = list(columns)
+    named = {"categorical": split_names(categorical), "numeric": split_names(numeric),
+             "technical": split_names(technical)}
+    for parameter, names in named.items():
+        unknown = [c for c in names if c not in columns]
+        if unknown:
+            raise OptionError(f"{parameter}: no column {', '.join(repr(c) for c in unknown)} in {where} "
+                              f"(columns: {_shown(columns, 15)}); check the spelling")
+    both = set(named["categorical"]) & set(named["numeric"])
+    if both:
+        raise OptionError(f"column(s) {', '.join(sorted(both))} are named both in categorical and in numeric; "
+                          "choose one")
+    declared = {c: "categorical" for c in named["categorical"]}
+    declared.update({c: "numeric" for c in named["numeric"]})
+    return declared
+
+
+def _report(where: str, column: str, treatment: ColumnTreatment, n: int) -> None:
+    if not treatment.used:
+        logger.warning("%s: annotation column %r %s; it is not analysed", where, column, treatment.note)
+        return
+    if treatment.note and treatment.treated_as == "categorical":
+        logger.warning("%s: annotation column %r: %s", where, column, treatment.note)
+    if treatment.n_used < n:
+        logger.info("%s: column %r has %d missing values; they are left out for this column",
+                    where, column, n - treatment.n_used)
 
 
 def sample_flags(table: pd.DataFrame, column: str, sample_ids: Sequence[str], *, where: str = "annotations",
@@ -361,8 +463,8 @@ def sample_flags(table: pd.DataFrame, column: str, sample_ids: Sequence[str], *,
     Accepted values (any case): true/false, yes/no, 1/0; missing values count as false.
     """
     if column not in table.columns:
-        shown = ", ".join(repr(c) for c in list(table.columns)[:15])
-        raise OptionError(f"--supplementary-samples-column: no column {column!r} in {where} (columns: {shown})")
+        raise OptionError(f"supplementary_samples_column: no column {column!r} in {where} "
+                          f"(columns: {_shown(table.columns, 15)})")
     aligned = align_annotations(table[[column]], sample_ids, where=where, allow_missing=allow_missing)[column]
     truthy, falsy = {"true", "yes", "1", "t", "y"}, {"false", "no", "0", "f", "n"}
     out = np.zeros(len(aligned), dtype=bool)
@@ -383,163 +485,10 @@ def _is_boolean(levels: Sequence[str]) -> bool:
     return bool(low) and low <= {"true", "false"}
 
 
+def _shown(columns: Iterable[str], limit: int = 10) -> str:
+    return ", ".join(repr(c) for c in list(columns)[:limit])
+
+
 def _first_line(exc: BaseException) -> str:
     text = str(exc).strip().splitlines()
     return text[0] if text else exc.__class__.__name__
-
-
-# --------------------------------------------------------------------------- statistics
-
-
-def correlation_test(x: np.ndarray, scores: np.ndarray) -> tuple[np.ndarray, np.ndarray, int]:
-    """Pearson correlation of ``x`` with each column of ``scores``, with two-sided p-values.
-
-    Samples where ``x`` is missing (NaN) are ignored. The p-value comes from
-    ``t = r·sqrt((n − 2)/(1 − r²))`` on ``n − 2`` degrees of freedom.
-
-    Returns
-    -------
-    r : ndarray, shape (k,)
-    p : ndarray, shape (k,)
-    n : int
-        Number of samples used.
-    """
-    x = np.asarray(x, dtype=np.float64)
-    F = np.asarray(scores, dtype=np.float64)
-    if F.ndim == 1:
-        F = F[:, None]
-    ok = np.isfinite(x)
-    n = int(ok.sum())
-    xc = x[ok] - x[ok].mean()
-    Fc = F[ok] - F[ok].mean(axis=0)
-    denom = np.sqrt(np.einsum("i,i->", xc, xc) * np.einsum("ij,ij->j", Fc, Fc))
-    with np.errstate(invalid="ignore", divide="ignore"):
-        r = np.clip((xc @ Fc) / denom, -1.0, 1.0)
-    return r, correlation_p_value(r, n), n
-
-
-def category_test_value(mean_group: np.ndarray, n_group: int, mean_all: np.ndarray, var_all: np.ndarray, n: int) -> np.ndarray:
-    """Test value of a category: standardized difference of its mean from the overall mean.
-
-    ``v = (x̄_g − x̄) / sqrt( (n − n_g)/(n − 1) · s²/n_g )`` where ``s²`` is the population
-    variance of the scores over the ``n`` samples used: the category's ``n_g`` samples are
-    treated as drawn without replacement (Lebart, Morineau & Piron 1995). Under the null
-    hypothesis ``v`` is approximately standard normal; ``|v| ≥ 2`` is the usual threshold.
-    """
-    if n_group >= n:
-        return np.full(np.shape(mean_group), np.nan)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return (np.asarray(mean_group) - mean_all) / np.sqrt((n - n_group) / (n - 1) * np.asarray(var_all) / n_group)
-
-
-def correlation_ratio(y: np.ndarray, labels: np.ndarray) -> tuple[float, float, float]:
-    """Correlation ratio η² = between-group / total sum of squares, its F statistic and p-value.
-
-    Parameters
-    ----------
-    y : ndarray, shape (n,)
-    labels : ndarray, shape (n,)
-        Group of each value (no missing values).
-
-    Returns
-    -------
-    ratio, f_statistic, p_value : float
-        ``F = (SS_between/(G − 1)) / (SS_within/(n − G))`` on ``(G − 1, n − G)`` degrees of
-        freedom (one-way analysis of variance).
-    """
-    y = np.asarray(y, dtype=np.float64)
-    codes, uniques = pd.factorize(pd.Series(labels, dtype=object), sort=False)
-    G, n = len(uniques), y.shape[0]
-    counts = np.bincount(codes, minlength=G).astype(np.float64)
-    means = np.bincount(codes, weights=y, minlength=G) / counts
-    grand = y.mean()
-    ss_total = float(np.sum((y - grand) ** 2))
-    ss_between = float(np.sum(counts * (means - grand) ** 2))
-    ss_within = max(ss_total - ss_between, 0.0)
-    ratio = ss_between / ss_total if ss_total > 0 else np.nan
-    if G < 2 or n <= G:
-        return ratio, np.nan, np.nan
-    with np.errstate(invalid="ignore", divide="ignore"):
-        f = (ss_between / (G - 1)) / (ss_within / (n - G))
-    p = float(sps.f.sf(f, G - 1, n - G)) if np.isfinite(f) else (0.0 if ss_within == 0 else np.nan)
-    return ratio, float(f), p
-
-
-def quantitative_associations(annotations: AnnotationSet, scores: np.ndarray, axis_names: Sequence[str]) -> pd.DataFrame:
-    """Correlation of every quantitative annotation with every axis.
-
-    Columns: variable, axis, n, correlation, p_value, p_adjusted (Benjamini–Hochberg over
-    the annotations tested on the same axis), technical.
-    """
-    rows = []
-    for name, x in annotations.quantitative.items():
-        r, p, n = correlation_test(x, scores)
-        for j, axis in enumerate(axis_names):
-            rows.append((name, axis, n, r[j], p[j], name in annotations.technical))
-    df = pd.DataFrame(rows, columns=["variable", "axis", "n", "correlation", "p_value", "technical"])
-    df.insert(5, "p_adjusted", _adjust_by_axis(df))
-    return df
-
-
-def category_statistics(labels: np.ndarray, scores: np.ndarray, axis_names: Sequence[str], *,
-                        variable: str = "", technical: bool = False) -> pd.DataFrame:
-    """Barycentre, count and test value of every category of one qualitative annotation.
-
-    Samples with a missing label are ignored; the overall mean and variance of the scores
-    are taken over the samples used. Columns: variable, category, axis, count, n,
-    mean_score, test_value, p_value (two-sided, normal approximation), technical.
-    """
-    F = np.asarray(scores, dtype=np.float64)
-    ok = np.array([v is not None for v in labels], dtype=bool)
-    lab = np.asarray(labels, dtype=object)[ok]
-    Fu = F[ok]
-    n = Fu.shape[0]
-    mean_all = Fu.mean(axis=0)
-    var_all = Fu.var(axis=0)
-    rows = []
-    for category in sorted(pd.unique(lab), key=str):
-        member = lab == category
-        n_g = int(member.sum())
-        mean_g = Fu[member].mean(axis=0)
-        v = category_test_value(mean_g, n_g, mean_all, var_all, n)
-        p = 2.0 * sps.norm.sf(np.abs(v))
-        for j, axis in enumerate(axis_names):
-            rows.append((variable, str(category), axis, n_g, n, mean_g[j], v[j], p[j], technical))
-    return pd.DataFrame(rows, columns=["variable", "category", "axis", "count", "n", "mean_score",
-                                       "test_value", "p_value", "technical"])
-
-
-def qualitative_associations(annotations: AnnotationSet, scores: np.ndarray,
-                             axis_names: Sequence[str]) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """Correlation ratios (one row per variable and axis) and category statistics.
-
-    Returns
-    -------
-    ratios : DataFrame
-        variable, axis, n, n_levels, correlation_ratio, f_statistic, p_value, p_adjusted, technical.
-    categories : DataFrame
-        See :func:`category_statistics`.
-    """
-    F = np.asarray(scores, dtype=np.float64)
-    rows, cats = [], []
-    for name, labels in annotations.qualitative.items():
-        technical = name in annotations.technical
-        ok = np.array([v is not None for v in labels], dtype=bool)
-        lab = np.asarray(labels, dtype=object)[ok]
-        n_levels = len(pd.unique(lab))
-        for j, axis in enumerate(axis_names):
-            ratio, f, p = correlation_ratio(F[ok, j], lab)
-            rows.append((name, axis, int(ok.sum()), n_levels, ratio, f, p, technical))
-        cats.append(category_statistics(labels, F, axis_names, variable=name, technical=technical))
-    ratios = pd.DataFrame(rows, columns=["variable", "axis", "n", "n_levels", "correlation_ratio", "f_statistic", "p_value", "technical"])
-    ratios.insert(7, "p_adjusted", _adjust_by_axis(ratios))
-    categories = pd.concat(cats, ignore_index=True) if cats else pd.DataFrame(
-        columns=["variable", "category", "axis", "count", "n", "mean_score", "test_value", "p_value", "technical"])
-    return ratios, categories
-
-
-def _adjust_by_axis(df: pd.DataFrame) -> np.ndarray:
-    out = np.full(len(df), np.nan)
-    for _, index in df.groupby("axis", sort=False).indices.items():
-        out[index] = benjamini_hochberg(df["p_value"].to_numpy()[index])
-    return out

@@ -1,30 +1,18 @@
-"""Interpretation statistics of samples and features: contributions, squared cosines, correlations.
+"""Statistics of supplementary features: one streaming pass over the columns left out of the axes.
 
 Notation: ``X̃`` is the preprocessed (centred and scaled) matrix of the ``n`` active samples,
 ``F = X̃·V = U·S`` the scores, ``V`` the unit-norm loadings and ``s_a`` the singular values,
 so that ``X̃ᵀ·F_a = s_a²·V_a`` and the variance of axis ``a`` is ``s_a²/n``.
 
-Samples
-    contribution of sample ``i`` to axis ``a`` (percent) = ``100·F_ia² / s_a²`` (sums to 100
-    over the active samples); squared cosine = ``F_ia² / d_i²`` with ``d_i²`` the squared
-    distance of the sample to the centre in the preprocessed space.
-
-Active features
-    contribution (percent) = ``100·V_ja²``; correlation with the scores and squared cosine in
-    closed form from the model (no pass over the data):
-    ``corr_ja = V_ja·s_a / (sqrt(n)·std_j/scale_j)`` for centred PCA, whatever the scaling
-    (for unit scaling this is ``V_ja·sqrt(variance_a)``), and the general Pearson formula
-    with the feature and score means otherwise.
-
-Supplementary features
-    Not used to build the axes; their correlations, squared cosines and loadings (in the
-    units of the active ones, ``x̃_jᵀ·F_a / s_a²``) come from one streaming pass over the
-    source's columns, holding ``O(p·k)`` accumulators and a few row blocks.
+Supplementary features are not used to build the axes; their correlations with the scores,
+squared cosines and loadings (in the units of the active ones, ``x̃_jᵀ·F_a / s_a²``) come
+from one streaming pass over the source's columns, holding ``O(p·k)`` accumulators and a
+few row blocks. The active features' statistics follow in closed form from the model
+(:func:`axiscope.model.statistics.feature_statistics`).
 
 References
 ----------
-Lebart, L., Morineau, A. & Piron, M. (1995). *Statistique exploratoire multidimensionnelle*.
-Dunod, Paris. Jolliffe, I. T. & Cadima, J. (2016). Principal component analysis: a review and
+Jolliffe, I. T. & Cadima, J. (2016). Principal component analysis: a review and
 recent developments. *Phil. Trans. R. Soc. A* 374, 20150202. doi:10.1098/rsta.2015.0202
 """
 
@@ -33,6 +21,7 @@ from __future__ import annotations
 import logging
 import os
 from collections.abc import Sequence
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -46,6 +35,10 @@ from ..model.statistics import FeatureAxisStatistics
 __all__ = ["supplementary_feature_statistics"]
 
 logger = logging.getLogger(__name__)
+
+#: Features finished at a time after the pass, so that temporaries stay small.
+_STEP = 65536
+
 
 def supplementary_feature_statistics(
     source: MatrixSource,
@@ -75,8 +68,9 @@ def supplementary_feature_statistics(
     rows : ndarray of bool, shape (n_samples,), optional
         The active samples (default all).
     spec : PreprocessSpec, optional
-        Per-sample transforms (total normalisation, log1p), centring and scaling replayed
-        on the columns, as in the fit (default: standardized, no transform).
+        Per-sample transforms, centring and scaling replayed on the columns, as in the fit
+        (default: standardized, no transform).
+    axis_names : sequence of str, optional
     sample_ids : sequence of str, optional
         Ids of the scored samples; checked against ``source`` when given.
     memory_limit, threads, progress
@@ -89,6 +83,11 @@ def supplementary_feature_statistics(
 
     Notes
     -----
+    The steps: check which rows and columns are used (:func:`_selection`), size the row
+    blocks from the memory budget (:func:`_block_rows`), stream the blocks once folding
+    sums, sums of squares and cross-products with the scores (:class:`_Sums`), then turn
+    the sums into correlations, loadings and squared cosines (:func:`_finish`).
+
     Memory: ``O(p_sup·k)`` float64 accumulators (cross-products, and with imputation the
     scores of missing cells) plus a window of ``2·threads`` row blocks during the pass, then
     the results (correlation, loading, squared cosine and the NaN contribution); both
@@ -97,6 +96,18 @@ def supplementary_feature_statistics(
     """
     spec = spec or PreprocessSpec()
     F = np.asarray(scores, dtype=np.float64)
+    rows, cols = _selection(source, F, rows, columns, sample_ids)
+    k = F.shape[1]
+    names = list(axis_names) if axis_names is not None else [f"PC{j + 1}" for j in range(k)]
+    threads = max(1, int(threads or os.cpu_count() or 1))
+    block_rows = _block_rows(source, F.shape[0], cols.shape[0], k, threads, memory_limit,
+                             imputing=spec.missing == "mean")
+    sums = _stream(source, F, rows, cols, spec, block_rows, threads, progress)
+    return _finish(sums, F, singular_values, spec, np.asarray(source.feature_ids, dtype=object)[cols], names)
+
+
+def _selection(source: MatrixSource, F: np.ndarray, rows, columns, sample_ids) -> tuple[np.ndarray, np.ndarray]:
+    """The active-row mask and the column indices, checked against the scores and their ids."""
     n_all, p_all = source.shape
     rows = np.ones(n_all, dtype=bool) if rows is None else np.asarray(rows, dtype=bool)
     if rows.shape != (n_all,):
@@ -106,42 +117,88 @@ def supplementary_feature_statistics(
         raise InputError(f"{source.path}: {F.shape[0]} scored samples but {n} selected rows; use the same samples")
     if sample_ids is not None and not np.array_equal(np.asarray(source.sample_ids, dtype=object)[rows],
                                                      np.asarray(sample_ids, dtype=object)):
-        raise InputError(f"{source.path}: sample ids differ from those of the fit; give a matrix with the same samples in the same order")
+        raise InputError(f"{source.path}: sample ids differ from those of the fit; give a matrix with the same "
+                         "samples in the same order")
     if columns is None:
-        cols = np.arange(p_all)
-    else:
-        cols = np.asarray(columns)
-        cols = np.flatnonzero(cols) if cols.dtype == bool else cols.astype(np.int64)
-    p = cols.shape[0]
-    k = F.shape[1]
-    names = list(axis_names) if axis_names is not None else [f"PC{j + 1}" for j in range(k)]
+        return rows, np.arange(p_all)
+    cols = np.asarray(columns)
+    return rows, (np.flatnonzero(cols) if cols.dtype == bool else cols.astype(np.int64))
+
+
+def _block_rows(source: MatrixSource, n: int, p: int, k: int, threads: int, memory_limit, *,
+                imputing: bool) -> int:
+    """Rows per block so that the accumulators, a window of blocks and the results fit the budget."""
     budget = default_memory_limit() if memory_limit is None else parse_memory(memory_limit)
-    threads = max(1, int(threads or os.cpu_count() or 1))
-    itemsize = source.dtype.itemsize
-    missing_ok = spec.missing == "mean"
-    step = 65536  # features finished at a time, so that temporaries stay small
+    n_all, p_all = source.shape
     # during the pass: (p, k) accumulators of cross-products and, with imputation, of the
     # scores of missing cells; five length-p vectors (sums, squares, counts, shift, column
     # indices); the scores; and a window of row blocks
-    accumulators = 8 * p * (k * (2 if missing_ok else 1) + 5) + 8 * n * k * 2
+    accumulators = 8 * p * (k * (2 if imputing else 1) + 5) + 8 * n * k * 2
     # after the pass: correlation, loading, squared cosine and the NaN contribution returned
     # (p, k each), the SD and ids (p each), and the temporaries of one step of features
-    results = 8 * p * (4 * k + 2) + 8 * min(p, step) * (4 * k + 8)
+    results = 8 * p * (4 * k + 2) + 8 * min(p, _STEP) * (4 * k + 8)
     window = 2 * threads
-    row_bytes = p_all * itemsize * 2 + p * 8 * 3 + 8 * p * k // max(1, n)
-    room = budget - accumulators
+    row_bytes = p_all * source.dtype.itemsize * 2 + p * 8 * 3 + 8 * p * k // max(1, n)
     needed = max(accumulators + window * row_bytes, accumulators + results)
     if needed > budget:
         raise OptionError(
-            f"memory limit {format_bytes(budget)} is too small for statistics of {p} supplementary "
-            f"features on {k} axes (needs at least {format_bytes(needed)}); raise --memory-limit"
+            f"memory_limit={format_bytes(budget)} is too small for statistics of {p} supplementary "
+            f"features on {k} axes (needs at least {format_bytes(needed)}); raise memory_limit"
         )
-    block_rows = int(max(1, min(room // (window * row_bytes), n_all)))
+    block_rows = int(max(1, min((budget - accumulators) // (window * row_bytes), n_all)))
     if source.sample_chunk and block_rows >= source.sample_chunk:
         block_rows = (block_rows // source.sample_chunk) * source.sample_chunk
+    return block_rows
+
+
+@dataclass
+class _Sums:
+    """Sums folded over the row blocks, per supplementary feature.
+
+    ``shift`` is the first row: sums of ``x − shift`` keep the variance accurate (Chan,
+    Golub & LeVeque 1983). ``count`` and ``missing_scores`` (the sum of the scores of the
+    samples where a feature is missing) exist only once a non-finite cell was seen.
+    """
+
+    s1: np.ndarray
+    s2: np.ndarray
+    cross: np.ndarray
+    shift: np.ndarray | None = None
+    count: np.ndarray | None = None
+    missing_scores: np.ndarray | None = None
+
+    def fold(self, x: np.ndarray, Fb: np.ndarray, start: int, mask: np.ndarray | None) -> None:
+        """Add one block ``x`` (rows ``start:start+len(x)``, missing cells zeroed in ``mask``)."""
+        if mask is not None:
+            if self.count is None:
+                self.count = np.full(x.shape[1], float(start))
+                self.missing_scores = np.zeros(self.cross.shape)
+            self.count += x.shape[0] - mask.sum(axis=0)
+            self.missing_scores += mask.T.astype(np.float64) @ Fb
+        elif self.count is not None:
+            self.count += x.shape[0]
+        if self.shift is None:
+            self.shift = x[0].copy()
+        shifted = x - self.shift
+        if mask is not None:
+            shifted[mask] = 0.0
+        self.s1 += shifted.sum(axis=0)
+        np.square(shifted, out=shifted)
+        self.s2 += shifted.sum(axis=0)
+        del shifted
+        self.cross += x.T @ Fb
+
+
+def _stream(source: MatrixSource, F: np.ndarray, rows: np.ndarray, cols: np.ndarray, spec: PreprocessSpec,
+            block_rows: int, threads: int, progress: Progress | None) -> _Sums:
+    """One pass over the active rows of ``source``, folding the sums of the columns ``cols``."""
+    n_all, p_all = source.shape
+    p = cols.shape[0]
     spans = [(a, min(n_all, a + block_rows)) for a in range(0, n_all, block_rows)]
     spans = [(a, b) for a, b in spans if rows[a:b].any()]
-    counts = [int(rows[a:b].sum()) for a, b in spans]
+    ids = np.asarray(source.sample_ids, dtype=object)[rows]
+    imputing = spec.missing == "mean"
+    sums = _Sums(np.zeros(p), np.zeros(p), np.zeros((p, F.shape[1])))
 
     def load(i: int) -> np.ndarray:
         a, b = spans[i]
@@ -150,81 +207,67 @@ def supplementary_feature_statistics(
 
     def task(block: np.ndarray):
         block = transform_block(block, spec)  # totals over all columns of the source, as in the fit
-        x = block[:, cols] if p != p_all else block
-        del block
-        x = x.astype(np.float64)
-        bad = first_nonfinite(x)
-        return x, bad
-
-    state: dict = {"shift": None, "s1": np.zeros(p), "s2": np.zeros(p), "cnt": None,
-                   "cross": np.zeros((p, k)), "nf": None}
-    ids = np.asarray(source.sample_ids, dtype=object)[rows]
+        x = (block[:, cols] if p != p_all else block).astype(np.float64)
+        return x, first_nonfinite(x)
 
     def fold(result, index: int, start: int) -> None:
         x, bad = result
-        Fb = F[start : start + x.shape[0]]
+        mask = None
         if bad is not None:
-            if not missing_ok:
+            if not imputing:
                 r, c = bad
                 raise InputError(
                     f"{source.path}: sample {ids[start + r]!r}, feature {source.feature_ids[cols[c]]!r} is NaN "
-                    f"or infinite (after the transforms); fix the input or pass --missing mean"
+                    f"or infinite (after the transforms); fix the input or impute missing cells with the "
+                    f"feature mean (missing='mean')"
                 )
             mask = ~np.isfinite(x)
             x[mask] = 0.0
-            if state["cnt"] is None:
-                state["cnt"] = np.full(p, float(start))
-                state["nf"] = np.zeros((p, k))
-            state["cnt"] += x.shape[0] - mask.sum(axis=0)
-            state["nf"] += mask.T.astype(np.float64) @ Fb
-        elif state["cnt"] is not None:
-            state["cnt"] += x.shape[0]
-        if state["shift"] is None:  # shifted sums keep the variance accurate (Chan, Golub & LeVeque 1983)
-            state["shift"] = x[0].copy()
-        shifted = x - state["shift"]
-        if bad is not None:
-            shifted[mask] = 0.0
-        state["s1"] += shifted.sum(axis=0)
-        np.square(shifted, out=shifted)
-        state["s2"] += shifted.sum(axis=0)
-        del shifted
-        state["cross"] += x.T @ Fb
+        sums.fold(x, F[start : start + x.shape[0]], start, mask)
 
+    counts = [int(rows[a:b].sum()) for a, b in spans]
     X = array_from_blocks(load, counts, p_all, source.dtype, f"supfeat-{id(source)}-{os.getpid()}")
-    runner = PassRunner(threads=threads, progress=progress)
-    runner.run("supplementary features", "input", X, task, fold)
+    PassRunner(threads=threads, progress=progress).run("supplementary features", "input", X, task, fold)
+    return sums
 
-    cnt = state["cnt"] if state["cnt"] is not None else np.full(p, float(n))
-    shift = state["shift"] if state["shift"] is not None else np.zeros(p)
+
+def _replay_scale(spec: PreprocessSpec, mean: np.ndarray, sd: np.ndarray) -> np.ndarray:
+    """The fit's per-feature scale, recomputed for the supplementary features."""
+    if spec.scale == "unit":
+        return sd
+    if spec.scale == "none":
+        return np.ones(mean.shape[0])
+    # the only other scaling is that of genotype dosages 0/1/2: sqrt(2f(1 − f)), f = mean/2
+    freq = mean / 2.0
+    return np.sqrt(2.0 * freq * (1.0 - freq))
+
+
+def _finish(sums: _Sums, F: np.ndarray, singular_values: np.ndarray, spec: PreprocessSpec,
+            feature_ids: np.ndarray, names: list[str]) -> FeatureAxisStatistics:
+    """Correlations, loadings (in the units of the active ones) and squared cosines from the sums."""
+    n, k = F.shape
+    p = sums.s1.shape[0]
+    count = sums.count if sums.count is not None else np.full(p, float(n))
+    shift = sums.shift if sums.shift is not None else np.zeros(p)
     f_tot = F.sum(axis=0)
-    f_bar = f_tot / n
-    sd_f = np.sqrt(np.maximum((F**2).sum(axis=0) / n - f_bar**2, 0.0))
+    sd_f = np.sqrt(np.maximum((F**2).sum(axis=0) / n - (f_tot / n) ** 2, 0.0))
     s2 = np.asarray(singular_values, dtype=np.float64) ** 2
-    corr = np.empty((p, k))
-    loading = np.empty((p, k))
-    sq_cos = np.empty((p, k))
+    corr, loading, sq_cos = np.empty((p, k)), np.empty((p, k)), np.empty((p, k))
     sd_x = np.empty(p)
     with np.errstate(invalid="ignore", divide="ignore"):
-        for lo in range(0, p, step):
-            sl = slice(lo, min(p, lo + step))
-            c = cnt[sl]
-            d1 = state["s1"][sl] / c  # mean − shift over present cells
+        for lo in range(0, p, _STEP):
+            sl = slice(lo, min(p, lo + _STEP))
+            d1 = sums.s1[sl] / count[sl]  # mean − shift over present cells
             mean = shift[sl] + d1
-            m2 = np.maximum(state["s2"][sl] - c * d1**2, 0.0)
+            m2 = np.maximum(sums.s2[sl] - count[sl] * d1**2, 0.0)
             sd = np.sqrt(m2 / n)  # imputed cells add nothing (population convention of the fit)
             sd_x[sl] = sd
-            cross = state["cross"][sl]
+            cross = sums.cross[sl]
             # Σ over present cells of F, per feature
-            f_present = f_tot - state["nf"][sl] if state["nf"] is not None else f_tot[None, :]
+            f_present = f_tot - sums.missing_scores[sl] if sums.missing_scores is not None else f_tot[None, :]
             centred = cross - mean[:, None] * f_present  # Σ (x − μ)·F over present cells
             corr[sl] = np.clip((centred / n) / (sd[:, None] * sd_f), -1.0, 1.0)
-            if spec.scale == "unit":
-                scale = sd
-            elif spec.scale == "binomial":
-                freq = mean / 2.0
-                scale = np.sqrt(2.0 * freq * (1.0 - freq))
-            else:
-                scale = np.ones(mean.shape[0])
+            scale = _replay_scale(spec, mean, sd)
             if spec.center:
                 xf = centred / scale[:, None]
                 norm2 = m2 / scale**2
@@ -233,21 +276,13 @@ def supplementary_feature_statistics(
                 norm2 = (m2 + n * mean**2) / scale**2
             loading[sl] = xf / s2
             sq_cos[sl] = xf**2 / (s2 * norm2[:, None])
-    del state
     constant = ~(sd_x > 0)
     if constant.any():
         logger.warning("%d supplementary features are constant over the active samples; their "
                        "correlations are undefined (NaN)", int(constant.sum()))
-        corr[constant] = np.nan
-        sq_cos[constant] = np.nan
-        loading[constant] = np.nan
+        for values in (corr, sq_cos, loading):
+            values[constant] = np.nan
     return FeatureAxisStatistics(
-        feature_ids=np.asarray(source.feature_ids, dtype=object)[cols],
-        supplementary=np.ones(p, dtype=bool),
-        loading=loading,
-        correlation=corr,
-        contribution=np.full((p, k), np.nan),
-        sq_cosine=sq_cos,
-        n_samples=n,
-        axis_names=names,
+        feature_ids=feature_ids, supplementary=np.ones(p, dtype=bool), loading=loading, correlation=corr,
+        contribution=np.full((p, k), np.nan), sq_cosine=sq_cos, n_samples=n, axis_names=names,
     )

@@ -24,6 +24,7 @@ recent developments. *Phil. Trans. R. Soc. A* 374, 20150202. doi:10.1098/rsta.20
 
 from __future__ import annotations
 
+import re
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -40,67 +41,119 @@ from .store import Model
 __all__ = [
     "FeatureAxisStatistics",
     "feature_statistics",
-    "sample_quality",
-    "sample_contributions",
+    "sample_statistics",
+    "write_safe_tsv",
     "read_feature_statistics",
     "correlation_p_value",
     "benjamini_hochberg",
 ]
 
 _QUANTITIES = ("loading", "correlation", "contribution", "sq_cosine")
+#: Column prefix (and Zarr array name) of each quantity in the written tables; the unit of
+#: the contribution (percent) is part of its name.
+_PREFIX = {"loading": "loading", "correlation": "correlation", "contribution": "contribution_pct",
+           "sq_cosine": "sq_cosine"}
+
+
+#: Text cells holding one of these characters are quoted: the separator, line breaks, the
+#: quote itself, and ``#`` (so that readers told to skip ``#`` comments keep the cell whole).
+_QUOTE_IF = re.compile(r'[\t\n\r"#]|^\s|\s$')
+
+
+def write_safe_tsv(df: pd.DataFrame, path: Path, *, parquet: bool = False, header: Sequence[str] = ()) -> None:
+    """Write a tab-separated table that any CSV reader splits into the right cells (and a Parquet copy).
+
+    Numbers are written with 8 significant digits and missing values as empty cells;
+    true/false flags as ``true``/``false``; text cells are quoted (``"…"``, inner quotes
+    doubled, RFC 4180 style) when they hold a tab, a line break (``\\n`` or ``\\r``), a quote,
+    a ``#``, or leading/trailing white space, so that such ids cannot break a row. The
+    ``header`` lines are written first, each prefixed with ``# ``.
+    """
+    columns = [_tsv_cells(df[c]) for c in df.columns]
+    with Path(path).open("w", encoding="utf-8", newline="") as handle:
+        for line in header:
+            handle.write(f"# {line}\n" if line else "#\n")
+        handle.write("\t".join(_quote(str(c)) for c in df.columns) + "\n")
+        for row in zip(*columns):
+            handle.write("\t".join(row) + "\n")
+    if parquet:
+        df.to_parquet(Path(path).with_suffix(".parquet"), index=False)
+
+
+def _quote(text: str) -> str:
+    return '"' + text.replace('"', '""') + '"' if _QUOTE_IF.search(text) else text
+
+
+def _tsv_cells(values: pd.Series) -> list[str]:
+    """The cells of one column as text."""
+    dtype = values.dtype
+    if pd.api.types.is_bool_dtype(dtype):
+        return ["" if v is pd.NA or v is None else ("true" if v else "false") for v in values.tolist()]
+    if pd.api.types.is_integer_dtype(dtype):
+        return ["" if v is pd.NA or v is None else str(int(v)) for v in values.tolist()]
+    if pd.api.types.is_float_dtype(dtype):
+        return [f"{v:.8g}" if v == v else "" for v in values.to_numpy(dtype=np.float64, na_value=np.nan).tolist()]
+    out = []
+    for v in values.tolist():
+        if v is None or v is pd.NA or (isinstance(v, float) and v != v):
+            out.append("")
+        elif isinstance(v, (bool, np.bool_)):
+            out.append("true" if v else "false")
+        elif isinstance(v, (float, np.floating)):
+            out.append(f"{v:.8g}")
+        elif isinstance(v, (int, np.integer)):
+            out.append(str(int(v)))
+        else:
+            out.append(_quote(str(v)))
+    return out
 
 
 # --------------------------------------------------------------------------- samples
 
 
-def sample_quality(sample_ids: Sequence[str], scores: np.ndarray, sq_dist: np.ndarray,
-                   axis_names: Sequence[str], *, status: str = "active") -> pd.DataFrame:
-    """Squared cosines (quality of representation) of samples on each axis.
+def sample_statistics(sample_ids: Sequence[str], scores: np.ndarray, squared_norms: np.ndarray,
+                      axis_names: Sequence[str], *, singular_values: np.ndarray | None = None,
+                      supplementary: bool = False) -> pd.DataFrame:
+    """Contributions and squared cosines (quality of representation) of samples on each axis.
 
     Parameters
     ----------
     sample_ids : sequence of str, shape (m,)
     scores : ndarray, shape (m, k)
-    sq_dist : ndarray, shape (m,)
-        Squared distance of each sample to the centre in the preprocessed space.
+    squared_norms : ndarray, shape (m,)
+        Squared length ``‖x̃_i‖²`` of each preprocessed sample (its squared distance to the
+        centre when the features are centred).
     axis_names : sequence of str, length k
-    status : str, default="active"
+    singular_values : ndarray, shape (k,), optional
+        Needed for the contributions of samples that built the axes.
+    supplementary : bool, default=False
+        The samples did not build the axes: their contributions are NaN.
 
     Returns
     -------
     DataFrame
-        sample_id, status, sq_dist, ``sq_cosine_<axis>`` for each axis, and ``quality`` (the sum
-        over the ``k`` axes: the share of the sample's squared distance they represent).
-        Samples at the centre (zero distance) get NaN.
+        ``sample_id``, ``supplementary``, ``squared_norm``, ``represented_share`` (the sum of
+        the squared cosines over the ``k`` axes: the share of ``‖x̃_i‖²`` the axes hold),
+        then ``sq_cosine_<axis>`` and ``contribution_pct_<axis>`` (percent; ``100·F_ia²/s_a²``,
+        each column sums to 100 over the samples that built the axes). Samples at the centre
+        (zero length) get NaN squared cosines.
     """
     F = np.asarray(scores, dtype=np.float64)
-    d = np.asarray(sq_dist, dtype=np.float64)
+    d = np.asarray(squared_norms, dtype=np.float64)
     with np.errstate(invalid="ignore", divide="ignore"):
         sq_cos = np.where(d[:, None] > 0, F**2 / d[:, None], np.nan)
-    df = pd.DataFrame(sq_cos, columns=[f"sq_cosine_{a}" for a in axis_names])
-    df.insert(0, "sq_dist", d)
-    df.insert(0, "status", status)
-    df.insert(0, "sample_id", np.asarray(sample_ids))
-    df["quality"] = sq_cos.sum(axis=1)
-    return df
-
-
-def sample_contributions(sample_ids: Sequence[str], scores: np.ndarray, singular_values: np.ndarray,
-                         axis_names: Sequence[str]) -> pd.DataFrame:
-    """Contribution (percent) of each active sample to each axis: ``100·F_ia² / s_a²``.
-
-    Returns
-    -------
-    DataFrame
-        sample_id and one column ``contribution_<axis>`` per axis; each column sums to 100.
-    """
-    F = np.asarray(scores, dtype=np.float64)
-    s2 = np.asarray(singular_values, dtype=np.float64) ** 2
-    with np.errstate(invalid="ignore", divide="ignore"):
-        contrib = 100.0 * F**2 / s2
-    df = pd.DataFrame(contrib, columns=[f"contribution_{a}" for a in axis_names])
-    df.insert(0, "sample_id", np.asarray(sample_ids))
-    return df
+        if supplementary or singular_values is None:
+            contrib = np.full(F.shape, np.nan)
+        else:
+            contrib = 100.0 * F**2 / np.asarray(singular_values, dtype=np.float64) ** 2
+    columns = {"sample_id": np.asarray(sample_ids, dtype=object),
+               "supplementary": np.full(F.shape[0], bool(supplementary)),
+               "squared_norm": d, "represented_share": sq_cos.sum(axis=1)}
+    for j, a in enumerate(axis_names):
+        columns[f"sq_cosine_{a}"] = sq_cos[:, j]
+    for j, a in enumerate(axis_names):
+        columns[f"contribution_pct_{a}"] = contrib[:, j]
+    return pd.DataFrame(columns)
 
 
 # --------------------------------------------------------------------------- features
@@ -120,7 +173,8 @@ class FeatureAxisStatistics:
     correlation : ndarray, shape (p, k)
         Pearson correlation between the (transformed) feature and the scores.
     contribution : ndarray, shape (p, k)
-        Percent of the axis built from the feature (``100·loading²``; NaN if supplementary).
+        Percent of the axis built from the feature (``100·loading²``; NaN if supplementary);
+        written as ``contribution_pct_<axis>``.
     sq_cosine : ndarray, shape (p, k)
         Squared cosine of the feature with the axis.
     n_samples : int
@@ -167,28 +221,33 @@ class FeatureAxisStatistics:
         )
 
     def to_frame(self) -> pd.DataFrame:
-        """Wide table: feature_id, status, then ``<quantity>_<axis>`` columns."""
-        cols = {"feature_id": self.feature_ids,
-                "status": np.where(self.supplementary, "supplementary", "active")}
+        """Wide table: ``feature_id``, ``supplementary`` (true/false), then one column per
+        quantity and axis: ``loading_<axis>``, ``correlation_<axis>``,
+        ``contribution_pct_<axis>`` (percent), ``sq_cosine_<axis>``."""
+        cols = {"feature_id": np.asarray(self.feature_ids, dtype=object),
+                "supplementary": np.asarray(self.supplementary, dtype=bool)}
         for q in _QUANTITIES:
             values = getattr(self, q)
             for j, a in enumerate(self.axis_names):
-                cols[f"{q}_{a}"] = values[:, j]
+                cols[f"{_PREFIX[q]}_{a}"] = values[:, j]
         return pd.DataFrame(cols)
 
-    def write(self, directory: Path, *, name: str = "feature_statistics", threshold: int | None = None) -> Path:
-        """Write as ``<name>.tsv``, or as a Zarr group ``<name>.zarr`` above ``threshold`` features.
+    def write(self, directory: Path, *, name: str = "feature_statistics", threshold: int | None = None,
+              parquet: bool = False) -> Path:
+        """Write as ``<name>.tsv`` (and ``.parquet`` when ``parquet``), or as a Zarr group
+        ``<name>.zarr`` above ``threshold`` features.
 
-        The Zarr group has one ``(p, k)`` float64 array per quantity, ``feature_ids`` and
-        ``supplementary``; attributes ``axis_names`` and ``n_samples``.
+        The Zarr group has one ``(p, k)`` float64 array per quantity (named like the column
+        prefixes of the table), ``feature_ids`` and ``supplementary``; attributes
+        ``axis_names`` and ``n_samples``.
         """
-        from ..io.output import ZARR_FEATURE_THRESHOLD, write_table
+        from ..io.output import ZARR_FEATURE_THRESHOLD
 
         threshold = ZARR_FEATURE_THRESHOLD if threshold is None else threshold
         directory = Path(directory)
         if self.n_features <= threshold:
             path = directory / f"{name}.tsv"
-            write_table(self.to_frame(), path)
+            write_safe_tsv(self.to_frame(), path, parquet=parquet)
             return path
         import zarr
 
@@ -196,7 +255,7 @@ class FeatureAxisStatistics:
         group = zarr.open_group(str(path), mode="w")
         p, k = self.loading.shape
         for q in _QUANTITIES:
-            arr = group.create_array(q, shape=(p, k), dtype="float64", chunks=(min(p, 65536), k))
+            arr = group.create_array(_PREFIX[q], shape=(p, k), dtype="float64", chunks=(min(p, 65536), k))
             arr[:] = getattr(self, q)
         ids = group.create_array("feature_ids", shape=(p,), dtype=str, chunks=(min(p, 65536),))
         ids[:] = np.asarray(self.feature_ids, dtype=str)
@@ -231,7 +290,7 @@ def read_feature_statistics(directory: Path, *, name: str = "feature_statistics"
             return FeatureAxisStatistics(
                 np.asarray(group["feature_ids"][:], dtype=object),
                 np.asarray(group["supplementary"][:], dtype=bool),
-                *(np.asarray(group[q][:], dtype=np.float64) for q in _QUANTITIES),
+                *(np.asarray(group[_PREFIX[q]][:], dtype=np.float64) for q in _QUANTITIES),
                 int(group.attrs["n_samples"]), list(group.attrs["axis_names"]),
             )
         except (KeyError, ValueError, TypeError, OSError) as exc:
@@ -242,16 +301,19 @@ def read_feature_statistics(directory: Path, *, name: str = "feature_statistics"
     if n_samples is None:
         raise OptionError(f"{tsv}: the number of active samples is needed for p-values; pass n_samples "
                           "(e.g. model.n_samples)")
-    df = read_result_table(tsv, required=["feature_id", "status"])
+    df = read_result_table(tsv, required=["feature_id", "supplementary"])
     axes = [c[len("loading_"):] for c in df.columns if c.startswith("loading_")]
     if not axes:
         raise InputError(f"{tsv}: no loading_<axis> column; {_REFIT}")
-    value_columns = [f"{q}_{a}" for q in _QUANTITIES for a in axes]
+    value_columns = [f"{_PREFIX[q]}_{a}" for q in _QUANTITIES for a in axes]
     df = check_result_table(df, tsv, required=value_columns, numeric=value_columns)
+    flags = df["supplementary"].astype(str).str.strip().str.lower()
+    if not flags.isin(["true", "false"]).all():
+        raise InputError(f"{tsv}: column supplementary holds values other than true/false; {_REFIT}")
     return FeatureAxisStatistics(
         df["feature_id"].to_numpy(dtype=object),
-        (df["status"] == "supplementary").to_numpy(),
-        *(df[[f"{q}_{a}" for a in axes]].to_numpy(dtype=np.float64) for q in _QUANTITIES),
+        (flags == "true").to_numpy(),
+        *(df[[f"{_PREFIX[q]}_{a}" for a in axes]].to_numpy(dtype=np.float64) for q in _QUANTITIES),
         int(n_samples), axes,
     )
 
