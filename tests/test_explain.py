@@ -31,7 +31,7 @@ from axiscope.explain.legend import COLUMNS, RECORD_COLUMNS, SECTIONS
 from axiscope.explain.pages import format_p_value, markdown_text
 from axiscope.explain.plan import explain_fit, plan_explanation
 from axiscope.io.output import DEFAULT_TOP_FEATURES
-from axiscope.io.readers import array_source
+from axiscope.io import array_source
 
 N, P = 120, 60
 CAUSAL = ("cause", "driven", "drives", "due to", "because", "effect of", "determin", "leads to", "results in")
