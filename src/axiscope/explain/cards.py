@@ -36,8 +36,8 @@ import numpy as np
 import pandas as pd
 
 from ..errors import OptionError
-from ..io.output import DEFAULT_TOP_FEATURES
-from ..model.statistics import FeatureAxisStatistics, feature_statistics, sample_statistics, write_safe_tsv
+from ..io.output import DEFAULT_TOP_FEATURES, write_table
+from ..model.statistics import FeatureAxisStatistics, feature_statistics, sample_statistics
 from .annotations import AnnotationSet, load_annotations
 from .associations import annotation_shares
 from .legend import CARDS_FORMAT, CARDS_VERSION, COLUMNS, RECORD_COLUMNS, SECTIONS, header_lines
@@ -190,7 +190,7 @@ class AxisCards:
         directory = Path(directory)
         directory.mkdir(parents=True, exist_ok=True)
         records = self.records()
-        write_safe_tsv(records, directory / f"{CARDS_FILE}.tsv", parquet=parquet, header=header_lines())
+        write_table(records, directory / f"{CARDS_FILE}.tsv", parquet=parquet, header=header_lines())
         json_path = directory / f"{CARDS_FILE}.json"
         write_json(self.to_json(), json_path)
         _make_html_safe(json_path)
@@ -198,9 +198,9 @@ class AxisCards:
         pages.mkdir(exist_ok=True)
         for axis, text in self.pages.items():
             (pages / f"{axis}.md").write_text(text, encoding="utf-8")
-        write_safe_tsv(self.sample_statistics, directory / SAMPLE_TABLE, parquet=parquet)
+        write_table(self.sample_statistics, directory / SAMPLE_TABLE, parquet=parquet)
         if self.supplementary_scores is not None:
-            write_safe_tsv(self.supplementary_scores, directory / SUPPLEMENTARY_SCORES_FILE, parquet=parquet)
+            write_table(self.supplementary_scores, directory / SUPPLEMENTARY_SCORES_FILE, parquet=parquet)
         if features:
             self.feature_statistics.write(directory, parquet=parquet)
 

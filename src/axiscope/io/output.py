@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import contextlib
 import os
+import re
 import shutil
 import tempfile
 from collections.abc import Iterator, Sequence
@@ -57,11 +58,86 @@ def atomic_directory(out: Path, *, overwrite: bool = False) -> Iterator[Path]:
         raise
 
 
-def write_table(df: pd.DataFrame, path: Path, *, parquet: bool = False) -> None:
-    """Write a tab-separated table (and a Parquet copy when asked)."""
-    df.to_csv(path, sep="\t", index=False, float_format="%.8g")
+def write_table(df: pd.DataFrame, path: Path, *, parquet: bool = False, header: Sequence[str] = ()) -> None:
+    """Write a tab-separated table that any CSV reader splits into the right cells (and a Parquet copy).
+
+    Numbers are written with 8 significant digits and missing values as empty cells;
+    true/false flags as ``true``/``false``; text cells are quoted (``"…"``, inner quotes
+    doubled, RFC 4180 style) when they hold a tab, a line break (``\\n`` or ``\\r``), a quote,
+    a ``#``, or leading/trailing white space, so that such ids cannot break a row. The
+    ``header`` lines are written first, each prefixed with ``# ``.
+    """
+    flags = {c: df[c].map(lambda v: "" if v is None or v is pd.NA else ("true" if v else "false"))
+             for c in df.columns if pd.api.types.is_bool_dtype(df[c].dtype)}
+    plain = df.assign(**flags) if flags else df
+    if any(_awkward(plain[c]) for c in plain.columns if not pd.api.types.is_numeric_dtype(plain[c].dtype)) or any(
+            _QUOTE_IF.search(str(c)) for c in plain.columns):
+        _write_quoted(df, path, header)  # rare: cells the csv module would not quote
+    else:
+        with Path(path).open("w", encoding="utf-8", newline="") as handle:
+            for line in header:
+                handle.write(f"# {line}\n" if line else "#\n")
+            plain.to_csv(handle, sep="\t", index=False, float_format="%.8g", lineterminator="\n")
     if parquet:
         df.to_parquet(Path(path).with_suffix(".parquet"), index=False)
+
+
+def _awkward(values: pd.Series) -> bool:
+    """Whether a text column holds a cell that the csv module's minimal quoting would leave broken."""
+    text = values[values.map(lambda v: isinstance(v, str))]
+    return bool(len(text)) and bool(text.str.contains(r'\r|^#|^\s|\s$', regex=True).any())
+
+
+#: Text cells holding one of these characters are quoted: the separator, line breaks, the
+#: quote itself, and ``#`` (so that readers told to skip ``#`` comments keep the cell whole).
+_QUOTE_IF = re.compile(r'[\t\n\r"#]|^\s|\s$')
+
+
+def _write_quoted(df: pd.DataFrame, path: Path, header: Sequence[str]) -> None:
+    """Write a tab-separated table that any CSV reader splits into the right cells (and a Parquet copy).
+
+    Numbers are written with 8 significant digits and missing values as empty cells;
+    true/false flags as ``true``/``false``; text cells are quoted (``"…"``, inner quotes
+    doubled, RFC 4180 style) when they hold a tab, a line break (``\\n`` or ``\\r``), a quote,
+    a ``#``, or leading/trailing white space, so that such ids cannot break a row. The
+    ``header`` lines are written first, each prefixed with ``# ``.
+    """
+    columns = [_tsv_cells(df[c]) for c in df.columns]
+    with Path(path).open("w", encoding="utf-8", newline="") as handle:
+        for line in header:
+            handle.write(f"# {line}\n" if line else "#\n")
+        handle.write("\t".join(_quote(str(c)) for c in df.columns) + "\n")
+        for row in zip(*columns):
+            handle.write("\t".join(row) + "\n")
+
+
+def _quote(text: str) -> str:
+    return '"' + text.replace('"', '""') + '"' if _QUOTE_IF.search(text) else text
+
+
+def _tsv_cells(values: pd.Series) -> list[str]:
+    """The cells of one column as text."""
+    dtype = values.dtype
+    if pd.api.types.is_bool_dtype(dtype):
+        return ["" if v is pd.NA or v is None else ("true" if v else "false") for v in values.tolist()]
+    if pd.api.types.is_integer_dtype(dtype):
+        return ["" if v is pd.NA or v is None else str(int(v)) for v in values.tolist()]
+    if pd.api.types.is_float_dtype(dtype):
+        return [f"{v:.8g}" if v == v else "" for v in values.to_numpy(dtype=np.float64, na_value=np.nan).tolist()]
+    out = []
+    for v in values.tolist():
+        if v is None or v is pd.NA or (isinstance(v, float) and v != v):
+            out.append("")
+        elif isinstance(v, (bool, np.bool_)):
+            out.append("true" if v else "false")
+        elif isinstance(v, (float, np.floating)):
+            out.append(f"{v:.8g}")
+        elif isinstance(v, (int, np.integer)):
+            out.append(str(int(v)))
+        else:
+            out.append(_quote(str(v)))
+    return out
+
 
 
 def write_json(obj: dict, path: Path) -> None:

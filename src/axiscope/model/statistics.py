@@ -24,7 +24,6 @@ recent developments. *Phil. Trans. R. Soc. A* 374, 20150202. doi:10.1098/rsta.20
 
 from __future__ import annotations
 
-import re
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -35,14 +34,13 @@ import scipy.stats as sps
 
 from ..errors import InputError, OptionError
 from ..io.output import REFIT_HINT as _REFIT
-from ..io.output import check_result_table, read_result_table
+from ..io.output import check_result_table, read_result_table, write_table
 from .store import Model
 
 __all__ = [
     "FeatureAxisStatistics",
     "feature_statistics",
     "sample_statistics",
-    "write_safe_tsv",
     "read_feature_statistics",
     "correlation_p_value",
     "benjamini_hochberg",
@@ -53,59 +51,6 @@ _QUANTITIES = ("loading", "correlation", "contribution", "sq_cosine")
 #: the contribution (percent) is part of its name.
 _PREFIX = {"loading": "loading", "correlation": "correlation", "contribution": "contribution_pct",
            "sq_cosine": "sq_cosine"}
-
-
-#: Text cells holding one of these characters are quoted: the separator, line breaks, the
-#: quote itself, and ``#`` (so that readers told to skip ``#`` comments keep the cell whole).
-_QUOTE_IF = re.compile(r'[\t\n\r"#]|^\s|\s$')
-
-
-def write_safe_tsv(df: pd.DataFrame, path: Path, *, parquet: bool = False, header: Sequence[str] = ()) -> None:
-    """Write a tab-separated table that any CSV reader splits into the right cells (and a Parquet copy).
-
-    Numbers are written with 8 significant digits and missing values as empty cells;
-    true/false flags as ``true``/``false``; text cells are quoted (``"…"``, inner quotes
-    doubled, RFC 4180 style) when they hold a tab, a line break (``\\n`` or ``\\r``), a quote,
-    a ``#``, or leading/trailing white space, so that such ids cannot break a row. The
-    ``header`` lines are written first, each prefixed with ``# ``.
-    """
-    columns = [_tsv_cells(df[c]) for c in df.columns]
-    with Path(path).open("w", encoding="utf-8", newline="") as handle:
-        for line in header:
-            handle.write(f"# {line}\n" if line else "#\n")
-        handle.write("\t".join(_quote(str(c)) for c in df.columns) + "\n")
-        for row in zip(*columns):
-            handle.write("\t".join(row) + "\n")
-    if parquet:
-        df.to_parquet(Path(path).with_suffix(".parquet"), index=False)
-
-
-def _quote(text: str) -> str:
-    return '"' + text.replace('"', '""') + '"' if _QUOTE_IF.search(text) else text
-
-
-def _tsv_cells(values: pd.Series) -> list[str]:
-    """The cells of one column as text."""
-    dtype = values.dtype
-    if pd.api.types.is_bool_dtype(dtype):
-        return ["" if v is pd.NA or v is None else ("true" if v else "false") for v in values.tolist()]
-    if pd.api.types.is_integer_dtype(dtype):
-        return ["" if v is pd.NA or v is None else str(int(v)) for v in values.tolist()]
-    if pd.api.types.is_float_dtype(dtype):
-        return [f"{v:.8g}" if v == v else "" for v in values.to_numpy(dtype=np.float64, na_value=np.nan).tolist()]
-    out = []
-    for v in values.tolist():
-        if v is None or v is pd.NA or (isinstance(v, float) and v != v):
-            out.append("")
-        elif isinstance(v, (bool, np.bool_)):
-            out.append("true" if v else "false")
-        elif isinstance(v, (float, np.floating)):
-            out.append(f"{v:.8g}")
-        elif isinstance(v, (int, np.integer)):
-            out.append(str(int(v)))
-        else:
-            out.append(_quote(str(v)))
-    return out
 
 
 # --------------------------------------------------------------------------- samples
@@ -247,7 +192,7 @@ class FeatureAxisStatistics:
         directory = Path(directory)
         if self.n_features <= threshold:
             path = directory / f"{name}.tsv"
-            write_safe_tsv(self.to_frame(), path, parquet=parquet)
+            write_table(self.to_frame(), path, parquet=parquet)
             return path
         import zarr
 
