@@ -215,9 +215,9 @@ def worker_axiscope(job: dict) -> dict:
     from axiscope import PreprocessSpec, fit
 
     t0 = time.perf_counter()
-    res = fit(job["path"], n_components=job["k"], method="randomized",
-              memory_limit=job["memory_limit"], preprocess=PreprocessSpec(scale="none"),
-              threads=job.get("threads"))
+    res = fit(job["path"], n_components=job["k"], preprocess=PreprocessSpec(scale="none"),
+              engine=EngineSettings(method="randomized"),
+              resources=Resources(memory_limit=job["memory_limit"], threads=job.get("threads")))
     seconds = time.perf_counter() - t0
     man = res.manifest
     if res.model.components.shape[0] != res.input_feature_ids.shape[0]:

@@ -120,16 +120,16 @@ def test_fit_parquet_and_overwrite(small_h5, tmp_path):
 
 
 def test_fit_options_reach_the_fit(write_matrix, tmp_path, dense):
-    """--samples-in columns, --scale none, --log1p, --normalize-total, --top-variable, text input."""
+    """--samples-in columns, --scale none, --log, --counts-per, --top-variable, text input."""
     rng = np.random.default_rng(4)
     X = rng.poisson(rng.gamma(2.0, 10.0, size=(40, 30))).astype(float) + 1
     path = write_matrix(X, "tsv", samples_in="columns")
     out = tmp_path / "o"
     res = _invoke("fit", path, "--out", out, "-k", "3", "--samples-in", "columns", "--scale", "none",
-                  "--log1p", "--normalize-total", "1000", "-q")
+                  "--log", "--counts-per", "1000", "-q")
     assert res.exit_code == 0, res.stderr
     comps = pd.read_csv(out / "components.tsv", sep="\t")
-    ref = dense(X, scale="none", log1p=True, normalize_total=1000.0)  # reference: dense numpy + LAPACK
+    ref = dense(X, scale="none", log_transform=True, counts_per=1000.0)  # reference: dense numpy + LAPACK
     np.testing.assert_allclose(comps.singular_value, ref.s[:3], rtol=1e-6)
     scores = pd.read_csv(out / "sample_scores.tsv", sep="\t")
     assert list(scores.sample_id) == [f"s{i:05d}" for i in range(40)]
@@ -253,21 +253,21 @@ def _case_one_feature(d):
 
 
 def _case_k_too_large(d):
-    np.save(d / "m.npy", M)  # 6 × 5: at most 4 components
-    return [d / "m.npy", "-k", "5"], ("--components", "4")
+    np.save(d / "m.npy", M)  # 6 × 5, centred: rank at most min(6 − 1, 5) = 5
+    return [d / "m.npy", "-k", "6"], ("m.npy", "choose at most 5")
 
 
 def _case_nan(d):
     X = M.copy()
     X[3, 2] = np.nan
-    return [_make_h5(d / "nan.h5", X=X), "-k", "2"], ("nan.h5", "sample_000004", "feature_000003", "--missing mean")
+    return [_make_h5(d / "nan.h5", X=X), "-k", "2"], ("nan.h5", "sample_000004", "feature_000003", "missing='mean'")
 
 
 def _case_inf(d):
     X = M.copy()
     X[1, 4] = -np.inf
     np.save(d / "inf.npy", X)
-    return [d / "inf.npy", "-k", "2"], ("inf.npy", "sample_000002", "feature_000005", "--missing")
+    return [d / "inf.npy", "-k", "2"], ("inf.npy", "sample_000002", "feature_000005", "missing='mean'")
 
 
 def _case_ids_file_length(d):
@@ -364,7 +364,7 @@ def test_bad_input_one_line_exit_2_no_output(case, tmp_path):
 def test_bad_option_values(small_h5, tmp_path):
     path = small_h5[0]
     for args, needle in (
-        (["--memory-limit", "lots"], "memory limit"),
+        (["--memory-limit", "lots"], "'lots' is not a size"),
         (["--scale", "zscore"], "--scale"),
         (["--power-iterations", "many"], "'many'"),
         (["--samples-in", "diagonal"], "--samples-in"),

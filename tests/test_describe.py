@@ -15,7 +15,7 @@ import pytest
 from scipy import stats as sps
 from typer.testing import CliRunner
 
-from axiscope import fit
+from axiscope import EngineSettings, fit
 from axiscope.cli import app
 from axiscope.explain.describe import describe, interpret_fit, plan_interpretation
 from axiscope.io.readers import array_source
@@ -46,7 +46,8 @@ def planted():
 
 def test_description_names_the_planted_drivers(planted):
     X, ids, fids, ann = planted
-    r = fit(array_source(X, sample_ids=ids, feature_ids=fids), n_components=4, method="exact")
+    r = fit(array_source(X, sample_ids=ids, feature_ids=fids), n_components=4,
+            engine=EngineSettings(method="exact"))
     d = describe(r, annotations=ann, top=10)
     pc1 = d.features[d.features.axis == "PC1"]
     pc1_side = pc1[pc1.direction == ("positive" if pc1.correlation.abs().max() == pc1.correlation.max() else "negative")]
@@ -72,7 +73,8 @@ def test_description_names_the_planted_drivers(planted):
 
 def test_batch_warning_fires_when_the_technical_column_drives_the_axis(planted):
     X, ids, fids, ann = planted
-    r = fit(array_source(X, sample_ids=ids, feature_ids=fids), n_components=3, method="exact")
+    r = fit(array_source(X, sample_ids=ids, feature_ids=fids), n_components=3,
+            engine=EngineSettings(method="exact"))
     d = describe(r, annotations=ann, technical=["run"])
     axes = d.axes.set_index("axis")
     assert axes.loc["PC2", "batch_warning"] and not axes.loc["PC1", "batch_warning"]
@@ -216,7 +218,7 @@ def test_annotations_are_typed_on_the_active_samples_of_a_fit(caplog):
     src = array_source(X, sample_ids=ids)
     plan = plan_interpretation(src, annotations=table, supplementary_samples_column="held")
     assert plan.active is not None and (~plan.active).sum() == 8
-    r = fit(src, n_components=2, method="exact", active=plan.active)
+    r = fit(src, n_components=2, active=plan.active, engine=EngineSettings(method="exact"))
     d = interpret_fit(plan, r, src, threads=1)
     var = d.variables.set_index("variable")
     assert "held" not in var.index

@@ -20,6 +20,7 @@ import pytest
 import scipy.linalg
 
 from axiscope.core.engine import randomized_factorization
+from axiscope.core.options import EngineSettings, InputLayout, Resources
 from axiscope.core.passes import PassRunner
 from axiscope.core.preprocess import PreprocessSpec
 from axiscope.fitting.run import fit
@@ -60,7 +61,7 @@ def test_randomized_fit_matches_lapack(kind, dtype, seed, planted, dense, sine):
     X = _matrix(kind, dtype, seed, planted)
     for scale in ("unit", "none"):
         result = fit(array_source(X), n_components=K, preprocess=PreprocessSpec(scale=scale),
-                     method="randomized", seed=seed, threads=2)
+                     engine=EngineSettings(method="randomized", seed=seed), resources=Resources(threads=2))
         assert result.factorization.method == "randomized"
         ref = dense(X, scale=scale)
         _check_against_lapack(result, ref, K, sine)
@@ -71,7 +72,8 @@ def test_randomized_fit_matches_lapack(kind, dtype, seed, planted, dense, sine):
 def test_orientation_on_disk_matches_lapack(samples_in, dtype, planted, dense, sine, orient, write_matrix):
     X = planted(250, 320, rank=12, spectrum="slow", dtype=dtype, seed=11).X
     path = write_matrix(X, "h5", chunks=(40, 64) if samples_in == "rows" else (64, 40), samples_in=samples_in)
-    result = fit(path, samples_in=samples_in, n_components=K, method="randomized", threads=2)
+    result = fit(path, n_components=K, engine=EngineSettings(method="randomized"),
+                 resources=Resources(threads=2), layout=InputLayout(samples_in=samples_in))
     ref = dense(X)
     _check_against_lapack(result, ref, K, sine)
     # scores are aligned with the samples of the file (not the features)
@@ -83,7 +85,7 @@ def test_orientation_on_disk_matches_lapack(samples_in, dtype, planted, dense, s
 def test_sign_convention(dtype, planted, dense, orient):
     """Each axis: the feature with the largest absolute loading is positive (documented)."""
     X = planted(200, 150, rank=8, dtype=dtype, seed=4).X
-    result = fit(array_source(X), n_components=6, method="randomized", seed=1)
+    result = fit(array_source(X), n_components=6, engine=EngineSettings(method="randomized", seed=1))
     V = result.model.components
     top = np.argmax(np.abs(V), axis=0)
     assert np.all(V[top, np.arange(V.shape[1])] > 0)
@@ -131,8 +133,8 @@ def test_fit_determinism_threads_and_memory(dtype, rtol, planted):
     X = planted(1200, 1500, rank=10, dtype=dtype, seed=3).X
     runs = []
     for threads, limit in ((1, None), (2, None), (2, "17MB")):
-        runs.append(fit(array_source(X), n_components=8, method="randomized", seed=3,
-                        threads=threads, memory_limit=limit))
+        runs.append(fit(array_source(X), n_components=8, engine=EngineSettings(method="randomized", seed=3),
+                        resources=Resources(memory_limit=limit, threads=threads)))
     rows = {r.manifest["plan"]["block_rows"] for r in runs}
     assert len(rows) >= 2, f"block sizes did not change ({rows}); the test would not test anything"
     for other in runs[1:]:
@@ -148,11 +150,12 @@ def test_fixed_power_iterations_count_passes(q, planted, dense):
     assert fac.power_iterations == q
     assert runner.n_passes == q + 2
     # through fit: the first sketch is fused with the statistics pass, so q + 2 in all
-    result = fit(array_source(X), n_components=8, method="randomized", power_iterations=q)
+    result = fit(array_source(X), n_components=8,
+                 engine=EngineSettings(method="randomized", power_iterations=q))
     assert result.manifest["passes"]["count"] == q + 2
     # a feature filter needs the statistics first, then a separate sketch pass: q + 3
-    filtered = fit(array_source(X), n_components=8, method="randomized", power_iterations=q,
-                   preprocess=PreprocessSpec(top_variable=200))
+    filtered = fit(array_source(X), n_components=8, preprocess=PreprocessSpec(top_variable=200),
+                   engine=EngineSettings(method="randomized", power_iterations=q))
     assert filtered.manifest["passes"]["count"] == q + 3
 
 
@@ -177,8 +180,8 @@ def test_float32_power_iterations_do_not_overflow(dense):
     rng = np.random.default_rng(12)
     X = (rng.standard_normal((200, 150)) * 1e3 + rng.standard_normal(150) * 1e3).astype(np.float32)
     for scale in ("none", "unit"):
-        result = fit(array_source(X), n_components=5, method="randomized", power_iterations=12,
-                     preprocess=PreprocessSpec(scale=scale))
+        result = fit(array_source(X), n_components=5, preprocess=PreprocessSpec(scale=scale),
+                     engine=EngineSettings(method="randomized", power_iterations=12))
         assert np.all(np.isfinite(result.model.singular_values))
         assert np.all(np.isfinite(result.scores))
         ref = dense(X, scale=scale)
@@ -189,7 +192,7 @@ def test_float32_power_iterations_do_not_overflow(dense):
 def test_exact_method_matches_scipy(planted, sine):
     """``method="exact"`` against scipy.linalg.svd (gesvd driver, a different LAPACK routine)."""
     X = planted(120, 90, rank=6, seed=9).X
-    result = fit(array_source(X), n_components=5, method="exact")
+    result = fit(array_source(X), n_components=5, engine=EngineSettings(method="exact"))
     Z = (X - X.mean(axis=0)) / X.std(axis=0)
     U, s, Vt = scipy.linalg.svd(Z, full_matrices=False, lapack_driver="gesvd")  # reference: scipy LAPACK gesvd
     np.testing.assert_allclose(result.model.singular_values, s[:5], rtol=1e-10)
@@ -199,8 +202,8 @@ def test_exact_method_matches_scipy(planted, sine):
 def test_auto_and_randomized_agree(planted):
     """Both paths of ``method`` on the same input (exact is LAPACK, the reference)."""
     X = planted(150, 220, rank=10, seed=10, dtype="float32").X
-    exact = fit(array_source(X), n_components=6, method="auto")
-    randomized = fit(array_source(X), n_components=6, method="randomized")
+    exact = fit(array_source(X), n_components=6, engine=EngineSettings(method="auto"))
+    randomized = fit(array_source(X), n_components=6, engine=EngineSettings(method="randomized"))
     assert exact.factorization.method == "exact"
     np.testing.assert_allclose(randomized.model.singular_values, exact.model.singular_values, rtol=SV_RTOL)
     np.testing.assert_allclose(randomized.model.components, exact.model.components, atol=1e-3)

@@ -23,6 +23,7 @@ from sklearn.datasets import load_breast_cancer, load_digits, load_iris
 from sklearn.decomposition import PCA
 from sklearn.preprocessing import StandardScaler
 
+from axiscope.core.options import EngineSettings, InputLayout, Resources
 from axiscope.core.preprocess import PreprocessSpec
 from axiscope.fitting.run import fit
 from axiscope.io.readers import array_source
@@ -49,7 +50,8 @@ def test_matches_sklearn_pca_on_bundled_datasets(name, scale, method, orient, si
     X = DATASETS[name]().data
     n, p = X.shape
     k = min(8, p - 1)
-    result = fit(array_source(X), n_components=k, preprocess=PreprocessSpec(scale=scale), method=method)
+    result = fit(array_source(X), n_components=k, preprocess=PreprocessSpec(scale=scale),
+                 engine=EngineSettings(method=method))
     pca, keep, comp_ref, scores_ref = _sklearn_reference(X, scale, k, orient)
     rtol = 1e-8 if method == "exact" else 1e-4
     model = result.model
@@ -84,7 +86,7 @@ def test_iris_correlation_eigenvalues_published():
     X = load_iris().data
     published = np.array([2.918, 0.914, 0.147, 0.021])  # recalled from memory
     for method in ("exact", "randomized"):
-        result = fit(array_source(X), n_components=3, method=method)
+        result = fit(array_source(X), n_components=3, engine=EngineSettings(method=method))
         variance = result.model.variance
         fourth = result.model.total_inertia - variance.sum()
         np.testing.assert_allclose(np.r_[variance, fourth], published, atol=1.5e-3)
@@ -99,7 +101,7 @@ def test_conventions_variance_sum_population_sd_sign(dtype, planted):
     """With n ≤ p and k = n − 1 the axes hold everything: variances sum to the kept features."""
     X = planted(30, 50, rank=5, dtype=dtype, seed=21).X
     X[:, 7] = 3.0  # a constant feature: dropped under unit scaling
-    result = fit(array_source(X), n_components=29, method="exact")
+    result = fit(array_source(X), n_components=29, engine=EngineSettings(method="exact"))
     model = result.model
     assert model.n_features == 49
     assert "feature_00008" not in set(model.feature_ids)
@@ -121,7 +123,7 @@ def test_conventions_variance_sum_population_sd_sign(dtype, planted):
     V = model.components
     assert np.all(V[np.argmax(np.abs(V), axis=0), np.arange(V.shape[1])] > 0)
     # randomized path, same conventions
-    rnd = fit(array_source(X), n_components=10, method="randomized")
+    rnd = fit(array_source(X), n_components=10, engine=EngineSettings(method="randomized"))
     np.testing.assert_allclose(rnd.model.variance, model.variance[:10], rtol=1e-4)
 
 
@@ -141,7 +143,7 @@ def _compare_to_dense(result, ref, k, orient, rtol=1e-6):
 
 
 def _counts(n, p, seed):
-    """Invented counts: negative-binomial-like (gamma–Poisson) with two planted groups."""
+    """Invented counts: overdispersed (gamma–Poisson) with two planted groups."""
     rng = np.random.default_rng(seed)
     base = rng.gamma(2.0, 20.0, size=p)
     group = rng.integers(0, 2, size=n)
@@ -152,11 +154,12 @@ def _counts(n, p, seed):
 
 
 @pytest.mark.parametrize("method", ["exact", "randomized"])
-def test_scale_none_and_binomial(method, dense, orient):
+def test_scale_none_and_allele_frequency(method, dense, orient):
     rng = np.random.default_rng(31)
     # covariance PCA
     X = rng.standard_normal((120, 60)) @ np.diag(np.linspace(5, 0.5, 60)) + 2
-    result = fit(array_source(X), n_components=5, preprocess=PreprocessSpec(scale="none"), method=method)
+    result = fit(array_source(X), n_components=5, preprocess=PreprocessSpec(scale="none"),
+                 engine=EngineSettings(method=method))
     _compare_to_dense(result, dense(X, scale="none"), 5, orient, rtol=1e-6 if method == "exact" else 1e-4)
     np.testing.assert_allclose(result.model.scale, 1.0)
     # genotype dosages 0/1/2 from two invented populations (allele frequencies differ)
@@ -164,8 +167,9 @@ def test_scale_none_and_binomial(method, dense, orient):
     pop = rng.integers(0, 2, size=150)
     G = rng.binomial(2, freq[pop]).astype(np.float64)
     G[:, 3] = 0.0  # monomorphic: dropped
-    result = fit(array_source(G), n_components=4, preprocess=PreprocessSpec(scale="binomial"), method=method)
-    ref = dense(G, scale="binomial")  # Patterson, Price & Reich 2006: sqrt(2q(1−q)), q = mean/2
+    result = fit(array_source(G), n_components=4, preprocess=PreprocessSpec(scale="allele-frequency"),
+                 engine=EngineSettings(method=method))
+    ref = dense(G, scale="allele-frequency")  # Patterson, Price & Reich 2006: sqrt(2q(1−q)), q = mean/2
     _compare_to_dense(result, ref, 4, orient, rtol=1e-6 if method == "exact" else 1e-4)
     q = G[:, ref.kept].mean(axis=0) / 2
     np.testing.assert_allclose(result.model.scale, np.sqrt(2 * q * (1 - q)), rtol=1e-10)
@@ -173,18 +177,20 @@ def test_scale_none_and_binomial(method, dense, orient):
 
 
 @pytest.mark.parametrize("method", ["exact", "randomized"])
-def test_log1p_and_normalize_total(method, dense, orient):
+def test_log_transform_and_counts_per(method, dense, orient):
     X = _counts(160, 240, seed=5)
     tol = 1e-6 if method == "exact" else 1e-4
-    spec = PreprocessSpec(log1p=True)
-    _compare_to_dense(fit(array_source(X), n_components=5, preprocess=spec, method=method),
-                      dense(X, log1p=True), 5, orient, rtol=tol)
-    spec = PreprocessSpec(log1p=True, normalize_total=1e4)
-    result = fit(array_source(X), n_components=5, preprocess=spec, method=method)
-    _compare_to_dense(result, dense(X, log1p=True, normalize_total=1e4), 5, orient, rtol=tol)
+    spec = PreprocessSpec(log_transform=True)
+    _compare_to_dense(fit(array_source(X), n_components=5, preprocess=spec,
+                          engine=EngineSettings(method=method)),
+                      dense(X, log_transform=True), 5, orient, rtol=tol)
+    spec = PreprocessSpec(log_transform=True, counts_per=1e4)
+    result = fit(array_source(X), n_components=5, preprocess=spec, engine=EngineSettings(method=method))
+    _compare_to_dense(result, dense(X, log_transform=True, counts_per=1e4), 5, orient, rtol=tol)
     # float32 counts: computed in float32, still accurate against the float64 reference
-    result32 = fit(array_source(X.astype(np.float32)), n_components=5, preprocess=spec, method=method)
-    _compare_to_dense(result32, dense(X, log1p=True, normalize_total=1e4), 5, orient, rtol=1e-4)
+    result32 = fit(array_source(X.astype(np.float32)), n_components=5, preprocess=spec,
+                   engine=EngineSettings(method=method))
+    _compare_to_dense(result32, dense(X, log_transform=True, counts_per=1e4), 5, orient, rtol=1e-4)
 
 
 def test_feature_filters(dense, orient):
@@ -192,18 +198,18 @@ def test_feature_filters(dense, orient):
     A = np.log1p(X)
     var = A.var(axis=0)  # reference: numpy population variance after the transform
     # --top-variable: the N most variable features
-    spec = PreprocessSpec(log1p=True, top_variable=80)
-    result = fit(array_source(X), n_components=5, preprocess=spec, method="randomized")
+    spec = PreprocessSpec(log_transform=True, top_variable=80)
+    result = fit(array_source(X), n_components=5, preprocess=spec, engine=EngineSettings(method="randomized"))
     keep = np.sort(np.argsort(-var, kind="stable")[:80])
     assert list(result.model.feature_ids) == [f"feature_{i + 1:06d}" for i in keep]
-    _compare_to_dense(result, dense(X, log1p=True, keep=keep), 5, orient, rtol=1e-4)
+    _compare_to_dense(result, dense(X, log_transform=True, keep=keep), 5, orient, rtol=1e-4)
     # --min-variance: features with a variance at least the threshold
     threshold = float(np.quantile(var, 0.6))
-    spec = PreprocessSpec(log1p=True, min_variance=threshold)
-    result = fit(array_source(X), n_components=5, preprocess=spec, method="exact")
+    spec = PreprocessSpec(log_transform=True, min_variance=threshold)
+    result = fit(array_source(X), n_components=5, preprocess=spec, engine=EngineSettings(method="exact"))
     keep = np.flatnonzero(var >= threshold)
     assert result.model.n_features == keep.size
-    _compare_to_dense(result, dense(X, log1p=True, keep=keep), 5, orient)
+    _compare_to_dense(result, dense(X, log_transform=True, keep=keep), 5, orient)
     assert result.manifest["features_dropped"]["min_variance"] == 300 - keep.size
 
 
@@ -216,7 +222,8 @@ def test_missing_mean_imputation(method, planted, dense, orient):
     X[holes] = np.nan
     X[0, 1] = np.inf
     holes[0, 1] = True
-    result = fit(array_source(X), n_components=5, preprocess=PreprocessSpec(missing="mean"), method=method)
+    result = fit(array_source(X), n_components=5, preprocess=PreprocessSpec(missing="mean"),
+                 engine=EngineSettings(method=method))
     # reference: dense numpy, each non-finite cell replaced by its feature's mean over finite cells
     filled = X.copy()
     finite = np.where(np.isfinite(X), X, np.nan)
@@ -229,7 +236,7 @@ def test_missing_mean_imputation(method, planted, dense, orient):
 def test_float32_input_float32_computation(planted, write_matrix, dense, sine):
     X = planted(300, 200, rank=8, spectrum="slow", dtype="float32", seed=8).X
     path = write_matrix(X, "h5", chunks=(50, 200))
-    result = fit(path, n_components=6, method="randomized")
+    result = fit(path, n_components=6, engine=EngineSettings(method="randomized"))
     assert result.manifest["input"]["dtype"] == "float32"
     # transformed blocks are kept as float32: 4 bytes per value
     assert result.manifest["plan"]["cache_bytes"] == 300 * 200 * 4
@@ -248,7 +255,7 @@ def ooc_matrix(planted):
 
 @pytest.fixture(scope="module")
 def ooc_reference(ooc_matrix):
-    return fit(array_source(ooc_matrix), n_components=8, method="randomized", seed=0)
+    return fit(array_source(ooc_matrix), n_components=8, engine=EngineSettings(method="randomized", seed=0))
 
 
 def _assert_same(result, reference, rtol=1e-5):
@@ -277,8 +284,8 @@ def _assert_same(result, reference, rtol=1e-5):
 def test_out_of_core_equals_in_memory(fmt, chunks, samples_in, memory_limit, ooc_matrix, ooc_reference,
                                       write_matrix):
     path = write_matrix(ooc_matrix, fmt, chunks=chunks, samples_in=samples_in)
-    result = fit(path, samples_in=samples_in, n_components=8, method="randomized", seed=0,
-                 memory_limit=memory_limit)
+    result = fit(path, n_components=8, engine=EngineSettings(method="randomized", seed=0),
+                 resources=Resources(memory_limit=memory_limit), layout=InputLayout(samples_in=samples_in))
     assert result.manifest["input"]["samples_in"] == samples_in
     _assert_same(result, ooc_reference)
 
@@ -289,11 +296,12 @@ def test_scratch_path_equals_in_memory(planted, write_matrix, tmp_path):
     path = write_matrix(X, "zarr3", chunks=(128, 1000))
     scratch = tmp_path / "scratch"
     scratch.mkdir()
-    result = fit(path, n_components=5, memory_limit="20MB", scratch=scratch, seed=0)
+    result = fit(path, n_components=5, engine=EngineSettings(seed=0),
+                 resources=Resources(memory_limit="20MB", scratch=scratch))
     assert result.manifest["plan"]["cache"] == "scratch"
     assert list(scratch.iterdir()) == []  # the scratch file is removed at the end
     assert result.manifest["passes"]["count"] >= 3
     later = [d for d in result.manifest["passes"]["detail"][1:]]
     assert all(d["read_from"] == "scratch" for d in later)
-    reference = fit(array_source(X), n_components=5, seed=0, method="randomized")
+    reference = fit(array_source(X), n_components=5, engine=EngineSettings(method="randomized", seed=0))
     _assert_same(result, reference)

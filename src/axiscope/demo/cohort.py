@@ -13,7 +13,7 @@ whose expression counts carry known, planted effects:
 * optionally a few corrupted samples (failed library, contaminated, degraded) that
   do not follow the model of the others.
 
-Counts are drawn from a negative binomial written as a gamma-Poisson mixture: for
+Counts are drawn from a gamma-Poisson mixture (overdispersed counts): for
 sample ``s`` and gene ``g`` with mean ``mu[s, g]`` and gene dispersion ``phi[g]``
 (size ``r[g] = 1 / phi[g]``), ``lam ~ Gamma(shape=r, scale=mu / r)`` and
 ``x ~ Poisson(lam)``, so that ``E[x] = mu`` and ``Var[x] = mu + mu**2 / r``.

@@ -18,7 +18,7 @@ from .cohort import Cohort, simulate_cohort, write_cohort
 __all__ = ["make_demo_data", "DEMO_FIT_OPTIONS", "DEMO_TECHNICAL"]
 
 #: Preprocessing of the demo counts: counts per million, then log(1 + x), standardized.
-DEMO_FIT_OPTIONS = {"normalize_total": 1e6, "log1p": True, "scale": "unit"}
+DEMO_FIT_OPTIONS = {"counts_per": 1e6, "log_transform": True, "scale": "unit"}
 #: Annotations of the demo that describe how samples were processed, not their biology.
 DEMO_TECHNICAL = ["batch", "depth", "rna_quality"]
 

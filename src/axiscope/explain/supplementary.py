@@ -75,7 +75,7 @@ def supplementary_feature_statistics(
     rows : ndarray of bool, shape (n_samples,), optional
         The active samples (default all).
     spec : PreprocessSpec, optional
-        Per-sample transforms (total normalisation, log1p), centring and scaling replayed
+        Per-sample transforms (counts per ``T``, ``log(1 + x)``), centring and scaling replayed
         on the columns, as in the fit (default: standardized, no transform).
     sample_ids : sequence of str, optional
         Ids of the scored samples; checked against ``source`` when given.
@@ -220,7 +220,7 @@ def supplementary_feature_statistics(
             corr[sl] = np.clip((centred / n) / (sd[:, None] * sd_f), -1.0, 1.0)
             if spec.scale == "unit":
                 scale = sd
-            elif spec.scale == "binomial":
+            elif spec.scale == "allele-frequency":
                 freq = mean / 2.0
                 scale = np.sqrt(2.0 * freq * (1.0 - freq))
             else:

@@ -72,9 +72,9 @@ Q_LIMIT_METHODS = ("jackson-mudholkar", "box")
 FLAGS = ("within", "t2", "q", "both", "missing")
 #: Confidence always reported besides the requested one.
 SECONDARY_CONFIDENCE = 0.95
-#: Added to messages about non-finite values when the model's preprocessing has log1p.
-_LOG1P_HINT = (
-    " (the model's preprocessing applies log1p, which turns values <= -1 into NaN or -inf: "
+#: Added to messages about non-finite values when the model's preprocessing takes logs.
+_LOG_HINT = (
+    " (the model's preprocessing applies log(1 + x), which turns values <= -1 into NaN or -inf: "
     "check the input for negative values, e.g. data that are already log-transformed)"
 )
 
@@ -489,13 +489,13 @@ def score(
             "%d of the model's %d features are missing from %s and were filled with their training mean",
             proj.match.n_missing, model.n_features, input_info["path"],
         )
-    if model.spec.log1p:
+    if model.spec.log_transform:
         # cells filled because they were non-finite after the transforms (absent features excluded)
         filled_cells = np.rint(proj.missing_fraction * model.n_features) - proj.match.n_missing
         if np.any(filled_cells > 0):
             logger.warning(
                 "%d cells of %d samples in %s were NaN or infinite after the stored transforms and "
                 "were filled with the training mean%s",
-                int(filled_cells.sum()), int(np.sum(filled_cells > 0)), input_info["path"], _LOG1P_HINT,
+                int(filled_cells.sum()), int(np.sum(filled_cells > 0)), input_info["path"], _LOG_HINT,
             )
     return result
