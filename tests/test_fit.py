@@ -18,6 +18,7 @@ issue's 1e-5 (measured ≤ 3e-7 for float32, 1e-14 for float64).
 from __future__ import annotations
 
 import numpy as np
+import pandas as pd
 import pytest
 from sklearn.datasets import load_breast_cancer, load_digits, load_iris
 from sklearn.decomposition import PCA
@@ -25,6 +26,7 @@ from sklearn.preprocessing import StandardScaler
 
 from axiscope.core.options import EngineSettings, InputLayout, Resources
 from axiscope.core.preprocess import PreprocessSpec
+from axiscope.errors import ModelError, OptionError
 from axiscope.fitting.run import fit
 from axiscope.io.readers import array_source
 
@@ -81,16 +83,68 @@ def test_iris_correlation_eigenvalues_published():
 
     Published values about 2.918, 0.914, 0.147, 0.021 (values recalled from memory).
     Standardized PCA with population SD has exactly the correlation matrix's eigenvalues as
-    axis variances; k ≤ p − 1 = 3, so the fourth is the total (4 features) minus the rest.
+    axis variances; centred 150 × 4 has rank min(150 − 1, 4) = 4, so all four axes exist.
     """
     X = load_iris().data
     published = np.array([2.918, 0.914, 0.147, 0.021])  # recalled from memory
     for method in ("exact", "randomized"):
-        result = fit(array_source(X), n_components=3, engine=EngineSettings(method=method))
-        variance = result.model.variance
-        fourth = result.model.total_inertia - variance.sum()
-        np.testing.assert_allclose(np.r_[variance, fourth], published, atol=1.5e-3)
+        result = fit(array_source(X), n_components=4, engine=EngineSettings(method=method))
+        np.testing.assert_allclose(result.model.variance, published, atol=1.5e-3)
         assert result.model.total_inertia == pytest.approx(4.0, rel=1e-12)
+        assert result.model.variance.sum() == pytest.approx(4.0, rel=1e-12)
+
+
+@pytest.mark.parametrize("method", ["exact", "randomized"])
+def test_iris_all_four_axes_like_lapack_and_sklearn(method):
+    """``-k 4`` on iris (150 × 4): the number of axes LAPACK and scikit-learn give.
+
+    References: numpy.linalg.svd (LAPACK gesdd) of the standardized matrix (population SD),
+    and sklearn.decomposition.PCA(n_components=4) on StandardScaler output.
+    """
+    X = load_iris().data
+    result = fit(array_source(X), n_components=4, engine=EngineSettings(method=method))
+    Z = (X - X.mean(axis=0)) / X.std(axis=0)
+    s_lapack = np.linalg.svd(Z, compute_uv=False)
+    pca = PCA(n_components=4).fit(StandardScaler().fit_transform(X))
+    rtol = 1e-10 if method == "exact" else 1e-6
+    np.testing.assert_allclose(result.model.singular_values, s_lapack, rtol=rtol)
+    np.testing.assert_allclose(result.model.singular_values, pca.singular_values_, rtol=rtol)
+    np.testing.assert_allclose(result.model.variance_ratio, pca.explained_variance_ratio_, rtol=rtol)
+    assert result.model.variance_ratio.sum() == pytest.approx(1.0, rel=1e-10)
+
+
+def test_more_axes_than_the_rank_is_one_clear_error():
+    """The rank of an n × p matrix is at most min(n, p), and centring removes one dimension
+    (the samples' mean): at most min(n − 1, p) axes centred, min(n, p) not (linear algebra)."""
+    X = load_iris().data
+    with pytest.raises(OptionError, match=r"^n_components=5 is more than .* rank at most 4 .*choose at most 4$"):
+        fit(array_source(X), n_components=5)
+    wide = np.random.default_rng(0).standard_normal((6, 10))
+    with pytest.raises(OptionError, match=r"n_components=6 .*rank at most 5 \(min\(samples − 1, features\), centred\)"):
+        fit(array_source(wide), n_components=6)
+    # not centred: six samples span six dimensions (reference: numpy.linalg.matrix_rank)
+    assert np.linalg.matrix_rank(wide) == 6
+    result = fit(array_source(wide), n_components=6, preprocess=PreprocessSpec(center=False, scale="none"))
+    np.testing.assert_allclose(result.model.singular_values, np.linalg.svd(wide, compute_uv=False), rtol=1e-10)
+
+
+def test_rank_after_preprocessing_is_the_limit():
+    """Constant features are dropped before the limit is checked (structural rank), and a
+    matrix of lower numerical rank refuses the axes it does not have instead of returning
+    singular values of rounding size."""
+    rng = np.random.default_rng(1)
+    X = rng.standard_normal((20, 12))
+    X[:, 3:11] = 7.0  # eight constant features: 4 are left, rank at most 4
+    with pytest.raises(OptionError, match=r"n_components=5 .*preprocessed matrix.*choose at most 4"):
+        fit(array_source(X), n_components=5)
+    # planted rank 3 (no noise): reference numpy.linalg.matrix_rank of the standardized matrix
+    low = rng.standard_normal((50, 3)) @ rng.standard_normal((3, 40))
+    Z = (low - low.mean(axis=0)) / low.std(axis=0)
+    assert np.linalg.matrix_rank(Z) == 3
+    for method in ("exact", "randomized"):
+        with pytest.raises(OptionError, match=r"n_components=5 is more than the rank .* only 3 .*choose at most 3"):
+            fit(array_source(low), n_components=5, engine=EngineSettings(method=method))
+        assert fit(array_source(low), n_components=3, engine=EngineSettings(method=method)).model.n_components == 3
 
 
 # --------------------------------------------------------------------------- conventions
@@ -305,3 +359,110 @@ def test_scratch_path_equals_in_memory(planted, write_matrix, tmp_path):
     assert all(d["read_from"] == "scratch" for d in later)
     reference = fit(array_source(X), n_components=5, engine=EngineSettings(method="randomized", seed=0))
     _assert_same(result, reference)
+
+
+def test_scratch_folder_is_made_when_missing(planted, write_matrix, tmp_path):
+    """Resources(scratch=...) names a folder that does not exist yet: the fit makes it."""
+    X = planted(2000, 3000, rank=4, dtype="float32", seed=45).X
+    path = write_matrix(X, "zarr3", chunks=(128, 1000))
+    scratch = tmp_path / "not" / "yet"
+    result = fit(path, n_components=3, resources=Resources(memory_limit="20MB", scratch=scratch))
+    assert result.manifest["plan"]["cache"] == "scratch"
+    assert scratch.is_dir() and list(scratch.iterdir()) == []  # made, and left empty
+    # a file where the folder should be is refused at construction, naming the parameter
+    (tmp_path / "file").write_text("x")
+    with pytest.raises(OptionError, match=r"^scratch='.*file' is a file, not a folder"):
+        Resources(scratch=tmp_path / "file")
+
+
+# ------------------------------------------------------------------------ option objects
+
+
+@pytest.mark.parametrize(
+    "make,message",
+    [
+        (lambda: EngineSettings(method="fast"), r"^method='fast' is not one of 'auto', 'randomized', 'exact'"),
+        (lambda: EngineSettings(oversample=-1), r"^oversample=-1 is not a whole number >= 0"),
+        (lambda: EngineSettings(power_iterations=101), r"^power_iterations=101 is not 'auto' or a whole number"),
+        (lambda: EngineSettings(power_iterations="many"), r"^power_iterations='many'"),
+        (lambda: EngineSettings(tol=0), r"^tol=0 is not a number between 0 and 1"),
+        (lambda: EngineSettings(seed=-3), r"^seed=-3 is not a whole number >= 0"),
+        (lambda: Resources(memory_limit="lots"), r"^memory_limit='lots' is not a size; write it like 512MB"),
+        (lambda: Resources(memory_limit="1MB"), r"^memory_limit='1MB' is below the minimum of 16MB"),
+        (lambda: Resources(threads=0), r"^threads=0 is not a whole number >= 1"),
+        (lambda: InputLayout(samples_in="diagonal"), r"^samples_in='diagonal' is not one of 'rows', 'columns'"),
+        (lambda: PreprocessSpec(scale="zscore"), r"^scale='zscore' is not one of 'unit', 'none', 'allele-frequency'"),
+        (lambda: PreprocessSpec(counts_per=0), r"^counts_per=0 is not a positive number"),
+        (lambda: PreprocessSpec(top_variable=1), r"^top_variable=1 is not a whole number >= 2"),
+        (lambda: PreprocessSpec(log_transform="yes"), r"^log_transform='yes' is not True or False"),
+        (lambda: PreprocessSpec(missing="drop"), r"^missing='drop' is not one of 'error', 'mean'"),
+        (lambda: fit(array_source(np.eye(5)), n_components=0), r"^n_components=0 is not a whole number >= 1"),
+        (lambda: fit(array_source(np.eye(5)), n_components=2, engine={"method": "exact"}),
+         r"^engine must be a EngineSettings, got dict"),
+        (lambda: fit(array_source(np.eye(5)), n_components=2, layout=InputLayout(dataset="X")),
+         r"^layout describes a file, but source is an opened MatrixSource"),
+    ],
+)
+def test_option_errors_name_the_python_parameter(make, message):
+    """Checked when the object is made; the message names the parameter as Python spells it
+    (the command line rewrites it into its option) and never an option spelling."""
+    with pytest.raises(OptionError, match=message) as info:
+        make()
+    assert "--" not in str(info.value)
+
+
+def test_old_preprocessing_spellings_are_gone():
+    """Renamed with no alias: the old keyword arguments and scale name are refused."""
+    with pytest.raises(TypeError):
+        PreprocessSpec(**{"normalize" + "_total": 1e6})
+    with pytest.raises(TypeError):
+        PreprocessSpec(**{"log" + "1p": True})
+    with pytest.raises(OptionError, match="scale="):
+        PreprocessSpec(scale="bi" + "nomial")
+
+
+def test_every_table_is_written_as_parquet_too(tmp_path):
+    """``write(parquet=True)``: each TSV has a Parquet twin with the same content, including
+    dropped_features (reference: pandas.read_parquet / pyarrow)."""
+    X = np.random.default_rng(2).standard_normal((80, 60))
+    X[:, 4] = 1.0  # a constant feature: dropped_features.tsv is written
+    result = fit(array_source(X), n_components=3)
+    result.write(tmp_path / "out", parquet=True)
+    tables = sorted(p.stem for p in (tmp_path / "out").glob("*.tsv"))
+    assert "dropped_features" in tables and "top_features" in tables
+    assert sorted(p.stem for p in (tmp_path / "out").glob("*.parquet")) == tables
+    for name in tables:
+        tsv = pd.read_csv(tmp_path / "out" / f"{name}.tsv", sep="\t")
+        pq = pd.read_parquet(tmp_path / "out" / f"{name}.parquet")
+        assert list(pq.columns) == list(tsv.columns)
+        numbers = tsv.select_dtypes("number").columns
+        np.testing.assert_allclose(pq[numbers].to_numpy(float), tsv[numbers].to_numpy(float), rtol=1e-7)
+    # the default number of listed features per side is the shared one
+    from axiscope.io.output import DEFAULT_TOP_FEATURES
+
+    top = pd.read_csv(tmp_path / "out" / "top_features.tsv", sep="\t")
+    assert set(top.groupby(["axis", "direction"]).size()) == {DEFAULT_TOP_FEATURES}
+
+
+def test_model_loading_stays_strict(tmp_path):
+    """A stored preprocessing with a setting this version does not know, or without one it
+    needs, is a ModelError naming the file, not a silent default."""
+    import hashlib
+    import json
+
+    from axiscope.model.store import load_model
+
+    model = fit(array_source(np.random.default_rng(3).standard_normal((30, 8))), n_components=2).model
+    for change in ({"log" + "1p": False}, {}):
+        folder = tmp_path / f"m{len(change)}"
+        model.save(folder)
+        meta = json.loads((folder / "model.json").read_text())
+        if change:
+            meta["preprocessing"].update(change)
+        else:
+            del meta["preprocessing"]["counts_per"]
+        body = {key: value for key, value in meta.items() if key != "description_checksum"}
+        meta["description_checksum"] = hashlib.sha256(json.dumps(body, sort_keys=True).encode()).hexdigest()
+        (folder / "model.json").write_text(json.dumps(meta))
+        with pytest.raises(ModelError, match=r"model\.json: malformed model description.*preprocessing settings"):
+            load_model(folder)

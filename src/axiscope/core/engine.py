@@ -9,13 +9,16 @@ without forming ``X̃``: every product is taken block by block as
 ``X_b·(d∘W) − 1·(μᵀ(d∘W))`` and ``d∘(X_bᵀY_b − μ·(1ᵀY))``.
 
 Randomized path (Halko, Martinsson & Tropp 2011, "Finding structure with randomness",
-SIAM Review 53(2), doi:10.1137/090771806, algorithms 4.4 and 5.1): subspace iteration on
-the Gram form ``X̃ᵀX̃`` in feature space. One read of a block yields both ``Y_b = X̃_b·Q`` and
-``X̃_bᵀ·Y_b``, so each power iteration costs one pass over the data; ``Q`` is
-re-orthonormalised (QR, float64) after every pass so float32 never overflows. The final
-pass computes ``X̃·Q`` only; the small SVD of that ``n × l`` matrix gives scores and loadings
-(Rayleigh–Ritz). With ``power_iterations="auto"`` iterations continue until the leading
-Ritz values change by less than ``tol`` (relative) between two passes.
+SIAM Review 53(2), doi:10.1137/090771806, algorithms 4.4 and 5.1, extended to a block
+Krylov basis): iteration on the Gram form ``X̃ᵀX̃`` in feature space. One read of a block
+yields both ``Y_b = X̃_b·Q`` and ``X̃_bᵀ·Y_b``, so each power iteration costs one pass over the
+data; each new block is orthonormalised (float64) against the whole basis so float32 never
+overflows. The Rayleigh–Ritz step on the stored ``X̃·K`` gives scores and loadings without
+a further pass. With ``power_iterations="auto"`` iterations continue until the leading
+singular values have settled to ``tol`` (relative). Every result carries a per-axis error
+estimate (:class:`AxisAccuracy`): from the residuals of the final Ritz pairs on the
+randomized path (:func:`ritz_accuracy`), from LAPACK's error bounds on the exact path
+(:func:`lapack_accuracy`).
 """
 
 from __future__ import annotations
@@ -34,14 +37,15 @@ __all__ = ["AxisAccuracy", "Factorization", "randomized_factorization", "exact_f
 
 logger = logging.getLogger(__name__)
 
-#: Number of Gaussian probes for the a-posteriori error estimate (failure probability 10**-r).
+#: Number of Gaussian probes of the probabilistic bound on what the basis leaves out
+#: (``Factorization.residual_bound``; failure probability 10**-r).
 N_PROBES = 10
 #: Largest number of power iterations taken by ``power_iterations="auto"``.
 MAX_AUTO_ITERATIONS = 30
 #: ``power_iterations="auto"`` also stops when every leading Ritz pair has a relative
 #: residual ``‖X̃ᵀX̃v − s²v‖ / s²`` below this: then each ``s²`` is within that residual of an
 #: eigenvalue, and the angle of ``v`` to its eigenvector is at most the residual divided by
-#: the relative gap (Parlett, "The Symmetric Eigenvalue Problem", 1998, §11.5).
+#: the relative gap (see :func:`ritz_accuracy`).
 RESIDUAL_TOL = 1e-4
 
 
@@ -459,12 +463,15 @@ def ritz_accuracy(s: np.ndarray, residuals: np.ndarray, k: int, *, unit_roundoff
     For a Ritz pair ``(θ, v)`` of a symmetric matrix with residual ``r`` and gap ``δ``
     between ``θ`` and the rest of the spectrum:
 
-    * some eigenvalue lies within ``r`` of ``θ`` (Parlett, *The Symmetric Eigenvalue
-      Problem*, SIAM 1998, Thm 4.5.1), and within ``r²/δ`` when ``δ > r`` (Kato–Temple;
-      Parlett Thm 10.6.1; Saad, *Numerical Methods for Large Eigenvalue Problems*, 2nd ed.,
-      SIAM 2011, Thm 3.8);
+    * some eigenvalue lies within ``r`` of ``θ``, and within ``r²/δ`` (Kato–Temple);
     * the sine of the angle between ``v`` and that eigenvalue's eigenvector is at most
-      ``r/δ`` (Parlett Thm 11.7.1; Saad Thm 3.9);
+      ``r/δ``
+
+    (Bai, Demmel, Dongarra, Ruhe & van der Vorst, *Templates for the Solution of Algebraic
+    Eigenvalue Problems*, SIAM 2000, §4.8, eqs. 4.55–4.56; also Parlett, *The Symmetric
+    Eigenvalue Problem*, SIAM 1998, chapters 4 and 11, and Saad, *Numerical Methods for
+    Large Eigenvalue Problems*, 2nd ed., SIAM 2011, chapter 3);
+
     * the sine of the largest angle between the span of the first ``k`` Ritz vectors and
       the leading invariant subspace is at most ``‖R_k‖_F/δ_k`` (Davis & Kahan 1970, "The
       rotation of eigenvectors by a perturbation. III", SIAM J. Numer. Anal. 7(1),
@@ -482,6 +489,11 @@ def ritz_accuracy(s: np.ndarray, residuals: np.ndarray, k: int, *, unit_roundoff
     Users' Guide's bounds for a backward-stable SVD (see :func:`lapack_accuracy`) with the
     data's unit roundoff, ``u·σ₁/σ_j`` for values and ``u·σ₁/gap_j`` for vectors. Errors
     below about ten times that level are not resolved.
+
+    Checked against LAPACK on planted matrices (``tests/test_engine.py``): the estimates
+    bound the true errors, and exceed them by at most about ``3/g`` where ``g`` is the
+    relative gap of the axis (the bound divides by the gap to the nearest value, while the
+    error comes mostly from the far part of the spectrum).
     """
     s = np.asarray(s, dtype=np.float64)
     r = np.asarray(residuals, dtype=np.float64)
