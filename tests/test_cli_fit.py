@@ -456,7 +456,8 @@ def test_summary_states_the_accuracy_against_the_requested_tolerance(small_h5, t
     assert "Halko" not in res.stdout and "≤" not in res.stdout  # no probabilistic norm bound
     accuracy = json.loads((tmp_path / "a" / "manifest.json").read_text())["accuracy"]
     assert [a["axis"] for a in accuracy["axes"]] == ["PC1", "PC2", "PC3", "PC4"]
-    assert all(set(a) == {"axis", "singular_value_error", "loading_error", "below_tol"} for a in accuracy["axes"])
+    assert all(set(a) == {"axis", "singular_value_error", "loading_error", "relative_gap", "below_tol"}
+               for a in accuracy["axes"])
     # no power iteration and a tight tolerance: the summary names the axes that miss it
     res = _invoke("fit", path, "--out", tmp_path / "b", "-k", "4", "--method", "randomized",
                   "--power-iterations", "0", "--oversample", "0", "--tol", "1e-12")

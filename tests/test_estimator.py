@@ -151,3 +151,13 @@ def test_invalid_parameters_raise_value_error(wine):
         AxiscopePCA(scale="zscore").fit(X)
     with pytest.raises(ValueError, match="method="):
         AxiscopePCA(method="fast").fit(X)
+
+
+def test_as_many_axes_as_the_rank(wine):
+    """178 × 13 centred has rank 13: all thirteen axes, as sklearn.decomposition.PCA gives
+    (reference: PCA(n_components=13, svd_solver="full") after StandardScaler)."""
+    X, _, _ = wine
+    ours = AxiscopePCA(n_components=13).fit(X)
+    ref = make_pipeline(StandardScaler(), PCA(n_components=13, svd_solver="full")).fit(X)
+    np.testing.assert_allclose(ours.singular_values_, ref[-1].singular_values_, rtol=1e-8)
+    np.testing.assert_allclose(ours.explained_variance_ratio_.sum(), 1.0, rtol=1e-10)

@@ -166,39 +166,61 @@ def print_fit_summary(result, out: Path, quiet: bool) -> None:
 #: A loading vector whose estimated angle to the exact one has a sine above this is not
 #: reported as determined on its own (common practice, no source: 0.1 is about 6 degrees).
 LOOSE_VECTOR = 0.1
+#: Below this relative gap to a neighbour's variance the estimates are said to be loose
+#: (they exceed the error by up to about 3/gap; see axiscope.core.engine.ritz_accuracy).
+CLOSE_GAP = 0.01
+#: Axes whose loading accuracy is listed in the summary (all of them are in the manifest).
+MAX_AXES_LISTED = 10
 
 
 def accuracy_lines(accuracy: dict) -> list[str]:
     """Plain statements of the fit's accuracy from the manifest's ``accuracy`` record.
 
-    The singular values against the requested tolerance, then the loadings: each axis's
-    angle to the exact vector, naming axes that are not separated from a neighbour.
+    The singular values against the requested tolerance, then the loading vectors,
+    naming the axes that miss the tolerance or are not separated from a neighbour.
     """
     axes = accuracy["axes"]
     tol = accuracy["requested_tol"]
     how = "estimated from the Ritz residuals" if accuracy["estimated_from"] == "ritz residuals" \
-        else "LAPACK error bounds"
-    worst = max(a["singular_value_error"] for a in axes)
-    if accuracy["all_below_tol"]:
-        values = (f"accuracy: every singular value is within {worst:.1e} of the exact one (relative, "
-                  f"{how}), below the requested {tol:.0e}")
+        else "LAPACK's error bounds"
+    met = [a for a in axes if a["below_tol"]]
+    missed = [a for a in axes if not a["below_tol"]]
+    if not missed:
+        values = (f"accuracy: every singular value is within {_worst(axes, 'singular_value_error')} of the "
+                  f"exact one (relative, {how}), below the requested {tol:.0e}")
     else:
-        above = [a["axis"] for a in axes if not a["below_tol"]]
-        values = (f"accuracy: the singular values of {_names(above)} may be off by up to {worst:.1e} "
-                  f"(relative, {how}), above the requested {tol:.0e}; run more --power-iterations, "
-                  "raise --oversample or use --method exact")
-    loose = [a["axis"] for a in axes if a["loading_error"] > LOOSE_VECTOR]
-    firm = [a["loading_error"] for a in axes if a["loading_error"] <= LOOSE_VECTOR]
-    parts = []
-    if firm:
-        parts.append(f"loadings within an angle of sine {max(firm):.1e} of the exact ones"
-                     + (" (the others)" if loose else ""))
+        values = "accuracy: singular values "
+        if met:
+            values += (f"of {_span(met)} within {_worst(met, 'singular_value_error')} (relative, {how}), "
+                       f"below the requested {tol:.0e}; of {_span(missed)} ")
+        else:
+            values += f"(relative, {how}) "
+        values += f"within {_worst(missed, 'singular_value_error')} only, above the requested {tol:.0e}"
+        close = [a for a in missed if a["relative_gap"] is not None and a["relative_gap"] < CLOSE_GAP]
+        if close:
+            values += (f" (a bound, loose where variances lie within {CLOSE_GAP:.0%} of each other, as for "
+                       f"{_span(close)})")
+        values += "; more --power-iterations or --method exact tighten it"
+    shown = axes[:MAX_AXES_LISTED]
+    loadings = "loadings, sine of the angle to the exact vector: " + ", ".join(
+        f"{a['axis']} {a['loading_error']:.0e}" if a["loading_error"] <= LOOSE_VECTOR else f"{a['axis']} —"
+        for a in shown) + (", …" if len(axes) > len(shown) else "")
+    loose = [a for a in axes if a["loading_error"] > LOOSE_VECTOR]
     if loose:
-        parts.append(f"{_names(loose)} {'is' if len(loose) == 1 else 'are'} not separated from a "
-                     "neighbour of nearly equal variance: only the space such axes span together is "
-                     f"determined (all {len(axes)} axes together: sine {accuracy['subspace_error']:.1e})")
-    return [values, "  " + "; ".join(parts)] if parts else [values]
+        verb = "is" if len(loose) == 1 else "are"
+        loadings += (f" (—: {_span(loose)} {verb} not separated from a neighbour of nearly equal variance; "
+                     "only the space such axes span together is determined)")
+    return [values, loadings]
 
 
-def _names(axes: list[str]) -> str:
-    return axes[0] if len(axes) == 1 else ", ".join(axes[:-1]) + " and " + axes[-1]
+def _worst(axes: list[dict], key: str) -> str:
+    return f"{max(a[key] for a in axes):.1e}"
+
+
+def _span(axes: list[dict]) -> str:
+    """``PC1``, ``PC1 and PC2``, ``PC1–PC7`` (consecutive) or ``PC2, PC5 and PC9``."""
+    names = [a["axis"] for a in axes]
+    numbers = [int(name[2:]) for name in names]
+    if len(names) > 2 and numbers == list(range(numbers[0], numbers[0] + len(numbers))):
+        return f"{names[0]}–{names[-1]}"
+    return names[0] if len(names) == 1 else ", ".join(names[:-1]) + " and " + names[-1]

@@ -66,19 +66,23 @@ class AxisAccuracy:
     basis : str
         ``"ritz residuals"`` (randomized path: residuals of the final Ritz pairs) or
         ``"lapack error bounds"`` (exact path).
+    relative_gap : ndarray, shape (k,)
+        Distance of each axis's variance to the nearest other one, relative to it (from the
+        computed values). The estimates are upper bounds that grow loose as this shrinks.
     """
 
     singular_value: np.ndarray
     vector: np.ndarray
     subspace: float
     basis: str
+    relative_gap: np.ndarray
 
     def to_records(self, axis_names: list[str], tol: float | None = None) -> list[dict]:
         """One record per axis: the estimates and whether the value is below ``tol``."""
         records = []
         for j, name in enumerate(axis_names):
             record = {"axis": name, "singular_value_error": float(self.singular_value[j]),
-                      "loading_error": float(self.vector[j])}
+                      "loading_error": float(self.vector[j]), "relative_gap": float(self.relative_gap[j])}
             if tol is not None:
                 record["below_tol"] = bool(self.singular_value[j] <= tol)
             records.append(record)
@@ -521,7 +525,18 @@ def ritz_accuracy(s: np.ndarray, residuals: np.ndarray, k: int, *, unit_roundoff
         vector=np.maximum(vector, floor.vector),
         subspace=max(subspace, floor.subspace),
         basis="ritz residuals",
+        relative_gap=_relative_gaps(theta, k),
     )
+
+
+def _relative_gaps(theta: np.ndarray, k: int) -> np.ndarray:
+    """``min_{i≠j} |θ_j − θ_i| / θ_j`` for the first ``k`` of the values ``θ`` (descending)."""
+    gaps = np.full(k, np.inf)
+    for j in range(k):
+        for i in (j - 1, j + 1):
+            if 0 <= i < theta.shape[0]:
+                gaps[j] = min(gaps[j], abs(theta[j] - theta[i]))
+    return gaps / np.maximum(theta[:k], np.finfo(float).tiny)
 
 
 def _ritz(B: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -630,6 +645,7 @@ def lapack_accuracy(s: np.ndarray, k: int, *, unit_roundoff: float = np.finfo(np
         vector=np.minimum(1.0, scale / np.maximum(gaps, tiny)),
         subspace=min(1.0, scale / below) if below > 0 else 1.0,
         basis="lapack error bounds",
+        relative_gap=_relative_gaps(s**2, k),
     )
 
 
