@@ -98,7 +98,7 @@ def worker_generate(job: dict) -> dict:
 
 
 def worker_model(job: dict) -> dict:
-    from axiscope import fit
+    from axiscope import InputLayout, Resources, fit
 
     t0 = time.perf_counter()
     result = fit(job["train"], n_components=job["k"],
