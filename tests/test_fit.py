@@ -117,10 +117,10 @@ def test_more_axes_than_the_rank_is_one_clear_error():
     """The rank of an n × p matrix is at most min(n, p), and centring removes one dimension
     (the samples' mean): at most min(n − 1, p) axes centred, min(n, p) not (linear algebra)."""
     X = load_iris().data
-    with pytest.raises(OptionError, match=r"^n_components=5 is more than .* rank at most 4 .*choose at most 4$"):
+    with pytest.raises(OptionError, match=r"^n_components=5 is more axes than the array can give: .* rank at most 4 .*choose at most 4$"):
         fit(array_source(X), n_components=5)
     wide = np.random.default_rng(0).standard_normal((6, 10))
-    with pytest.raises(OptionError, match=r"n_components=6 .*rank at most 5 \(min\(samples − 1, features\), centred\)"):
+    with pytest.raises(OptionError, match=r"n_components=6 .*rank at most 5 \(min\(samples − 1, features\) when centred\)"):
         fit(array_source(wide), n_components=6)
     # not centred: six samples span six dimensions (reference: numpy.linalg.matrix_rank)
     assert np.linalg.matrix_rank(wide) == 6
@@ -398,7 +398,7 @@ def test_scratch_folder_is_made_when_missing(planted, write_matrix, tmp_path):
         (lambda: PreprocessSpec(missing="drop"), r"^missing='drop' is not one of 'error', 'mean'"),
         (lambda: fit(array_source(np.eye(5)), n_components=0), r"^n_components=0 is not a whole number >= 1"),
         (lambda: fit(array_source(np.eye(5)), n_components=2, engine={"method": "exact"}),
-         r"^engine must be a EngineSettings, got dict"),
+         r"^engine is a dict, not a EngineSettings object; pass axiscope.EngineSettings"),
         (lambda: fit(array_source(np.eye(5)), n_components=2, layout=InputLayout(dataset="X")),
          r"^layout describes a file, but source is an opened MatrixSource"),
     ],

@@ -133,7 +133,7 @@ def _option(value, kind: type, name: str):
     if value is None:
         return kind()
     if not isinstance(value, kind):
-        raise OptionError(f"{name} must be a {kind.__name__}, got {type(value).__name__}; "
+        raise OptionError(f"{name} is a {type(value).__name__}, not a {kind.__name__} object; "
                           f"pass axiscope.{kind.__name__}(...)")
     return value
 
@@ -163,7 +163,8 @@ def _fit(src: MatrixSource, job: _Job, active, exclude) -> FitResult:
     """The steps of a fit: check, plan, read statistics, preprocess, factorise, record."""
     active, exclude = _masks(src, active, exclude)
     n = int(active.sum())
-    _check_components(job.k, n, src.shape[1], job.spec.center, src.path)
+    _check_components(job.k, n, src.shape[1], job.spec.center,
+                      "the array" if src.format == "array" else src.path)
     plan = plan_fit(src, n_components=job.k, preprocess=job.spec, engine=job.engine,
                     resources=job.resources)
     method = _choose_method(job.engine.method, n, src.shape[1], job.spec, job.resources.budget)
@@ -224,9 +225,9 @@ def _check_components(k: int, n: int, p: int, center: bool, where, *, after: str
     """``k`` within the rank the matrix can have (structural: from its shape)."""
     limit = max_components(n, p, center=center)
     if k > limit:
-        rule = "min(samples − 1, features), centred" if center else "min(samples, features), not centred"
+        rule = "min(samples − 1, features) when centred" if center else "min(samples, features) when not centred"
         raise OptionError(
-            f"n_components={k} is more than {where} can have: {n} samples × {p} features{after} "
+            f"n_components={k} is more axes than {where} can give: {n} samples × {p} features{after} "
             f"have rank at most {limit} ({rule}); choose at most {limit}"
         )
 
