@@ -1,6 +1,6 @@
 """The built-in demo end to end: the axes it describes and the samples it flags.
 
-The truth checked here was planted by the simulation (:mod:`axiscope.simulate`): tissue
+The truth checked here was planted by the simulation (:mod:`axiscope.demo.cohort`): tissue
 state drives the strongest structure, processing batch B shifts its own genes, and the
 last six new samples are corrupted on purpose.
 """

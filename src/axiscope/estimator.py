@@ -4,7 +4,7 @@
 ``__init__`` unchanged, fitted attributes with a trailing underscore, ``fit`` returning
 ``self``) so it works in a :class:`sklearn.pipeline.Pipeline`, with ``clone``, grid search
 and ``set_output``. It fits with :func:`axiscope.fit` on an in-memory array wrapped by
-:func:`axiscope.readers.array_source` and transforms with :func:`axiscope.project.project`,
+:func:`axiscope.io.readers.array_source` and transforms with :func:`axiscope.model.project.project`,
 so its results are those of the command line. :meth:`AxiscopePCA.save` writes the same
 ``model/`` format as ``axiscope fit``: a model fitted in Python scores from the command
 line (``axiscope score``) and :meth:`AxiscopePCA.load` reads a model fitted by the command
@@ -93,7 +93,7 @@ class AxiscopePCA(TransformerMixin, BaseEstimator):
     scale_ : ndarray, shape (n_features_in_,)
         Divisor of each feature (1 for dropped features).
     shrinkage_factor_ : ndarray, shape (n_components,)
-        Expected shrinkage of new samples' scores (:mod:`axiscope.shrinkage`).
+        Expected shrinkage of new samples' scores (:mod:`axiscope.model.shrinkage`).
     n_components_ : int
     n_samples_ : int
     n_features_in_ : int

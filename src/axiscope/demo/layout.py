@@ -1,6 +1,6 @@
 """The built-in demonstration: an invented cohort, fitted end to end.
 
-The synthetic cohort (see :mod:`axiscope.simulate`) has three invented tissue states, two
+The synthetic cohort (see :mod:`axiscope.demo.cohort`) has three invented tissue states, two
 processing batches, a sequencing-depth effect and an RNA-quality score. A reference set
 of samples is fitted; a later batch of new samples, a few of them deliberately corrupted,
 is kept aside for scoring against the saved model.

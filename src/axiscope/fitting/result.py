@@ -36,7 +36,11 @@ class FitResult:
         Statistics of every input feature (before selection).
     input_feature_ids : ndarray of str
     manifest : dict
-        Settings, sizes, passes over the data, timings and accuracy of the run.
+        Settings, sizes, passes over the data, timings and accuracy of the run. Its
+        ``accuracy`` record lists, per axis, the estimated relative error of the singular
+        value, the sine of the angle between the loading vector and the exact one, the
+        relative gap to the neighbouring variance, and whether the value is within the
+        requested ``tol``.
     """
 
     model: Model

@@ -180,7 +180,7 @@ def _fit(src: MatrixSource, job: _Job, active, exclude) -> FitResult:
         stats, raw_sketch = _statistics_pass(reader.array("read", cache=first_cache), job.spec, omega,
                                              runner, src, active)
         prep = _preprocessing(job, stats, exclude, src, n)
-        operand = _Operand.build(job.spec, stats, prep, filtered, reader, caches, plan.cache)
+        operand = _Operand.build(job.spec, stats, prep, reader, caches, filtered=filtered, filled=first_cache)
         fac = _factorise(method, operand, job, n, rng, runner, plan, raw_sketch, omega)
     _check_numerical_rank(fac, job.k, src.dtype, n, int(prep.kept.shape[0]))
     model = _model(src, job.spec, prep, stats, fac, n, operand.columns is not None)
@@ -342,7 +342,9 @@ class _Operand:
     later_source: str
 
     @classmethod
-    def build(cls, spec, stats, prep, filtered, reader: _Reader, caches: _Caches, mode: str) -> "_Operand":
+    def build(cls, spec, stats, prep, reader: _Reader, caches: _Caches, *, filtered: bool,
+              filled: BlockCache | None) -> "_Operand":
+        """``filled``: the cache the statistics pass filled (None with a feature filter)."""
         p_all = reader.src.shape[1]
         if filtered:
             columns = prep.kept
@@ -356,11 +358,10 @@ class _Operand:
             d = np.zeros(p_all)
             d[prep.kept] = prep.inverse_scale
             fill = stats.mean if spec.missing == "mean" else None
-            cache = caches.opened[0] if caches.opened else None
-            first = None
+            cache, first = filled, None
         width = p_all if columns is None else columns.shape[0]
         if cache is not None:
-            later, source = reader.cached(cache, width), mode
+            later, source = reader.cached(cache, width), caches.mode
         else:
             later, source = reader.array("reread", columns), "source"
         return cls(columns, mean, d, fill, first, later, source)
