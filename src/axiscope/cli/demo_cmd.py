@@ -12,13 +12,14 @@ import typer
 
 from ._app import app, progress_display, say, setup_logging, user_errors
 from ._options import Overwrite, Quiet, Threads
-from .fit_cmd import Components, print_fit_summary
+from .fit_cmd import print_fit_summary
 
 
 @app.command("demo")
 def demo_command(
     out: Annotated[Path, typer.Option("--out", "-o", help="Folder for the demo data and results.")] = Path("axiscope-demo"),
-    n_components: Components = 10,
+    n_components: Annotated[int, typer.Option(
+        "--components", "-k", min=3, help="Number of principal components (the summary reads the first three).")] = 10,
     seed: Annotated[int, typer.Option(help="Seed of the simulation.")] = 7,
     threads: Threads = None,
     overwrite: Overwrite = False,
