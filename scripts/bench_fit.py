@@ -7,7 +7,8 @@ values), generated block by block and cached in ``--data-dir``. It then runs, ea
 process of its own, and measures from outside (wall time around the child process, peak
 resident memory from the child's own ``wait4`` resource usage):
 
-* ``axiscope``: ``axiscope.fit(path, method="randomized", preprocess=PreprocessSpec(scale="none"))``
+* ``axiscope``: ``axiscope.fit(path, preprocess=PreprocessSpec(scale="none"),
+  engine=EngineSettings(method="randomized"))``
   (centred covariance PCA) on the Zarr store and on the HDF5 file;
 * ``sklearn``: ``sklearn.decomposition.PCA(svd_solver="randomized", random_state=0)`` on the
   matrix loaded from Zarr (the load is part of its time);
@@ -212,12 +213,12 @@ def worker_reference(job: dict) -> dict:
 
 def worker_axiscope(job: dict) -> dict:
     _limit_threads(job.get("threads"))
-    from axiscope import PreprocessSpec, fit
+    from axiscope import EngineSettings, PreprocessSpec, Resources, fit
 
     t0 = time.perf_counter()
-    res = fit(job["path"], n_components=job["k"], method="randomized",
-              memory_limit=job["memory_limit"], preprocess=PreprocessSpec(scale="none"),
-              threads=job.get("threads"))
+    res = fit(job["path"], n_components=job["k"], preprocess=PreprocessSpec(scale="none"),
+              engine=EngineSettings(method="randomized"),
+              resources=Resources(memory_limit=job["memory_limit"], threads=job.get("threads")))
     seconds = time.perf_counter() - t0
     man = res.manifest
     if res.model.components.shape[0] != res.input_feature_ids.shape[0]:

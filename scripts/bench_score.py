@@ -98,11 +98,12 @@ def worker_generate(job: dict) -> dict:
 
 
 def worker_model(job: dict) -> dict:
-    from axiscope import fit
+    from axiscope import InputLayout, Resources, fit
 
     t0 = time.perf_counter()
-    result = fit(job["train"], n_components=job["k"], memory_limit=job["memory_limit"], threads=job["threads"],
-                 dataset="X")
+    result = fit(job["train"], n_components=job["k"],
+                 resources=Resources(memory_limit=job["memory_limit"], threads=job["threads"]),
+                 layout=InputLayout(dataset="X"))
     result.model.save(Path(job["model"]))
     return {"seconds": time.perf_counter() - t0}
 

@@ -224,22 +224,22 @@ def dense_reference(
     *,
     scale: str = "unit",
     center: bool = True,
-    log1p: bool = False,
-    normalize_total: float | None = None,
+    log_transform: bool = False,
+    counts_per: float | None = None,
     keep: np.ndarray | None = None,
 ) -> DenseReference:
     """Preprocess ``X`` densely in float64 and take its SVD with LAPACK (numpy.linalg.svd).
 
     Formulas (written from the definitions, independent of the library): counts per
     ``T`` ``x_ij·T/Σ_j x_ij``; ``log(1 + x)``; centring by the column mean; ``unit`` scaling
-    by the population SD ``sqrt(Σ(x−x̄)²/n)``; ``binomial`` scaling by ``sqrt(2q(1−q))``,
+    by the population SD ``sqrt(Σ(x−x̄)²/n)``; ``allele-frequency`` scaling by ``sqrt(2q(1−q))``,
     ``q = x̄/2`` (Patterson, Price & Reich 2006, doi:10.1371/journal.pgen.0020190).
     Features with zero variance are dropped unless ``keep`` (indices) is given.
     """
     A = np.asarray(X, dtype=np.float64).copy()
-    if normalize_total is not None:
-        A = A * (normalize_total / A.sum(axis=1, keepdims=True))
-    if log1p:
+    if counts_per is not None:
+        A = A * (counts_per / A.sum(axis=1, keepdims=True))
+    if log_transform:
         A = np.log1p(A)
     mean = A.mean(axis=0)
     sd = A.std(axis=0, ddof=0)  # population SD (1/n)
@@ -250,7 +250,7 @@ def dense_reference(
         A = A - mean
     if scale == "unit":
         A = A / sd
-    elif scale == "binomial":
+    elif scale == "allele-frequency":
         q = mean / 2.0
         A = A / np.sqrt(2.0 * q * (1.0 - q))
     U, s, Vt = np.linalg.svd(A, full_matrices=False)  # reference: LAPACK gesdd via numpy

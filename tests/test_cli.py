@@ -176,13 +176,13 @@ def _score_params():
 
 @pytest.mark.parametrize(("message", "expected"), [
     ("confidence=1.0 is out of range", "--confidence 1.0 is out of range"),
-    ("pass fill_missing='mean'", "pass --fill-missing 'mean'"),
+    ("pass fill_missing='mean'", "pass --fill-missing mean"),
     ("check feature_ids and samples_in", "check --feature-ids and --samples-in"),
     ("score with adjust_q=False", "score with --no-adjust-q"),
     ("pass overwrite=True", "pass --overwrite"),
     ("correct_shrinkage=False", "without --correct-shrinkage"),
-    ("raise memory_limit, e.g. memory_limit='8GB'", "raise --memory-limit, e.g. --memory-limit '8GB'"),
-    ("q_method='box' is valid", "--q-limit 'box' is valid"),
+    ("raise memory_limit, e.g. memory_limit='8GB'", "raise --memory-limit, e.g. --memory-limit 8GB"),
+    ("q_method='box' is valid", "--q-limit box is valid"),
     # left alone: one-word names as plain English, quoted names, paths and file names
     ("3 features are missing; the confidence is low; left out", "3 features are missing; the confidence is low; left out"),
     ("dataset 'sample_ids' has 3 ids", "dataset 'sample_ids' has 3 ids"),

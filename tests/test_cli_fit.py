@@ -120,16 +120,16 @@ def test_fit_parquet_and_overwrite(small_h5, tmp_path):
 
 
 def test_fit_options_reach_the_fit(write_matrix, tmp_path, dense):
-    """--samples-in columns, --scale none, --log1p, --normalize-total, --top-variable, text input."""
+    """--samples-in columns, --scale none, --log, --counts-per, --top-variable, text input."""
     rng = np.random.default_rng(4)
     X = rng.poisson(rng.gamma(2.0, 10.0, size=(40, 30))).astype(float) + 1
     path = write_matrix(X, "tsv", samples_in="columns")
     out = tmp_path / "o"
     res = _invoke("fit", path, "--out", out, "-k", "3", "--samples-in", "columns", "--scale", "none",
-                  "--log1p", "--normalize-total", "1000", "-q")
+                  "--log", "--counts-per", "1000", "-q")
     assert res.exit_code == 0, res.stderr
     comps = pd.read_csv(out / "components.tsv", sep="\t")
-    ref = dense(X, scale="none", log1p=True, normalize_total=1000.0)  # reference: dense numpy + LAPACK
+    ref = dense(X, scale="none", log_transform=True, counts_per=1000.0)  # reference: dense numpy + LAPACK
     np.testing.assert_allclose(comps.singular_value, ref.s[:3], rtol=1e-6)
     scores = pd.read_csv(out / "sample_scores.tsv", sep="\t")
     assert list(scores.sample_id) == [f"s{i:05d}" for i in range(40)]
@@ -253,8 +253,8 @@ def _case_one_feature(d):
 
 
 def _case_k_too_large(d):
-    np.save(d / "m.npy", M)  # 6 × 5: at most 4 components
-    return [d / "m.npy", "-k", "5"], ("--components", "4")
+    np.save(d / "m.npy", M)  # 6 × 5, centred: rank at most min(6 − 1, 5) = 5
+    return [d / "m.npy", "-k", "6"], ("m.npy", "choose at most 5")
 
 
 def _case_nan(d):
@@ -267,7 +267,7 @@ def _case_inf(d):
     X = M.copy()
     X[1, 4] = -np.inf
     np.save(d / "inf.npy", X)
-    return [d / "inf.npy", "-k", "2"], ("inf.npy", "sample_000002", "feature_000005", "--missing")
+    return [d / "inf.npy", "-k", "2"], ("inf.npy", "sample_000002", "feature_000005", "--missing mean")
 
 
 def _case_ids_file_length(d):
@@ -364,7 +364,7 @@ def test_bad_input_one_line_exit_2_no_output(case, tmp_path):
 def test_bad_option_values(small_h5, tmp_path):
     path = small_h5[0]
     for args, needle in (
-        (["--memory-limit", "lots"], "memory limit"),
+        (["--memory-limit", "lots"], "--memory-limit lots is not a size"),
         (["--scale", "zscore"], "--scale"),
         (["--power-iterations", "many"], "'many'"),
         (["--samples-in", "diagonal"], "--samples-in"),
@@ -406,3 +406,109 @@ def test_console_script_reports_usage_errors_in_one_line(args, capsys):
     assert main(args) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and err[0].startswith("error: ") and "axiscope fit --help" in err[0]
+
+
+# ------------------------------------------------------- inspect predicts the fit's plan
+
+
+@pytest.fixture
+def plan_h5(write_matrix, planted):
+    """1200 × 500 float64 in HDF5 chunks of 100 rows: enough samples that the plan splits them."""
+    X = planted(1200, 500, rank=5, seed=12).X
+    return write_matrix(X, "h5", chunks=(100, 500))
+
+
+@pytest.mark.parametrize("extra", [[], ["--threads", "1"], ["--threads", "2", "--log", "--counts-per", "1e4"],
+                                   ["--top-variable", "100", "-k", "4", "--oversample", "3"]])
+def test_inspect_predicts_the_plan_fit_uses(plan_h5, tmp_path, extra):
+    """Both commands call one planning function; the plan inspect prints is the one in the
+    fit's manifest (the reference: the plan fit records), at 64 MB and the defaults."""
+    if "--log" in extra:  # log(1 + x) needs values above -1
+        import h5py
+
+        with h5py.File(plan_h5, "r+") as handle:
+            handle["X"][...] = np.abs(handle["X"][...])
+    res = _invoke("inspect", plan_h5, "--json", "--memory-limit", "64MB", *extra)
+    assert res.exit_code == 0, res.stderr
+    predicted = json.loads(res.stdout)["fit_plan"]
+    out = tmp_path / "fit"
+    res = _invoke("fit", plan_h5, "--out", out, "--memory-limit", "64MB", *extra, "-q")
+    assert res.exit_code == 0, res.stderr
+    used = json.loads((out / "manifest.json").read_text())["plan"]
+    assert predicted == used
+    assert used["block_rows"] < 1200  # the plan has something to predict
+
+
+def test_inspect_text_names_the_plan(plan_h5):
+    res = _invoke("inspect", plan_h5, "--memory-limit", "64MB", "--threads", "2")
+    assert res.exit_code == 0, res.stderr
+    assert "blocks of 300 samples" in res.stdout and "2 threads" in res.stdout
+
+
+# ------------------------------------------------------------------------- the summary
+
+
+def test_summary_states_the_accuracy_against_the_requested_tolerance(small_h5, tmp_path):
+    path = small_h5[0]
+    res = _invoke("fit", path, "--out", tmp_path / "a", "-k", "4", "--method", "randomized")
+    assert res.exit_code == 0, res.stderr
+    assert "every singular value is within" in res.stdout and "below the requested 1e-06" in res.stdout
+    assert "Halko" not in res.stdout and "≤" not in res.stdout  # no probabilistic norm bound
+    accuracy = json.loads((tmp_path / "a" / "manifest.json").read_text())["accuracy"]
+    assert [a["axis"] for a in accuracy["axes"]] == ["PC1", "PC2", "PC3", "PC4"]
+    assert all(set(a) == {"axis", "singular_value_error", "loading_error", "relative_gap", "below_tol"}
+               for a in accuracy["axes"])
+    # no power iteration and a tight tolerance: the summary names the axes that miss it
+    res = _invoke("fit", path, "--out", tmp_path / "b", "-k", "4", "--method", "randomized",
+                  "--power-iterations", "0", "--oversample", "0", "--tol", "1e-12")
+    assert res.exit_code == 0, res.stderr
+    accuracy = json.loads((tmp_path / "b" / "manifest.json").read_text())["accuracy"]
+    missed = [a["axis"] for a in accuracy["axes"] if not a["below_tol"]]
+    assert missed and "above the requested 1e-12" in res.stdout and missed[-1] in res.stdout
+
+
+def test_scratch_folder_option_makes_the_folder(write_matrix, planted, tmp_path):
+    X = planted(2000, 3000, rank=4, dtype="float32", seed=46).X
+    path = write_matrix(X, "zarr3", chunks=(128, 1000))
+    scratch = tmp_path / "scratch" / "inner"
+    res = _invoke("fit", path, "--out", tmp_path / "o", "-k", "3", "--memory-limit", "20MB",
+                  "--scratch", scratch, "-q")
+    assert res.exit_code == 0, res.stderr
+    assert json.loads((tmp_path / "o" / "manifest.json").read_text())["plan"]["cache"] == "scratch"
+    assert scratch.is_dir()
+
+
+# ------------------------------------------------------- names shared with the Python API
+
+
+def test_command_parameters_are_named_like_the_api_arguments():
+    """The command line turns parameter names in error messages into its options, so each
+    option that feeds an option object is a parameter of the same name."""
+    import dataclasses
+    import inspect
+
+    from axiscope.cli.fit_cmd import fit_command
+    from axiscope.cli.inspect_cmd import inspect_command
+    from axiscope.core.options import EngineSettings, InputLayout, Resources
+    from axiscope.core.preprocess import PreprocessSpec
+
+    fit_params = set(inspect.signature(fit_command).parameters)
+    for kind in (EngineSettings, Resources, InputLayout, PreprocessSpec):
+        assert {f.name for f in dataclasses.fields(kind)} <= fit_params, kind.__name__
+    assert "n_components" in fit_params
+    inspect_params = set(inspect.signature(inspect_command).parameters)
+    assert {"n_components", "oversample", "memory_limit", "threads", "scratch", "counts_per",
+            "log_transform", "top_variable"} <= inspect_params
+
+
+def test_top_default_is_the_shared_one():
+    from axiscope.cli.fit_cmd import TOP_FEATURES
+    from axiscope.io.output import DEFAULT_TOP_FEATURES
+
+    assert TOP_FEATURES == DEFAULT_TOP_FEATURES
+
+
+@pytest.mark.parametrize("args", [["--log" + "1p"], ["--normalize" + "-total", "1e6"], ["--scale", "bi" + "nomial"]])
+def test_old_option_spellings_are_refused(small_h5, tmp_path, args):
+    res = _invoke("fit", small_h5[0], "--out", tmp_path / "o", *args, "-q")
+    assert res.exit_code == 2 and not (tmp_path / "o").exists()

@@ -1,6 +1,6 @@
 """The built-in demo end to end: the axes it describes and the samples it flags.
 
-The truth checked here was planted by the simulation (:mod:`axiscope.simulate`): tissue
+The truth checked here was planted by the simulation (:mod:`axiscope.demo.cohort`): tissue
 state drives the strongest structure, processing batch B shifts its own genes, and the
 last six new samples are corrupted on purpose.
 """
@@ -8,6 +8,7 @@ last six new samples are corrupted on purpose.
 from __future__ import annotations
 
 import json
+from pathlib import Path
 
 import pandas as pd
 from typer.testing import CliRunner
@@ -40,3 +41,25 @@ def test_demo_describes_the_planted_structure_and_flags_corrupted_samples(tmp_pa
     assert flagged[merged["corrupted"]].all()
     assert flagged[~merged["corrupted"]].mean() < 0.05  # at 0.99 confidence; common practice, no source
     assert "6 of the 6 deliberately corrupted" in result.output
+
+    # the manifests record paths that exist after the run, not the temporary folder's
+    for part in ("fit", "score"):
+        strings = list(_strings(json.loads((out / part / "manifest.json").read_text())))
+        assert not any(".tmp-" in value for value in strings), part
+        paths = [value for value in strings if value.startswith(str(out))]
+        assert paths, part
+        assert all(Path(value).exists() for value in paths), paths
+    assert json.loads((out / "fit" / "manifest.json").read_text())["input"]["path"] == str(
+        out / "data" / "reference.zarr")
+
+
+def _strings(record):
+    """Every string in a JSON record."""
+    if isinstance(record, dict):
+        for value in record.values():
+            yield from _strings(value)
+    elif isinstance(record, list):
+        for value in record:
+            yield from _strings(value)
+    elif isinstance(record, str):
+        yield record

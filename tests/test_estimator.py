@@ -67,7 +67,8 @@ def test_matches_standard_scaler_plus_pca_without_a_scaler(wine):
 
 def test_pipeline_with_a_classifier(wine):
     X, y, _ = wine
-    ours = Pipeline([("pca", AxiscopePCA(n_components=3)), ("clf", LogisticRegression(max_iter=2000))]).fit(X, y)
+    ours = Pipeline([("pca", AxiscopePCA(n_components=3)), ("clf", LogisticRegression(max_iter=2000))]).fit(X,
+                                                                                                            y)
     # reference: the same pipeline with scikit-learn's StandardScaler + PCA; L2 logistic
     # regression does not depend on the signs of its inputs, so predictions are identical
     ref = make_pipeline(StandardScaler(), PCA(n_components=3, svd_solver="full"),
@@ -87,10 +88,10 @@ def test_feature_names_out_and_pandas_output(wine):
     assert list(est.model_.feature_ids) == names
 
 
-def test_log1p_inverse_transform_round_trip():
+def test_log_transform_inverse_transform_round_trip():
     rng = np.random.default_rng(0)
     counts = rng.poisson(rng.uniform(1, 50, size=12), size=(100, 12)).astype(float)
-    est = AxiscopePCA(n_components=11, log1p=True, scale="none").fit(counts)
+    est = AxiscopePCA(n_components=11, log_transform=True, scale="none").fit(counts)
     back = est.inverse_transform(est.transform(counts))
     # reference: numpy — with k = p − 1 of a centred matrix of rank ≤ p the reconstruction keeps
     # everything but the last axis; compare in log space with the dense SVD computed here
@@ -99,8 +100,8 @@ def test_log1p_inverse_transform_round_trip():
     U, s, Vt = np.linalg.svd(C, full_matrices=False)
     expected = np.expm1((U[:, :11] * s[:11]) @ Vt[:11] + L.mean(axis=0))
     np.testing.assert_allclose(back, expected, rtol=1e-8, atol=1e-8)
-    with pytest.raises(ValueError, match="total normalisation"):
-        AxiscopePCA(n_components=2, normalize_total=100.0).fit(counts).inverse_transform(np.zeros((1, 2)))
+    with pytest.raises(ValueError, match="cannot undo counts_per"):
+        AxiscopePCA(n_components=2, counts_per=100.0).fit(counts).inverse_transform(np.zeros((1, 2)))
 
 
 def test_save_then_score_from_the_cli(wine, tmp_path):
@@ -141,9 +142,22 @@ def test_cli_fit_then_load_in_python(wine, tmp_path):
 
 def test_invalid_parameters_raise_value_error(wine):
     X, _, _ = wine
-    with pytest.raises(ValueError, match="n_components=13 is too large"):
-        AxiscopePCA(n_components=13).fit(X)
+    # 178 samples × 13 features, centred: rank at most min(177, 13) = 13, as scikit-learn allows
+    with pytest.raises(ValueError, match=r"n_components=14 is too large.*at most .* = 13"):
+        AxiscopePCA(n_components=14).fit(X)
+    with pytest.raises(ValueError, match=r"n_components=14 is too large.*at most .* = 13"):
+        AxiscopePCA(n_components=14, center=False).fit(X)
     with pytest.raises(ValueError, match="scale="):
         AxiscopePCA(scale="zscore").fit(X)
     with pytest.raises(ValueError, match="method="):
         AxiscopePCA(method="fast").fit(X)
+
+
+def test_as_many_axes_as_the_rank(wine):
+    """178 × 13 centred has rank 13: all thirteen axes, as sklearn.decomposition.PCA gives
+    (reference: PCA(n_components=13, svd_solver="full") after StandardScaler)."""
+    X, _, _ = wine
+    ours = AxiscopePCA(n_components=13).fit(X)
+    ref = make_pipeline(StandardScaler(), PCA(n_components=13, svd_solver="full")).fit(X)
+    np.testing.assert_allclose(ours.singular_values_, ref[-1].singular_values_, rtol=1e-8)
+    np.testing.assert_allclose(ours.explained_variance_ratio_.sum(), 1.0, rtol=1e-10)

@@ -21,7 +21,7 @@ from markdown_it import MarkdownIt
 from scipy import stats as sps
 from typer.testing import CliRunner
 
-from axiscope import fit
+from axiscope import EngineSettings, fit
 from axiscope.cli import app
 from axiscope.cli.explain_cmd import SAMPLES_PER_LIST as CLI_SAMPLES
 from axiscope.cli.explain_cmd import TOP_FEATURES as CLI_TOP
@@ -63,7 +63,7 @@ def planted():
 @pytest.fixture(scope="module")
 def planted_fit(planted):
     X, ids, fids, _ = planted
-    return fit(array_source(X, sample_ids=ids, feature_ids=fids), n_components=3, method="exact")
+    return fit(array_source(X, sample_ids=ids, feature_ids=fids), n_components=3, engine=EngineSettings(method="exact"))
 
 
 def read_cards(path) -> pd.DataFrame:
@@ -187,7 +187,7 @@ def _weird_inputs():
 
 def test_weird_ids_break_no_table(tmp_path):
     X, sample_ids, feature_ids, ann = _weird_inputs()
-    r = fit(array_source(X, sample_ids=sample_ids, feature_ids=feature_ids), n_components=2, method="exact")
+    r = fit(array_source(X, sample_ids=sample_ids, feature_ids=feature_ids), n_components=2, engine=EngineSettings(method="exact"))
     cards = explain_axes(r, annotations=ann, top=len(feature_ids), samples_per_list=len(sample_ids))
     cards.write(tmp_path, parquet=True)
     expected = cards.records()
@@ -397,7 +397,7 @@ def test_annotations_are_treated_on_the_samples_that_built_the_axes():
     src = array_source(X, sample_ids=ids)
     plan = plan_explanation(src, annotations=table, supplementary_samples_column="held")
     assert plan.active is not None and (~plan.active).sum() == 8
-    r = fit(src, n_components=2, method="exact", active=plan.active)
+    r = fit(src, n_components=2, engine=EngineSettings(method="exact"), active=plan.active)
     cards = explain_fit(plan, r, src, threads=1, samples_per_list=40)
     use = cards.annotation_use.set_index("annotation")
     assert "held" not in use.index

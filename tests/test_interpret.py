@@ -15,8 +15,7 @@ import numpy as np
 import pytest
 from scipy import stats as sps
 
-from axiscope import PreprocessSpec, fit, open_matrix
-from axiscope.core.preprocess import SCALES
+from axiscope import EngineSettings, PreprocessSpec, fit, open_matrix
 from axiscope.errors import InputError, OptionError
 from axiscope.explain.supplementary import supplementary_feature_statistics
 from axiscope.io import array_source
@@ -29,7 +28,6 @@ from axiscope.model.statistics import (
 )
 
 #: The genotype-dosage scaling, whatever its option name (the only scale besides unit and none).
-GENOTYPE_SCALE = next(s for s in SCALES if s not in ("unit", "none"))
 
 
 def _planted(n, p, seed=0, rank=3):
@@ -48,9 +46,9 @@ def _counts(n, p, seed=0):
 def _transformed(X, spec):
     """The per-sample transforms of the fit, computed directly (reference: their definition)."""
     Y = np.asarray(X, dtype=np.float64).copy()
-    if spec.normalize_total is not None:
-        Y = Y * (spec.normalize_total / Y.sum(axis=1, keepdims=True))
-    if spec.log1p:
+    if spec.counts_per is not None:
+        Y = Y * (spec.counts_per / Y.sum(axis=1, keepdims=True))
+    if spec.log_transform:
         Y = np.log1p(Y)
     return Y
 
@@ -59,7 +57,7 @@ def test_identities_exact_full_rank():
     # identities of textbook PCA algebra (common practice, no source); n < p so that the
     # n − 1 axes of an exact fit span the whole centred space
     X = _planted(9, 25, seed=1)
-    r = fit(array_source(X), n_components=8, method="exact")
+    r = fit(array_source(X), n_components=8, engine=EngineSettings(method="exact"))
     names = r.axis_names
     q = sample_statistics(r.sample_ids, r.scores, r.sample_sq_dist, names, singular_values=r.model.singular_values)
     np.testing.assert_allclose(q[[f"contribution_pct_{a}" for a in names]].sum(axis=0), 100.0, rtol=1e-10)
@@ -78,22 +76,22 @@ def test_identities_exact_full_rank():
         PreprocessSpec(),
         PreprocessSpec(scale="none"),
         PreprocessSpec(scale="none", center=False),
-        PreprocessSpec(normalize_total=1e4, log1p=True),
-        PreprocessSpec(scale=GENOTYPE_SCALE),
+        PreprocessSpec(counts_per=1e4, log_transform=True),
+        PreprocessSpec(scale="allele-frequency"),
     ],
-    ids=["unit", "none", "uncentred", "log-cpm", "genotype"],
+    ids=["unit", "none", "uncentred", "log-cpm", "allele-frequency"],
 )
 def test_closed_form_correlations_match_direct_computation(spec):
     rng = np.random.default_rng(3)
-    if spec.scale == GENOTYPE_SCALE:
+    if spec.scale == "allele-frequency":
         freq = rng.uniform(0.1, 0.9, 40)
         X = rng.binomial(2, freq, (60, 40)).astype(np.float64)
         X[:30, :8] = rng.binomial(2, 0.95, (30, 8))
-    elif spec.log1p:
+    elif spec.log_transform:
         X = _counts(60, 40).astype(np.float64)
     else:
         X = _planted(60, 40, seed=3)
-    r = fit(array_source(X), n_components=4, preprocess=spec, method="exact")
+    r = fit(array_source(X), n_components=4, preprocess=spec, engine=EngineSettings(method="exact"))
     fs = feature_statistics(r.model)
     Y = _transformed(X, spec)[:, r.preprocessing.kept]
     for j in range(Y.shape[1]):
@@ -113,13 +111,13 @@ def test_closed_form_correlations_match_direct_computation(spec):
     assert row.contribution == pytest.approx(100 * r.model.components[j, 0] ** 2)
 
 
-@pytest.mark.parametrize("spec", [PreprocessSpec(), PreprocessSpec(normalize_total=1e4, log1p=True),
+@pytest.mark.parametrize("spec", [PreprocessSpec(), PreprocessSpec(counts_per=1e4, log_transform=True),
                                   PreprocessSpec(scale="none", center=False)],
                          ids=["unit", "log-cpm", "uncentred"])
 def test_streaming_statistics_of_active_features_reproduce_the_closed_form(spec):
     # the same quantities by two routes: the model (closed form) and a pass over the data
     X = _counts(50, 30, seed=5)
-    r = fit(array_source(X), n_components=3, preprocess=spec, method="exact")
+    r = fit(array_source(X), n_components=3, preprocess=spec, engine=EngineSettings(method="exact"))
     src = array_source(X)
     s = supplementary_feature_statistics(src, r.scores, r.model.singular_values,
                                          columns=r.preprocessing.kept, spec=spec, memory_limit="64MB", threads=1)
@@ -145,7 +143,7 @@ def test_supplementary_features_and_dropped_reason():
     X = _planted(80, 30, seed=7)
     exclude = np.zeros(30, dtype=bool)
     exclude[[2, 11, 29]] = True
-    r = fit(array_source(X), n_components=3, method="exact", exclude_features=exclude)
+    r = fit(array_source(X), n_components=3, exclude_features=exclude, engine=EngineSettings(method="exact"))
     assert not set(r.model.feature_ids) & set(np.asarray(r.input_feature_ids)[exclude])
     src = array_source(X)
     s = supplementary_feature_statistics(src, r.scores, r.model.singular_values, columns=exclude, threads=1)
@@ -162,7 +160,7 @@ def test_supplementary_features_with_missing_values_use_the_mean():
     X = _planted(70, 12, seed=9)
     Z = rng.standard_normal((70, 4))
     Z[rng.random((70, 4)) < 0.1] = np.nan
-    r = fit(array_source(X), n_components=2, method="exact")
+    r = fit(array_source(X), n_components=2, engine=EngineSettings(method="exact"))
     spec = PreprocessSpec(missing="mean")
     s = supplementary_feature_statistics(array_source(Z), r.scores, r.model.singular_values, spec=spec, threads=1)
     filled = np.where(np.isnan(Z), np.nanmean(Z, axis=0), Z)
@@ -177,13 +175,13 @@ def test_supplementary_samples_reproduce_active_scores_and_leave_axes_unchanged(
     X = _planted(90, 20, seed=11)
     active = np.ones(90, dtype=bool)
     active[::7] = False
-    r = fit(array_source(X), n_components=3, method="exact", active=active)
+    r = fit(array_source(X), n_components=3, active=active, engine=EngineSettings(method="exact"))
     # projecting training rows as if supplementary gives back their active scores
     back = project(r.model, array_source(X), rows=active, threads=1)
     np.testing.assert_allclose(back.scores, r.scores, atol=1e-8)
     np.testing.assert_allclose(back.sq_dist, r.sample_sq_dist, rtol=1e-8)
     # supplementary rows do not change the axes: same as a fit on the active rows alone
-    alone = fit(array_source(X[active]), n_components=3, method="exact")
+    alone = fit(array_source(X[active]), n_components=3, engine=EngineSettings(method="exact"))
     np.testing.assert_allclose(np.abs(r.model.components), np.abs(alone.model.components), atol=1e-10)
     np.testing.assert_allclose(r.model.singular_values, alone.model.singular_values, rtol=1e-12)
     sup = project(r.model, array_source(X), rows=~active, threads=1)
@@ -233,7 +231,7 @@ def test_feature_statistics_for_a_million_features_stay_under_budget(tmp_path):
 
 def test_feature_statistics_io_errors_are_typed(tmp_path):
     X = _planted(30, 8, seed=13)
-    r = fit(array_source(X), n_components=2, method="exact")
+    r = fit(array_source(X), n_components=2, engine=EngineSettings(method="exact"))
     fs = feature_statistics(r.model)
     fs.write(tmp_path)
     with pytest.raises(OptionError, match="number of active samples"):
@@ -263,7 +261,7 @@ def test_feature_statistics_table_keeps_weird_ids_whole(tmp_path):
     import pandas as pd
 
     X = _planted(40, len(WEIRD_IDS), seed=17)
-    r = fit(array_source(X, feature_ids=WEIRD_IDS), n_components=2, method="exact")
+    r = fit(array_source(X, feature_ids=WEIRD_IDS), n_components=2, engine=EngineSettings(method="exact"))
     fs = feature_statistics(r.model)
     path = fs.write(tmp_path, parquet=True)
     back = read_feature_statistics(tmp_path, n_samples=r.model.n_samples)

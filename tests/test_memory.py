@@ -18,6 +18,7 @@ import numpy as np
 import pytest
 
 from axiscope.core.memory import format_bytes, parse_memory
+from axiscope.core.options import EngineSettings, InputLayout, Resources
 from axiscope.errors import OptionError
 from axiscope.fitting.run import fit
 from axiscope.io import array_source
@@ -80,8 +81,10 @@ def test_format_bytes():
 
 def test_budget_too_small_for_the_sketch_is_a_clear_error(planted):
     X = planted(200, 20000, rank=3, dtype="float32", seed=1).X
-    with pytest.raises(OptionError, match="--memory-limit"):
-        fit(array_source(X), n_components=50, memory_limit="17MB", method="randomized")
+    # the message names the Python parameters (the command line shows them as options)
+    with pytest.raises(OptionError, match=r"memory_limit=17\.0MB is too small.*raise memory_limit"):
+        fit(array_source(X), n_components=50, engine=EngineSettings(method="randomized"),
+            resources=Resources(memory_limit="17MB"))
 
 
 def test_small_budget_uses_scratch_and_gives_the_same_answer(planted, write_matrix, tmp_path):
@@ -91,8 +94,9 @@ def test_small_budget_uses_scratch_and_gives_the_same_answer(planted, write_matr
     path = write_matrix(X, "h5", chunks=(3000, 100), samples_in="columns")
     scratch = tmp_path / "scratch"
     scratch.mkdir()
-    result = fit(path, samples_in="columns", n_components=5, memory_limit="20MB", scratch=scratch,
-                 threads=2, seed=0)
+    result = fit(path, n_components=5, engine=EngineSettings(seed=0),
+                 resources=Resources(memory_limit="20MB", threads=2, scratch=scratch),
+                 layout=InputLayout(samples_in="columns"))
     plan = result.manifest["plan"]
     assert plan["cache"] == "scratch"
     assert plan["memory_limit"] == 20 * 10**6
@@ -102,7 +106,7 @@ def test_small_budget_uses_scratch_and_gives_the_same_answer(planted, write_matr
     assert detail[0]["read_from"] == "input"
     assert all(d["read_from"] == "scratch" for d in detail[1:])
     # reference: the in-memory fit of the same array (itself checked against LAPACK in test_engine)
-    reference = fit(array_source(X), n_components=5, method="randomized", seed=0)
+    reference = fit(array_source(X), n_components=5, engine=EngineSettings(method="randomized", seed=0))
     np.testing.assert_allclose(result.model.singular_values, reference.model.singular_values, rtol=1e-5)
     np.testing.assert_allclose(result.model.components, reference.model.components, atol=1e-5)
     np.testing.assert_allclose(result.scores, reference.scores, atol=1e-5 * np.abs(reference.scores).max())
@@ -117,8 +121,8 @@ def test_scratch_removed_on_failure(write_matrix, tmp_path, planted):
     scratch.mkdir()
     from axiscope.errors import InputError
 
-    with pytest.raises(InputError, match="--missing mean"):
-        fit(path, n_components=3, memory_limit="20MB", scratch=scratch)
+    with pytest.raises(InputError, match="missing=.mean."):
+        fit(path, n_components=3, resources=Resources(memory_limit="20MB", scratch=scratch))
     assert list(scratch.iterdir()) == []
 
 
@@ -126,6 +130,7 @@ _RSS_SCRIPT = textwrap.dedent(
     """
     import json, sys
     import numpy as np
+    from axiscope import EngineSettings, Resources
     from axiscope.fitting.run import fit
     from axiscope.io import array_source
 
@@ -139,14 +144,14 @@ _RSS_SCRIPT = textwrap.dedent(
     path, limit = sys.argv[1], sys.argv[2]
     # warm up: imports and first-use allocations are not part of the fit's data memory
     fit(array_source(np.random.default_rng(1).standard_normal((60, 40))), n_components=3,
-        method="randomized")
+        engine=EngineSettings(method="randomized"))
     base = status("VmRSS")
     try:  # reset the high-water mark to the current RSS (Linux >= 4.0)
         with open("/proc/self/clear_refs", "w") as handle:
             handle.write("5")
     except OSError:
         pass
-    result = fit(path, n_components=5, memory_limit=limit, threads=2)
+    result = fit(path, n_components=5, resources=Resources(memory_limit=limit, threads=2))
     peak = status("VmHWM")
     print(json.dumps({"delta": peak - base, "cache": result.manifest["plan"]["cache"],
                       "passes": result.manifest["passes"]["count"]}))

@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from axiscope.core import passes
+from axiscope.core.options import EngineSettings, Resources
 from axiscope.core.passes import PassRunner, array_from_blocks
 from axiscope.fitting.run import fit
 from axiscope.io import array_source
@@ -28,9 +29,11 @@ def test_windowed_path_for_a_cluster_gives_the_same_fit(monkeypatch):
     # blocks with dask.compute; the fit must not depend on which path ran (the local path's
     # result is the reference; both fold in block order, so they agree to the last bit).
     X = np.random.default_rng(5).standard_normal((600, 80))
-    local = fit(array_source(X), n_components=4, method="randomized", threads=2, memory_limit="20MB")
+    local = fit(array_source(X), n_components=4, engine=EngineSettings(method="randomized"),
+                resources=Resources(memory_limit="20MB", threads=2))
     monkeypatch.setattr(passes, "_local_scheduler", lambda: False)
-    windowed = fit(array_source(X), n_components=4, method="randomized", threads=2, memory_limit="20MB")
+    windowed = fit(array_source(X), n_components=4, engine=EngineSettings(method="randomized"),
+                   resources=Resources(memory_limit="20MB", threads=2))
     assert local.manifest["passes"]["detail"][0]["blocks"] > 2
     np.testing.assert_array_equal(local.model.singular_values, windowed.model.singular_values)
     np.testing.assert_array_equal(local.scores, windowed.scores)

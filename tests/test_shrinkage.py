@@ -12,7 +12,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from axiscope import PreprocessSpec, fit
+from axiscope import PreprocessSpec, Resources, fit
 from axiscope.io import array_source
 from axiscope.model.shrinkage import spiked_shrinkage
 from axiscope.scoring.score import score
@@ -76,7 +76,8 @@ def test_corrected_held_out_scores_match_training_variance_in_spiked_simulation(
     Z *= np.sqrt(n * (spikes - 1))
     X_train = (Z @ U.T + rng.standard_normal((n, p))).astype(np.float32)
     X_new = ((rng.standard_normal((m, 3)) * np.sqrt(spikes - 1)) @ U.T + rng.standard_normal((m, p))).astype(np.float32)
-    result = fit(array_source(X_train), n_components=3, preprocess=PreprocessSpec(scale="none"), threads=1)
+    result = fit(array_source(X_train), n_components=3, preprocess=PreprocessSpec(scale="none"),
+                 resources=Resources(threads=1))
     train_var = result.scores.var(axis=0)
     raw = score(result.model, array_source(X_new), threads=1).scores.iloc[:, 1:].to_numpy()
     corrected = score(result.model, array_source(X_new), threads=1, correct_shrinkage=True).scores.iloc[:, 1:].to_numpy()
@@ -98,7 +99,8 @@ def test_q_limit_offset_matches_the_excess_of_new_residuals_in_spiked_simulation
     def draw(N):
         return ((rng.standard_normal((N, 3)) * np.sqrt(spikes - 1)) @ U.T + rng.standard_normal((N, p))).astype(np.float32)
 
-    result = fit(array_source(draw(n)), n_components=3, preprocess=PreprocessSpec(scale="none"), threads=1)
+    result = fit(array_source(draw(n)), n_components=3, preprocess=PreprocessSpec(scale="none"),
+                 resources=Resources(threads=1))
     res = score(result.model, array_source(draw(m)), threads=1)
     q_train = result.sample_sq_dist - np.sum(result.scores**2, axis=1)
     observed = res.diagnostics["q"].mean() - q_train.mean()  # planted truth: same distribution

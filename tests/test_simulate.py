@@ -97,7 +97,7 @@ def test_truth_gene_sets_disjoint(cohort: Cohort) -> None:
     assert truth["corrupted"].size == 0
 
 
-def test_negative_binomial_overdispersion(cohort: Cohort) -> None:
+def test_gamma_poisson_overdispersion(cohort: Cohort) -> None:
     """Null genes follow the gamma-Poisson mixture: Var = mu + mu**2 / r (textbook formula)."""
     truth = cohort.truth
     genes = truth["null_genes"]

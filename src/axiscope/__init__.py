@@ -21,6 +21,9 @@ _EXPORTS = {
     "Model": "axiscope.model",
     "load_model": "axiscope.model",
     "PreprocessSpec": "axiscope.core.preprocess",
+    "EngineSettings": "axiscope.core.options",
+    "Resources": "axiscope.core.options",
+    "InputLayout": "axiscope.core.options",
     "MatrixSource": "axiscope.io",
     "open_matrix": "axiscope.io",
 }
@@ -28,6 +31,7 @@ _EXPORTS = {
 __all__ = ["__version__", *_EXPORTS]
 
 if TYPE_CHECKING:  # pragma: no cover
+    from .core.options import EngineSettings, InputLayout, Resources  # noqa: F401
     from .core.preprocess import PreprocessSpec  # noqa: F401
     from .errors import AxiscopeError, InputError, ModelError, OptionError  # noqa: F401
     from .fitting import FitResult, fit  # noqa: F401

@@ -4,7 +4,7 @@
 ``__init__`` unchanged, fitted attributes with a trailing underscore, ``fit`` returning
 ``self``) so it works in a :class:`sklearn.pipeline.Pipeline`, with ``clone``, grid search
 and ``set_output``. It fits with :func:`axiscope.fit` on an in-memory array wrapped by
-:func:`axiscope.readers.array_source` and transforms with :func:`axiscope.project.project`,
+:func:`axiscope.io.array_source` and transforms with :func:`axiscope.model.project.project`,
 so its results are those of the command line. :meth:`AxiscopePCA.save` writes the same
 ``model/`` format as ``axiscope fit``: a model fitted in Python scores from the command
 line (``axiscope score``) and :meth:`AxiscopePCA.load` reads a model fitted by the command
@@ -26,9 +26,10 @@ from sklearn.utils.validation import (
     validate_data,
 )
 
+from .core.options import METHODS, EngineSettings, Resources
 from .core.preprocess import MISSING, SCALES, PreprocessSpec
 from .errors import AxiscopeError
-from .fitting.run import METHODS, fit
+from .fitting.run import fit, max_components
 from .io import array_source
 from .model.store import Model, load_model
 
@@ -43,19 +44,21 @@ class AxiscopePCA(TransformerMixin, BaseEstimator):
     Parameters
     ----------
     n_components : int or None, default=None
-        Number of principal components; at most ``min(n_samples, n_features) − 1``.
-        None: ``min(10, n_samples − 1, n_features − 1)`` (10 is the default of
-        :func:`axiscope.fit`).
+        Number of principal components; at most the rank the data can have,
+        ``min(n_samples − 1, n_features)`` when centred and ``min(n_samples, n_features)``
+        when not (as :class:`sklearn.decomposition.PCA` allows). None: that rank, at most
+        10 (the default of :func:`axiscope.fit`).
     center : bool, default=True
         Subtract each feature's mean.
-    scale : {"unit", "none", "binomial"}, default="unit"
+    scale : {"unit", "none", "allele-frequency"}, default="unit"
         ``unit`` divides each feature by its population standard deviation (standardized
         PCA, so no ``StandardScaler`` is needed in front); ``none`` is covariance PCA;
-        ``binomial`` is for genotype dosages 0/1/2.
-    log1p : bool, default=False
-        Replace each value ``x`` by ``log(1 + x)`` (after total normalisation).
-    normalize_total : float or None, default=None
-        Rescale each sample to this total before ``log1p``.
+        ``allele-frequency`` divides genotype dosages 0/1/2 by ``sqrt(2q(1−q))``.
+    log_transform : bool, default=False
+        Replace each value ``x`` by ``log(1 + x)`` (after ``counts_per``).
+    counts_per : float or None, default=None
+        Rescale each sample to this total before ``log_transform`` (1e6: counts per
+        million).
     min_variance : float or None, default=None
         Drop features of smaller variance.
     top_variable : int or None, default=None
@@ -90,7 +93,7 @@ class AxiscopePCA(TransformerMixin, BaseEstimator):
     scale_ : ndarray, shape (n_features_in_,)
         Divisor of each feature (1 for dropped features).
     shrinkage_factor_ : ndarray, shape (n_components,)
-        Expected shrinkage of new samples' scores (:mod:`axiscope.shrinkage`).
+        Expected shrinkage of new samples' scores (:mod:`axiscope.model.shrinkage`).
     n_components_ : int
     n_samples_ : int
     n_features_in_ : int
@@ -111,8 +114,8 @@ class AxiscopePCA(TransformerMixin, BaseEstimator):
         *,
         center: bool = True,
         scale: str = "unit",
-        log1p: bool = False,
-        normalize_total: float | None = None,
+        log_transform: bool = False,
+        counts_per: float | None = None,
         min_variance: float | None = None,
         top_variable: int | None = None,
         missing: str = "error",
@@ -127,8 +130,8 @@ class AxiscopePCA(TransformerMixin, BaseEstimator):
         self.n_components = n_components
         self.center = center
         self.scale = scale
-        self.log1p = log1p
-        self.normalize_total = normalize_total
+        self.log_transform = log_transform
+        self.counts_per = counts_per
         self.min_variance = min_variance
         self.top_variable = top_variable
         self.missing = missing
@@ -161,9 +164,10 @@ class AxiscopePCA(TransformerMixin, BaseEstimator):
         if self.missing not in MISSING:
             raise ValueError(f"missing={self.missing!r} is not one of {', '.join(MISSING)}")
         try:
-            return PreprocessSpec(center=bool(self.center), scale=self.scale, log1p=bool(self.log1p),
-                                  normalize_total=self.normalize_total, min_variance=self.min_variance,
-                                  top_variable=self.top_variable, missing=self.missing)
+            return PreprocessSpec(center=bool(self.center), scale=self.scale,
+                                  log_transform=bool(self.log_transform), counts_per=self.counts_per,
+                                  min_variance=self.min_variance, top_variable=self.top_variable,
+                                  missing=self.missing)
         except AxiscopeError as exc:
             raise ValueError(str(exc)) from exc
 
@@ -180,26 +184,25 @@ class AxiscopePCA(TransformerMixin, BaseEstimator):
         X = self._validate(X, reset=True)
         n, p = X.shape
         k = self.n_components
+        limit = max_components(n, p, center=bool(self.center))
         if k is None:
-            k = min(10, n - 1, p - 1)
+            k = min(10, limit)
         if not isinstance(k, numbers.Integral) or isinstance(k, bool) or k < 1:
-            raise ValueError(f"n_components must be a positive integer, got {k!r}")
-        if k > min(n, p) - 1:
-            raise ValueError(
-                f"n_components={k} is too large for {n} samples × {p} features; "
-                f"at most min(n_samples, n_features) − 1 = {min(n, p) - 1}"
-            )
-        if self.method not in METHODS:
-            raise ValueError(f"method={self.method!r} is not one of {', '.join(METHODS)}")
+            raise ValueError(f"n_components={k!r} is not a positive integer; pass one")
+        if k > limit:
+            rule = "min(n_samples − 1, n_features)" if self.center else "min(n_samples, n_features)"
+            raise ValueError(f"n_components={k} is too large for {n} samples × {p} features; "
+                             f"choose at most {rule} = {limit}")
         spec = self._spec()
         seed = int(check_random_state(self.random_state).randint(np.iinfo(np.int32).max))
         names = getattr(self, "feature_names_in_", None)
         source = array_source(X, feature_ids=None if names is None else [str(v) for v in names],
                               name="<array>")
         try:
-            result = fit(source, n_components=int(k), preprocess=spec, oversample=self.oversample,
-                         power_iterations=self.power_iterations, tol=self.tol, method=self.method,
-                         seed=seed, memory_limit=self.memory_limit, threads=self.threads)
+            engine = EngineSettings(method=self.method, oversample=self.oversample,
+                                    power_iterations=self.power_iterations, tol=self.tol, seed=seed)
+            resources = Resources(memory_limit=self.memory_limit, threads=self.threads)
+            result = fit(source, n_components=int(k), preprocess=spec, engine=engine, resources=resources)
         except AxiscopeError as exc:
             raise ValueError(str(exc)) from exc
         model = result.model
@@ -255,9 +258,9 @@ class AxiscopePCA(TransformerMixin, BaseEstimator):
     def inverse_transform(self, X):
         """Map scores back to the input space (features dropped by the preprocessing get their mean).
 
-        The rank-``k`` reconstruction is un-scaled and un-centred, then ``log1p`` is undone
-        with ``expm1``. Total normalisation cannot be undone (the original totals are
-        not kept): a ``ValueError`` is raised when ``normalize_total`` was used.
+        The rank-``k`` reconstruction is un-scaled and un-centred, then ``log(1 + x)`` is
+        undone with ``expm1``. Scaling to ``counts_per`` cannot be undone (the original
+        totals are not kept): a ``ValueError`` is raised when ``counts_per`` was used.
         """
         from sklearn.utils import check_array
 
@@ -266,13 +269,13 @@ class AxiscopePCA(TransformerMixin, BaseEstimator):
         if Z.shape[1] != self.n_components_:
             raise ValueError(f"X has {Z.shape[1]} columns, but {type(self).__name__} has {self.n_components_} components")
         spec = self.model_.spec
-        if spec.normalize_total is not None:
-            raise ValueError("inverse_transform cannot undo total normalisation (normalize_total); "
+        if spec.counts_per is not None:
+            raise ValueError("inverse_transform cannot undo counts_per (each sample scaled to a total); "
                              "the original sample totals are not kept")
         model = self.model_
         out = np.tile(self.mean_, (Z.shape[0], 1))
         out[:, self.kept_features_] = (Z.astype(np.float64) @ model.components.T) * model.scale + model.mean
-        if spec.log1p:
+        if spec.log_transform:
             out = np.expm1(out)
         return out
 
@@ -306,8 +309,8 @@ class AxiscopePCA(TransformerMixin, BaseEstimator):
         seed = model.info.get("estimator", {}).get("random_state_seed")
         method = model.info.get("method")
         est = cls(
-            n_components=model.n_components, center=spec.center, scale=spec.scale, log1p=spec.log1p,
-            normalize_total=spec.normalize_total, min_variance=spec.min_variance,
+            n_components=model.n_components, center=spec.center, scale=spec.scale,
+            log_transform=spec.log_transform, counts_per=spec.counts_per, min_variance=spec.min_variance,
             top_variable=spec.top_variable, missing=spec.missing,
             method=method if method in METHODS else "auto",
             random_state=seed,

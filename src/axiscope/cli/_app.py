@@ -115,7 +115,8 @@ def to_option_spellings(message: str, params: dict[str, Any]) -> str:
     * only when followed by ``=`` otherwise, since one-word names (``out``, ``missing``,
       ``dataset``) are also plain English.
 
-    ``name=value`` becomes ``--option value`` (``confidence=1.5`` → ``--confidence 1.5``);
+    ``name=value`` becomes ``--option value`` (``confidence=1.5`` → ``--confidence 1.5``,
+    ``missing='mean'`` → ``--missing mean``);
     ``flag=True`` becomes the flag and ``flag=False`` its negative form
     (``adjust_q=False`` → ``--no-adjust-q``).
     """
@@ -123,7 +124,8 @@ def to_option_spellings(message: str, params: dict[str, Any]) -> str:
         return message
     names = "|".join(re.escape(name) for name in sorted(params, key=len, reverse=True))
     pattern = re.compile(
-        rf"(?<![\w'\"/.-])(?P<name>{names})(?![\w'\"/-]|\.\w)(?P<eq>=(?P<bool>(?:True|False)\b)?)?"
+        rf"(?<![\w'\"/.-])(?P<name>{names})(?![\w'\"/-]|\.\w)"
+        rf"(?P<eq>=(?:(?P<bool>(?:True|False)\b)|'(?P<word>[\w.+-]+)'(?![\w']))?)?"
     )
 
     def replace(match: re.Match[str]) -> str:
@@ -133,7 +135,7 @@ def to_option_spellings(message: str, params: dict[str, Any]) -> str:
         if match["bool"] is not None and getattr(param, "is_flag", False):
             return _spelling(param, match["bool"])
         if match["eq"] is not None:
-            return _spelling(param, None) + " " + (match["bool"] or "")
+            return _spelling(param, None) + " " + (match["bool"] or match["word"] or "")
         return _spelling(param, None)
 
     return pattern.sub(replace, message)

@@ -17,7 +17,7 @@ class SamplesIn(str, Enum):
 class Scale(str, Enum):
     unit = "unit"
     none = "none"
-    binomial = "binomial"
+    allele_frequency = "allele-frequency"
 
 
 class Missing(str, Enum):

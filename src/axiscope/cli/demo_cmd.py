@@ -2,19 +2,14 @@
 
 from __future__ import annotations
 
+import os
 import sys
 import time
 from pathlib import Path
 from typing import Annotated
 
-import pandas as pd
 import typer
 
-from ..core.preprocess import PreprocessSpec
-from ..demo.layout import DEMO_FIT_OPTIONS, DEMO_TECHNICAL, make_demo_data
-from ..fitting.run import fit
-from ..io.output import atomic_directory, check_target
-from ..scoring.score import score
 from ._app import app, progress_display, say, setup_logging, user_errors
 from ._options import Overwrite, Quiet, Threads
 from .fit_cmd import print_fit_summary
@@ -23,13 +18,24 @@ from .fit_cmd import print_fit_summary
 @app.command("demo")
 def demo_command(
     out: Annotated[Path, typer.Option("--out", "-o", help="Folder for the demo data and results.")] = Path("axiscope-demo"),
-    components: Annotated[int, typer.Option("--components", "-k", min=2)] = 10,
+    n_components: Annotated[int, typer.Option(
+        "--components", "-k", min=3, help="Number of principal components (the summary reads the first three).")] = 10,
     seed: Annotated[int, typer.Option(help="Seed of the simulation.")] = 7,
     threads: Threads = None,
     overwrite: Overwrite = False,
     quiet: Quiet = False,
 ) -> None:
-    """Simulate a synthetic RNA-sequencing cohort, fit it, describe the axes, score a new batch."""
+    """Simulate a synthetic RNA-sequencing cohort, fit it, explain the axes, score a new batch."""
+    import pandas as pd
+
+    from ..core.options import Resources
+    from ..core.preprocess import PreprocessSpec
+    from ..demo.layout import DEMO_FIT_OPTIONS, DEMO_TECHNICAL, make_demo_data
+    from ..explain.cards import explain_axes
+    from ..fitting.run import fit
+    from ..io.output import atomic_directory, check_target
+    from ..scoring.score import score
+
     setup_logging(quiet)
     t0 = time.perf_counter()
     with user_errors():
@@ -38,16 +44,17 @@ def demo_command(
             data = make_demo_data(tmp / "data", seed=seed)
             say(f"simulated a reference cohort and a new batch in {time.perf_counter() - t0:.1f} s", quiet)
             with progress_display(quiet) as progress:
-                result = fit(data["reference"], n_components=components,
-                             preprocess=PreprocessSpec(**DEMO_FIT_OPTIONS), threads=threads,
-                             progress=progress)
-                from ..explain.cards import explain_axes
-
+                result = fit(data["reference"], n_components=n_components,
+                             preprocess=PreprocessSpec(**DEMO_FIT_OPTIONS),
+                             resources=Resources(threads=threads), progress=progress)
                 cards = explain_axes(result, annotations=data["reference_annotations"],
                                      technical=DEMO_TECHNICAL, ignore=["corrupted"], top=5)
+                # the manifests record where things are once the folder has its final name
+                result.manifest = relocated(result.manifest, tmp, out)
                 result.write(tmp / "fit", command_line=sys.argv)
                 cards.write(tmp / "fit")
                 scored = score(tmp / "fit" / "model", data["new"], threads=threads, progress=progress)
+                scored.manifest = relocated(scored.manifest, tmp, out)
                 scored.write(tmp / "score", command_line=sys.argv)
             corrupted = pd.read_csv(data["new_annotations"], sep="\t")["corrupted"].to_numpy(dtype=bool)
     print_fit_summary(result, out / "fit", quiet)
@@ -68,6 +75,22 @@ def demo_command(
     say(f"demo data in {out / 'data'}; {time.perf_counter() - t0:.1f} s in all", quiet)
 
 
+def relocated(record, old: Path, new: Path):
+    """``record`` (a manifest: nested dicts, lists, strings) with paths under ``old`` moved under ``new``.
+
+    Paths are compared as absolute paths; a relocated path is written the way ``new`` is.
+    """
+    if isinstance(record, dict):
+        return {key: relocated(value, old, new) for key, value in record.items()}
+    if isinstance(record, list):
+        return [relocated(value, old, new) for value in record]
+    if isinstance(record, str) and record:
+        base, path = os.path.abspath(old), os.path.abspath(record)
+        if path == base or path.startswith(base + os.sep):
+            return str(Path(new) / os.path.relpath(path, base))
+    return record
+
+
 @app.command("simulate")
 def simulate_command(
     out: Annotated[Path, typer.Option("--out", "-o", help="Folder for the simulated files.")],
@@ -76,6 +99,9 @@ def simulate_command(
     quiet: Quiet = False,
 ) -> None:
     """Write the demo's invented cohort: reference.zarr, new_batch.zarr and annotation tables."""
+    from ..demo.layout import make_demo_data
+    from ..io.output import atomic_directory
+
     setup_logging(quiet)
     with user_errors():
         with atomic_directory(out, overwrite=overwrite) as tmp:

@@ -7,9 +7,6 @@ from typing import Annotated
 
 import typer
 
-from ..core.memory import default_memory_limit, format_bytes, parse_memory
-from ..core.plan import plan_blocks
-from ..io import describe_source, open_matrix
 from ._app import app, setup_logging, user_errors
 from ._options import (
     Dataset,
@@ -19,31 +16,51 @@ from ._options import (
     SampleIds,
     SamplesIn,
     SamplesInOpt,
+    Threads,
 )
+from .fit_cmd import Components, CountsPer, LogTransform, Oversample, Scratch, TopVariable
 
 
 @app.command("inspect")
 def inspect_command(
     input: InputPath,
-    components: Annotated[int, typer.Option("--components", "-k", min=1, help="Components planned, for the memory estimate.")] = 10,
-    oversample: Annotated[int, typer.Option(min=0)] = 10,
+    n_components: Components = 10,
+    oversample: Oversample = 10,
     memory_limit: MemoryLimit = None,
+    threads: Threads = None,
+    scratch: Scratch = None,
+    counts_per: CountsPer = None,
+    log_transform: LogTransform = False,
+    top_variable: TopVariable = None,
     as_json: Annotated[bool, typer.Option("--json", help="Print JSON instead of text.")] = False,
     dataset: Dataset = None,
     sample_ids: SampleIds = None,
     feature_ids: FeatureIds = None,
     samples_in: SamplesInOpt = SamplesIn.rows,
 ) -> None:
-    """Show shape, dtype, on-disk chunking, size, ids and an estimate of fit memory."""
+    """Show shape, dtype, on-disk chunking, size, ids and the block plan 'axiscope fit' would use.
+
+    Give the options you will give 'axiscope fit' that shape its plan (components,
+    oversampling, memory limit, threads, scratch folder, per-sample transforms, top
+    variable features): the plan shown is then the one the fit uses.
+    """
+    from ..core.memory import format_bytes
+    from ..core.options import EngineSettings, InputLayout, Resources
+    from ..core.plan import plan_fit
+    from ..core.preprocess import PreprocessSpec
+    from ..io import describe_source, open_matrix
+
     setup_logging(False)
     with user_errors():
-        budget = default_memory_limit() if memory_limit is None else parse_memory(memory_limit)
-        with open_matrix(input, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
-                         samples_in=samples_in.value) as src:
+        spec = PreprocessSpec(counts_per=counts_per, log_transform=log_transform, top_variable=top_variable)
+        engine = EngineSettings(oversample=oversample)
+        resources = Resources(memory_limit=memory_limit, threads=threads, scratch=scratch)
+        layout = InputLayout(dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
+                             samples_in=samples_in.value)
+        with open_matrix(input, **layout.open_options()) as src:
             info = describe_source(src)
-            n, p = src.shape
-            plan = plan_blocks(n, p, src.dtype.itemsize, sketch_width=min(components + oversample, n, p),
-                               threads=1, budget=budget, sample_chunk=src.sample_chunk)
+            plan = plan_fit(src, n_components=n_components, preprocess=spec, engine=engine,
+                            resources=resources)
     info["fit_plan"] = plan.to_dict()
     if as_json:
         typer.echo(json.dumps(info, indent=2, default=str))
@@ -56,7 +73,7 @@ def inspect_command(
     typer.echo(f"  sample ids: {info['ids_source']['samples']}, e.g. {', '.join(info['first_sample_ids'][:3])}")
     typer.echo(f"  feature ids: {info['ids_source']['features']}, e.g. {', '.join(info['first_feature_ids'][:3])}")
     typer.echo(
-        f"  fit with {format_bytes(budget)} budget: blocks of {plan.block_rows} samples, "
-        f"transformed blocks kept in {plan.cache} ({format_bytes(plan.cache_bytes)}), "
-        f"fixed memory about {format_bytes(plan.fixed_bytes)}"
+        f"  fit with a {format_bytes(plan.budget)} budget and {resources.n_threads} threads: blocks of "
+        f"{plan.block_rows} samples, transformed blocks kept in {plan.cache} "
+        f"({format_bytes(plan.cache_bytes)}), fixed memory about {format_bytes(plan.fixed_bytes)}"
     )

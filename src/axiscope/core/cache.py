@@ -98,8 +98,14 @@ class BlockCache:
 
 
 def scratch_has_room(scratch_dir: Path | None, nbytes: int) -> bool:
-    """Whether the scratch location has ``nbytes`` free, with 5% to spare."""
-    where = scratch_dir if scratch_dir is not None else Path(tempfile.gettempdir())
+    """Whether the scratch location has ``nbytes`` free, with 5% to spare.
+
+    A folder that does not exist yet is judged by the nearest folder above it that does
+    (the fit makes the folder when it needs it).
+    """
+    where = Path(scratch_dir) if scratch_dir is not None else Path(tempfile.gettempdir())
+    while not where.exists() and where.parent != where:
+        where = where.parent
     try:
         return shutil.disk_usage(where).free >= nbytes * 1.05
     except OSError:

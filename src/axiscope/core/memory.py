@@ -40,12 +40,12 @@ def parse_memory(text: str | int | float) -> int:
         match = _PATTERN.match(text)
         if match is None or match.group(2).upper() not in _UNITS:
             raise OptionError(
-                f"memory limit {text!r} is not a size; write it like 512MB, 4GB or 1.5GiB"
+                f"memory_limit={text!r} is not a size; write it like 512MB, 4GB or 1.5GiB"
             )
         value, unit = float(match.group(1)), match.group(2).upper()
     size = int(value * _UNITS[unit])
     if size < 16 * 10**6:
-        raise OptionError(f"memory limit {text!r} is below the minimum of 16MB; raise it")
+        raise OptionError(f"memory_limit={text!r} is below the minimum of 16MB; raise it")
     return size
 
 

@@ -5,13 +5,19 @@ from __future__ import annotations
 import logging
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from ..errors import OptionError
 from .cache import scratch_has_room
 from .engine import N_PROBES
 from .memory import format_bytes
+from .options import EngineSettings, Resources
+from .preprocess import PreprocessSpec
 
-__all__ = ["BlockPlan", "plan_blocks"]
+if TYPE_CHECKING:  # pragma: no cover
+    from ..io import MatrixSource
+
+__all__ = ["BlockPlan", "plan_blocks", "plan_fit"]
 
 logger = logging.getLogger(__name__)
 
@@ -30,10 +36,12 @@ class BlockPlan:
     block_bytes: int
     cache_bytes: int
     max_basis: int
+    threads: int = 1
 
     def to_dict(self) -> dict:
         return {
             "block_rows": self.block_rows,
+            "threads": self.threads,
             "cache": self.cache,
             "memory_limit": self.budget,
             "fixed_bytes": self.fixed_bytes,
@@ -78,9 +86,9 @@ def plan_blocks(
     if room < window * row_bytes:
         need = fixed + window * (partial + row_bytes)
         raise OptionError(
-            f"memory limit {format_bytes(budget)} is too small for {n_samples} samples × "
+            f"memory_limit={format_bytes(budget).replace(' ', '')} is too small for {n_samples} samples × "
             f"{n_features} features with {l} sketch columns (needs at least "
-            f"{format_bytes(need)}); raise --memory-limit or lower --components"
+            f"{format_bytes(need)} with {threads} threads); raise memory_limit, or lower n_components or threads"
         )
     rows = int(min(room // (window * row_bytes), _MAX_BLOCK_BYTES // max(1, n_features * itemsize)))
     rows = max(1, min(rows, n_samples))
@@ -105,4 +113,36 @@ def plan_blocks(
             format_bytes(cache_bytes), scratch or "the temporary directory",
         )
         cache = "source"
-    return BlockPlan(rows, cache, budget, fixed, rows * n_features * itemsize, cache_bytes, max_basis)
+    return BlockPlan(rows, cache, budget, fixed, rows * n_features * itemsize, cache_bytes, max_basis, threads)
+
+
+def plan_fit(
+    source: "MatrixSource",
+    *,
+    n_components: int,
+    preprocess: PreprocessSpec,
+    engine: EngineSettings,
+    resources: Resources,
+) -> BlockPlan:
+    """The block plan that :func:`axiscope.fit` uses for ``source`` with these options.
+
+    ``axiscope inspect`` calls this too, so what it predicts is what the fit then does.
+    The plan depends on the file (shape, dtype, on-disk sample chunk, whether reading it
+    again is as cheap as a scratch copy), on the sketch width ``n_components + oversample``,
+    on the threads and the memory budget, on the scratch folder's free space, and on the
+    preprocessing (``top_variable`` shrinks the cache; per-sample transforms make
+    re-reading the input dearer than a scratch copy).
+    """
+    n, p = source.shape
+    cache_features = min(preprocess.top_variable or p, p)
+    transforms = preprocess.log_transform or preprocess.counts_per is not None
+    return plan_blocks(
+        n, p, source.dtype.itemsize,
+        sketch_width=min(n_components + engine.oversample, n, p),
+        threads=resources.n_threads,
+        budget=resources.budget,
+        sample_chunk=source.sample_chunk,
+        cache_features=cache_features,
+        scratch=resources.scratch,
+        reread_cheap=bool(source.plain_reads) and not transforms,
+    )

@@ -1,7 +1,7 @@
 """Lazy preprocessing: per-sample transforms, streaming feature statistics, feature selection.
 
 The preprocessed matrix is never materialised. A block of samples ``X_b`` goes through the
-per-sample transform ``f`` (total normalisation, then ``log1p``); the centred and scaled
+per-sample transform ``f`` (counts per ``T``, then ``log(1 + x)``); the centred and scaled
 matrix ``X̃ = (f(X) − 1·μᵀ)·diag(d)`` enters the engine only through block products,
 with ``d = 1/σ`` for kept features and ``d = 0`` for dropped ones.
 """
@@ -9,7 +9,7 @@ with ``d = 1/σ`` for kept features and ``d = 0`` for dropped ones.
 from __future__ import annotations
 
 import logging
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, fields
 
 import numpy as np
 
@@ -30,7 +30,7 @@ __all__ = [
 
 logger = logging.getLogger(__name__)
 
-SCALES = ("unit", "none", "binomial")
+SCALES = ("unit", "none", "allele-frequency")
 MISSING = ("error", "mean")
 
 
@@ -42,16 +42,17 @@ class PreprocessSpec:
     ----------
     center : bool, default=True
         Subtract each feature's mean.
-    scale : {"unit", "none", "binomial"}, default="unit"
+    scale : {"unit", "none", "allele-frequency"}, default="unit"
         ``unit``: divide each feature by its population standard deviation (1/n), so every
         feature weighs the same (standardized PCA). ``none``: covariance PCA.
-        ``binomial``: genotype dosages coded 0/1/2, divided by ``sqrt(2p(1−p))`` with
-        ``p = mean/2`` (Patterson, Price & Reich 2006, doi:10.1371/journal.pgen.0020190).
-    log1p : bool, default=False
-        Replace each value ``x`` by ``log(1 + x)`` (after total normalisation).
-    normalize_total : float or None, default=None
-        Rescale each sample so that its values sum to this total (counts per T) before
-        ``log1p``.
+        ``allele-frequency``: genotype dosages coded 0/1/2, divided by ``sqrt(2q(1−q))``
+        with ``q = mean/2`` the allele frequency (Patterson, Price & Reich 2006,
+        doi:10.1371/journal.pgen.0020190).
+    log_transform : bool, default=False
+        Replace each value ``x`` by ``log(1 + x)`` (after ``counts_per``).
+    counts_per : float or None, default=None
+        Rescale each sample so that its values sum to this total (``1e6``: counts per
+        million) before ``log_transform``.
     min_variance : float or None, default=None
         Drop features whose variance (after the transforms, before scaling) is below this.
     top_variable : int or None, default=None
@@ -62,23 +63,34 @@ class PreprocessSpec:
 
     center: bool = True
     scale: str = "unit"
-    log1p: bool = False
-    normalize_total: float | None = None
+    log_transform: bool = False
+    counts_per: float | None = None
     min_variance: float | None = None
     top_variable: int | None = None
     missing: str = "error"
 
     def __post_init__(self) -> None:
+        for name in ("center", "log_transform"):
+            if not isinstance(getattr(self, name), (bool, np.bool_)):
+                raise OptionError(f"{name}={getattr(self, name)!r} is not True or False; pass a bool")
         if self.scale not in SCALES:
-            raise OptionError(f"--scale {self.scale!r} is not one of {', '.join(SCALES)}")
+            raise OptionError(f"scale={self.scale!r} is not one of {_choices(SCALES)}; choose one of them")
         if self.missing not in MISSING:
-            raise OptionError(f"--missing {self.missing!r} is not one of {', '.join(MISSING)}")
-        if self.normalize_total is not None and not self.normalize_total > 0:
-            raise OptionError(f"--normalize-total must be positive, got {self.normalize_total}")
-        if self.min_variance is not None and self.min_variance < 0:
-            raise OptionError(f"--min-variance must be >= 0, got {self.min_variance}")
-        if self.top_variable is not None and self.top_variable < 2:
-            raise OptionError(f"--top-variable must be at least 2, got {self.top_variable}")
+            raise OptionError(f"missing={self.missing!r} is not one of {_choices(MISSING)}; choose one of them")
+        if self.counts_per is not None and not (_is_real(self.counts_per) and self.counts_per > 0
+                                                and np.isfinite(self.counts_per)):
+            raise OptionError(f"counts_per={self.counts_per!r} is not a positive number; "
+                              "pass the total each sample is scaled to (1e6 for counts per million)")
+        if self.min_variance is not None and not (_is_real(self.min_variance) and self.min_variance >= 0):
+            raise OptionError(f"min_variance={self.min_variance!r} is not a number >= 0; pass one")
+        if self.top_variable is not None and not (_is_integer(self.top_variable) and self.top_variable >= 2):
+            raise OptionError(f"top_variable={self.top_variable!r} is not a whole number >= 2; pass one")
+        # plain Python values, so that the spec is written to JSON as it reads
+        for name, kind in (("center", bool), ("log_transform", bool), ("counts_per", float),
+                           ("min_variance", float), ("top_variable", int)):
+            value = getattr(self, name)
+            if value is not None:
+                object.__setattr__(self, name, kind(value))
 
     @property
     def has_filter(self) -> bool:
@@ -87,6 +99,43 @@ class PreprocessSpec:
 
     def to_dict(self) -> dict:
         return asdict(self)
+
+    @classmethod
+    def from_dict(cls, values: dict) -> "PreprocessSpec":
+        """The spec written by :meth:`to_dict`; every setting must be present, no other.
+
+        Raises ``KeyError`` naming the settings that are missing or unknown.
+        """
+        names = {f.name for f in fields(cls)}
+        if not isinstance(values, dict) or set(values) != names:
+            given = set(values) if isinstance(values, dict) else set()
+            raise KeyError(f"preprocessing settings {sorted(given ^ names)} missing or unknown")
+        return cls(**values)
+
+
+def _choices(values: tuple[str, ...]) -> str:
+    return ", ".join(repr(v) for v in values)
+
+
+def _is_real(value) -> bool:
+    return isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, (bool, np.bool_))
+
+
+def _is_integer(value) -> bool:
+    return isinstance(value, (int, np.integer)) and not isinstance(value, (bool, np.bool_))
+
+
+def feature_scale(scale: str, mean: np.ndarray, std: np.ndarray) -> np.ndarray:
+    """Per-feature divisor of a scaling: the population SD (``unit``), ``sqrt(2q(1−q))`` with
+    ``q = mean/2`` (``allele-frequency``), or 1 (``none``)."""
+    if scale == "unit":
+        return np.array(std, dtype=np.float64, copy=True)
+    if scale == "allele-frequency":
+        freq = np.asarray(mean, dtype=np.float64) / 2.0
+        return np.sqrt(2.0 * freq * (1.0 - freq))
+    if scale == "none":
+        return np.ones(np.shape(mean)[0])
+    raise OptionError(f"scale={scale!r} is not one of {_choices(SCALES)}")
 
 
 def row_totals(block: np.ndarray) -> np.ndarray:
@@ -102,16 +151,16 @@ def transform_block(block: np.ndarray, spec: PreprocessSpec, *,
     """Apply the per-sample transforms of ``spec`` to a block of samples, in its own dtype.
 
     The block is modified in place when a transform applies; callers pass fresh blocks.
-    ``totals`` (one per row) replaces the row sums of ``block`` for total normalisation,
-    for blocks that hold only some of the features the totals run over. Values ≤ −1 give
-    NaN or −inf under ``log1p``; callers report non-finite cells.
+    ``totals`` (one per row) replaces the row sums of ``block`` for ``counts_per``, for
+    blocks that hold only some of the features the totals run over. Values ≤ −1 give NaN
+    or −inf under ``log_transform``; callers report non-finite cells.
     """
-    if spec.normalize_total is not None:
+    if spec.counts_per is not None:
         if totals is None:
             totals = row_totals(block)
-        factors = np.where(totals > 0, spec.normalize_total / np.where(totals > 0, totals, 1), 0)
+        factors = np.where(totals > 0, spec.counts_per / np.where(totals > 0, totals, 1), 0)
         block *= factors.astype(block.dtype)[:, None]
-    if spec.log1p:
+    if spec.log_transform:
         with np.errstate(invalid="ignore", divide="ignore"):
             np.log1p(block, out=block)
     return block
@@ -222,7 +271,7 @@ class Preprocessing:
         Centre of each kept feature (zero when ``spec.center`` is false).
     scale : ndarray, shape (n_kept,)
         Divisor of each kept feature (population standard deviation for ``unit``,
-        ``sqrt(2p(1−p))`` for ``binomial``, 1 for ``none``).
+        ``sqrt(2q(1−q))`` for ``allele-frequency``, 1 for ``none``).
     std : ndarray, shape (n_kept,)
         Population standard deviation of each kept feature after the transforms.
     dropped : dict
@@ -269,10 +318,9 @@ class Preprocessing:
             dropped["supplementary"] = int(np.sum(exclude))
         eps = np.finfo(np.float32).eps
         constant = var <= (eps * np.maximum(np.abs(mean), 1.0)) ** 2
-        if spec.scale == "binomial":
+        if spec.scale == "allele-frequency":
             freq = mean / 2.0
-            binom = 2.0 * freq * (1.0 - freq)
-            constant |= binom <= 0
+            constant |= 2.0 * freq * (1.0 - freq) <= 0
         if spec.scale != "none" or spec.center:
             if constant.any():
                 dropped["constant"] = int(constant.sum())
@@ -296,13 +344,7 @@ class Preprocessing:
         if exclude is not None:
             reason[np.asarray(exclude, dtype=bool)] = "supplementary"
         std = np.sqrt(var[kept])
-        if spec.scale == "unit":
-            scale = std.copy()
-        elif spec.scale == "binomial":
-            freq = mean[kept] / 2.0
-            scale = np.sqrt(2.0 * freq * (1.0 - freq))
-        else:
-            scale = np.ones(kept.shape[0])
+        scale = feature_scale(spec.scale, mean[kept], std)
         centre = mean[kept] if spec.center else np.zeros(kept.shape[0])
         return cls(
             spec=spec,

@@ -13,7 +13,7 @@ whose expression counts carry known, planted effects:
 * optionally a few corrupted samples (failed library, contaminated, degraded) that
   do not follow the model of the others.
 
-Counts are drawn from a negative binomial written as a gamma-Poisson mixture: for
+Counts are drawn from a gamma-Poisson mixture (overdispersed counts): for
 sample ``s`` and gene ``g`` with mean ``mu[s, g]`` and gene dispersion ``phi[g]``
 (size ``r[g] = 1 / phi[g]``), ``lam ~ Gamma(shape=r, scale=mu / r)`` and
 ``x ~ Poisson(lam)``, so that ``E[x] = mu`` and ``Var[x] = mu + mu**2 / r``.
@@ -200,72 +200,128 @@ def simulate_cohort(
     if not 0 <= n_corrupted < n_samples:
         raise ValueError(f"n_corrupted must be in [0, n_samples), got {n_corrupted}")
 
+    # one generator, drawn from in a fixed order: samples, genes, planted effects, corruption, counts
     rng = np.random.default_rng(seed)
+    samples = _draw_samples(rng, n_samples)
+    base_fraction, dispersion = _draw_gene_parameters(rng, n_genes)
+    genes = _draw_gene_sets(rng, n_genes)
+    log2_effect = _planted_effects(samples, genes, n_genes)
+    corrupted, kinds, extra_fraction = _corrupt(rng, log2_effect, genes, base_fraction, n_corrupted)
+    mu, mean_scale = _expected_counts(base_fraction, log2_effect, samples["target_depth"], extra_fraction)
+    del log2_effect
+    counts = _draw_counts(rng, mu, dispersion)
 
-    # ---- sample annotations -------------------------------------------------------
+    sample_ids = _ids("smp_", n_samples, 5)
+    is_corrupted = np.zeros(n_samples, dtype=bool)
+    is_corrupted[corrupted] = True
+    annotations = pd.DataFrame(
+        {
+            "sample_id": sample_ids,
+            "state": samples["states"],
+            "batch": samples["batches"],
+            "depth": counts.sum(axis=1, dtype=np.int64),
+            "rna_quality": samples["quality"],
+            "donor_age": samples["age"].astype(np.int64),
+            "corrupted": is_corrupted,
+        }
+    )
+    truth: dict[str, Any] = {
+        **{key: genes[key] for key in ("state_genes", "state_lfc", "batch_genes", "batch_lfc", "quality_genes",
+                                       "quality_lfc", "age_genes", "age_lfc", "null_genes")},
+        "corrupted": corrupted,
+        "corrupted_kinds": kinds,
+        "base_fraction": base_fraction,
+        "dispersion": dispersion,
+        "mean_scale": mean_scale,
+        "target_depth": samples["target_depth"],
+        "seed": seed,
+    }
+    return Cohort(counts=counts, sample_ids=sample_ids, gene_ids=_ids("g", n_genes, 5),
+                  annotations=annotations, truth=truth)
+
+
+def _draw_samples(rng: np.random.Generator, n_samples: int) -> dict[str, np.ndarray]:
+    """Per-sample annotations: state, batch, RNA quality, donor age and target library size."""
     counts_per_state = np.floor(np.asarray(_STATE_PROPORTIONS) * n_samples).astype(int)
     counts_per_state[0] += n_samples - counts_per_state.sum()
     state_index = rng.permutation(np.repeat(np.arange(len(STATES)), counts_per_state))
-    states = np.asarray(STATES)[state_index]
-
     p_b = np.array([_P_BATCH_B[s] for s in STATES])[state_index]
     is_b = rng.random(n_samples) < p_b
-    batches = np.where(is_b, "B", "A")
-
     # RNA quality: batch B is a little worse on average.
     quality = rng.normal(np.where(is_b, 6.6, 7.5), 1.1)
     quality = np.round(np.clip(quality, 1.0, 10.0), 1)
-
     age = rng.integers(20, 81, size=n_samples)
-
     target_depth = _DEPTH_MEDIAN * np.exp(rng.normal(0.0, _DEPTH_LOG_SD, size=n_samples))
+    return {
+        "state_index": state_index,
+        "states": np.asarray(STATES)[state_index],
+        "is_b": is_b,
+        "batches": np.where(is_b, "B", "A"),
+        "quality": quality,
+        "age": age,
+        "target_depth": target_depth,
+    }
 
-    # ---- gene parameters ----------------------------------------------------------
+
+def _draw_gene_parameters(rng: np.random.Generator, n_genes: int) -> tuple[np.ndarray, np.ndarray]:
+    """Baseline expected fraction of the library per gene (sums to 1) and gene dispersions."""
     log_base = rng.normal(0.0, _BASE_LOG_SD, size=n_genes)
     base_fraction = np.exp(log_base)
     base_fraction /= base_fraction.sum()
     dispersion = _DISPERSION_MEDIAN * np.exp(rng.normal(0.0, _DISPERSION_LOG_SD, size=n_genes))
-    dispersion = np.clip(dispersion, 0.01, 1.0)
+    return base_fraction, np.clip(dispersion, 0.01, 1.0)
 
-    # Disjoint planted gene sets.
+
+def _draw_gene_sets(rng: np.random.Generator, n_genes: int) -> dict[str, Any]:
+    """Disjoint planted gene sets (state, batch, quality, age, null) and their log2 effects."""
     n_state = _set_size(_STATE_GENE_FRACTION, n_genes, 5)
     n_batch = _set_size(_BATCH_GENE_FRACTION, n_genes, 5)
     n_quality = _set_size(_QUALITY_GENE_FRACTION, n_genes, 3)
     n_age = _set_size(_AGE_GENE_FRACTION, n_genes, 2)
     order = rng.permutation(n_genes)
-    cursor = 0
+    bounds = np.cumsum([0] + [n_state] * len(STATES) + [n_batch, n_quality, n_age])
+    chunks = [np.sort(order[a:b]) for a, b in zip(bounds[:-1], bounds[1:])]
+    sets: dict[str, Any] = {
+        "state_genes": dict(zip(STATES, chunks[: len(STATES)])),
+        "batch_genes": chunks[len(STATES)],
+        "quality_genes": chunks[len(STATES) + 1],
+        "age_genes": chunks[len(STATES) + 2],
+        "null_genes": np.sort(order[bounds[-1]:]),
+    }
+    sets["state_lfc"] = {s: _signed_uniform(rng, *_STATE_LFC_RANGE, size=n_state) for s in STATES}
+    sets["batch_lfc"] = _signed_uniform(rng, *_BATCH_LFC_RANGE, size=n_batch)
+    sets["quality_lfc"] = rng.uniform(*_QUALITY_LFC_RANGE, size=n_quality)
+    sets["age_lfc"] = _signed_uniform(rng, *_AGE_LFC_RANGE, size=n_age)
+    return sets
 
-    def take(k: int) -> np.ndarray:
-        nonlocal cursor
-        chosen = np.sort(order[cursor : cursor + k])
-        cursor += k
-        return chosen
 
-    state_genes = {state: take(n_state) for state in STATES}
-    batch_genes = take(n_batch)
-    quality_genes = take(n_quality)
-    age_genes = take(n_age)
-    null_genes = np.sort(order[cursor:])
-
-    state_lfc = {s: _signed_uniform(rng, *_STATE_LFC_RANGE, size=n_state) for s in STATES}
-    batch_lfc = _signed_uniform(rng, *_BATCH_LFC_RANGE, size=n_batch)
-    quality_lfc = rng.uniform(*_QUALITY_LFC_RANGE, size=n_quality)
-    age_lfc = _signed_uniform(rng, *_AGE_LFC_RANGE, size=n_age)
-
-    # ---- log2 effects, (n_samples, n_genes) ---------------------------------------
+def _planted_effects(samples: dict, genes: dict, n_genes: int) -> np.ndarray:
+    """log2 effects of state, batch, quality and age on every gene, shape (n_samples, n_genes)."""
+    n_samples = samples["state_index"].shape[0]
     log2_effect = np.zeros((n_samples, n_genes), dtype=np.float64)
     for k, state in enumerate(STATES):
-        rows = np.flatnonzero(state_index == k)
-        log2_effect[np.ix_(rows, state_genes[state])] += state_lfc[state]
-    log2_effect[np.ix_(np.flatnonzero(is_b), batch_genes)] += batch_lfc
-    degradation = (10.0 - quality) / 9.0  # 0 at perfect quality, 1 at the worst
-    log2_effect[:, quality_genes] -= degradation[:, None] * quality_lfc[None, :]
-    log2_effect[:, age_genes] += ((age - 50.0) / 30.0)[:, None] * age_lfc[None, :]
+        rows = np.flatnonzero(samples["state_index"] == k)
+        log2_effect[np.ix_(rows, genes["state_genes"][state])] += genes["state_lfc"][state]
+    log2_effect[np.ix_(np.flatnonzero(samples["is_b"]), genes["batch_genes"])] += genes["batch_lfc"]
+    degradation = (10.0 - samples["quality"]) / 9.0  # 0 at perfect quality, 1 at the worst
+    log2_effect[:, genes["quality_genes"]] -= degradation[:, None] * genes["quality_lfc"][None, :]
+    log2_effect[:, genes["age_genes"]] += ((samples["age"] - 50.0) / 30.0)[:, None] * genes["age_lfc"][None, :]
+    return log2_effect
 
-    # ---- corrupted samples (last rows) -------------------------------------------
+
+def _corrupt(rng: np.random.Generator, log2_effect: np.ndarray, genes: dict, base_fraction: np.ndarray,
+             n_corrupted: int) -> tuple[np.ndarray, np.ndarray, dict[int, np.ndarray]]:
+    """Corrupt the last ``n_corrupted`` samples, kinds in turn.
+
+    Degraded samples get lower log2 effects (``log2_effect`` is changed in place); failed
+    and contaminated libraries get an extra share of the library from a foreign profile,
+    returned per row.
+    """
+    n_samples, n_genes = log2_effect.shape
     corrupted = np.arange(n_samples - n_corrupted, n_samples)
     kinds = np.array([CORRUPTION_KINDS[i % len(CORRUPTION_KINDS)] for i in range(n_corrupted)], dtype=str)
     extra_fraction: dict[int, np.ndarray] = {}
+    quality_genes = genes["quality_genes"]
     for row, kind in zip(corrupted, kinds):
         if kind == "failed_library":
             # 85% of the reads land on a handful of genes.
@@ -286,68 +342,28 @@ def simulate_cohort(
             log2_effect[row, quality_genes] -= rng.uniform(3.0, 4.0, size=quality_genes.size)
             broad = rng.choice(n_genes, size=max(1, n_genes // 10), replace=False)
             log2_effect[row, broad] -= rng.uniform(1.5, 2.5, size=broad.size)
+    return corrupted, kinds, extra_fraction
 
-    # ---- expected counts ----------------------------------------------------------
+
+def _expected_counts(base_fraction: np.ndarray, log2_effect: np.ndarray, target_depth: np.ndarray,
+                     extra_fraction: dict[int, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    """Expected counts ``mu`` (n_samples, n_genes) and the per-sample mean scale of null genes."""
     fraction = base_fraction[None, :] * np.exp2(log2_effect)
-    del log2_effect
     normaliser = fraction.sum(axis=1)
     mean_scale = target_depth / normaliser
     fraction /= normaliser[:, None]
     for row, extra in extra_fraction.items():
         share = float(extra.sum())
         fraction[row] = (1.0 - share) * fraction[row] + extra
-    mu = fraction
-    mu *= target_depth[:, None]
+    fraction *= target_depth[:, None]
+    return fraction, mean_scale
 
-    # ---- gamma-Poisson draw -------------------------------------------------------
+
+def _draw_counts(rng: np.random.Generator, mu: np.ndarray, dispersion: np.ndarray) -> np.ndarray:
+    """Gamma-Poisson counts of mean ``mu`` and variance ``mu + dispersion·mu²`` (int32)."""
     size_r = 1.0 / dispersion
     lam = rng.gamma(shape=np.broadcast_to(size_r, mu.shape), scale=mu / size_r[None, :])
-    del mu
-    counts = rng.poisson(lam).astype(np.int32)
-    del lam
-
-    sample_ids = _ids("smp_", n_samples, 5)
-    gene_ids = _ids("g", n_genes, 5)
-    is_corrupted = np.zeros(n_samples, dtype=bool)
-    is_corrupted[corrupted] = True
-
-    annotations = pd.DataFrame(
-        {
-            "sample_id": sample_ids,
-            "state": states,
-            "batch": batches,
-            "depth": counts.sum(axis=1, dtype=np.int64),
-            "rna_quality": quality,
-            "donor_age": age.astype(np.int64),
-            "corrupted": is_corrupted,
-        }
-    )
-
-    truth: dict[str, Any] = {
-        "state_genes": state_genes,
-        "state_lfc": state_lfc,
-        "batch_genes": batch_genes,
-        "batch_lfc": batch_lfc,
-        "quality_genes": quality_genes,
-        "quality_lfc": quality_lfc,
-        "age_genes": age_genes,
-        "age_lfc": age_lfc,
-        "null_genes": null_genes,
-        "corrupted": corrupted,
-        "corrupted_kinds": kinds,
-        "base_fraction": base_fraction,
-        "dispersion": dispersion,
-        "mean_scale": mean_scale,
-        "target_depth": target_depth,
-        "seed": seed,
-    }
-    return Cohort(
-        counts=counts,
-        sample_ids=sample_ids,
-        gene_ids=gene_ids,
-        annotations=annotations,
-        truth=truth,
-    )
+    return rng.poisson(lam).astype(np.int32)
 
 
 def write_cohort(cohort: Cohort, directory: Path, *, name: str = "cohort") -> dict[str, Path]:

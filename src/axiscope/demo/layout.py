@@ -1,6 +1,6 @@
 """The built-in demonstration: an invented cohort, fitted end to end.
 
-The synthetic cohort (see :mod:`axiscope.simulate`) has three invented tissue states, two
+The synthetic cohort (see :mod:`axiscope.demo.cohort`) has three invented tissue states, two
 processing batches, a sequencing-depth effect and an RNA-quality score. A reference set
 of samples is fitted; a later batch of new samples, a few of them deliberately corrupted,
 is kept aside for scoring against the saved model.
@@ -18,7 +18,7 @@ from .cohort import Cohort, simulate_cohort, write_cohort
 __all__ = ["make_demo_data", "DEMO_FIT_OPTIONS", "DEMO_TECHNICAL"]
 
 #: Preprocessing of the demo counts: counts per million, then log(1 + x), standardized.
-DEMO_FIT_OPTIONS = {"normalize_total": 1e6, "log1p": True, "scale": "unit"}
+DEMO_FIT_OPTIONS = {"counts_per": 1e6, "log_transform": True, "scale": "unit"}
 #: Annotations of the demo that describe how samples were processed, not their biology.
 DEMO_TECHNICAL = ["batch", "depth", "rna_quality"]
 

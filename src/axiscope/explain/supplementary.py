@@ -27,7 +27,7 @@ import numpy as np
 
 from ..core.memory import default_memory_limit, format_bytes, parse_memory
 from ..core.passes import PassRunner, Progress, array_from_blocks
-from ..core.preprocess import PreprocessSpec, first_nonfinite, transform_block
+from ..core.preprocess import PreprocessSpec, feature_scale, first_nonfinite, transform_block
 from ..errors import InputError, OptionError
 from ..io import MatrixSource
 from ..model.statistics import FeatureAxisStatistics
@@ -68,8 +68,8 @@ def supplementary_feature_statistics(
     rows : ndarray of bool, shape (n_samples,), optional
         The active samples (default all).
     spec : PreprocessSpec, optional
-        Per-sample transforms, centring and scaling replayed on the columns, as in the fit
-        (default: standardized, no transform).
+        Per-sample transforms (counts per ``T``, ``log(1 + x)``), centring and scaling replayed
+        on the columns, as in the fit (default: standardized, no transform).
     axis_names : sequence of str, optional
     sample_ids : sequence of str, optional
         Ids of the scored samples; checked against ``source`` when given.
@@ -231,17 +231,6 @@ def _stream(source: MatrixSource, F: np.ndarray, rows: np.ndarray, cols: np.ndar
     return sums
 
 
-def _replay_scale(spec: PreprocessSpec, mean: np.ndarray, sd: np.ndarray) -> np.ndarray:
-    """The fit's per-feature scale, recomputed for the supplementary features."""
-    if spec.scale == "unit":
-        return sd
-    if spec.scale == "none":
-        return np.ones(mean.shape[0])
-    # the only other scaling is that of genotype dosages 0/1/2: sqrt(2f(1 − f)), f = mean/2
-    freq = mean / 2.0
-    return np.sqrt(2.0 * freq * (1.0 - freq))
-
-
 def _finish(sums: _Sums, F: np.ndarray, singular_values: np.ndarray, spec: PreprocessSpec,
             feature_ids: np.ndarray, names: list[str]) -> FeatureAxisStatistics:
     """Correlations, loadings (in the units of the active ones) and squared cosines from the sums."""
@@ -267,7 +256,7 @@ def _finish(sums: _Sums, F: np.ndarray, singular_values: np.ndarray, spec: Prepr
             f_present = f_tot - sums.missing_scores[sl] if sums.missing_scores is not None else f_tot[None, :]
             centred = cross - mean[:, None] * f_present  # Σ (x − μ)·F over present cells
             corr[sl] = np.clip((centred / n) / (sd[:, None] * sd_f), -1.0, 1.0)
-            scale = _replay_scale(spec, mean, sd)
+            scale = feature_scale(spec.scale, mean, sd)
             if spec.center:
                 xf = centred / scale[:, None]
                 norm2 = m2 / scale**2

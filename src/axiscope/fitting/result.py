@@ -10,6 +10,7 @@ import pandas as pd
 
 from ..core.engine import Factorization
 from ..core.preprocess import FeatureStatistics, Preprocessing
+from ..io.output import DEFAULT_TOP_FEATURES
 from ..model.statistics import feature_statistics
 from ..model.store import Model
 
@@ -35,7 +36,11 @@ class FitResult:
         Statistics of every input feature (before selection).
     input_feature_ids : ndarray of str
     manifest : dict
-        Settings, sizes, passes over the data, timings and accuracy of the run.
+        Settings, sizes, passes over the data, timings and accuracy of the run. Its
+        ``accuracy`` record lists, per axis, the estimated relative error of the singular
+        value, the sine of the angle between the loading vector and the exact one, the
+        relative gap to the neighbouring variance, and whether the value is within the
+        requested ``tol``.
     """
 
     model: Model
@@ -76,12 +81,12 @@ class FitResult:
         df.insert(0, "feature_id", self.model.feature_ids)
         return df
 
-    def top_features(self, n: int = 25) -> pd.DataFrame:
+    def top_features(self, n: int = DEFAULT_TOP_FEATURES) -> pd.DataFrame:
         """The ``n`` features with the largest positive and negative loadings on each axis.
 
         Columns: axis, direction, rank, feature_id, loading, correlation (between the
         feature and the scores) and contribution (percent of the axis, ``100·loading²``);
-        see :func:`axiscope.interpret.feature_statistics`.
+        see :func:`axiscope.model.statistics.feature_statistics`.
         """
 
         stats = feature_statistics(self.model)
@@ -100,11 +105,21 @@ class FitResult:
         return pd.DataFrame(rows, columns=["axis", "direction", "rank", "feature_id", "loading",
                                            "correlation", "contribution"])
 
-    def write(self, directory: Path, *, top: int = 25, parquet: bool = False,
+    def write(self, directory: Path, *, top: int = DEFAULT_TOP_FEATURES, parquet: bool = False,
               command_line: list[str] | None = None) -> None:
-        """Write the tables, the model and the manifest into an existing directory.
+        """Write the tables, the model and the manifest into ``directory`` (made if missing).
 
-        Callers wanting atomic output wrap this in :func:`axiscope.writers.atomic_directory`.
+        Parameters
+        ----------
+        directory : path
+        top : int, default=DEFAULT_TOP_FEATURES
+            Features listed per side of each axis in ``top_features.tsv``.
+        parquet : bool, default=False
+            Also write every table as Parquet beside its TSV.
+        command_line : list of str, optional
+            Recorded in the manifest.
+
+        Callers wanting atomic output wrap this in :func:`axiscope.io.output.atomic_directory`.
         """
         from ..io.output import (
             ZARR_FEATURE_THRESHOLD,
@@ -125,7 +140,7 @@ class FitResult:
         write_table(self.top_features(top), directory / "top_features.tsv", parquet=parquet)
         dropped = np.setdiff1d(np.arange(self.input_feature_ids.shape[0]), self.preprocessing.kept)
         if dropped.size:
-            write_table(self.dropped_features(), directory / "dropped_features.tsv")
+            write_table(self.dropped_features(), directory / "dropped_features.tsv", parquet=parquet)
         self.model.save(directory / "model")
         manifest = dict(self.manifest)
         if command_line is not None:

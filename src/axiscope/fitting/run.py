@@ -8,11 +8,13 @@ and the per-axis, per-sample and per-feature tables as pandas DataFrames.
 from __future__ import annotations
 
 import logging
+import numbers
 import os
 import platform
 import sys
 import time
 import uuid
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -20,10 +22,10 @@ import pandas as pd
 
 from .. import __version__
 from ..core.cache import BlockCache
-from ..core.engine import exact_factorization, randomized_factorization
-from ..core.memory import default_memory_limit, parse_memory
+from ..core.engine import Factorization, exact_factorization, randomized_factorization
+from ..core.options import METHODS, EngineSettings, InputLayout, Resources
 from ..core.passes import PassRunner, Progress, array_from_blocks, blas_threads
-from ..core.plan import plan_blocks
+from ..core.plan import BlockPlan, plan_fit
 from ..core.preprocess import (
     BlockStats,
     FeatureStatistics,
@@ -41,33 +43,25 @@ from ..model.training import (
 )
 from .result import FitResult
 
-__all__ = ["fit", "METHODS"]
+__all__ = ["fit", "METHODS", "max_components"]
 
 logger = logging.getLogger(__name__)
 
-METHODS = ("auto", "randomized", "exact")
 #: ``method="auto"`` uses LAPACK when the smaller side of the matrix is at most this.
 EXACT_MAX_SIDE = 300
+
+
 def fit(
     source: MatrixSource | str | os.PathLike,
     *,
     n_components: int = 10,
     preprocess: PreprocessSpec | None = None,
-    oversample: int = 10,
-    power_iterations: int | str = "auto",
-    tol: float = 1e-6,
-    method: str = "auto",
-    seed: int | np.random.Generator = 0,
-    memory_limit: int | str | None = None,
-    threads: int | None = None,
-    scratch: str | os.PathLike | None = None,
+    engine: EngineSettings | None = None,
+    resources: Resources | None = None,
+    layout: InputLayout | None = None,
     active: np.ndarray | None = None,
     exclude_features: np.ndarray | None = None,
     progress: Progress | None = None,
-    dataset: str | None = None,
-    sample_ids: str | None = None,
-    feature_ids: str | None = None,
-    samples_in: str = "rows",
 ) -> FitResult:
     """Principal component analysis of a matrix on disk, out of core.
 
@@ -75,27 +69,20 @@ def fit(
     ----------
     source : MatrixSource or path
         The matrix (samples × features once oriented). A path is opened with
-        :func:`axiscope.readers.open_matrix` using ``dataset``, ``sample_ids``,
-        ``feature_ids`` and ``samples_in``.
+        :func:`axiscope.io.open_matrix` as ``layout`` says.
     n_components : int, default=10
-        Number of principal components ``k``; at most ``min(n, p) − 1``.
+        Number of principal components ``k``; at most the rank the matrix can have:
+        ``min(samples − 1, features)`` when centred, ``min(samples, features)`` when not
+        (features counted after the preprocessing's selection), and no more than the
+        numerical rank of the preprocessed matrix.
     preprocess : PreprocessSpec, optional
         Centring, scaling, transforms and filters (default: standardized PCA).
-    oversample : int, default=10
-    power_iterations : int or "auto", default="auto"
-        See :func:`axiscope.engine.randomized_factorization`.
-    tol : float, default=1e-6
-        Relative change of the leading singular values that stops ``"auto"`` iterations.
-    method : {"auto", "randomized", "exact"}, default="auto"
-        ``exact`` holds the preprocessed matrix in memory and calls LAPACK; ``auto`` does
-        so when the smaller side is at most ``EXACT_MAX_SIDE`` and the matrix fits the budget.
-    seed : int or numpy.random.Generator, default=0
-    memory_limit : int or str, optional
-        Budget for data held by the fit (default: half the machine's memory).
-    threads : int, optional
-        Blocks processed at once (default: the number of cores).
-    scratch : path, optional
-        Where the scratch file goes when transformed blocks do not fit in memory.
+    engine : EngineSettings, optional
+        Method, oversampling, power iterations, requested accuracy ``tol`` and seed.
+    resources : Resources, optional
+        Memory budget, threads and scratch folder.
+    layout : InputLayout, optional
+        Dataset, id sources and orientation of the matrix in its file (paths only).
     active : ndarray of bool, shape (n_samples,), optional
         Samples used to build the axes; the others are left out (supplementary).
     exclude_features : ndarray of bool, shape (n_features,), optional
@@ -106,6 +93,17 @@ def fit(
     Returns
     -------
     FitResult
+        Its manifest's ``accuracy`` gives, per axis, the estimated relative error of the
+        singular value and the sine of the angle to the exact loading vector
+        (:func:`axiscope.core.engine.ritz_accuracy`), and whether each value is within
+        ``engine.tol``.
+
+    Raises
+    ------
+    OptionError
+        An option of the wrong type or out of range, or ``n_components`` above the rank.
+    InputError
+        The input cannot be read or holds values the options do not allow.
 
     Notes
     -----
@@ -115,166 +113,305 @@ def fit(
     passes read transformed blocks from memory or from an uncompressed scratch file.
     """
     t_start = time.perf_counter()
-    spec = preprocess or PreprocessSpec()
-    if method not in METHODS:
-        raise OptionError(f"--method {method!r} is not one of {', '.join(METHODS)}")
-    if power_iterations != "auto" and (int(power_iterations) < 0 or int(power_iterations) > 100):
-        raise OptionError(f"--power-iterations must be 'auto' or between 0 and 100, got {power_iterations}")
-    if oversample < 0:
-        raise OptionError(f"--oversample must be >= 0, got {oversample}")
-    budget = default_memory_limit() if memory_limit is None else parse_memory(memory_limit)
-    threads = max(1, int(threads or os.cpu_count() or 1))
-    rng = seed if isinstance(seed, np.random.Generator) else np.random.default_rng(seed)
-    scratch_dir = Path(scratch) if scratch is not None else None
-    if scratch_dir is not None and not scratch_dir.is_dir():
-        raise OptionError(f"--scratch {scratch_dir}: no such directory; create it or choose another")
-
-    with opened(source, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
-                samples_in=samples_in) as src, blas_threads(threads):
-        return _fit(src, spec, n_components, oversample, power_iterations, tol, method, rng,
-                    budget, threads, scratch_dir, active, exclude_features, progress, t_start, seed)
+    preprocess = _option(preprocess, PreprocessSpec, "preprocess")
+    engine = _option(engine, EngineSettings, "engine")
+    resources = _option(resources, Resources, "resources")
+    layout = _option(layout, InputLayout, "layout")
+    if not (isinstance(n_components, numbers.Integral) and not isinstance(n_components, bool)
+            and n_components >= 1):
+        raise OptionError(f"n_components={n_components!r} is not a whole number >= 1; pass one")
+    if isinstance(source, MatrixSource) and not layout.is_default:
+        raise OptionError("layout describes a file, but source is an opened MatrixSource; pass the "
+                          "file's path instead, or leave layout out")
+    job = _Job(int(n_components), preprocess, engine, resources, progress, t_start)
+    with opened(source, **layout.open_options()) as src, blas_threads(resources.n_threads):
+        return _fit(src, job, active, exclude_features)
 
 
-def _fit(src, spec, k, oversample, power_iterations, tol, method, rng, budget, threads,
-         scratch_dir, active, exclude, progress, t_start, seed) -> FitResult:
+def _option(value, kind: type, name: str):
+    """``value``, or the default ``kind()`` when None; anything else is an error."""
+    if value is None:
+        return kind()
+    if not isinstance(value, kind):
+        raise OptionError(f"{name} is a {type(value).__name__}, not a {kind.__name__} object; "
+                          f"pass axiscope.{kind.__name__}(...)")
+    return value
+
+
+def max_components(n_samples: int, n_features: int, *, center: bool) -> int:
+    """The largest number of axes a matrix can have: its rank at most.
+
+    Centring subtracts the mean of the samples, which removes one dimension:
+    ``min(n_samples − 1, n_features)``; without centring ``min(n_samples, n_features)``.
+    """
+    return min(n_samples - 1 if center else n_samples, n_features)
+
+
+@dataclass(frozen=True)
+class _Job:
+    """The settings of one fit, checked."""
+
+    k: int
+    spec: PreprocessSpec
+    engine: EngineSettings
+    resources: Resources
+    progress: Progress | None
+    t_start: float
+
+
+def _fit(src: MatrixSource, job: _Job, active, exclude) -> FitResult:
+    """The steps of a fit: check, plan, read statistics, preprocess, factorise, record."""
+    active, exclude = _masks(src, active, exclude)
+    n = int(active.sum())
+    _check_components(job.k, n, src.shape[1], job.spec.center,
+                      "the array" if src.format == "array" else src.path)
+    plan = plan_fit(src, n_components=job.k, preprocess=job.spec, engine=job.engine,
+                    resources=job.resources)
+    method = _choose_method(job.engine.method, n, src.shape[1], job.spec, job.resources.budget)
+    runner = PassRunner(threads=job.resources.n_threads, progress=job.progress)
+    rng = job.engine.generator()
+    reader = _Reader(src, job.spec, active, plan.block_rows)
+    filtered = job.spec.has_filter or exclude is not None
+    with _Caches(plan, job.resources) as caches:
+        first_cache = None if filtered else caches.new(n, src.shape[1], src.dtype)
+        fuse = not filtered and job.spec.missing == "error" and method == "randomized"
+        l = min(job.k + job.engine.oversample, min(n, src.shape[1]))
+        omega = rng.standard_normal((src.shape[1], l)) if fuse else None
+        stats, raw_sketch = _statistics_pass(reader.array("read", cache=first_cache), job.spec, omega,
+                                             runner, src, active)
+        prep = _preprocessing(job, stats, exclude, src, n)
+        operand = _Operand.build(job.spec, stats, prep, reader, caches, filtered=filtered, filled=first_cache)
+        fac = _factorise(method, operand, job, n, rng, runner, plan, raw_sketch, omega)
+    _check_numerical_rank(fac, job.k, src.dtype, n, int(prep.kept.shape[0]))
+    model = _model(src, job.spec, prep, stats, fac, n, operand.columns is not None)
+    manifest = _manifest(src, job, n, prep, stats, fac, plan, runner)
+    return FitResult(
+        model=model,
+        sample_ids=np.asarray(src.sample_ids)[active],
+        scores=fac.scores,
+        sample_sq_dist=fac.row_sq_norms,
+        factorization=fac,
+        preprocessing=prep,
+        statistics=stats,
+        input_feature_ids=np.asarray(src.feature_ids),
+        manifest=manifest,
+    )
+
+
+# ------------------------------------------------------------------------ the steps
+
+
+def _masks(src: MatrixSource, active, exclude) -> tuple[np.ndarray, np.ndarray | None]:
+    """The active-sample mask (all by default) and the excluded-feature mask (None if empty)."""
     n_all, p_all = src.shape
     if exclude is not None:
         exclude = np.asarray(exclude, dtype=bool)
         if exclude.shape != (p_all,):
-            raise OptionError(f"the supplementary-feature mask has {exclude.shape[0]} entries for {p_all} features")
+            raise OptionError(f"exclude_features has {exclude.shape[0] if exclude.ndim else 0} entries "
+                              f"for {p_all} features; pass one bool per feature")
         if not exclude.any():
             exclude = None
-    if active is None:
-        active = np.ones(n_all, dtype=bool)
-    active = np.asarray(active, dtype=bool)
+    active = np.ones(n_all, dtype=bool) if active is None else np.asarray(active, dtype=bool)
     if active.shape != (n_all,):
-        raise OptionError(f"the active-sample mask has {active.shape[0]} entries for {n_all} samples")
+        raise OptionError(f"active has {active.shape[0] if active.ndim else 0} entries for {n_all} "
+                          "samples; pass one bool per sample")
     n = int(active.sum())
     if n < 2:
         raise InputError(f"{src.path}: fewer than 2 active samples ({n}); at least 2 are needed")
-    limit = min(n, p_all) - 1
-    if not 1 <= k <= limit:
-        raise OptionError(
-            f"--components {k} is out of range for {n} samples × {p_all} features; "
-            f"choose between 1 and {limit} (min(samples, features) − 1)"
-        )
-    l = min(k + oversample, min(n, p_all))
-    cache_features = spec.top_variable if spec.top_variable else p_all
-    plan = plan_blocks(n_all, p_all, src.dtype.itemsize, sketch_width=l, threads=threads,
-                       budget=budget, sample_chunk=src.sample_chunk,
-                       cache_features=min(cache_features, p_all), scratch=scratch_dir,
-                       reread_cheap=src.plain_reads and not (spec.log1p or spec.normalize_total))
-    if method == "auto":
-        dense_bytes = 8 * n * min(cache_features, p_all)
-        small = min(n, p_all) <= EXACT_MAX_SIDE and dense_bytes * 3 <= budget
-        method = "exact" if small else "randomized"
-    runner = PassRunner(threads=threads, progress=progress)
-    spans = [(s, min(n_all, s + plan.block_rows)) for s in range(0, n_all, plan.block_rows)]
-    counts = [int(active[a:b].sum()) for a, b in spans]
-    keep_spans = [(a, b, c) for (a, b), c in zip(spans, counts) if c > 0]
-    cache_starts = np.concatenate([[0], np.cumsum([c for _, _, c in keep_spans])])[:-1]
-    all_active = bool(active.all())
+    return active, exclude
 
-    def read_transformed(i: int, columns=None, cache=None):
-        a, b, _ = keep_spans[i]
-        block = src.read_samples(a, b)
-        if not all_active:
-            block = block[active[a:b]]
-        block = transform_block(block, spec)
+
+def _check_components(k: int, n: int, p: int, center: bool, where, *, after: str = "") -> None:
+    """``k`` within the rank the matrix can have (structural: from its shape)."""
+    limit = max_components(n, p, center=center)
+    if k > limit:
+        rule = "min(samples − 1, features) when centred" if center else "min(samples, features) when not centred"
+        raise OptionError(
+            f"n_components={k} is more axes than {where} can give: {n} samples × {p} features{after} "
+            f"have rank at most {limit} ({rule}); choose at most {limit}"
+        )
+
+
+def _choose_method(method: str, n: int, p: int, spec: PreprocessSpec, budget: int) -> str:
+    """``"auto"``: LAPACK when the smaller side is small and the dense matrix fits a third of the budget."""
+    if method != "auto":
+        return method
+    dense_bytes = 8 * n * min(spec.top_variable or p, p)
+    small = min(n, p) <= EXACT_MAX_SIDE and dense_bytes * 3 <= budget
+    return "exact" if small else "randomized"
+
+
+class _Reader:
+    """Blocks of active samples, read and transformed, as Dask arrays for the passes."""
+
+    def __init__(self, src: MatrixSource, spec: PreprocessSpec, active: np.ndarray, block_rows: int):
+        n_all = src.shape[0]
+        self.src, self.spec, self.active = src, spec, active
+        self.all_active = bool(active.all())
+        spans = [(s, min(n_all, s + block_rows)) for s in range(0, n_all, block_rows)]
+        counts = [int(active[a:b].sum()) for a, b in spans]
+        self.spans = [(a, b) for (a, b), c in zip(spans, counts) if c > 0]
+        self.rows = [c for c in counts if c > 0]
+        self.starts = np.concatenate([[0], np.cumsum(self.rows)])[:-1]
+        self.token = uuid.uuid4().hex[:8]
+
+    def block(self, i: int, columns=None, cache: BlockCache | None = None) -> np.ndarray:
+        a, b = self.spans[i]
+        block = self.src.read_samples(a, b)
+        if not self.all_active:
+            block = block[self.active[a:b]]
+        block = transform_block(block, self.spec)
         if columns is not None:
             block = np.ascontiguousarray(block[:, columns])
         if cache is not None:
-            cache.put(int(cache_starts[i]), block)
+            cache.put(int(self.starts[i]), block)
         return block
 
-    rows_per_block = [c for _, _, c in keep_spans]
-    token = uuid.uuid4().hex[:8]
-    filtered = spec.has_filter or exclude is not None
-    fuse = not filtered and spec.missing == "error" and method == "randomized"
-    cache_first = plan.cache != "source" and not filtered
-    cache = None
-    try:
-        if plan.cache != "source":
-            cache_cols = p_all if not filtered else None
-            if cache_cols is not None:
-                cache = BlockCache(plan.cache, n, cache_cols, src.dtype, scratch_dir)
-        X_src = array_from_blocks(
-            lambda i: read_transformed(i, cache=cache if cache_first else None),
-            rows_per_block, p_all, src.dtype, f"read-{token}",
+    def array(self, name: str, columns=None, cache: BlockCache | None = None):
+        """The input read once more (filling ``cache`` when given), as a Dask array."""
+        width = self.src.shape[1] if columns is None else columns.shape[0]
+        return array_from_blocks(lambda i: self.block(i, columns, cache), self.rows, width,
+                                 self.src.dtype, f"{name}-{self.token}")
+
+    def cached(self, cache: BlockCache, width: int):
+        """The blocks stored in ``cache``, as a Dask array."""
+        return array_from_blocks(
+            lambda i: cache.get(int(self.starts[i]), int(self.starts[i]) + self.rows[i]),
+            self.rows, width, self.src.dtype, f"cache-{self.token}",
         )
-        omega = rng.standard_normal((p_all, l)) if fuse else None
-        stats, raw_sketch = _statistics_pass(X_src, spec, omega, runner, src, active)
-        prep = Preprocessing.from_statistics(spec, stats, exclude)
-        if prep.kept.shape[0] < 2:
-            raise InputError(
-                f"{src.path}: fewer than 2 features left after dropping constant or filtered "
-                f"ones ({prep.kept.shape[0]} kept); relax --min-variance/--top-variable"
-            )
-        if k > min(n, prep.kept.shape[0]) - 1:
-            raise OptionError(
-                f"--components {k} is out of range: {prep.kept.shape[0]} features are kept "
-                f"after filtering; choose at most {min(n, prep.kept.shape[0]) - 1}"
-            )
-        if prep.dropped.get("constant"):
-            logger.warning(
-                "%d constant features were dropped (zero variance); they are listed in "
-                "dropped_features.tsv", prep.dropped["constant"],
-            )
 
-        # Column space of the arrays the engine sees: all input features (dropped ones
-        # get inverse scale 0) when nothing is filtered, else only the kept features.
-        if filtered:
-            columns = prep.kept
-            mean_c, d_c = prep.mean, prep.inverse_scale
-            fill_c = prep.mean_raw if spec.missing == "mean" else None
-            if plan.cache != "source":
-                cache = BlockCache(plan.cache, n, columns.shape[0], src.dtype, scratch_dir)
-            X_first = array_from_blocks(lambda i: read_transformed(i, columns, cache),
-                                        rows_per_block, columns.shape[0], src.dtype, f"sel-{token}")
-        else:
-            columns = None
-            mean_c = np.where(spec.center, stats.mean, 0.0)
-            d_c = np.zeros(p_all)
-            d_c[prep.kept] = prep.inverse_scale
-            fill_c = stats.mean if spec.missing == "mean" else None
-            X_first = None
-        width = p_all if columns is None else columns.shape[0]
-        if cache is not None:
-            X_iter = array_from_blocks(
-                lambda i: cache.get(int(cache_starts[i]), int(cache_starts[i]) + rows_per_block[i]),
-                rows_per_block, width, src.dtype, f"cache-{token}",
-            )
-            iter_source = plan.cache
-        else:
-            X_iter = array_from_blocks(lambda i: read_transformed(i, columns), rows_per_block,
-                                       width, src.dtype, f"reread-{token}")
-            iter_source = "source"
 
-        start = None
-        if raw_sketch is not None:
-            start = d_c[:, None] * (raw_sketch - n * np.outer(mean_c, mean_c @ omega)) \
-                if spec.center else d_c[:, None] * raw_sketch
-        if method == "exact":
-            X_exact = X_first if X_first is not None else X_iter
-            fac = exact_factorization(X_exact, mean_c, d_c, n_components=k, fill=fill_c,
-                                      runner=runner, source=iter_source if X_first is None else "input")
-        else:
-            # without a fused start, the sketch pass reads the input (filling the cache)
-            fac = randomized_factorization(
-                X_iter, mean_c, d_c, n_components=k, oversample=oversample,
-                power_iterations=power_iterations, tol=tol, rng=rng, start=start,
-                fill=fill_c, runner=runner, source=iter_source, max_basis=plan.max_basis,
-                sketch_from=X_first,
-            )
-    finally:
-        if cache is not None:
+class _Caches:
+    """Block caches of a fit (none when the plan re-reads the input), closed at the end."""
+
+    def __init__(self, plan: BlockPlan, resources: Resources):
+        self.mode = plan.cache
+        self.resources = resources
+        self.opened: list[BlockCache] = []
+
+    def new(self, n_rows: int, n_cols: int, dtype) -> BlockCache | None:
+        if self.mode == "source":
+            return None
+        scratch = self.resources.scratch_folder() if self.mode == "scratch" else None
+        cache = BlockCache(self.mode, n_rows, n_cols, dtype, scratch)
+        self.opened.append(cache)
+        return cache
+
+    def __enter__(self) -> "_Caches":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        for cache in self.opened:
             cache.close()
 
-    components = fac.components if columns is not None else fac.components[prep.kept]
-    feature_ids = np.asarray(src.feature_ids)[prep.kept]
-    model = Model(
+
+def _preprocessing(job: _Job, stats: FeatureStatistics, exclude, src: MatrixSource, n: int) -> Preprocessing:
+    """Kept features, centre and scale from the statistics; checks that enough are left."""
+    prep = Preprocessing.from_statistics(job.spec, stats, exclude)
+    n_kept = int(prep.kept.shape[0])
+    if n_kept < 2:
+        raise InputError(
+            f"{src.path}: fewer than 2 features left after dropping constant or filtered "
+            f"ones ({n_kept} kept); relax min_variance or top_variable"
+        )
+    _check_components(job.k, n, n_kept, job.spec.center, "the preprocessed matrix",
+                      after=" left after dropping constant or filtered ones")
+    if prep.dropped.get("constant"):
+        logger.warning(
+            "%d constant features were dropped (zero variance); they are listed in "
+            "dropped_features.tsv", prep.dropped["constant"],
+        )
+    return prep
+
+
+@dataclass
+class _Operand:
+    """What the engine factorises: blocks, and the centre, inverse scale and fill of their columns.
+
+    Without a feature filter the columns are all input features (dropped ones get inverse
+    scale 0) and the blocks come from the cache filled by the statistics pass; with one,
+    only the kept features, and the first pass over them (``first``) fills the cache.
+    """
+
+    columns: np.ndarray | None
+    mean: np.ndarray
+    inverse_scale: np.ndarray
+    fill: np.ndarray | None
+    first: object | None  # Dask array read from the input, filling the cache
+    later: object  # Dask array of the passes after it
+    later_source: str
+
+    @classmethod
+    def build(cls, spec, stats, prep, reader: _Reader, caches: _Caches, *, filtered: bool,
+              filled: BlockCache | None) -> "_Operand":
+        """``filled``: the cache the statistics pass filled (None with a feature filter)."""
+        p_all = reader.src.shape[1]
+        if filtered:
+            columns = prep.kept
+            mean, d = prep.mean, prep.inverse_scale
+            fill = prep.mean_raw if spec.missing == "mean" else None
+            cache = caches.new(int(sum(reader.rows)), columns.shape[0], reader.src.dtype)
+            first = reader.array("sel", columns, cache)
+        else:
+            columns = None
+            mean = np.where(spec.center, stats.mean, 0.0)
+            d = np.zeros(p_all)
+            d[prep.kept] = prep.inverse_scale
+            fill = stats.mean if spec.missing == "mean" else None
+            cache, first = filled, None
+        width = p_all if columns is None else columns.shape[0]
+        if cache is not None:
+            later, source = reader.cached(cache, width), caches.mode
+        else:
+            later, source = reader.array("reread", columns), "source"
+        return cls(columns, mean, d, fill, first, later, source)
+
+
+def _factorise(method: str, op: _Operand, job: _Job, n: int, rng, runner, plan: BlockPlan,
+               raw_sketch, omega) -> Factorization:
+    """LAPACK on the dense matrix, or randomized block Krylov iterations on the blocks."""
+    if method == "exact":
+        return exact_factorization(op.first if op.first is not None else op.later, op.mean,
+                                   op.inverse_scale, n_components=job.k, fill=op.fill, runner=runner,
+                                   source=op.later_source if op.first is None else "input")
+    start = None
+    if raw_sketch is not None:  # the statistics pass took X_rawᵀX_raw·Ω; centre and scale it
+        d, mean = op.inverse_scale, op.mean
+        start = d[:, None] * (raw_sketch - n * np.outer(mean, mean @ omega)) \
+            if job.spec.center else d[:, None] * raw_sketch
+    # without a fused start, the sketch pass reads the input (filling the cache)
+    eng = job.engine
+    return randomized_factorization(
+        op.later, op.mean, op.inverse_scale, n_components=job.k, oversample=eng.oversample,
+        power_iterations=eng.power_iterations, tol=eng.tol, rng=rng, start=start,
+        fill=op.fill, runner=runner, source=op.later_source, max_basis=plan.max_basis,
+        sketch_from=op.first,
+    )
+
+
+def _check_numerical_rank(fac: Factorization, k: int, dtype, n: int, p: int) -> None:
+    """No axis of a singular value at rounding level: ``k`` above the numerical rank.
+
+    The tolerance is that of :func:`numpy.linalg.matrix_rank`, ``σ₁·max(n, p)·ε`` with
+    ``ε`` the machine epsilon of the data's dtype.
+    """
+    s = fac.singular_values
+    eps = float(np.finfo(np.result_type(dtype, np.float32)).eps)
+    threshold = float(s[0]) * max(n, p) * eps if s.size else 0.0
+    rank = int(np.sum(s > threshold))
+    if rank < k:
+        raise OptionError(
+            f"n_components={k} is more than the rank of the preprocessed matrix: only {rank} of its "
+            f"singular values are above rounding ({max(n, p) * eps:.0e} of the largest); "
+            f"choose at most {rank}"
+        )
+
+
+def _model(src, spec, prep, stats, fac, n, filtered) -> Model:
+    components = fac.components if filtered else fac.components[prep.kept]
+    return Model(
         spec=spec,
-        feature_ids=feature_ids,
+        feature_ids=np.asarray(src.feature_ids)[prep.kept],
         mean=prep.mean,
         scale=prep.scale,
         std=prep.std,
@@ -282,7 +419,7 @@ def _fit(src, spec, k, oversample, power_iterations, tol, method, rng, budget, t
         singular_values=fac.singular_values,
         n_samples=n,
         total_inertia=prep.total_inertia,
-        n_input_features=p_all,
+        n_input_features=src.shape[1],
         info={"method": fac.method},
         extras={
             "input_feature_ids": np.asarray(src.feature_ids, dtype=str),
@@ -293,8 +430,11 @@ def _fit(src, spec, k, oversample, power_iterations, tol, method, rng, budget, t
                               total_inertia=prep.total_inertia, n_features=int(prep.kept.shape[0])),
         },
     )
-    t_total = time.perf_counter() - t_start
-    manifest = {
+
+
+def _manifest(src, job: _Job, n, prep, stats, fac, plan, runner) -> dict:
+    n_all, p_all = src.shape
+    return {
         "axiscope_version": __version__,
         "input": {
             "path": str(src.path),
@@ -311,14 +451,11 @@ def _fit(src, spec, k, oversample, power_iterations, tol, method, rng, budget, t
         "features_dropped": prep.dropped,
         "n_missing_imputed": int(stats.n_missing),
         "options": {
-            "n_components": k,
-            "oversample": oversample,
-            "power_iterations": power_iterations,
-            "tol": tol,
+            "n_components": job.k,
+            **job.engine.to_dict(),
             "method": fac.method,
-            "seed": seed if isinstance(seed, int) else None,
-            "threads": threads,
-            "preprocessing": spec.to_dict(),
+            "threads": job.resources.n_threads,
+            "preprocessing": job.spec.to_dict(),
         },
         "plan": plan.to_dict(),
         "passes": {
@@ -328,29 +465,27 @@ def _fit(src, spec, k, oversample, power_iterations, tol, method, rng, budget, t
                 for r in runner.records
             ],
         },
-        "accuracy": {
-            "power_iterations_run": fac.power_iterations,
-            "converged": fac.converged,
-            "last_relative_change": fac.ritz_change,
-            "max_relative_ritz_residual": fac.ritz_residual,
-            "residual_norm_bound": fac.residual_bound,
-            "residual_norm_bound_relative": fac.residual_bound / float(fac.singular_values[0])
-            if fac.singular_values[0] > 0 else float("nan"),
-        },
-        "seconds": round(t_total, 3),
+        "accuracy": _accuracy_record(fac, job.engine.tol),
+        "seconds": round(time.perf_counter() - job.t_start, 3),
         "versions": _versions(),
     }
-    return FitResult(
-        model=model,
-        sample_ids=np.asarray(src.sample_ids)[active],
-        scores=fac.scores,
-        sample_sq_dist=fac.row_sq_norms,
-        factorization=fac,
-        preprocessing=prep,
-        statistics=stats,
-        input_feature_ids=np.asarray(src.feature_ids),
-        manifest=manifest,
-    )
+
+
+def _accuracy_record(fac: Factorization, tol: float) -> dict:
+    """Per-axis error estimates, whether each singular value is within ``tol``, and how known."""
+    acc = fac.accuracy
+    axes = acc.to_records([f"PC{j + 1}" for j in range(fac.singular_values.shape[0])], tol)
+    return {
+        "estimated_from": acc.basis,
+        "requested_tol": tol,
+        "all_below_tol": all(a["below_tol"] for a in axes),
+        "max_singular_value_error": float(np.max(acc.singular_value)),
+        "subspace_error": float(acc.subspace),
+        "axes": axes,
+        "power_iterations_run": fac.power_iterations,
+        "converged": fac.converged,
+        "last_relative_change": fac.ritz_change if fac.method == "randomized" else None,
+    }
 
 
 def _stats_task(block, omega32):
@@ -376,7 +511,7 @@ def _statistics_pass(X, spec, omega, runner, src, active):
             feature = src.feature_ids[col]
             raise InputError(
                 f"{src.path}: sample {sample!r}, feature {feature!r} is NaN or infinite "
-                f"(after the transforms); fix the input or pass --missing mean to impute feature means"
+                f"(after the transforms); fix the input or pass missing='mean' to impute feature means"
             )
         state["stats"] = stats if state["stats"] is None else state["stats"].merge(stats)
         if sketch is not None:

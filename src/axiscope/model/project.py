@@ -1,8 +1,8 @@
 """Projection of samples onto a fitted model's axes, streamed in blocks.
 
 Used for new samples (scoring) and for supplementary samples of the fitted file. The
-stored preprocessing is replayed exactly: total normalisation over the training input's
-features, ``log1p``, the training centre and scale (never statistics of the new samples).
+stored preprocessing is replayed exactly: counts per ``T`` over the training input's
+features, ``log(1 + x)``, the training centre and scale (never statistics of the new samples).
 Features are matched by id, not position.
 """
 
@@ -179,7 +179,7 @@ def project(
     def task(block):
         # at most one gathered copy of the model's columns, then everything in place in the input dtype
         totals = None
-        if spec.normalize_total is not None:
+        if spec.counts_per is not None:
             totals = row_totals(block if all_total else block[:, match.total_columns])
         x = block if same_columns else block[:, match.model_columns]
         x = transform_block(x, spec, totals=totals)
@@ -207,8 +207,8 @@ def project(
     n_bad = np.empty(m)
     ids = np.asarray(source.sample_ids)[rows]
 
-    hint = (" after log1p, which turns values <= -1 into NaN or -inf (check for negative values, "
-            "e.g. data already log-transformed)") if spec.log1p else ""
+    hint = (" after log(1 + x), which turns values <= -1 into NaN or -inf (check for negative values, "
+            "e.g. data already log-transformed)") if spec.log_transform else ""
 
     def fold(result, index, start):
         out, bad = result

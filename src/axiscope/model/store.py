@@ -15,12 +15,14 @@ from pathlib import Path
 import numpy as np
 
 from ..core.preprocess import PreprocessSpec
-from ..errors import ModelError
+from ..errors import AxiscopeError, ModelError
 
 __all__ = ["Model", "MODEL_FORMAT", "MODEL_VERSION", "load_model"]
 
 MODEL_FORMAT = "axiscope-model"
-MODEL_VERSION = 1
+#: Version 2: preprocessing settings ``log_transform``, ``counts_per`` and
+#: ``scale="allele-frequency"``.
+MODEL_VERSION = 2
 _ARRAYS = ("feature_ids", "mean", "scale", "std", "components", "singular_values")
 
 
@@ -176,8 +178,12 @@ def _description_checksum(meta: dict) -> str:
 
 
 def _build(meta: dict, arrays: dict, extras: dict) -> Model:
+    try:
+        spec = PreprocessSpec.from_dict(meta["preprocessing"])
+    except AxiscopeError as exc:  # a value the settings reject
+        raise ValueError(str(exc)) from exc
     return Model(
-        spec=PreprocessSpec(**meta["preprocessing"]),
+        spec=spec,
         feature_ids=arrays["feature_ids"],
         mean=arrays["mean"],
         scale=arrays["scale"],

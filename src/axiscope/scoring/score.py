@@ -75,9 +75,9 @@ SECONDARY_CONFIDENCE = 0.95
 #: Columns of ``diagnostics.tsv``, in order.
 DIAGNOSTICS_COLUMNS = ("sample_id", "t2", "q", "flag", "missing_fraction", "confidence", "t2_limit",
                        "q_limit", "t2_limit_95", "q_limit_95")
-#: Added to messages about non-finite values when the model's preprocessing has log1p.
-_LOG1P_HINT = (
-    " (the model's preprocessing applies log1p, which turns values <= -1 into NaN or -inf: "
+#: Added to messages about non-finite values when the model's preprocessing takes logs.
+_LOG_HINT = (
+    " (the model's preprocessing applies log(1 + x), which turns values <= -1 into NaN or -inf: "
     "check the input for negative values, e.g. data that are already log-transformed)"
 )
 
@@ -523,7 +523,7 @@ def score(
             n_missing, counted(model.n_features, "feature"), agree(n_missing, "is", "are"),
             input_info["path"], agree(n_missing, "was", "were"), agree(n_missing, "its", "their"),
         )
-    if model.spec.log1p:
+    if model.spec.log_transform:
         # cells filled because they were non-finite after the transforms (absent features excluded)
         filled_cells = np.rint(proj.missing_fraction * model.n_features) - proj.match.n_missing
         if np.any(filled_cells > 0):
@@ -532,6 +532,6 @@ def score(
                 "%s in %s in %s %s NaN or infinite after the stored transforms and %s filled with the "
                 "training mean%s",
                 counted(n_cells, "cell"), counted(n_rows, "sample"), input_info["path"],
-                agree(n_cells, "was", "were"), agree(n_cells, "was", "were"), _LOG1P_HINT,
+                agree(n_cells, "was", "were"), agree(n_cells, "was", "were"), _LOG_HINT,
             )
     return result
