@@ -73,10 +73,10 @@ def test_fit_writes_documented_outputs(small_h5, tmp_path, dense, orient):
     np.testing.assert_allclose(loadings[["PC1", "PC2", "PC3", "PC4"]].to_numpy(), V, atol=1e-6)
 
     top = pd.read_csv(out / "top_features.tsv", sep="\t")
-    assert list(top.columns[:5]) == ["axis", "direction", "rank", "feature_id", "loading"]
+    assert list(top.columns[:5]) == ["axis", "side", "rank", "feature_id", "loading"]
     for j, axis in enumerate(["PC1", "PC2", "PC3", "PC4"]):
-        pos = top[(top.axis == axis) & (top.direction == "positive")].sort_values("rank")
-        neg = top[(top.axis == axis) & (top.direction == "negative")].sort_values("rank")
+        pos = top[(top.axis == axis) & (top.side == "positive")].sort_values("rank")
+        neg = top[(top.axis == axis) & (top.side == "negative")].sort_values("rank")
         # reference: numpy argsort of the LAPACK loadings
         assert list(pos.feature_id) == [f_ids[i] for i in np.argsort(-V[:, j])[:5]]
         assert list(neg.feature_id) == [f_ids[i] for i in np.argsort(V[:, j])[:5]]

@@ -441,7 +441,7 @@ def test_every_table_is_written_as_parquet_too(tmp_path):
     from axiscope.io.output import DEFAULT_TOP_FEATURES
 
     top = pd.read_csv(tmp_path / "out" / "top_features.tsv", sep="\t")
-    assert set(top.groupby(["axis", "direction"]).size()) == {DEFAULT_TOP_FEATURES}
+    assert set(top.groupby(["axis", "side"]).size()) == {DEFAULT_TOP_FEATURES}
 
 
 def test_model_loading_stays_strict(tmp_path):

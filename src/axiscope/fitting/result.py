@@ -84,11 +84,10 @@ class FitResult:
     def top_features(self, n: int = DEFAULT_TOP_FEATURES) -> pd.DataFrame:
         """The ``n`` features with the largest positive and negative loadings on each axis.
 
-        Columns: axis, direction, rank, feature_id, loading, correlation (between the
-        feature and the scores) and contribution (percent of the axis, ``100·loading²``);
-        see :func:`axiscope.model.statistics.feature_statistics`.
+        Columns: axis, side (``positive`` or ``negative``), rank, feature_id, loading,
+        correlation (between the feature and the scores) and contribution_pct (percent of the
+        axis, ``100·loading²``); see :func:`axiscope.model.statistics.feature_statistics`.
         """
-
         stats = feature_statistics(self.model)
         V = self.model.components
         ids = np.asarray(self.model.feature_ids)
@@ -96,14 +95,14 @@ class FitResult:
         n = min(n, V.shape[0])
         for j, axis in enumerate(self.axis_names):
             order = np.argsort(V[:, j], kind="stable")
-            for direction, idx in (("positive", order[::-1][:n]), ("negative", order[:n])):
+            for side, idx in (("positive", order[::-1][:n]), ("negative", order[:n])):
                 for rank, i in enumerate(idx, start=1):
-                    if (V[i, j] > 0) != (direction == "positive"):
+                    if (V[i, j] > 0) != (side == "positive"):
                         break
-                    rows.append((axis, direction, rank, ids[i], V[i, j], stats.correlation[i, j],
+                    rows.append((axis, side, rank, ids[i], V[i, j], stats.correlation[i, j],
                                  stats.contribution[i, j]))
-        return pd.DataFrame(rows, columns=["axis", "direction", "rank", "feature_id", "loading",
-                                           "correlation", "contribution"])
+        return pd.DataFrame(rows, columns=["axis", "side", "rank", "feature_id", "loading",
+                                           "correlation", "contribution_pct"])
 
     def write(self, directory: Path, *, top: int = DEFAULT_TOP_FEATURES, parquet: bool = False,
               command_line: list[str] | None = None) -> None:
