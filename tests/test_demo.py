@@ -18,7 +18,7 @@ from axiscope.cli import app
 
 def test_demo_describes_the_planted_structure_and_flags_corrupted_samples(tmp_path):
     out = tmp_path / "demo"
-    result = CliRunner().invoke(app, ["demo", "--out", str(out), "--threads", "2"])
+    result = CliRunner().invoke(app, ["demo", "--out", str(out), "--threads", "2", "--format", "parquet"])
     assert result.exit_code == 0, result.output
 
     cards = json.loads((out / "fit" / "axis_cards.json").read_text())["records"]
@@ -41,6 +41,11 @@ def test_demo_describes_the_planted_structure_and_flags_corrupted_samples(tmp_pa
     assert flagged[merged["corrupted"]].all()
     assert flagged[~merged["corrupted"]].mean() < 0.05  # at 0.99 confidence; common practice, no source
     assert "6 of the 6 deliberately corrupted" in result.output
+    # --format parquet covers the tables of every stage
+    for table in ("fit/sample_scores", "fit/top_features", "fit/axis_cards", "fit/sample_statistics",
+                  "score/diagnostics", "score/scores"):
+        tsv = pd.read_csv(out / f"{table}.tsv", sep="\t", comment="#" if "cards" in table else None)
+        assert pd.read_parquet(out / f"{table}.parquet").shape == tsv.shape, table
 
     # the manifests record paths that exist after the run, not the temporary folder's
     for part in ("fit", "score"):

@@ -11,7 +11,7 @@ from typing import Annotated
 import typer
 
 from ._app import app, progress_display, say, setup_logging, user_errors
-from ._options import Overwrite, Quiet, Threads
+from ._options import FormatOpt, Overwrite, Quiet, TableFormat, Threads
 from .fit_cmd import print_fit_summary
 
 
@@ -22,6 +22,7 @@ def demo_command(
         "--components", "-k", min=3, help="Number of principal components (the summary reads the first three).")] = 10,
     seed: Annotated[int, typer.Option(help="Seed of the simulation.")] = 7,
     threads: Threads = None,
+    format: FormatOpt = TableFormat.tsv,
     overwrite: Overwrite = False,
     quiet: Quiet = False,
 ) -> None:
@@ -51,11 +52,12 @@ def demo_command(
                                      technical=DEMO_TECHNICAL, ignore=["corrupted"], top=5)
                 # the manifests record where things are once the folder has its final name
                 result.manifest = relocated(result.manifest, tmp, out)
-                result.write(tmp / "fit", command_line=sys.argv)
-                cards.write(tmp / "fit")
+                parquet = format is TableFormat.parquet
+                result.write(tmp / "fit", parquet=parquet, command_line=sys.argv)
+                cards.write(tmp / "fit", parquet=parquet)
                 scored = score(tmp / "fit" / "model", data["new"], threads=threads, progress=progress)
                 scored.manifest = relocated(scored.manifest, tmp, out)
-                scored.write(tmp / "score", command_line=sys.argv)
+                scored.write(tmp / "score", parquet=parquet, command_line=sys.argv)
             corrupted = pd.read_csv(data["new_annotations"], sep="\t")["corrupted"].to_numpy(dtype=bool)
     print_fit_summary(result, out / "fit", quiet)
     for axis in cards.axis_names[:3]:
