@@ -104,11 +104,11 @@ def test_closed_form_correlations_match_direct_computation(spec):
     sq_cos = (Xt.T @ U) ** 2 / (Xt**2).sum(axis=0)[:, None]
     np.testing.assert_allclose(fs.sq_cosine, sq_cos, atol=1e-9)
     top = r.top_features(3)
-    assert {"correlation", "contribution"} <= set(top.columns)
+    assert {"correlation", "contribution_pct"} <= set(top.columns)
     row = top.iloc[0]
     j = list(r.model.feature_ids).index(row.feature_id)
     assert row.correlation == pytest.approx(fs.correlation[j, 0])
-    assert row.contribution == pytest.approx(100 * r.model.components[j, 0] ** 2)
+    assert row.contribution_pct == pytest.approx(100 * r.model.components[j, 0] ** 2)
 
 
 @pytest.mark.parametrize("spec", [PreprocessSpec(), PreprocessSpec(counts_per=1e4, log_transform=True),
@@ -179,13 +179,13 @@ def test_supplementary_samples_reproduce_active_scores_and_leave_axes_unchanged(
     # projecting training rows as if supplementary gives back their active scores
     back = project(r.model, array_source(X), rows=active, threads=1)
     np.testing.assert_allclose(back.scores, r.scores, atol=1e-8)
-    np.testing.assert_allclose(back.sq_dist, r.sample_sq_dist, rtol=1e-8)
+    np.testing.assert_allclose(back.squared_norms, r.sample_sq_dist, rtol=1e-8)
     # supplementary rows do not change the axes: same as a fit on the active rows alone
     alone = fit(array_source(X[active]), n_components=3, engine=EngineSettings(method="exact"))
     np.testing.assert_allclose(np.abs(r.model.components), np.abs(alone.model.components), atol=1e-10)
     np.testing.assert_allclose(r.model.singular_values, alone.model.singular_values, rtol=1e-12)
     sup = project(r.model, array_source(X), rows=~active, threads=1)
-    q = sample_statistics(sup.sample_ids, sup.scores, sup.sq_dist, r.axis_names, supplementary=True)
+    q = sample_statistics(sup.sample_ids, sup.scores, sup.squared_norms, r.axis_names, supplementary=True)
     assert ((q.represented_share > 0) & (q.represented_share <= 1 + 1e-12)).all()
     assert q["supplementary"].all() and q.filter(like="contribution_pct_").isna().all().all()
 

@@ -91,10 +91,10 @@ class Projection:
     ----------
     sample_ids : ndarray of str, shape (m,)
     scores : ndarray, shape (m, k)
-    sq_dist : ndarray, shape (m,)
+    squared_norms : ndarray, shape (m,)
         Squared distance to the centre in the preprocessed space (missing features add 0).
     residual : ndarray, shape (m,)
-        Squared distance left after projection on the k axes (``sq_dist − ‖score‖²``).
+        Squared distance left after projection on the k axes (``squared_norms − ‖score‖²``).
     missing_fraction : ndarray, shape (m,)
         Fraction of the model's features filled with the training mean (absent features
         and non-finite cells).
@@ -103,7 +103,7 @@ class Projection:
 
     sample_ids: np.ndarray
     scores: np.ndarray
-    sq_dist: np.ndarray
+    squared_norms: np.ndarray
     residual: np.ndarray
     missing_fraction: np.ndarray
     match: FeatureMatch

@@ -17,7 +17,7 @@ __all__ = ["training_extras"]
 def training_extras(
     singular_values: np.ndarray,
     scores: np.ndarray,
-    sq_dist: np.ndarray,
+    squared_norms: np.ndarray,
     *,
     total_inertia: float,
     n_features: int,
@@ -29,7 +29,7 @@ def training_extras(
     singular_values : ndarray, shape (k,)
     scores : ndarray, shape (n, k)
         Training scores.
-    sq_dist : ndarray, shape (n,)
+    squared_norms : ndarray, shape (n,)
         Squared distance of each training sample to the centre (preprocessed space).
     total_inertia : float
         Sum of the variances of the preprocessed features (population convention).
@@ -57,7 +57,7 @@ def training_extras(
     n = scores.shape[0]
     variance = s**2 / n
     theta1 = max(float(total_inertia) - float(variance.sum()), 0.0)
-    q = np.maximum(np.asarray(sq_dist, dtype=np.float64) - np.einsum("ij,ij->i", scores, scores), 0.0)
+    q = np.maximum(np.asarray(squared_norms, dtype=np.float64) - np.einsum("ij,ij->i", scores, scores), 0.0)
     centred = q - q.mean()
     m2 = float(np.mean(centred**2))
     m3 = float(np.mean(centred**3))
