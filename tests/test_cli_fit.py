@@ -502,10 +502,21 @@ def test_command_parameters_are_named_like_the_api_arguments():
 
 
 def test_top_default_is_the_shared_one():
-    from axiscope.cli.fit_cmd import TOP_FEATURES
-    from axiscope.io.output import DEFAULT_TOP_FEATURES
+    """fit, explain and the Python API list the same number of features per side by default."""
+    import inspect
 
-    assert TOP_FEATURES == DEFAULT_TOP_FEATURES
+    import typer
+
+    from axiscope.defaults import DEFAULT_TOP_FEATURES
+    from axiscope.explain.cards import explain_axes
+    from axiscope.fitting.result import FitResult
+
+    commands = typer.main.get_command(app).commands
+    for name in ("fit", "explain"):
+        (top,) = [p for p in commands[name].params if p.name == "top"]
+        assert top.default == DEFAULT_TOP_FEATURES, name
+    assert inspect.signature(explain_axes).parameters["top"].default == DEFAULT_TOP_FEATURES
+    assert inspect.signature(FitResult.top_features).parameters["n"].default == DEFAULT_TOP_FEATURES
 
 
 @pytest.mark.parametrize("args", [["--log" + "1p"], ["--normalize" + "-total", "1e6"], ["--scale", "bi" + "nomial"]])

@@ -18,6 +18,7 @@ PACKAGE = Path(axiscope.__file__).parent
 #: Lower numbers are lower in the stack; a module may import its own layer or lower ones.
 LAYERS = {
     "errors": 0,
+    "defaults": 0,
     "io": 1,
     "core": 2,
     "model": 3,

@@ -12,17 +12,12 @@ from typing import TYPE_CHECKING, Annotated
 import typer
 
 from ._app import app, say, setup_logging, user_errors
-from ._options import Overwrite, Quiet, TableFormat
+from ..defaults import DEFAULT_TOP_FEATURES, SAMPLES_PER_LIST
+from ._options import FormatOpt, Overwrite, Quiet, TableFormat
 
 if TYPE_CHECKING:
     from ..explain.cards import AxisCards
 
-#: Features listed per side of each axis; the same value as
-#: ``axiscope.io.output.DEFAULT_TOP_FEATURES`` (a test checks it), repeated here because that
-#: module loads numpy and pandas.
-TOP_FEATURES = 20
-#: Samples listed at each end of an axis; the same value as ``axiscope.explain.cards.SAMPLES_PER_LIST``.
-SAMPLES_PER_LIST = 10
 
 AnnotationsFile = Annotated[Path | None, typer.Option(
     "--annotations", help="Tab-separated sample annotations, matched to the samples by --id-column.")]
@@ -65,12 +60,11 @@ def explain_command(
     technical: Technical = None,
     ignore: Ignore = None,
     allow_missing: AllowMissing = False,
-    top: Top = TOP_FEATURES,
+    top: Top = DEFAULT_TOP_FEATURES,
     samples_per_list: Annotated[int, typer.Option(
         "--samples", min=1, help="Samples listed at each end of an axis and among those it represents poorly.")
     ] = SAMPLES_PER_LIST,
-    format: Annotated[TableFormat, typer.Option(
-        help="tsv, or parquet to add a Parquet copy of every table.")] = TableFormat.tsv,
+    format: FormatOpt = TableFormat.tsv,
     out: Annotated[Path | None, typer.Option(
         "--out", "-o", help="Where to write (default: RESULT_DIR/explanation).")] = None,
     overwrite: Overwrite = False,

@@ -8,8 +8,10 @@ from typing import Annotated
 
 import typer
 
+from ..defaults import DEFAULT_TOP_FEATURES
 from ._app import app, progress_display, say, setup_logging, user_errors
 from ._options import (
+    FormatOpt,
     Dataset,
     FeatureIds,
     InputPath,
@@ -37,10 +39,6 @@ from .explain_cmd import (
     print_axis_readings,
 )
 
-#: Features listed per side of each axis; the value of axiscope.io.output.DEFAULT_TOP_FEATURES,
-#: written out so that loading the command line imports no numerical library (a test checks
-#: that the two agree).
-TOP_FEATURES = 20
 
 # Options shared with ``axiscope inspect``, which predicts the block plan of a fit.
 Components = Annotated[int, typer.Option("--components", "-k", min=1, help="Number of principal components (axes).")]
@@ -86,8 +84,8 @@ def fit_command(
     memory_limit: MemoryLimit = None,
     threads: Threads = None,
     scratch: Scratch = None,
-    top: Annotated[int, typer.Option(min=1, help="Features listed per side of each axis in top_features.tsv.")] = TOP_FEATURES,
-    format: Annotated[TableFormat, typer.Option(help="tsv, or parquet to add Parquet copies of the tables.")] = TableFormat.tsv,
+    top: Annotated[int, typer.Option(min=1, help="Features listed per side of each axis in top_features.tsv.")] = DEFAULT_TOP_FEATURES,
+    format: FormatOpt = TableFormat.tsv,
     dataset: Dataset = None,
     sample_ids: SampleIds = None,
     feature_ids: FeatureIds = None,

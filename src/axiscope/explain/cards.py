@@ -36,7 +36,8 @@ import numpy as np
 import pandas as pd
 
 from ..errors import OptionError
-from ..io.output import DEFAULT_TOP_FEATURES, write_table
+from ..defaults import DEFAULT_TOP_FEATURES, SAMPLES_PER_LIST
+from ..io.output import write_table
 from ..model.statistics import FeatureAxisStatistics, feature_statistics, sample_statistics
 from .annotations import AnnotationSet, load_annotations
 from .associations import annotation_shares
@@ -56,8 +57,6 @@ logger = logging.getLogger(__name__)
 ALPHA = 0.05
 #: Smallest R² of a technical annotation that raises the batch warning (common practice, no source).
 WARN_SHARE = 0.1
-#: Samples listed at each end of an axis and among those it represents poorly.
-SAMPLES_PER_LIST = 10
 #: Stem of the record set's files (``.tsv`` and ``.json``).
 CARDS_FILE = "axis_cards"
 #: Folder of the per-axis pages.

@@ -12,7 +12,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import InputError
-from ..io.output import DEFAULT_TOP_FEATURES
+from ..defaults import DEFAULT_TOP_FEATURES
 from .annotations import AnnotationSet, load_annotations, read_annotations, sample_flags, split_names
 from .cards import AxisCards, SupplementarySamples, explain_axes
 

@@ -10,7 +10,7 @@ import pandas as pd
 
 from ..core.engine import Factorization
 from ..core.preprocess import FeatureStatistics, Preprocessing
-from ..io.output import DEFAULT_TOP_FEATURES
+from ..defaults import DEFAULT_TOP_FEATURES
 from ..model.statistics import feature_statistics
 from ..model.store import Model
 

@@ -13,13 +13,12 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from ..defaults import DEFAULT_TOP_FEATURES  # noqa: F401  (re-exported)
 from ..errors import InputError, OptionError
 
 __all__ = ["atomic_directory", "check_target", "write_table", "write_json", "write_zarr_matrix",
            "read_result_table", "check_result_table", "REFIT_HINT", "ZARR_FEATURE_THRESHOLD"]
 
-#: Default number of features listed per side of each axis, by every command and function.
-DEFAULT_TOP_FEATURES = 20
 
 #: Above this many features, per-feature tables are also written as Zarr arrays with ids.
 ZARR_FEATURE_THRESHOLD = 200_000
