@@ -22,7 +22,8 @@ __all__ = ["app", "main", "fail", "say", "setup_logging", "progress_display", "u
            "to_option_spellings", "COMMAND_ORDER"]
 
 #: The commands in the order of the work. A command not named here (the explanation of
-#: the axes, and any stage added later) is listed after ``fit`` and before ``score``.
+#: the axes, then the figures, and any stage added later) is listed after ``fit`` and
+#: before ``score``, in the order the commands register (``cli/__init__.py``).
 COMMAND_ORDER = ("inspect", "fit", "score", "demo", "simulate")
 _UNLISTED_AFTER = "fit"
 
