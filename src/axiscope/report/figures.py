@@ -967,12 +967,11 @@ def _check_pairs(pairs: Sequence[Sequence[int]], axis_names: list[str]) -> list[
     for pair in pairs:
         pair = tuple(pair)
         if len(pair) != 2 or not all(isinstance(i, (int, np.integer)) for i in pair) or pair[0] == pair[1]:
-            raise OptionError(f"pairs holds {pair!r}; give each pair as two different axis numbers, such as (1, 2)")
+            raise OptionError(f"pairs={pair!r}: give each pair as two different axis numbers, such as (1, 2)")
         if not all(1 <= i <= k for i in pair):
             if default:
                 continue
-            bad = next(i for i in pair if not 1 <= i <= k)
-            raise OptionError(f"pairs asks for axis {bad}, but the fit has {k} axes; choose axis numbers "
+            raise OptionError(f"pairs=({pair[0]}, {pair[1]}): the fit has {k} axes; choose axis numbers "
                               f"from 1 to {k}")
         out.append((axis_names[pair[0] - 1], axis_names[pair[1] - 1]))
     return list(dict.fromkeys(out))
@@ -1039,6 +1038,7 @@ def write_figures(result_dir: str | Path, out_dir: str | Path | None = None, *,
                 path = out / f"{stem}.{fmt}"
                 fig.savefig(path, format=fmt, dpi=style.DPI, metadata=_METADATA[fmt])
                 written.append(path)
+                fig.set_layout_engine("none")  # laid out once; the next format keeps the positions
 
     ratio = fit.variance_ratio
     flagged = scored.flagged_ids if scored is not None else ()
