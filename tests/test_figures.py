@@ -228,6 +228,21 @@ def test_correlation_circle_draws_and_labels_exactly_the_top_features(top):
     assert not any(boxes[i].overlaps(boxes[j]) for i in range(top) for j in range(i + 1, top))
 
 
+def test_svg_files_survive_awkward_ids(tmp_path):
+    # ids holding XML syntax: the SVG must still parse (Python's xml.etree)
+    ids = ["a--b", "c-->d", "<!--x", "e]]>f", "g&amp;h", 'q"uote', "it's"]
+    values = np.array([[0.5, 0.1], [0.2, 0.6], [-0.4, 0.3], [0.1, -0.7], [-0.6, -0.2], [0.3, 0.3], [-0.1, 0.4]])
+    scores = pd.DataFrame({"sample_id": ids * 3, "PC1": np.arange(21.0), "PC2": np.arange(21.0) % 5})
+    scores["sample_id"] = [f"{i}{k}" for k, i in enumerate(scores["sample_id"])]
+    colour = F.Colouring("<kind & \"sort\">", "categorical",
+                         pd.Series(ids * 3, index=pd.Index(scores["sample_id"], dtype=object), dtype=object), ids)
+    with F._style():
+        F.feature_map(ids, values, top=7).savefig(tmp_path / "features.svg")
+        F.sample_map(scores, colour=colour, flagged=list(scores["sample_id"][:3])).savefig(tmp_path / "samples.svg")
+    for name in ("features.svg", "samples.svg"):
+        assert ET.parse(tmp_path / name).getroot().tag.endswith("svg")
+
+
 def test_loading_map_labels_the_top_features_without_arrows():
     ids, values = _correlations()
     fig = F.feature_map(ids, values * 0.1, kind="loading", top=6)
@@ -376,6 +391,9 @@ def test_bad_requests_fail_with_one_line(fitted, tmp_path):
         F.write_figures(fitted / "fit", tmp_path / "d", annotations=other)
     with pytest.raises(InputError, match="not an axiscope fit result"):
         F.write_figures(tmp_path, tmp_path / "e")
+    (tmp_path / "exists").mkdir()
+    r = runner.invoke(app, ["figures", str(fitted / "fit"), "--out", str(tmp_path / "exists")])
+    assert r.exit_code == 2 and "already exists" in r.output and "--overwrite" in r.output
     r = runner.invoke(app, ["figures", str(fitted / "fit"), "--pairs", "1,9", "--out", str(tmp_path / "f")])
     assert r.exit_code == 2 and "--pairs (1, 9): the fit has 4 axes" in r.output and not (tmp_path / "f").exists()
     r = runner.invoke(app, ["figures", str(fitted / "fit"), "--pairs", "1-2", "--out", str(tmp_path / "g")])

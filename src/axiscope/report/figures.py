@@ -510,7 +510,7 @@ def variance_figure(components: pd.DataFrame, *, thresholds: Mapping[str, float 
         right = ax.twinx()
         right.grid(False)
         right.spines["right"].set_visible(True)
-        (line,) = right.plot(x, cumulative, label="cumulative share", **style.CUMULATIVE)
+        (line,) = right.plot(x, cumulative, label="cumulative share (right-hand scale)", **style.CUMULATIVE)
         line.set_gid("cumulative")
         right.set_ylabel("cumulative share (%)")
         right.set_ylim(0, min(100.0, max(cumulative.max(), 1.0) * 1.1) if len(x) else 100)
@@ -775,7 +775,7 @@ def quality_map(scores: pd.DataFrame, sample_statistics: pd.DataFrame, pair: tup
     return sample_map(scores, pair, variance_ratio=variance_ratio, supplementary=supplementary, shade=shade,
                       shade_name=f"squared cosine on {a} and {b}", density_above=density_above,
                       extreme_points=extreme_points,
-                      title=f"How much of each sample {a} and {b} show")
+                      title=f"How well {a} and {b} show each sample")
 
 
 def feature_map(feature_ids: Sequence[str], values: np.ndarray, pair: tuple[str, str] = ("PC1", "PC2"), *,
