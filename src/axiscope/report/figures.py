@@ -660,6 +660,7 @@ def _density(ax: "Axes", xy: np.ndarray, values: np.ndarray | None, norm) -> Non
         art = ax.hexbin(xy[:, 0], xy[:, 1], C=values, reduce_C_function=np.nanmean, gridsize=60,
                         cmap=style.SEQUENTIAL_MAP, norm=norm, mincnt=1, linewidths=0.0, zorder=2)
     art.set_gid("density")
+    art.set_rasterized(True)  # thousands of hexagons: an image inside the SVG file
 
 
 _LAYER_STYLE = {"active": style.POINT, "supplementary": style.SUPPLEMENTARY, "new": style.NEW}
