@@ -590,14 +590,17 @@ def sample_map(scores: pd.DataFrame, pair: tuple[str, str] = ("PC1", "PC2"), *,
         quality of representation); ``shade_name`` labels its scale.
     density_above : int, default=DENSITY_ABOVE
         With more samples that built the axes, their density is drawn underneath and only
-        the ``extreme_points`` farthest from the centre on top.
+        the ``extreme_points`` farthest from the centre on top (supplementary or new samples
+        beyond this number are thinned the same way, without a density).
     title : str, optional
 
     Returns
     -------
     Figure
-        Artists carry ids (``gid``): ``samples``, ``supplementary``, ``new-samples``,
-        ``flagged``, ``density``, ``centre``, ``centre-ellipse-<i>``.
+        Artists carry ids (``gid``, also the ``id`` of their group in SVG files):
+        ``samples``, ``supplementary`` and ``new-samples`` (with ``-<i>`` per category and
+        ``-no-value`` for samples without a value), ``flagged``, ``density``, ``centre-<i>``
+        and ``centre-ellipse-<i>`` (the ellipse's label is its category).
     """
     a, b = pair
     layers = [_Layer("active", scores["sample_id"].to_numpy(dtype=object), scores[[a, b]].to_numpy(np.float64))]
