@@ -9,6 +9,8 @@ import typer
 
 from ._app import app, setup_logging, user_errors
 from ._options import (
+    AllowExternalData,
+    AllowMissingChunks,
     Dataset,
     FeatureIds,
     InputPath,
@@ -37,6 +39,8 @@ def inspect_command(
     sample_ids: SampleIds = None,
     feature_ids: FeatureIds = None,
     samples_in: SamplesInOpt = SamplesIn.rows,
+    allow_external_data: AllowExternalData = False,
+    allow_missing_chunks: AllowMissingChunks = False,
 ) -> None:
     """Show shape, dtype, on-disk chunking, size, ids and the block plan 'axiscope fit' would use.
 
@@ -56,7 +60,8 @@ def inspect_command(
         engine = EngineSettings(oversample=oversample)
         resources = Resources(memory_limit=memory_limit, threads=threads, scratch=scratch)
         layout = InputLayout(dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
-                             samples_in=samples_in.value)
+                             samples_in=samples_in.value, allow_external_data=allow_external_data,
+                             allow_missing_chunks=allow_missing_chunks)
         with open_matrix(input, **layout.open_options()) as src:
             info = describe_source(src)
             plan = plan_fit(src, n_components=n_components, preprocess=spec, engine=engine,

@@ -158,6 +158,10 @@ class MatrixSource:
         no decoding.
     ids_source : dict
         Where the ids came from, keys ``"samples"`` and ``"features"``.
+    notes : dict
+        What the reader accepted or decided that a record of the run should say (plain
+        JSON values): ``missing_chunks``/``chunks``/``fill_value`` when missing Zarr chunks
+        were allowed, ``computed_in`` when integers are computed in float64.
     """
 
     def __init__(self, *, path: pathlib.Path, format: str, dataset: str | None, samples_in: str,
@@ -180,6 +184,7 @@ class MatrixSource:
         self.sample_ids = sample_ids
         self.feature_ids = feature_ids
         self.ids_source = ids_source
+        self.notes: dict[str, Any] = {}
         self.nbytes = self.shape[0] * self.shape[1] * self.dtype.itemsize
         self.file_size = file_size(path)
         #: Sample blocks are plain positioned reads of an uncompressed file: reading
@@ -336,7 +341,7 @@ def describe_source(source: MatrixSource) -> dict[str, Any]:
     dict
         Keys ``path``, ``format``, ``dataset``, ``samples_in``, ``shape``, ``dtype``,
         ``stored_dtype``, ``disk_chunks``, ``sample_chunk``, ``nbytes``, ``file_size``,
-        ``ids_source``, ``first_sample_ids`` and ``first_feature_ids``; all values are plain
+        ``ids_source``, ``notes``, ``first_sample_ids`` and ``first_feature_ids``; all values are plain
         Python objects (str, int, list, dict, None).
     """
     return {
@@ -352,6 +357,7 @@ def describe_source(source: MatrixSource) -> dict[str, Any]:
         "nbytes": int(source.nbytes),
         "file_size": int(source.file_size),
         "ids_source": dict(source.ids_source),
+        "notes": dict(source.notes),
         "first_sample_ids": [str(v) for v in source.sample_ids[:_ID_HEAD]],
         "first_feature_ids": [str(v) for v in source.feature_ids[:_ID_HEAD]],
     }

@@ -1,0 +1,258 @@
+"""Input integrity: data from other files, missing chunks, precision of integer and float
+input, values out of range, damaged or tricky text and ids (issue 10).
+
+Each check names its outside reference: mostly the numpy array the test wrote to disk
+(reads must reproduce it exactly), LAPACK through ``numpy.linalg`` for fits, and the
+IEEE 754 limits as numpy reports them (``numpy.finfo``).
+"""
+
+from __future__ import annotations
+
+import gzip
+import os
+import pathlib
+
+import h5py
+import numpy as np
+import pytest
+import zarr
+from typer.testing import CliRunner
+
+from axiscope.cli import app
+from axiscope.errors import InputError
+from axiscope.io import open_matrix
+
+runner = CliRunner()
+
+
+def _invoke(*args) -> object:
+    return runner.invoke(app, [str(a) for a in args])
+
+
+def _read_all(source) -> np.ndarray:
+    return source.read_samples(0, source.shape[0])
+
+
+def _one_line_error(res, *fragments: str) -> str:
+    """Exit code 2, one line on standard error holding every fragment, no traceback."""
+    assert res.exit_code == 2, (res.exit_code, res.stderr, res.output)
+    lines = [line for line in res.stderr.splitlines() if line.strip()]
+    assert len(lines) == 1, res.stderr
+    assert "Traceback" not in res.stderr
+    for fragment in fragments:
+        assert fragment in lines[0], (fragment, lines[0])
+    return lines[0]
+
+
+# --------------------------------------------------------------------- HDF5: other files
+
+
+@pytest.fixture
+def target(tmp_path) -> tuple[pathlib.Path, np.ndarray]:
+    """``t.h5`` holding X = 40 × 12 Gaussian (the values a link must lead to)."""
+    X = np.random.default_rng(7).standard_normal((40, 12))
+    path = tmp_path / "t.h5"
+    with h5py.File(path, "w") as handle:
+        handle["X"] = X
+    return path, X
+
+
+@pytest.fixture
+def linked(tmp_path, target) -> pathlib.Path:
+    """``l.h5``: a large ``pad`` dataset of its own, and X as an external link to ``t.h5``."""
+    path = tmp_path / "l.h5"
+    with h5py.File(path, "w") as handle:
+        handle["pad"] = np.full((500, 100), 3.0)
+        handle["X"] = h5py.ExternalLink("t.h5", "/X")
+    return path
+
+
+def test_external_link_refused_by_default(linked):
+    with pytest.raises(InputError, match=r"l\.h5: 'X' is an external link to '/X' in 't\.h5'.*"
+                                         r"allow_external_data=True"):
+        open_matrix(linked, dataset="X")
+
+
+def test_external_link_allowed_reads_the_target(linked, target, monkeypatch):
+    # Reference: the array written to t.h5. Before the fix the positioned-read fast path
+    # took the dataset's offset inside t.h5 and read those bytes of l.h5 instead.
+    monkeypatch.chdir(linked.parent)
+    with open_matrix(linked, dataset="X", allow_external_data=True) as src:
+        assert not src.plain_reads  # read through h5py, not by offsets into l.h5
+        np.testing.assert_array_equal(_read_all(src), target[1])
+
+
+def test_external_link_cli_one_line(linked, tmp_path):
+    res = _invoke("fit", linked, "--dataset", "X", "--out", tmp_path / "out", "-k", "2", "--quiet")
+    _one_line_error(res, "external link", "--allow-external-data")
+    assert not (tmp_path / "out").exists()
+
+
+def test_external_link_cli_allowed_fits_the_target(linked, target, tmp_path, monkeypatch):
+    monkeypatch.chdir(linked.parent)
+    out = tmp_path / "out"
+    res = _invoke("fit", linked, "--dataset", "X", "--out", out, "-k", "2", "--quiet", "--method", "exact",
+                  "--allow-external-data")
+    assert res.exit_code == 0, res.stderr
+    X = target[1]
+    Z = (X - X.mean(axis=0)) / X.std(axis=0)  # standardized with the population SD
+    s = np.linalg.svd(Z, compute_uv=False)  # reference: LAPACK on the target's values
+    import pandas as pd
+
+    comps = pd.read_csv(out / "components.tsv", sep="\t")
+    np.testing.assert_allclose(comps.singular_value, s[:2], rtol=1e-7)  # the table has 8 digits
+
+
+def test_external_raw_storage(tmp_path, monkeypatch):
+    monkeypatch.chdir(tmp_path)  # HDF5 resolves a relative raw file name from the working directory
+    values = np.arange(40 * 12, dtype="<f8").reshape(40, 12)
+    values.tofile(tmp_path / "raw.bin")
+    path = tmp_path / "e.h5"
+    with h5py.File(path, "w") as handle:
+        handle.create_dataset("X", shape=(40, 12), dtype="<f8", external=[("raw.bin", 0, h5py.h5f.UNLIMITED)])
+    with pytest.raises(InputError, match=r"dataset '/X' keeps its values in external raw storage "
+                                         r"\('raw\.bin'\).*allow_external_data=True"):
+        open_matrix(path)
+    with open_matrix(path, allow_external_data=True) as src:
+        assert not src.plain_reads
+        np.testing.assert_array_equal(_read_all(src), values)  # reference: the raw bytes written
+
+
+def _virtual(tmp_path, source: pathlib.Path) -> pathlib.Path:
+    layout = h5py.VirtualLayout(shape=(40, 12), dtype="f8")
+    layout[:] = h5py.VirtualSource(source.name, "X", shape=(40, 12))
+    path = tmp_path / "v.h5"
+    with h5py.File(path, "w") as handle:
+        handle.create_virtual_dataset("X", layout, fillvalue=0)
+    return path
+
+
+def test_virtual_dataset(tmp_path, target, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    path = _virtual(tmp_path, target[0])
+    with pytest.raises(InputError, match=r"is a virtual dataset with sources in 't\.h5'.*allow_external_data"):
+        open_matrix(path)
+    with open_matrix(path, allow_external_data=True) as src:
+        np.testing.assert_array_equal(_read_all(src), target[1])  # reference: array in t.h5
+
+
+def test_virtual_dataset_missing_source_is_an_error(tmp_path, target, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    path = _virtual(tmp_path, target[0])
+    target[0].unlink()
+    # HDF5 itself would read the fill value (zeros) here
+    with h5py.File(path, "r") as handle:
+        assert not handle["X"][...].any()
+    with pytest.raises(InputError, match=r"v\.h5: virtual dataset '/X' takes values from 't\.h5', which "
+                                         r"does not exist"):
+        open_matrix(path, allow_external_data=True)
+
+
+def test_external_id_dataset_refused(tmp_path, target):
+    path = tmp_path / "m.h5"
+    with h5py.File(path, "w") as handle:
+        handle["X"] = np.zeros((40, 12))
+        handle["sample_ids"] = h5py.ExternalLink("t.h5", "/X")
+    with pytest.raises(InputError, match=r"'sample_ids' is an external link"):
+        open_matrix(path, dataset="X")
+
+
+# --------------------------------------------------------------------- Zarr: missing chunks
+
+
+def _zarr_store(tmp_path, zarr_format: int, X: np.ndarray, chunks=(4, 4)) -> pathlib.Path:
+    path = tmp_path / f"m{zarr_format}.zarr"
+    group = zarr.open_group(str(path), mode="w", zarr_format=zarr_format)
+    array = group.create_array("X", shape=X.shape, chunks=chunks, dtype=X.dtype)
+    array[...] = X
+    return path
+
+
+CHUNK_KEY = {2: "1.1", 3: "c/1/1"}  # the chunk of rows 4-7, columns 4-7 in each format's key encoding
+
+
+@pytest.mark.parametrize("zarr_format", [2, 3])
+@pytest.mark.parametrize("damage", ["deleted", "folder"])
+def test_missing_zarr_chunk_is_an_error(tmp_path, zarr_format, damage):
+    X = np.random.default_rng(1).standard_normal((10, 6)) + 5.0
+    path = _zarr_store(tmp_path, zarr_format, X)
+    chunk = path / "X" / CHUNK_KEY[zarr_format]
+    chunk.unlink()
+    if damage == "folder":
+        chunk.mkdir()
+    # Zarr itself reads the absent chunk as the fill value (zeros): the silent wrong answer
+    np.testing.assert_array_equal(zarr.open(str(path), mode="r")["X"][4:8, 4:6], 0.0)
+    kind = "missing" if damage == "deleted" else "a folder, not a file"
+    with pytest.raises(InputError, match=rf"chunk '{CHUNK_KEY[zarr_format]}' of array '/X' is {kind} "
+                                         r"\(1 of 6 chunks is absent\).*allow_missing_chunks=True"):
+        open_matrix(path)
+
+
+@pytest.mark.parametrize("zarr_format", [2, 3])
+def test_missing_chunks_allowed_are_counted(tmp_path, zarr_format, caplog):
+    X = np.random.default_rng(1).standard_normal((10, 6)) + 5.0
+    path = _zarr_store(tmp_path, zarr_format, X)
+    (path / "X" / CHUNK_KEY[zarr_format]).unlink()
+    with open_matrix(path, allow_missing_chunks=True) as src:
+        assert src.notes == {"missing_chunks": 1, "chunks": 6, "fill_value": 0.0}
+        expected = X.copy()
+        expected[4:8, 4:6] = 0.0  # reference: the written array with the deleted chunk at the fill value
+        np.testing.assert_array_equal(_read_all(src), expected)
+    assert "1 of 6 chunks of array /X is absent" in caplog.text
+
+
+def test_missing_chunk_cli(tmp_path):
+    X = np.random.default_rng(1).standard_normal((10, 6)) + 5.0
+    path = _zarr_store(tmp_path, 3, X)
+    (path / "X" / "c" / "0" / "0").unlink()
+    res = _invoke("fit", path, "--out", tmp_path / "out", "-k", "2", "--quiet")
+    _one_line_error(res, "chunk 'c/0/0'", "--allow-missing-chunks")
+    res = _invoke("fit", path, "--out", tmp_path / "out", "-k", "2", "--quiet", "--allow-missing-chunks")
+    assert res.exit_code == 0, res.stderr
+    assert "1 of 6 chunks of array /X is absent" in res.stderr
+
+
+def test_sharded_zarr_checks_shards(tmp_path):
+    X = np.random.default_rng(2).standard_normal((10, 6))
+    path = tmp_path / "s.zarr"
+    group = zarr.open_group(str(path), mode="w", zarr_format=3)
+    group.create_array("X", shape=X.shape, chunks=(2, 2), shards=(4, 4), dtype=X.dtype)[...] = X
+    with open_matrix(path) as src:  # every shard present: nothing to say
+        np.testing.assert_array_equal(_read_all(src), X)
+    (path / "X" / "c" / "2" / "1").unlink()
+    with pytest.raises(InputError, match=r"chunk 'c/2/1' of array '/X' is missing"):
+        open_matrix(path)
+
+
+# --------------------------------------------------------------------- Zarr: pickle codec
+
+
+class _Planted:
+    """Unpickling this creates a file: proof that something was unpickled."""
+
+    def __init__(self, marker: pathlib.Path) -> None:
+        self.marker = marker
+
+    def __reduce__(self):
+        return (pathlib.Path.touch, (self.marker,))
+
+
+@pytest.mark.parametrize("dtype", ["|O", "<f8"])
+def test_pickle_codec_refused_and_nothing_unpickled(tmp_path, dtype):
+    import json
+    import pickle
+
+    path = tmp_path / "p.zarr"
+    (path / "X").mkdir(parents=True)
+    (path / ".zgroup").write_text(json.dumps({"zarr_format": 2}))
+    (path / "X" / ".zarray").write_text(json.dumps({
+        "zarr_format": 2, "shape": [4, 3], "chunks": [4, 3], "dtype": dtype, "order": "C",
+        "fill_value": None, "filters": [{"id": "pickle", "protocol": 5}], "compressor": None}))
+    marker = tmp_path / "unpickled"
+    (path / "X" / "0.0").write_bytes(pickle.dumps(_Planted(marker)))
+    with pytest.raises(InputError, match=r"p\.zarr: array 'X' uses the pickle codec \(\.zarray\); refused.*"
+                                         r"nothing was unpickled"):
+        open_matrix(path)
+    res = _invoke("fit", path, "--out", tmp_path / "out", "-k", "2", "--quiet")
+    _one_line_error(res, "pickle codec")
+    assert not marker.exists()
