@@ -256,3 +256,128 @@ def test_pickle_codec_refused_and_nothing_unpickled(tmp_path, dtype):
     res = _invoke("fit", path, "--out", tmp_path / "out", "-k", "2", "--quiet")
     _one_line_error(res, "pickle codec")
     assert not marker.exists()
+
+
+# --------------------------------------------------------------------- precision of integers
+
+
+def _aligned(actual: np.ndarray, reference: np.ndarray) -> np.ndarray:
+    """``actual`` with each column's sign matched to ``reference`` (signs of axes are arbitrary)."""
+    signs = np.sign(np.sum(actual * reference, axis=0))
+    return actual * signs
+
+
+def _planted_counts(offset: float, seed: int = 3) -> np.ndarray:
+    """Integers ``offset + 300·(rank-3 signal + noise)``: SD ≈ 300 around a large offset."""
+    rng = np.random.default_rng(seed)
+    signal = rng.standard_normal((120, 3)) @ rng.standard_normal((3, 30)) + 0.3 * rng.standard_normal((120, 30))
+    return np.round(offset + 300.0 * signal).astype(np.int64)
+
+
+@pytest.mark.parametrize("offset", [1e9, 2.0**40])
+@pytest.mark.parametrize("method", ["exact", "randomized"])
+def test_large_integers_are_computed_in_float64(tmp_path, offset, method):
+    from axiscope import fit
+    from axiscope.core.options import EngineSettings
+
+    X = _planted_counts(offset)
+    path = tmp_path / "counts.h5"
+    with h5py.File(path, "w") as handle:
+        handle["X"] = X
+    with open_matrix(path) as src:
+        assert src.dtype == np.float64
+        assert "float64" in src.notes["computed_in"] and "2**24" in src.notes["computed_in"]
+        result = fit(src, n_components=3, engine=EngineSettings(method=method))
+    # reference: the exact integers standardized in float64 and LAPACK's SVD (numpy.linalg.svd)
+    A = X.astype(np.float64)
+    Z = (A - A.mean(axis=0)) / A.std(axis=0)
+    U, s, _ = np.linalg.svd(Z, full_matrices=False)
+    assert result.preprocessing.kept.shape[0] == 30  # float32 called every feature constant at 2**40
+    np.testing.assert_allclose(result.model.singular_values, s[:3], rtol=1e-6)
+    reference = U[:, :3] * s[:3]
+    np.testing.assert_allclose(_aligned(result.scores, reference), reference, rtol=0, atol=1e-6 * s[0])
+
+
+# --------------------------------------------------------------------- the constant rule
+
+
+def test_constant_rule_follows_the_input_precision():
+    from axiscope import fit
+    from axiscope.core.options import EngineSettings
+    from axiscope.core.preprocess import PreprocessSpec
+    from axiscope.io import array_source
+
+    rng = np.random.default_rng(5)
+    X = 0.01 * rng.standard_normal((200, 6))  # features of variance ≈ 1e-4
+    X[:, 0] = 1e6 + 0.05 * rng.standard_normal(200)  # mean 1e6, SD 0.05: far above float64's resolution
+    X[:, 1] = 1e-12 + 1e-13 * rng.standard_normal(200)  # tiny units, 10% spread: not constant either
+    result = fit(array_source(X), n_components=2, preprocess=PreprocessSpec(scale="none"),
+                 engine=EngineSettings(method="exact"))
+    assert result.preprocessing.kept.tolist() == list(range(6))
+    # reference: covariance PCA of the same float64 values by LAPACK (numpy.linalg.svd)
+    s = np.linalg.svd(X - X.mean(axis=0), compute_uv=False)
+    ratio = s**2 / np.sum(s**2)
+    np.testing.assert_allclose(result.components_table().variance_ratio[:2], ratio[:2], rtol=1e-9)
+
+
+def test_constant_rule_in_float32_and_the_rules_named():
+    from axiscope import fit
+    from axiscope.core.preprocess import PreprocessSpec
+    from axiscope.io import array_source
+
+    rng = np.random.default_rng(6)
+    X = rng.standard_normal((100, 8)).astype(np.float32)
+    # one feature jittering by a single float32 step (0.0625 at 1e6): constant in float32
+    X[:, 0] = np.float32(1e6) + np.float32(0.0625) * rng.integers(0, 2, 100)
+    X[:, 1] = 2.5  # exactly constant
+    X[:, 2] *= 1e-3  # lowest variance of the rest: below min_variance
+    result = fit(array_source(X), n_components=2,
+                 preprocess=PreprocessSpec(min_variance=1e-4, top_variable=4))
+    prep = result.preprocessing
+    assert prep.reason.tolist()[:3] == ["constant", "constant", "min_variance"]
+    assert sorted(prep.reason.tolist()).count("top_variable") == 1  # 5 left, the top 4 kept
+    rules = prep.rules
+    assert set(rules) == {"constant", "min_variance", "top_variable"}
+    # float32's machine epsilon, 2**-23 (IEEE 754 single precision, as numpy.finfo reports it)
+    assert f"{2.0**-23:.3g}" in rules["constant"] and "float32" in rules["constant"]
+    assert "min_variance=0.0001" in rules["min_variance"] and "top_variable=4" in rules["top_variable"]
+
+
+# --------------------------------------------------------------------- genotype dosages
+
+
+def test_allele_frequency_refuses_values_that_are_not_dosages():
+    from axiscope import fit
+    from axiscope.core.preprocess import PreprocessSpec
+    from axiscope.io import array_source
+
+    G = np.random.default_rng(8).integers(0, 3, size=(50, 10)).astype(np.float64)
+    G[7, 3] = 267.0
+    with pytest.raises(InputError, match=r"scale='allele-frequency' reads genotype dosages 0, 1 or 2.*holds 267 "):
+        fit(array_source(G), n_components=2, preprocess=PreprocessSpec(scale="allele-frequency"))
+    G[7, 3] = 0.5
+    with pytest.raises(InputError, match=r"holds 0\.5 "):
+        fit(array_source(G), n_components=2, preprocess=PreprocessSpec(scale="allele-frequency"))
+
+
+def test_allele_frequency_accepts_missing_when_allowed():
+    from axiscope import fit
+    from axiscope.core.preprocess import PreprocessSpec
+    from axiscope.io import array_source
+
+    G = np.random.default_rng(8).integers(0, 3, size=(50, 10)).astype(np.float64)
+    G[7, 3] = np.nan
+    result = fit(array_source(G), n_components=2,
+                 preprocess=PreprocessSpec(scale="allele-frequency", missing="mean"))
+    assert result.manifest["n_missing_imputed"] == 1
+    with pytest.raises(InputError, match=r"NaN or infinite"):
+        fit(array_source(G), n_components=2, preprocess=PreprocessSpec(scale="allele-frequency"))
+
+
+def test_allele_frequency_cli_one_line(tmp_path):
+    G = np.random.default_rng(8).integers(0, 3, size=(50, 10)).astype(np.float64)
+    G[7, 3] = 3.0
+    path = tmp_path / "g.npy"
+    np.save(path, G)
+    res = _invoke("fit", path, "--out", tmp_path / "out", "-k", "2", "--quiet", "--scale", "allele-frequency")
+    _one_line_error(res, "genotype dosages", "holds 3 ", "--scale unit")

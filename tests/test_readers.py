@@ -186,9 +186,11 @@ def test_text_missing_values_are_nan(tmp_path: pathlib.Path) -> None:
 
 @pytest.mark.parametrize("stored,expected", [("float32", np.float32), ("float64", np.float64),
                                              ("int16", np.float32), ("float16", np.float32),
-                                             ("bool", np.float32)])
+                                             ("bool", np.float32), ("uint16", np.float32),
+                                             ("int32", np.float64), ("uint32", np.float64),
+                                             ("int64", np.float64), ("uint64", np.float64)])
 def test_dtype_rules(tmp_path: pathlib.Path, stored: str, expected: type) -> None:
-    data = logical_matrix(4, 3, "int16").astype(stored)
+    data = np.abs(logical_matrix(4, 3, "int16")).astype(stored)
     with open_matrix(write_hdf5(tmp_path / "m.h5", data)) as source:
         assert source.dtype == expected
         np.testing.assert_array_equal(source.read_samples(0, 4), data.astype(expected))

@@ -35,11 +35,30 @@ def is_numeric(dtype: np.dtype) -> bool:
     return dtype.kind in "biuf"
 
 
+#: The largest integer up to which float32 holds every integer exactly (2**24).
+FLOAT32_EXACT_INTEGERS = 2**24
+
+
 def logical_dtype(stored: np.dtype) -> np.dtype:
-    """Decoded dtype: float64 for 64-bit (or wider) floats, float32 for everything else."""
+    """Decoded dtype: the precision the values are computed in.
+
+    float64 for 64-bit (or wider) floats and for integers of 32 or more bits (float32
+    holds integers exactly only up to 2**24, and 32-bit integers go beyond it); float32
+    for narrower floats and integers and for booleans, which it holds exactly.
+    """
     if stored.kind == "f" and stored.itemsize >= 8:
         return np.dtype(np.float64)
+    if stored.kind in "iu" and stored.itemsize >= 4:
+        return np.dtype(np.float64)
     return np.dtype(np.float32)
+
+
+def precision_note(stored: np.dtype) -> dict[str, str]:
+    """What a record of the run should say about the precision chosen for integer input."""
+    if stored.kind in "iu" and stored.itemsize >= 4:
+        return {"computed_in": f"float64, since {stored.name} values can exceed 2**24, the largest integer "
+                               "float32 holds exactly"}
+    return {}
 
 
 def file_size(path: pathlib.Path) -> int:
@@ -139,7 +158,8 @@ class MatrixSource:
     shape : tuple of int
         Logical shape ``(n_samples, n_features)``.
     dtype : numpy.dtype
-        float64 if the stored values are float64, float32 otherwise.
+        The precision blocks are read and computed in (:func:`logical_dtype`): float64 for
+        float64 and for integers of 32 or more bits, float32 otherwise.
     stored_dtype : numpy.dtype
         The dtype stored on disk (float64 for text).
     sample_ids, feature_ids : numpy.ndarray
@@ -184,7 +204,7 @@ class MatrixSource:
         self.sample_ids = sample_ids
         self.feature_ids = feature_ids
         self.ids_source = ids_source
-        self.notes: dict[str, Any] = {}
+        self.notes: dict[str, Any] = precision_note(self.stored_dtype)
         self.nbytes = self.shape[0] * self.shape[1] * self.dtype.itemsize
         self.file_size = file_size(path)
         #: Sample blocks are plain positioned reads of an uncompressed file: reading
