@@ -381,3 +381,89 @@ def test_allele_frequency_cli_one_line(tmp_path):
     np.save(path, G)
     res = _invoke("fit", path, "--out", tmp_path / "out", "-k", "2", "--quiet", "--scale", "allele-frequency")
     _one_line_error(res, "genotype dosages", "holds 3 ", "--scale unit")
+
+
+# --------------------------------------------------------------------- values out of range
+
+
+def test_value_limit_formula():
+    from axiscope.io.source import value_limit
+
+    # sqrt(max / (16·n·p)), max from numpy.finfo (IEEE 754: 1.797e308 for double, 3.403e38 for single)
+    assert value_limit(np.dtype(np.float64), (100, 10)) == pytest.approx(np.sqrt(1.7976931348623157e308 / 16e3))
+    assert value_limit(np.dtype(np.float32), (100, 10)) == pytest.approx(np.sqrt(3.4028234663852886e38 / 16e3))
+
+
+@pytest.mark.parametrize("dtype,value", [(np.float64, 1e200), (np.float32, 1e19)])
+def test_fit_refuses_a_value_whose_square_overflows(tmp_path, dtype, value):
+    X = np.random.default_rng(0).standard_normal((60, 8)).astype(dtype)
+    X[3, 2] = value
+    path = tmp_path / "big.npy"
+    np.save(path, X)
+    res = _invoke("fit", path, "--out", tmp_path / "out", "-k", "2", "--quiet")
+    _one_line_error(res, "big.npy: sample 'sample_000004', feature 'feature_000003' is", "a 60 × 8 matrix can hold "
+                    "values up to", "rescale the input")
+    assert not (tmp_path / "out").exists()
+
+
+@pytest.fixture
+def trained(tmp_path):
+    from axiscope import fit
+
+    X = np.random.default_rng(0).standard_normal((60, 8))
+    result = fit(_array(X), n_components=2)
+    result.write(tmp_path / "fit")
+    return tmp_path / "fit"
+
+
+def _array(X):
+    from axiscope.io import array_source
+
+    return array_source(X)
+
+
+def _dense_scores(model_dir: pathlib.Path, Y: np.ndarray) -> np.ndarray:
+    """Scores by the documented formula ((y − mean) / scale)·V, in float64 by numpy."""
+    from axiscope.model.store import load_model
+
+    model = load_model(model_dir / "model")
+    return ((Y.astype(np.float64) - model.mean) / model.scale) @ model.components
+
+
+def test_score_flags_samples_whose_squares_overflow(trained, tmp_path, caplog):
+    from axiscope.scoring.score import score
+    from axiscope.io import array_source
+
+    Y = np.random.default_rng(1).standard_normal((10, 8))
+    Y[4, 1] = 1e200
+    result = score(trained, array_source(Y))
+    d = result.diagnostics
+    assert d["flag"][4] == "both" and np.isinf(d["q"][4]) and np.isinf(d["t2"][4])
+    assert np.isfinite(d["q"].drop(index=4)).all() and np.isfinite(d["t2"].drop(index=4)).all()
+    assert "1 sample holds values so large" in caplog.text
+    # the other samples are placed as without the large one (reference: the formula in numpy)
+    others = np.delete(np.arange(10), 4)
+    expected = _dense_scores(trained, Y[others])
+    np.testing.assert_allclose(result.scores[["PC1", "PC2"]].to_numpy()[others], expected, rtol=1e-10, atol=1e-12)
+    res = _invoke("score", trained, _saved(tmp_path, Y), "--out", tmp_path / "scored", "--quiet")
+    assert res.exit_code == 0, res.stderr
+    assert "Traceback" not in res.stderr
+
+
+def _saved(tmp_path, Y) -> pathlib.Path:
+    path = tmp_path / "new.npy"
+    np.save(path, Y)
+    return path
+
+
+def test_score_places_large_float32_values_in_float64(trained):
+    from axiscope.scoring.score import score
+    from axiscope.io import array_source
+
+    Y = np.random.default_rng(2).standard_normal((10, 8)).astype(np.float32)
+    Y[6, 0] = 1e30  # its square, 1e60, overflows float32 (largest 3.4e38, numpy.finfo)
+    result = score(trained, array_source(Y))
+    expected = _dense_scores(trained, Y)  # reference: the formula in float64 by numpy
+    # float32 rounding of the other rows: a few units of 2**-23 times the scores (about 1)
+    np.testing.assert_allclose(result.scores[["PC1", "PC2"]].to_numpy(), expected, rtol=1e-5, atol=1e-6)
+    assert np.isfinite(result.diagnostics["q"][6]) and result.diagnostics["flag"][6] != "within"

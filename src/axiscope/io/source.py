@@ -22,7 +22,8 @@ from ..errors import InputError, counted, reason
 from .ids import IdResolver, check_ids, generated_ids, to_str_ids
 
 __all__ = ["SAMPLES_IN", "Backend", "MemoryBackend", "MatrixSource", "array_source", "build_source",
-           "describe_source", "is_numeric", "orient_block", "pread_rows", "select_matrix", "slab_key"]
+           "describe_source", "is_numeric", "orient_block", "pread_rows", "select_matrix", "slab_key",
+           "value_limit"]
 
 #: Values of ``samples_in``: samples are the file's rows, or its columns.
 SAMPLES_IN = ("rows", "columns")
@@ -71,6 +72,19 @@ def file_size(path: pathlib.Path) -> int:
             total += sum(os.path.getsize(os.path.join(root, name)) for name in files)
         return total
     return path.stat().st_size
+
+
+def value_limit(dtype: np.dtype, shape: tuple[int, int]) -> float:
+    """Largest magnitude of a value that a matrix of ``shape`` may hold in ``dtype``.
+
+    ``sqrt(max / (16·n·p))`` with ``max`` the largest finite number of ``dtype``: then no
+    sum of squared values over the whole matrix, nor the product with a random test
+    matrix (entries below 6 in practice, 16 leaves room), overflows in ``dtype``. For a
+    float64 matrix of 10⁶ × 10⁶ this is about 3e147; for float32, 4.6e12.
+    """
+    largest = float(np.finfo(dtype).max)
+    cells = max(1, int(shape[0]) * int(shape[1]))
+    return float(np.sqrt(largest / (16.0 * cells)))
 
 
 # ------------------------------------------------------------------------------ back-ends
@@ -178,6 +192,9 @@ class MatrixSource:
         no decoding.
     ids_source : dict
         Where the ids came from, keys ``"samples"`` and ``"features"``.
+    value_limit : float
+        Largest magnitude a finite value may have (:func:`value_limit`); reading a larger
+        one is an error naming its cell, unless the caller asks not to check.
     notes : dict
         What the reader accepted or decided that a record of the run should say (plain
         JSON values): ``missing_chunks``/``chunks``/``fill_value`` when missing Zarr chunks
@@ -205,6 +222,7 @@ class MatrixSource:
         self.feature_ids = feature_ids
         self.ids_source = ids_source
         self.notes: dict[str, Any] = precision_note(self.stored_dtype)
+        self.value_limit: float = value_limit(self.dtype, self.shape)
         self.nbytes = self.shape[0] * self.shape[1] * self.dtype.itemsize
         self.file_size = file_size(path)
         #: Sample blocks are plain positioned reads of an uncompressed file: reading
@@ -215,13 +233,16 @@ class MatrixSource:
         """``path`` plus the dataset name, for messages."""
         return f"{self.path.name} (dataset {self.dataset})" if self.dataset else self.path.name
 
-    def read_samples(self, start: int, stop: int) -> np.ndarray:
+    def read_samples(self, start: int, stop: int, *, check_range: bool = True) -> np.ndarray:
         """Read samples ``start`` to ``stop`` (exclusive) of the logical matrix.
 
         Parameters
         ----------
         start, stop : int
             Sample range, ``0 <= start <= stop <= n_samples``.
+        check_range : bool, default=True
+            Refuse finite values larger in magnitude than :attr:`value_limit` (their sums
+            of squares would overflow). Scoring turns it off and flags such samples instead.
 
         Returns
         -------
@@ -232,7 +253,8 @@ class MatrixSource:
         Raises
         ------
         InputError
-            If the underlying file cannot be read (corrupted chunk, truncated file, ...).
+            If the underlying file cannot be read (corrupted chunk, truncated file, ...),
+            or a value is out of range (``check_range``).
         ValueError
             If the range is out of bounds or the source is closed.
         """
@@ -258,7 +280,27 @@ class MatrixSource:
                 f"{self._where()}: reading samples {start}:{stop} returned shape {block.shape} "
                 f"instead of {(stop - start, n_features)}; the file may be corrupted"
             )
+        if check_range:
+            self._check_range(block, start)
         return block
+
+    def _check_range(self, block: np.ndarray, start: int) -> None:
+        """Stop at the first finite value beyond :attr:`value_limit`, naming its cell."""
+        limit = self.value_limit
+        if block.size == 0 or (-limit <= block.min() and block.max() <= limit):
+            return  # the common case: two reductions, no copy (NaN fails both tests)
+        with np.errstate(invalid="ignore"):
+            bad = np.isfinite(block) & (np.abs(block) > limit)
+        if not bad.any():
+            return
+        rows, cols = np.nonzero(bad)
+        row, col = int(rows[0]), int(cols[0])
+        n, p = self.shape
+        raise InputError(
+            f"{self._where()}: sample {self.sample_ids[start + row]!r}, feature {self.feature_ids[col]!r} is "
+            f"{float(block[row, col]):g}; in {self.dtype.name} a {n} × {p} matrix can hold values up to "
+            f"±{limit:.3g} (beyond that, sums of squared values overflow); rescale the input, e.g. divide "
+            "it by a power of ten")
 
     def close(self) -> None:
         """Close the underlying file handles; further reads raise ``ValueError``."""

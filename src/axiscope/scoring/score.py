@@ -451,8 +451,9 @@ def score(
 
     scores = proj.scores / factor
     axis_var = model.singular_values**2 / max(model.n_samples - 1, 1)
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         t2 = np.sum(scores**2 / axis_var, axis=1)
+    t2[np.isnan(t2) & np.isinf(proj.residual)] = np.inf  # overflowing samples: beyond every limit
     q = proj.residual
     main = limits[float(confidence)]
     over_t2 = t2 > main.t2
