@@ -467,3 +467,151 @@ def test_score_places_large_float32_values_in_float64(trained):
     # float32 rounding of the other rows: a few units of 2**-23 times the scores (about 1)
     np.testing.assert_allclose(result.scores[["PC1", "PC2"]].to_numpy(), expected, rtol=1e-5, atol=1e-6)
     assert np.isfinite(result.diagnostics["q"][6]) and result.diagnostics["flag"][6] != "within"
+
+
+# --------------------------------------------------------------------- text: damage and tricky cells
+
+
+def _text_matrix(n: int = 3000, p: int = 5, seed: int = 0) -> tuple[str, np.ndarray]:
+    """CSV text of an n × p matrix written with 6 decimals, and the values it holds."""
+    X = np.round(np.random.default_rng(seed).standard_normal((n, p)), 6)
+    lines = ["id," + ",".join(f"g{j}" for j in range(p))]
+    lines += [f"s{i}," + ",".join(f"{v:.6f}" for v in row) for i, row in enumerate(X)]
+    return "\n".join(lines) + "\n", X
+
+
+def test_gzip_with_damaged_body(tmp_path):
+    text, _ = _text_matrix()
+    raw = bytearray(gzip.compress(text.encode()))
+    raw[200:260] = bytes(b ^ 0xFF for b in raw[200:260])  # header intact, deflate stream damaged
+    path = tmp_path / "damaged.csv.gz"
+    path.write_bytes(bytes(raw))
+    with pytest.raises(InputError, match=r"damaged\.csv\.gz: the compressed data are damaged \(zlib: .*\); "
+                                         r"re-create or re-copy the file"):
+        open_matrix(path)
+    truncated = tmp_path / "truncated.csv.gz"
+    truncated.write_bytes(gzip.compress(text.encode())[: len(raw) // 2])
+    res = _invoke("fit", truncated, "--out", tmp_path / "out", "-k", "2", "--quiet")
+    _one_line_error(res, "truncated.csv.gz: the compressed data are damaged (EOFError")
+
+
+@pytest.mark.parametrize("cell", ["1_000", "\u0661\u0662\u0663", "\uff11", "0x10", "1\x00", "1,5"])
+def test_cells_that_are_not_ascii_decimal_numbers(tmp_path, cell):
+    # Python's float() reads the first three (1000, 123, 1): refused here, by the stated rule
+    path = tmp_path / "x.tsv"
+    path.write_text(f"id\ta\tb\ns1\t1\t2\ns2\t{cell}\t4\n", encoding="utf-8")
+    with pytest.raises(InputError, match=r"x\.tsv: line 3, column 'a': .* is not a number; fix the cell"):
+        open_matrix(path)
+
+
+def test_numbers_and_missing_words_accepted(tmp_path):
+    path = tmp_path / "x.csv"
+    path.write_text("id,a,b,c,d\ns1, 1 ,-2.5,.5,3e-7\ns2,+4.,1E+3,NA,\ns3,inf,-Infinity,n/a,NULL\n",
+                    encoding="utf-8")
+    with open_matrix(path) as src:
+        # reference: the values typed above, by the module's stated rules
+        expected = [[1, -2.5, 0.5, 3e-7], [4, 1e3, np.nan, np.nan], [np.inf, -np.inf, np.nan, np.nan]]
+        np.testing.assert_array_equal(_read_all(src), np.array(expected))
+
+
+def test_text_not_utf8(tmp_path):
+    path = tmp_path / "latin.csv"
+    path.write_bytes("id,a,b\ns\xe9,1,2\nt,3,4\n".encode("latin-1"))
+    res = _invoke("fit", path, "--out", tmp_path / "out", "-k", "1", "--quiet")
+    _one_line_error(res, "latin.csv: not UTF-8 text", "save the file as UTF-8")
+
+
+def test_byte_order_marks_are_dropped(tmp_path):
+    path = tmp_path / "bom.csv"
+    path.write_text("id,a,b\ns1,1,2\ns2,3,4\n", encoding="utf-8-sig")
+    assert path.read_bytes()[:3] == b"\xef\xbb\xbf"  # the UTF-8 byte-order mark (Unicode standard, ch. 23.8)
+    with open_matrix(path) as src:
+        assert src.feature_ids.tolist() == ["a", "b"]
+        np.testing.assert_array_equal(_read_all(src), [[1, 2], [3, 4]])
+    gz = tmp_path / "bom.tsv.gz"
+    gz.write_bytes(gzip.compress("\ufeffid\ta\tb\ns1\t1\t2\ns2\t3\t4\n".encode()))
+    with open_matrix(gz) as src:
+        assert src.sample_ids.tolist() == ["s1", "s2"]
+    ids = tmp_path / "ids.txt"
+    ids.write_text("first\nsecond\n", encoding="utf-8-sig")
+    npy = tmp_path / "m.npy"
+    np.save(npy, np.eye(2))
+    with open_matrix(npy, sample_ids=str(ids)) as src:
+        assert src.sample_ids.tolist() == ["first", "second"]
+
+
+def test_nul_inside_an_id_refused(tmp_path):
+    path = tmp_path / "nul.csv"
+    path.write_text("id,a,b\ns\x001,1,2\ns2,3,4\n", encoding="utf-8")
+    with pytest.raises(InputError, match=r"nul\.csv: sample id 1 \('s\\x001', first column of nul\.csv\) holds "
+                                         r"a NUL character; remove it from the sample ids"):
+        open_matrix(path)
+    ids = tmp_path / "ids.txt"
+    ids.write_bytes(b"a\nb\x00c\nd\n")
+    npy = tmp_path / "m.npy"
+    np.save(npy, np.eye(3))
+    with pytest.raises(InputError, match=r"feature id 2 .* holds a NUL character"):
+        open_matrix(npy, feature_ids=str(ids))
+
+
+def test_ids_not_utf8(tmp_path):
+    h5 = tmp_path / "latin.h5"
+    with h5py.File(h5, "w") as handle:
+        handle["X"] = np.eye(3)
+        handle["sample_ids"] = np.array([b"a", "\xe9t\xe9".encode("latin-1"), b"c"], dtype="S4")
+    res = _invoke("fit", h5, "--out", tmp_path / "out", "-k", "1", "--quiet")
+    _one_line_error(res, "latin.h5 (id dataset 'sample_ids'): id 2 (b'\\xe9t\\xe9') is not UTF-8 text")
+    ids = tmp_path / "ids.txt"
+    ids.write_bytes("a\n\xe9\nc\n".encode("latin-1"))
+    npy = tmp_path / "m.npy"
+    np.save(npy, np.eye(3))
+    with pytest.raises(InputError, match=r"ids\.txt: not UTF-8 text"):
+        open_matrix(npy, sample_ids=str(ids))
+
+
+# --------------------------------------------------------------------- text: streamed, bounded memory
+
+
+@pytest.mark.parametrize("samples_in", ["rows", "columns"])
+def test_text_streams_through_an_anonymous_scratch_file(tmp_path, samples_in):
+    text, X = _text_matrix(1500, 7)
+    path = tmp_path / "m.csv"
+    path.write_text(text, encoding="utf-8")
+    scratch = tmp_path / "scratch"
+    scratch.mkdir()
+    expected = X if samples_in == "rows" else X.T  # reference: the values written as text
+    with open_matrix(path, samples_in=samples_in, scratch=scratch) as src:
+        assert src.shape == expected.shape and src.dtype == np.float64
+        assert not list(scratch.iterdir())  # the scratch file has no name on disk
+        for step in (1, 7, 500):
+            parts = [src.read_samples(a, min(a + step, src.shape[0])) for a in range(0, src.shape[0], step)]
+            np.testing.assert_array_equal(np.concatenate(parts), expected)
+    assert not list(scratch.iterdir())
+
+
+def test_text_memory_is_bounded_by_blocks_not_the_file(tmp_path):
+    import tracemalloc
+
+    from axiscope.io.text import BLOCK_CELLS
+
+    n, p = 2_000, 500  # 1,000,000 cells: 8 MB as float64, about 9 MB of text
+    rng = np.random.default_rng(3)
+    path = tmp_path / "big.csv"
+    with open(path, "w", encoding="utf-8") as handle:
+        handle.write("id," + ",".join(f"g{j}" for j in range(p)) + "\n")
+        for i, row in enumerate(rng.standard_normal((n, p))):
+            handle.write(f"s{i}," + ",".join(f"{v:.5f}" for v in row) + "\n")
+    tracemalloc.start()
+    try:
+        with open_matrix(path) as src:
+            for a in range(0, n, 100):
+                src.read_samples(a, min(a + 100, n))
+        _, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    float_bytes = n * p * 8
+    # two blocks of BLOCK_CELLS cells as Python strings (at most 72 bytes each: a str object and
+    # its list slot) or float64, a read block of 100 samples, and the 2,000 ids (about 120 bytes each).
+    # Parsed whole, the text would take at least float_bytes.
+    bound = 2 * BLOCK_CELLS * 72 + 100 * p * 8 + n * 120
+    assert peak < bound < float_bytes, (peak, bound, float_bytes)

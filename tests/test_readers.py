@@ -336,7 +336,8 @@ def test_non_numeric_text_cell(tmp_path: pathlib.Path) -> None:
     rows = ["id\tg00011\tg00012"] + [f"s{i}\t1\t2" for i in range(3)] + ["s3\t1\tabc"]
     path.write_text("\n".join(rows) + "\n", encoding="utf-8")
     with pytest.raises(InputError, match=r"^x\.tsv: line 5, column 'g00012': 'abc' is not a number; "
-                                          r"fix the cell or remove the row$"):
+                                          r"fix the cell \(plain ASCII decimal digits, no '_' separators; "
+                                          r"empty or NA if missing\) or remove the row$"):
         open_matrix(path)
 
 

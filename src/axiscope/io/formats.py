@@ -50,7 +50,8 @@ def detect_format(path: pathlib.Path) -> str:
 def open_matrix(path: str | os.PathLike[str], *, dataset: str | None = None,
                 sample_ids: str | None = None, feature_ids: str | None = None,
                 samples_in: str = "rows", allow_external_data: bool = False,
-                allow_missing_chunks: bool = False) -> MatrixSource:
+                allow_missing_chunks: bool = False,
+                scratch: str | os.PathLike[str] | None = None) -> MatrixSource:
     """Open a 2-D numeric matrix for block-wise reading.
 
     Parameters
@@ -73,6 +74,9 @@ def open_matrix(path: str | os.PathLike[str], *, dataset: str | None = None,
     allow_missing_chunks : bool, default=False
         Zarr: accept arrays with chunks that were never written, read as the fill value
         (their number is logged). By default a missing chunk is damage and an error.
+    scratch : path, optional
+        Text: folder of the anonymous scratch file the parsed values are streamed to
+        (8 bytes per cell; default: the temporary folder).
 
     Returns
     -------
@@ -98,6 +102,8 @@ def open_matrix(path: str | os.PathLike[str], *, dataset: str | None = None,
         extra["allow_external_data"] = bool(allow_external_data)
     elif kind == "zarr":
         extra["allow_missing_chunks"] = bool(allow_missing_chunks)
+    elif kind == "text":
+        extra["scratch"] = scratch
     return OPENERS[kind](path, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
                          samples_in=samples_in, **extra)
 

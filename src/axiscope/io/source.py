@@ -139,7 +139,7 @@ def pread_rows(fd: int, offset: int, start: int, stop: int, n_cols: int,
 
 
 class MemoryBackend(Backend):
-    """A matrix already held in memory in logical orientation (parsed text, an array)."""
+    """A matrix already held in memory in logical orientation (an array)."""
 
     def __init__(self, data: np.ndarray, file_shape: tuple[int, int]) -> None:
         self._data = data
@@ -157,7 +157,8 @@ class MatrixSource:
     """A 2-D numeric matrix on disk, read in blocks of samples.
 
     Create instances with :func:`axiscope.io.open_matrix`. The matrix is never loaded
-    whole, except for delimited text, which is parsed into memory when opened.
+    whole; delimited text is parsed once, block by block, into an anonymous scratch file
+    when opened.
 
     Attributes
     ----------
@@ -175,7 +176,7 @@ class MatrixSource:
         The precision blocks are read and computed in (:func:`logical_dtype`): float64 for
         float64 and for integers of 32 or more bits, float32 otherwise.
     stored_dtype : numpy.dtype
-        The dtype stored on disk (float64 for text).
+        The dtype stored on disk (float64 for text, as parsed).
     sample_ids, feature_ids : numpy.ndarray
         1-D object arrays of str.
     disk_chunks : tuple of int or None
