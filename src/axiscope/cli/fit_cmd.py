@@ -127,7 +127,7 @@ def fit_command(
         layout = InputLayout(dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
                              samples_in=samples_in.value, allow_external_data=allow_external_data,
                              allow_missing_chunks=allow_missing_chunks)
-        with open_matrix(input, **layout.open_options(), scratch=resources.scratch_folder()) as src:
+        with open_matrix(input, **layout.open_options(), scratch=resources.scratch) as src:
             prepared = plan_explanation(
                 src, annotations=annotations, id_column=id_column, categorical=categorical, numeric=numeric,
                 technical=technical, ignore=ignore,

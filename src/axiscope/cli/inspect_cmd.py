@@ -62,7 +62,7 @@ def inspect_command(
         layout = InputLayout(dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
                              samples_in=samples_in.value, allow_external_data=allow_external_data,
                              allow_missing_chunks=allow_missing_chunks)
-        with open_matrix(input, **layout.open_options(), scratch=resources.scratch_folder()) as src:
+        with open_matrix(input, **layout.open_options(), scratch=resources.scratch) as src:
             info = describe_source(src)
             plan = plan_fit(src, n_components=n_components, preprocess=spec, engine=engine,
                             resources=resources)

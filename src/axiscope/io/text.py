@@ -159,6 +159,8 @@ def _scratch_file(scratch: str | os.PathLike[str] | None) -> IO[bytes]:
     """An anonymous file (no name on disk where the system allows it) in ``scratch`` or the temporary folder."""
     folder = os.fspath(scratch) if scratch is not None else None
     try:
+        if folder is not None:
+            os.makedirs(folder, exist_ok=True)
         return tempfile.TemporaryFile(prefix="axiscope-text-", dir=folder)
     except OSError as exc:
         where = folder or tempfile.gettempdir()
