@@ -615,3 +615,26 @@ def test_text_memory_is_bounded_by_blocks_not_the_file(tmp_path):
     # Parsed whole, the text would take at least float_bytes.
     bound = 2 * BLOCK_CELLS * 72 + 100 * p * 8 + n * 120
     assert peak < bound < float_bytes, (peak, bound, float_bytes)
+
+
+# --------------------------------------------------------------------- HDF5: storage never written
+
+
+def test_hdf5_chunks_never_written(tmp_path, caplog):
+    path = tmp_path / "partial.h5"
+    with h5py.File(path, "w") as handle:
+        dataset = handle.create_dataset("X", shape=(10, 6), chunks=(4, 4), dtype="f8")
+        dataset[0:4, :] = 1.0
+        dataset[8:10, :] = 2.0  # rows 4-7 never written: 2 of 6 chunks absent
+        handle.create_dataset("C", shape=(10, 6), dtype="f8")  # contiguous, never written
+    with pytest.raises(InputError, match=r"partial\.h5: the chunk at \(4, 0\) of dataset '/X' was never written "
+                                         r"\(2 of 6 chunks are absent\); it would be read as the fill value 0\.0"):
+        open_matrix(path, dataset="X")
+    with pytest.raises(InputError, match=r"dataset '/C' was never written \(no storage is allocated\)"):
+        open_matrix(path, dataset="C")
+    with open_matrix(path, dataset="X", allow_missing_chunks=True) as src:
+        assert src.notes == {"missing_chunks": 2, "chunks": 6, "fill_value": 0.0}
+        expected = np.zeros((10, 6))  # reference: what was written, the fill value elsewhere
+        expected[0:4], expected[8:10] = 1.0, 2.0
+        np.testing.assert_array_equal(_read_all(src), expected)
+    assert "2 of 6 chunks of dataset /X are absent" in caplog.text

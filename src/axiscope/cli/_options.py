@@ -64,5 +64,5 @@ AllowExternalData = Annotated[bool, typer.Option(
          "storage, virtual dataset); refused otherwise, since such a file can make a run read other files.")]
 AllowMissingChunks = Annotated[bool, typer.Option(
     "--allow-missing-chunks", show_default="off",
-    help="Zarr: read chunks that were never written as the array's fill value (their number is reported); "
-         "otherwise a missing chunk is an error.")]
+    help="Zarr and HDF5: read chunks that were never written as the array's fill value (their number is "
+         "reported); otherwise a missing chunk is an error.")]

@@ -178,8 +178,8 @@ class InputLayout:
         HDF5: accept a dataset whose values are kept in other files (external link,
         external raw storage, virtual dataset); refused by default.
     allow_missing_chunks : bool, default=False
-        Zarr: read chunks that were never written as the fill value (their number is
-        logged); by default a missing chunk is an error.
+        Zarr and HDF5: read chunks that were never written as the fill value (their
+        number is logged); by default a missing chunk is an error.
     """
 
     dataset: str | None = None

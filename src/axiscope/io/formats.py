@@ -72,8 +72,8 @@ def open_matrix(path: str | os.PathLike[str], *, dataset: str | None = None,
         external raw storage, virtual datasets). Refused by default, since such a file can
         make a run read any file the user can read.
     allow_missing_chunks : bool, default=False
-        Zarr: accept arrays with chunks that were never written, read as the fill value
-        (their number is logged). By default a missing chunk is damage and an error.
+        Zarr and HDF5: accept arrays with chunks that were never written, read as the fill
+        value (their number is logged). By default a missing chunk is damage and an error.
     scratch : path, optional
         Text: folder of the anonymous scratch file the parsed values are streamed to
         (8 bytes per cell; default: the temporary folder).
@@ -100,6 +100,7 @@ def open_matrix(path: str | os.PathLike[str], *, dataset: str | None = None,
     extra: dict[str, Any] = {}
     if kind == "hdf5":
         extra["allow_external_data"] = bool(allow_external_data)
+        extra["allow_missing_chunks"] = bool(allow_missing_chunks)
     elif kind == "zarr":
         extra["allow_missing_chunks"] = bool(allow_missing_chunks)
     elif kind == "text":

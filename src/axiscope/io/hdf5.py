@@ -4,6 +4,10 @@ A contiguous, unfiltered dataset of a native numeric type whose storage lies in 
 file itself is read in sample-row blocks by positioned reads of that file (no library
 lock, no decoding); anything else goes through h5py under a lock.
 
+A matrix whose storage was not all written (chunks absent from the chunk index, or a
+contiguous dataset without storage) is refused unless ``allow_missing_chunks`` is given:
+HDF5 would read the absent parts as the fill value.
+
 Data kept in other files is refused unless ``allow_external_data`` is given: a dataset
 reached through an external link, a dataset with external raw storage, and a virtual
 dataset (whose values come from source datasets, possibly in other files). Such a file can
@@ -14,7 +18,9 @@ read it as fill values).
 
 from __future__ import annotations
 
+import itertools
 import logging
+import math
 import os
 import pathlib
 import threading
@@ -22,7 +28,7 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import InputError, reason
+from ..errors import InputError, agree, counted, reason
 from .ids import container_ids
 from .source import (
     Backend,
@@ -181,6 +187,43 @@ def _external_link(handle: Any, name: str) -> Any:
     return None
 
 
+def check_written(obj: Any, path: pathlib.Path, name: str, allow_missing_chunks: bool) -> dict[str, Any]:
+    """Refuse a dataset with chunks (or contiguous storage) never written, unless allowed.
+
+    HDF5 reads storage that was never written as the fill value, so a dataset created and
+    only partly written would silently become blocks of zeros. Counts come from the
+    library's chunk index (``H5Dget_num_chunks``); no data are read.
+    """
+    if obj.is_virtual or obj.id.get_create_plist().get_external_count() > 0 or obj.size == 0:
+        return {}
+    fill = obj.fillvalue
+    fill = fill.item() if hasattr(fill, "item") else fill
+    if obj.chunks is None:
+        if obj.id.get_storage_size() > 0:
+            return {}
+        missing, total = 1, 1
+        what = f"dataset {name!r} was never written (no storage is allocated)"
+    else:
+        counts = [max(1, math.ceil(n / c)) for n, c in zip(obj.shape, obj.chunks)]
+        total = math.prod(counts)
+        stored = obj.id.get_num_chunks()
+        if stored >= total:
+            return {}
+        present = {tuple(obj.id.get_chunk_info(i).chunk_offset) for i in range(stored)}
+        missing = total - stored
+        first = next(offset for offset in itertools.product(
+            *(range(0, n, c) for n, c in zip(obj.shape, obj.chunks))) if offset not in present)
+        what = (f"the chunk at {tuple(int(v) for v in first)} of dataset {name!r} was never written "
+                f"({missing} of {counted(total, 'chunk')} {agree(missing, 'is', 'are')} absent)")
+    if not allow_missing_chunks:
+        raise InputError(
+            f"{path.name}: {what}; it would be read as the fill value {fill!r}. Write the whole dataset, or "
+            "pass allow_missing_chunks=True if chunks holding only the fill value were left out on purpose")
+    logger.warning("%s: %d of %d chunks of dataset %s are absent and read as the fill value %r "
+                   "(allow_missing_chunks)", path.name, missing, total, name, fill)
+    return {"missing_chunks": missing, "chunks": total, "fill_value": fill}
+
+
 def _candidates(handle: Any) -> list[str]:
     """Names of all 2-D numeric datasets in an HDF5 file, searched recursively."""
     import h5py
@@ -196,11 +239,13 @@ def _candidates(handle: Any) -> list[str]:
 
 
 def open_hdf5(path: pathlib.Path, *, dataset: str | None, sample_ids: str | None,
-              feature_ids: str | None, samples_in: str, allow_external_data: bool = False) -> MatrixSource:
+              feature_ids: str | None, samples_in: str, allow_external_data: bool = False,
+              allow_missing_chunks: bool = False) -> MatrixSource:
     """Open a matrix stored in an HDF5 file.
 
     ``allow_external_data`` accepts datasets (matrix or ids) whose values are kept in other
-    files: external links, external raw storage, virtual datasets.
+    files: external links, external raw storage, virtual datasets. ``allow_missing_chunks``
+    accepts a matrix whose storage was not all written (read as the fill value).
     """
     import h5py
 
@@ -227,14 +272,17 @@ def open_hdf5(path: pathlib.Path, *, dataset: str | None, sample_ids: str | None
 
         name, obj = select_matrix(path, dataset, _candidates(handle), lookup)
         name = obj.name
+        notes = check_written(obj, path, name, allow_missing_chunks)
         backend = Hdf5Backend(handle, obj, path)
         if samples_in == "columns" and backend.disk_chunks is None:
             logger.warning("%s: dataset %s is stored contiguously; reading samples as columns reads "
                            "strided slabs and may be slow (a chunked copy reads faster)", path.name, name)
-        return build_source(
+        source = build_source(
             path, "hdf5", name, samples_in, backend,
             lambda given, default, argument: container_ids(path, given, default, argument, name, lookup),
             sample_ids, feature_ids)
+        source.notes.update(notes)
+        return source
     except BaseException:
         handle.close()
         raise
