@@ -9,7 +9,6 @@ IEEE 754 limits as numpy reports them (``numpy.finfo``).
 from __future__ import annotations
 
 import gzip
-import os
 import pathlib
 
 import h5py
@@ -408,18 +407,13 @@ def test_fit_refuses_a_value_whose_square_overflows(tmp_path, dtype, value):
 
 @pytest.fixture
 def trained(tmp_path):
+    """A 2-axis fit of 60 Gaussian samples × 8 features, written to a result folder."""
     from axiscope import fit
-
-    X = np.random.default_rng(0).standard_normal((60, 8))
-    result = fit(_array(X), n_components=2)
-    result.write(tmp_path / "fit")
-    return tmp_path / "fit"
-
-
-def _array(X):
     from axiscope.io import array_source
 
-    return array_source(X)
+    X = np.random.default_rng(0).standard_normal((60, 8))
+    fit(array_source(X), n_components=2).write(tmp_path / "fit")
+    return tmp_path / "fit"
 
 
 def _dense_scores(model_dir: pathlib.Path, Y: np.ndarray) -> np.ndarray:

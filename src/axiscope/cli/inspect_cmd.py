@@ -75,6 +75,12 @@ def inspect_command(
     typer.echo(f"  samples × features: {n} × {p}  (samples in {info['samples_in']})")
     typer.echo(f"  stored as {info['stored_dtype']}, read as {info['dtype']}; chunks on disk: {info['disk_chunks']}")
     typer.echo(f"  size decoded: {format_bytes(info['nbytes'])}; on disk: {format_bytes(info['file_size'])}")
+    notes = info["notes"]
+    if "computed_in" in notes:
+        typer.echo(f"  computed in {notes['computed_in']}")
+    if "missing_chunks" in notes:
+        typer.echo(f"  {notes['missing_chunks']} of {notes['chunks']} chunks absent, read as the fill value "
+                   f"{notes['fill_value']!r} (--allow-missing-chunks)")
     typer.echo(f"  sample ids: {info['ids_source']['samples']}, e.g. {', '.join(info['first_sample_ids'][:3])}")
     typer.echo(f"  feature ids: {info['ids_source']['features']}, e.g. {', '.join(info['first_feature_ids'][:3])}")
     typer.echo(

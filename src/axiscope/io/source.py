@@ -36,10 +36,6 @@ def is_numeric(dtype: np.dtype) -> bool:
     return dtype.kind in "biuf"
 
 
-#: The largest integer up to which float32 holds every integer exactly (2**24).
-FLOAT32_EXACT_INTEGERS = 2**24
-
-
 def logical_dtype(stored: np.dtype) -> np.dtype:
     """Decoded dtype: the precision the values are computed in.
 
@@ -198,8 +194,8 @@ class MatrixSource:
         one is an error naming its cell, unless the caller asks not to check.
     notes : dict
         What the reader accepted or decided that a record of the run should say (plain
-        JSON values): ``missing_chunks``/``chunks``/``fill_value`` when missing Zarr chunks
-        were allowed, ``computed_in`` when integers are computed in float64.
+        JSON values): ``missing_chunks``/``chunks``/``fill_value`` when chunks never written
+        were allowed (Zarr, HDF5), ``computed_in`` when integers are computed in float64.
     """
 
     def __init__(self, *, path: pathlib.Path, format: str, dataset: str | None, samples_in: str,
