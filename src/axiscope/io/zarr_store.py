@@ -146,8 +146,8 @@ def check_chunks(path: pathlib.Path, name: str, array: Any, allow_missing_chunks
         raise InputError(
             f"{path.name}: chunk {missing[0]!r} of array {name!r} is {kind} ({n} of {counted(total, 'chunk')} "
             f"{agree(n, 'is', 'are')} absent); it would be read as the fill value {fill!r}. Restore the "
-            "store, or pass allow_missing_chunks=True if chunks holding only the fill value were left "
-            "out on purpose")
+            "store, or pass allow_missing_chunks=True if the writer left out chunks holding only the fill "
+            "value (zarr-python does unless write_empty_chunks=True)")
     logger.warning("%s: %d of %s of array %s %s absent and read as the fill value %r (allow_missing_chunks)",
                    path.name, n, counted(total, "chunk"), name, agree(n, "is", "are"), fill)
     return {"missing_chunks": n, "chunks": total, "fill_value": fill}
