@@ -186,9 +186,11 @@ def test_text_missing_values_are_nan(tmp_path: pathlib.Path) -> None:
 
 @pytest.mark.parametrize("stored,expected", [("float32", np.float32), ("float64", np.float64),
                                              ("int16", np.float32), ("float16", np.float32),
-                                             ("bool", np.float32)])
+                                             ("bool", np.float32), ("uint16", np.float32),
+                                             ("int32", np.float64), ("uint32", np.float64),
+                                             ("int64", np.float64), ("uint64", np.float64)])
 def test_dtype_rules(tmp_path: pathlib.Path, stored: str, expected: type) -> None:
-    data = logical_matrix(4, 3, "int16").astype(stored)
+    data = np.abs(logical_matrix(4, 3, "int16")).astype(stored)
     with open_matrix(write_hdf5(tmp_path / "m.h5", data)) as source:
         assert source.dtype == expected
         np.testing.assert_array_equal(source.read_samples(0, 4), data.astype(expected))
@@ -334,7 +336,8 @@ def test_non_numeric_text_cell(tmp_path: pathlib.Path) -> None:
     rows = ["id\tg00011\tg00012"] + [f"s{i}\t1\t2" for i in range(3)] + ["s3\t1\tabc"]
     path.write_text("\n".join(rows) + "\n", encoding="utf-8")
     with pytest.raises(InputError, match=r"^x\.tsv: line 5, column 'g00012': 'abc' is not a number; "
-                                          r"fix the cell or remove the row$"):
+                                          r"fix the cell \(plain ASCII decimal digits, no '_' separators; "
+                                          r"empty or NA if missing\) or remove the row$"):
         open_matrix(path)
 
 
@@ -466,3 +469,63 @@ def test_the_io_package_re_exports_the_reading_api() -> None:
                                "open_matrix", "opened"}
     assert all(hasattr(io, name) for name in io.__all__)
     assert sorted(OPENERS) == ["hdf5", "npy", "text", "zarr"]  # one reader module per format
+
+
+#: Ids as people write them: any printable text, with the delimiters, quotes and spaces inside
+#: (not at either end, where the reader strips spaces), never a NUL or a line break.
+_ID_TEXT = st.text(
+    alphabet=st.characters(blacklist_categories=("Cs", "Cc"), whitelist_characters=",\t\"' ;|"),
+    min_size=1, max_size=12,
+).map(str.strip).filter(bool)
+
+
+@settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(n_rows=st.integers(2, 9), n_cols=st.integers(2, 7), suffix=st.sampled_from([".csv", ".tsv", ".csv.gz"]),
+       samples_in=st.sampled_from(SAMPLES_IN), data=st.data(), seed=st.integers(0, 2**16))
+def test_hypothesis_text_round_trip(tmp_path: pathlib.Path, n_rows: int, n_cols: int, suffix: str,
+                                    samples_in: str, data: st.DataObject, seed: int) -> None:
+    import csv
+    import io
+
+    row_ids = data.draw(st.lists(_ID_TEXT, min_size=n_rows, max_size=n_rows, unique=True))
+    col_ids = data.draw(st.lists(_ID_TEXT, min_size=n_cols, max_size=n_cols, unique=True))
+    stored = np.random.default_rng(seed).standard_normal((n_rows, n_cols)) * 10.0 ** np.random.default_rng(
+        seed).integers(-30, 30, size=(n_rows, n_cols))
+    buffer = io.StringIO()
+    writer = csv.writer(buffer, delimiter="\t" if suffix == ".tsv" else ",", lineterminator="\n")
+    writer.writerow(["id", *col_ids])
+    writer.writerows([rid, *(repr(float(v)) for v in row)] for rid, row in zip(row_ids, stored))
+    path = tmp_path / f"t{seed}{suffix}"
+    if suffix.endswith(".gz"):
+        path.write_bytes(gzip.compress(buffer.getvalue().encode("utf-8")))
+    else:
+        path.write_text(buffer.getvalue(), encoding="utf-8")
+    expected = stored if samples_in == "rows" else stored.T
+    with open_matrix(path, samples_in=samples_in) as source:
+        # reference: the values and ids written with Python's csv module (shortest repr round-trips)
+        samples, features = (row_ids, col_ids) if samples_in == "rows" else (col_ids, row_ids)
+        assert source.sample_ids.tolist() == samples and source.feature_ids.tolist() == features
+        np.testing.assert_array_equal(read_all(source, 3), expected)
+
+
+@settings(max_examples=20, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(dtype=st.sampled_from(["int8", "uint16", "int32", "uint32", "int64", "uint64", "float16", "float32",
+                              "float64", ">f4", "<i8", "bool"]),
+       chunked=st.booleans(), seed=st.integers(0, 2**16))
+def test_hypothesis_dtypes(tmp_path: pathlib.Path, dtype: str, chunked: bool, seed: int) -> None:
+    stored = np.dtype(dtype)
+    rng = np.random.default_rng(seed)
+    if stored.kind in "iu":
+        info = np.iinfo(stored)
+        data = rng.integers(info.min, info.max, size=(7, 5), dtype=stored, endpoint=True)
+    elif stored.kind == "b":
+        data = rng.integers(0, 2, size=(7, 5)).astype(bool)
+    else:
+        data = rng.standard_normal((7, 5)).astype(stored)
+    path = write_hdf5(tmp_path / f"d{seed}.h5", data, chunks=(3, 2) if chunked else None)
+    with open_matrix(path) as source:
+        # 32- and 64-bit integers are computed in float64, which holds every integer up to 2**53
+        # exactly (IEEE 754 double: 53-bit significand); the narrower types fit float32's 24 bits
+        wide_int = stored.kind in "iu" and stored.itemsize >= 4
+        assert source.dtype == (np.float64 if wide_int or stored == np.float64 else np.float32)
+        np.testing.assert_array_equal(read_all(source, 2), data.astype(source.dtype))

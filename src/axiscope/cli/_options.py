@@ -58,3 +58,11 @@ Quiet = Annotated[bool, typer.Option("--quiet", "-q", help="No progress bars or 
 #: and passes it on to every table it writes.
 FormatOpt = Annotated[TableFormat, typer.Option(
     "--format", help="tsv: tab-separated tables; parquet: every table also as a Parquet file of the same name.")]
+AllowExternalData = Annotated[bool, typer.Option(
+    "--allow-external-data", show_default="off",
+    help="HDF5: accept a dataset whose values are kept in other files (external link, external raw "
+         "storage, virtual dataset); refused otherwise, since such a file can make a run read other files.")]
+AllowMissingChunks = Annotated[bool, typer.Option(
+    "--allow-missing-chunks", show_default="off",
+    help="Zarr and HDF5: read chunks that were never written as the array's fill value (their number is "
+         "reported); otherwise a missing chunk is an error.")]

@@ -11,6 +11,8 @@ import typer
 from ..defaults import DEFAULT_TOP_FEATURES
 from ._app import app, progress_display, say, setup_logging, user_errors
 from ._options import (
+    AllowExternalData,
+    AllowMissingChunks,
     FormatOpt,
     Dataset,
     FeatureIds,
@@ -90,6 +92,8 @@ def fit_command(
     sample_ids: SampleIds = None,
     feature_ids: FeatureIds = None,
     samples_in: SamplesInOpt = SamplesIn.rows,
+    allow_external_data: AllowExternalData = False,
+    allow_missing_chunks: AllowMissingChunks = False,
     annotations: AnnotationsFile = None,
     id_column: IdColumn = "sample_id",
     categorical: Categorical = None,
@@ -121,8 +125,9 @@ def fit_command(
                                 power_iterations=parse_power_iterations(power_iterations))
         resources = Resources(memory_limit=memory_limit, threads=threads, scratch=scratch)
         layout = InputLayout(dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
-                             samples_in=samples_in.value)
-        with open_matrix(input, **layout.open_options()) as src:
+                             samples_in=samples_in.value, allow_external_data=allow_external_data,
+                             allow_missing_chunks=allow_missing_chunks)
+        with open_matrix(input, **layout.open_options(), scratch=resources.scratch) as src:
             prepared = plan_explanation(
                 src, annotations=annotations, id_column=id_column, categorical=categorical, numeric=numeric,
                 technical=technical, ignore=ignore,

@@ -9,6 +9,8 @@ import typer
 
 from ._app import app, setup_logging, user_errors
 from ._options import (
+    AllowExternalData,
+    AllowMissingChunks,
     Dataset,
     FeatureIds,
     InputPath,
@@ -37,6 +39,8 @@ def inspect_command(
     sample_ids: SampleIds = None,
     feature_ids: FeatureIds = None,
     samples_in: SamplesInOpt = SamplesIn.rows,
+    allow_external_data: AllowExternalData = False,
+    allow_missing_chunks: AllowMissingChunks = False,
 ) -> None:
     """Show shape, dtype, on-disk chunking, size, ids and the block plan 'axiscope fit' would use.
 
@@ -56,8 +60,9 @@ def inspect_command(
         engine = EngineSettings(oversample=oversample)
         resources = Resources(memory_limit=memory_limit, threads=threads, scratch=scratch)
         layout = InputLayout(dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
-                             samples_in=samples_in.value)
-        with open_matrix(input, **layout.open_options()) as src:
+                             samples_in=samples_in.value, allow_external_data=allow_external_data,
+                             allow_missing_chunks=allow_missing_chunks)
+        with open_matrix(input, **layout.open_options(), scratch=resources.scratch) as src:
             info = describe_source(src)
             plan = plan_fit(src, n_components=n_components, preprocess=spec, engine=engine,
                             resources=resources)
@@ -70,6 +75,12 @@ def inspect_command(
     typer.echo(f"  samples × features: {n} × {p}  (samples in {info['samples_in']})")
     typer.echo(f"  stored as {info['stored_dtype']}, read as {info['dtype']}; chunks on disk: {info['disk_chunks']}")
     typer.echo(f"  size decoded: {format_bytes(info['nbytes'])}; on disk: {format_bytes(info['file_size'])}")
+    notes = info["notes"]
+    if "computed_in" in notes:
+        typer.echo(f"  computed in {notes['computed_in']}")
+    if "missing_chunks" in notes:
+        typer.echo(f"  {notes['missing_chunks']} of {notes['chunks']} chunks absent, read as the fill value "
+                   f"{notes['fill_value']!r} (--allow-missing-chunks)")
     typer.echo(f"  sample ids: {info['ids_source']['samples']}, e.g. {', '.join(info['first_sample_ids'][:3])}")
     typer.echo(f"  feature ids: {info['ids_source']['features']}, e.g. {', '.join(info['first_feature_ids'][:3])}")
     typer.echo(

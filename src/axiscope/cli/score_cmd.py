@@ -14,6 +14,8 @@ import typer
 
 from ._app import app, progress_display, say, setup_logging, user_errors
 from ._options import (
+    AllowExternalData,
+    AllowMissingChunks,
     Dataset,
     FeatureIds,
     FormatOpt,
@@ -74,6 +76,8 @@ def score_command(
     sample_ids: SampleIds = None,
     feature_ids: FeatureIds = None,
     samples_in: SamplesInOpt = SamplesIn.rows,
+    allow_external_data: AllowExternalData = False,
+    allow_missing_chunks: AllowMissingChunks = False,
     memory_limit: MemoryLimit = None,
     threads: Threads = None,
     overwrite: Overwrite = False,
@@ -97,6 +101,7 @@ def score_command(
                 correct_shrinkage=correct_shrinkage, adjust_q=adjust_q, q_method=q_method.value,
                 memory_limit=memory_limit, threads=threads, progress=progress, dataset=dataset,
                 sample_ids=sample_ids, feature_ids=feature_ids, samples_in=samples_in.value,
+                allow_external_data=allow_external_data, allow_missing_chunks=allow_missing_chunks,
             )
         with atomic_directory(out, overwrite=overwrite) as tmp:
             result.write(tmp, parquet=format is TableFormat.parquet, command_line=sys.argv)

@@ -174,12 +174,20 @@ class InputLayout:
         A dataset in the same file, or a one-column text file, with the ids.
     samples_in : {"rows", "columns"}, default="rows"
         Whether samples are the file's rows or its columns.
+    allow_external_data : bool, default=False
+        HDF5: accept a dataset whose values are kept in other files (external link,
+        external raw storage, virtual dataset); refused by default.
+    allow_missing_chunks : bool, default=False
+        Zarr and HDF5: read chunks that were never written as the fill value (their
+        number is logged); by default a missing chunk is an error.
     """
 
     dataset: str | None = None
     sample_ids: str | None = None
     feature_ids: str | None = None
     samples_in: str = "rows"
+    allow_external_data: bool = False
+    allow_missing_chunks: bool = False
 
     def __post_init__(self) -> None:
         if self.samples_in not in SAMPLES_IN:
@@ -191,6 +199,11 @@ class InputLayout:
                 raise OptionError(f"{name}={value!r} is not a name or a path; pass a string")
             if isinstance(value, os.PathLike):
                 object.__setattr__(self, name, os.fspath(value))
+        for name in ("allow_external_data", "allow_missing_chunks"):
+            value = getattr(self, name)
+            if not isinstance(value, (bool, np.bool_)):
+                raise OptionError(f"{name}={value!r} is not True or False; pass a bool")
+            object.__setattr__(self, name, bool(value))
 
     @property
     def is_default(self) -> bool:
@@ -199,4 +212,5 @@ class InputLayout:
     def open_options(self) -> dict:
         """Keyword arguments of :func:`axiscope.io.open_matrix`."""
         return {"dataset": self.dataset, "sample_ids": self.sample_ids, "feature_ids": self.feature_ids,
-                "samples_in": self.samples_in}
+                "samples_in": self.samples_in, "allow_external_data": self.allow_external_data,
+                "allow_missing_chunks": self.allow_missing_chunks}

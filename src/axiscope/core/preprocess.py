@@ -13,7 +13,7 @@ from dataclasses import asdict, dataclass, field, fields
 
 import numpy as np
 
-from ..errors import OptionError
+from ..errors import InputError, OptionError, counted
 
 __all__ = [
     "SCALES",
@@ -26,6 +26,9 @@ __all__ = [
     "transform_block",
     "block_statistics",
     "first_nonfinite",
+    "constant_features",
+    "constant_rule",
+    "check_dosages",
 ]
 
 logger = logging.getLogger(__name__)
@@ -138,6 +141,51 @@ def feature_scale(scale: str, mean: np.ndarray, std: np.ndarray) -> np.ndarray:
     raise OptionError(f"scale={scale!r} is not one of {_choices(SCALES)}")
 
 
+def constant_features(mean: np.ndarray, variance: np.ndarray, eps: float) -> np.ndarray:
+    """Features whose spread is below the resolution of their values in the input's precision.
+
+    A feature is constant when its standard deviation is at most ``eps·|mean|``, with
+    ``eps`` the machine epsilon of the input's dtype (values differing only in their last
+    bit), or its variance is below the smallest normal float64 (zero, in practice).
+    Relative to the feature's own magnitude, so units do not matter: a float64 feature
+    with mean 1e6 and SD 0.05 is kept, and so is one with mean 1e-12 and SD 1e-13.
+    """
+    variance = np.asarray(variance, dtype=np.float64)
+    limit = (eps * np.abs(np.asarray(mean, dtype=np.float64))) ** 2
+    return (variance <= limit) | (variance < np.finfo(np.float64).tiny)
+
+
+def constant_rule(eps: float) -> str:
+    """The constant rule of :func:`constant_features`, in words."""
+    precision = {float(np.finfo(np.float32).eps): "float32", float(np.finfo(np.float64).eps): "float64"}
+    name = precision.get(float(eps))
+    where = f", the precision of the {name} input" if name else ""
+    return f"standard deviation at most eps·|mean| with eps = {eps:.3g}{where} (constant)"
+
+
+#: Genotype dosages accepted under ``scale="allele-frequency"``.
+DOSAGES = (0.0, 1.0, 2.0)
+
+
+def check_dosages(block: np.ndarray) -> None:
+    """Under ``scale="allele-frequency"`` every value is a dosage 0, 1 or 2, or NaN (missing).
+
+    Raises
+    ------
+    InputError
+        Naming the first other value and how many the block holds.
+    """
+    bad = (block != 0) & (block != 1) & (block != 2) & ~np.isnan(block)
+    if not bad.any():
+        return
+    rows, cols = np.nonzero(bad)
+    value = block[rows[0], cols[0]]
+    raise InputError(
+        f"scale='allele-frequency' reads genotype dosages 0, 1 or 2 (NaN for missing), but the input "
+        f"holds {float(value):g} ({counted(int(bad.sum()), 'such value')} in a block of "
+        f"{counted(block.shape[0], 'sample')}); recode the genotypes, or choose scale='unit' for other data")
+
+
 def row_totals(block: np.ndarray) -> np.ndarray:
     """Row sums in float64, skipping non-finite cells (copying only blocks that have some)."""
     totals = np.add.reduce(block, axis=1, dtype=np.float64)
@@ -154,7 +202,11 @@ def transform_block(block: np.ndarray, spec: PreprocessSpec, *,
     ``totals`` (one per row) replaces the row sums of ``block`` for ``counts_per``, for
     blocks that hold only some of the features the totals run over. Values ≤ −1 give NaN
     or −inf under ``log_transform``; callers report non-finite cells.
+    Under ``scale="allele-frequency"`` the values must be dosages 0, 1 or 2 (or NaN):
+    anything else raises :class:`~axiscope.errors.InputError` (:func:`check_dosages`).
     """
+    if spec.scale == "allele-frequency":
+        check_dosages(block)
     if spec.counts_per is not None:
         if totals is None:
             totals = row_totals(block)
@@ -180,7 +232,9 @@ class BlockStats:
     """Per-feature statistics of a set of samples, mergeable (Chan, Golub & LeVeque 1983).
 
     ``count`` is the number of finite values per feature, ``mean`` their mean, ``m2`` the
-    sum of squared deviations from that mean; all in float64.
+    sum of squared deviations from that mean; all in float64. ``eps`` is the machine
+    epsilon of the dtype the blocks were read in (the input's own precision), which
+    decides when a feature counts as constant.
     """
 
     n_samples: int
@@ -188,6 +242,7 @@ class BlockStats:
     mean: np.ndarray
     m2: np.ndarray
     n_nonfinite: int = 0
+    eps: float = float(np.finfo(np.float32).eps)
 
     def merge(self, other: "BlockStats") -> "BlockStats":
         """Combine with the statistics of disjoint samples (pairwise update, stable)."""
@@ -197,7 +252,7 @@ class BlockStats:
         mean = self.mean + delta * (other.count / safe)
         m2 = self.m2 + other.m2 + delta**2 * (self.count * other.count / safe)
         return BlockStats(self.n_samples + other.n_samples, count, mean, m2,
-                          self.n_nonfinite + other.n_nonfinite)
+                          self.n_nonfinite + other.n_nonfinite, max(self.eps, other.eps))
 
 
 def block_statistics(block: np.ndarray) -> BlockStats:
@@ -217,7 +272,13 @@ def block_statistics(block: np.ndarray) -> BlockStats:
     np.square(c, out=c)
     m2 = np.add.reduce(c, axis=0, dtype=np.float64) - csum**2 / m
     mean = shift.astype(np.float64) + csum / m
-    return BlockStats(m, np.full(block.shape[1], float(m)), mean, np.maximum(m2, 0.0), 0)
+    return BlockStats(m, np.full(block.shape[1], float(m)), mean, np.maximum(m2, 0.0), 0, _eps(block.dtype))
+
+
+def _eps(dtype: np.dtype) -> float:
+    """Machine epsilon of a block's dtype (float64's for anything that is not a float)."""
+    dtype = np.dtype(dtype)
+    return float(np.finfo(dtype if dtype.kind == "f" else np.float64).eps)
 
 
 def _block_statistics_nonfinite(block: np.ndarray) -> BlockStats:
@@ -230,7 +291,7 @@ def _block_statistics_nonfinite(block: np.ndarray) -> BlockStats:
     x -= mean
     x[~finite] = 0.0
     m2 = np.einsum("ij,ij->j", x, x)
-    return BlockStats(block.shape[0], count, mean, m2, n_bad)
+    return BlockStats(block.shape[0], count, mean, m2, n_bad, _eps(block.dtype))
 
 
 @dataclass
@@ -238,7 +299,8 @@ class FeatureStatistics:
     """Per-feature statistics over all samples after the transforms (float64).
 
     ``variance`` is the population variance (divided by the number of samples); cells
-    imputed by the mean add nothing to it.
+    imputed by the mean add nothing to it. ``eps`` is the machine epsilon of the input's
+    precision (see :class:`BlockStats`).
     """
 
     n_samples: int
@@ -246,6 +308,7 @@ class FeatureStatistics:
     variance: np.ndarray
     count: np.ndarray
     n_missing: int
+    eps: float = float(np.finfo(np.float32).eps)
 
     @classmethod
     def from_block_stats(cls, stats: BlockStats) -> "FeatureStatistics":
@@ -255,6 +318,7 @@ class FeatureStatistics:
             variance=stats.m2 / stats.n_samples,
             count=stats.count,
             n_missing=stats.n_nonfinite,
+            eps=stats.eps,
         )
 
 
@@ -298,8 +362,11 @@ class Preprocessing:
         return float(np.sum(centred_var / self.scale**2))
 
     mean_raw: np.ndarray = field(default_factory=lambda: np.empty(0))
-    #: Why each input feature was left out ("supplementary", "constant", "filtered"; "" if kept).
+    #: Why each input feature was left out ("supplementary", "constant", "min_variance",
+    #: "top_variable"; "" if kept); :attr:`rules` says each rule in words.
     reason: np.ndarray = field(default_factory=lambda: np.empty(0, dtype=object))
+    #: Machine epsilon of the input's precision, used by the constant rule.
+    eps: float = float(np.finfo(np.float32).eps)
 
     @classmethod
     def from_statistics(cls, spec: PreprocessSpec, stats: FeatureStatistics,
@@ -316,8 +383,7 @@ class Preprocessing:
         if exclude is not None and np.any(exclude):
             keep &= ~np.asarray(exclude, dtype=bool)
             dropped["supplementary"] = int(np.sum(exclude))
-        eps = np.finfo(np.float32).eps
-        constant = var <= (eps * np.maximum(np.abs(mean), 1.0)) ** 2
+        constant = constant_features(mean, var, stats.eps)
         if spec.scale == "allele-frequency":
             freq = mean / 2.0
             constant |= 2.0 * freq * (1.0 - freq) <= 0
@@ -339,7 +405,10 @@ class Preprocessing:
             keep = chosen
         kept = np.flatnonzero(keep)
         reason = np.full(p, "", dtype=object)
-        reason[~keep] = "filtered"
+        if spec.top_variable is not None:
+            reason[~keep] = "top_variable"
+        if spec.min_variance is not None:
+            reason[~keep & (var < spec.min_variance)] = "min_variance"
         reason[~keep & constant] = "constant"
         if exclude is not None:
             reason[np.asarray(exclude, dtype=bool)] = "supplementary"
@@ -355,4 +424,17 @@ class Preprocessing:
             dropped=dropped,
             mean_raw=mean[kept].copy(),
             reason=reason,
+            eps=stats.eps,
         )
+
+    @property
+    def rules(self) -> dict[str, str]:
+        """The rule behind each reason in :attr:`reason` that occurs, in words."""
+        texts = {
+            "supplementary": "left out of the axes on request (supplementary features)",
+            "constant": constant_rule(self.eps),
+            "min_variance": f"variance below min_variance={self.spec.min_variance:g}",
+            "top_variable": f"not among the top_variable={self.spec.top_variable} features of largest variance",
+        }
+        present = set(self.reason.tolist())
+        return {name: text for name, text in texts.items() if name in present}

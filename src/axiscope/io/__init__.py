@@ -11,7 +11,7 @@ module             holds
 ``hdf5``           HDF5 files (h5py; positioned reads of contiguous datasets)
 ``zarr_store``     Zarr directory stores, format 2 and 3
 ``npy``            ``.npy`` files (positioned reads or a memory map)
-``text``           delimited text, optionally gzipped, parsed into memory
+``text``           delimited text, optionally gzipped, streamed into an anonymous scratch file
 ``ids``            sample and feature ids: generated, from id files or 1-D datasets, checked
 ``output``         atomic output directories, TSV/Parquet/JSON writers, result-table readers
 =================  ===========================================================================

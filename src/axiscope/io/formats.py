@@ -49,7 +49,9 @@ def detect_format(path: pathlib.Path) -> str:
 
 def open_matrix(path: str | os.PathLike[str], *, dataset: str | None = None,
                 sample_ids: str | None = None, feature_ids: str | None = None,
-                samples_in: str = "rows") -> MatrixSource:
+                samples_in: str = "rows", allow_external_data: bool = False,
+                allow_missing_chunks: bool = False,
+                scratch: str | os.PathLike[str] | None = None) -> MatrixSource:
     """Open a 2-D numeric matrix for block-wise reading.
 
     Parameters
@@ -65,6 +67,16 @@ def open_matrix(path: str | os.PathLike[str], *, dataset: str | None = None,
         else generated ids. Not allowed for text input, whose ids come from the file.
     samples_in : {"rows", "columns"}
         Whether samples are the rows or the columns of the stored matrix.
+    allow_external_data : bool, default=False
+        HDF5: accept datasets whose values are kept in other files (external links,
+        external raw storage, virtual datasets). Refused by default, since such a file can
+        make a run read any file the user can read.
+    allow_missing_chunks : bool, default=False
+        Zarr and HDF5: accept arrays with chunks that were never written, read as the fill
+        value (their number is logged). By default a missing chunk is damage and an error.
+    scratch : path, optional
+        Text: folder of the anonymous scratch file the parsed values are streamed to
+        (8 bytes per cell; default: the temporary folder).
 
     Returns
     -------
@@ -85,8 +97,16 @@ def open_matrix(path: str | os.PathLike[str], *, dataset: str | None = None,
     kind = detect_format(path)
     if kind in ("npy", "text") and dataset is not None:
         raise OptionError(f"{path.name}: dataset={dataset!r} only applies to HDF5 and Zarr input; leave it out")
+    extra: dict[str, Any] = {}
+    if kind == "hdf5":
+        extra["allow_external_data"] = bool(allow_external_data)
+        extra["allow_missing_chunks"] = bool(allow_missing_chunks)
+    elif kind == "zarr":
+        extra["allow_missing_chunks"] = bool(allow_missing_chunks)
+    elif kind == "text":
+        extra["scratch"] = scratch
     return OPENERS[kind](path, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
-                         samples_in=samples_in)
+                         samples_in=samples_in, **extra)
 
 
 @contextlib.contextmanager

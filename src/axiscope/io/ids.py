@@ -15,7 +15,7 @@ import numpy as np
 
 from ..errors import InputError, counted, reason
 
-__all__ = ["generated_ids", "to_str_ids", "read_id_file", "check_ids", "ids_from_dataset",
+__all__ = ["generated_ids", "to_str_ids", "decode_ids", "read_id_file", "check_ids", "ids_from_dataset",
            "container_ids", "plain_ids", "IdResolver"]
 
 #: ``resolve(given, default, argument) -> (ids or None, where they came from)``: how a
@@ -34,19 +34,41 @@ def generated_ids(prefix: str, n: int) -> np.ndarray:
 
 
 def to_str_ids(values: Any) -> np.ndarray:
-    """Convert a 1-D array or sequence of bytes/str/numbers to an object array of str."""
+    """Convert a 1-D array or sequence of bytes/str/numbers to an object array of str.
+
+    Bytes are decoded as UTF-8; ``UnicodeDecodeError`` is left to the caller, who knows
+    where the ids came from (see :func:`decode_ids`).
+    """
     items = values.tolist() if isinstance(values, np.ndarray) else list(values)
     out = np.empty(len(items), dtype=object)
     out[:] = [v.decode("utf-8") if isinstance(v, bytes) else str(v) for v in items]
     return out
 
 
+def decode_ids(values: Any, where: str, fix: str) -> np.ndarray:
+    """:func:`to_str_ids`, with ids that are not UTF-8 reported as one line naming the first."""
+    try:
+        return to_str_ids(values)
+    except UnicodeDecodeError:
+        items = values.tolist() if isinstance(values, np.ndarray) else list(values)
+        for position, value in enumerate(items, start=1):
+            if isinstance(value, bytes):
+                try:
+                    value.decode("utf-8")
+                except UnicodeDecodeError:
+                    raise InputError(f"{where}: id {position} ({value[:40]!r}) is not UTF-8 text; {fix}") from None
+        raise
+
+
 def read_id_file(path: pathlib.Path, argument: str) -> np.ndarray:
-    """Read a one-column id file (one id per line, no header)."""
+    """Read a one-column id file: UTF-8, one id per line, no header; a leading byte-order mark is dropped."""
     if not path.is_file():
         raise InputError(f"{path}: no such file (given as {argument}); pass an existing id file or dataset name")
-    with open(path, encoding="utf-8") as handle:
-        lines = [line.strip() for line in handle]
+    try:
+        with open(path, encoding="utf-8-sig") as handle:  # a leading byte-order mark is dropped
+            lines = [line.strip() for line in handle]
+    except UnicodeDecodeError as exc:
+        raise InputError(f"{path}: not UTF-8 text ({reason(exc)}); save the id file as UTF-8") from None
     while lines and not lines[-1]:
         lines.pop()
     for number, line in enumerate(lines, start=1):
@@ -56,12 +78,16 @@ def read_id_file(path: pathlib.Path, argument: str) -> np.ndarray:
 
 
 def check_ids(where: str, ids: np.ndarray, expected: int, axis: str, argument: str, source: str) -> None:
-    """Validate the length and uniqueness of ids along one axis."""
+    """Validate the length and uniqueness of ids along one axis, and refuse NUL characters in them."""
     if len(ids) != expected:
         raise InputError(
             f"{where}: {counted(len(ids), axis + ' id')} ({source}) but the matrix has "
             f"{counted(expected, axis)}; give {argument} matching the {axis}s or check samples_in"
         )
+    for position, value in enumerate(ids.tolist(), start=1):
+        if "\x00" in value:
+            raise InputError(f"{where}: {axis} id {position} ({value[:40]!r}, {source}) holds a NUL character; "
+                             f"remove it from the {axis} ids")
     counts = Counter(ids.tolist())
     duplicated = [value for value, count in counts.items() if count > 1]
     if duplicated:
@@ -81,7 +107,8 @@ def ids_from_dataset(path: pathlib.Path, name: str, obj: Any) -> np.ndarray:
     except Exception as exc:
         raise InputError(f"{path.name}: cannot read id dataset {name!r} ({reason(exc)}); "
                          "the file may be corrupted") from exc
-    return to_str_ids(np.asarray(values).reshape(-1))
+    return decode_ids(np.asarray(values).reshape(-1), f"{path.name} (id dataset {name!r})",
+                      "store the ids as UTF-8 text")
 
 
 def container_ids(path: pathlib.Path, given: str, default: str, argument: str, matrix_name: str,

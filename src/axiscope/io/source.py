@@ -22,7 +22,8 @@ from ..errors import InputError, counted, reason
 from .ids import IdResolver, check_ids, generated_ids, to_str_ids
 
 __all__ = ["SAMPLES_IN", "Backend", "MemoryBackend", "MatrixSource", "array_source", "build_source",
-           "describe_source", "is_numeric", "orient_block", "pread_rows", "select_matrix", "slab_key"]
+           "describe_source", "is_numeric", "orient_block", "pread_rows", "select_matrix", "slab_key",
+           "value_limit"]
 
 #: Values of ``samples_in``: samples are the file's rows, or its columns.
 SAMPLES_IN = ("rows", "columns")
@@ -36,10 +37,25 @@ def is_numeric(dtype: np.dtype) -> bool:
 
 
 def logical_dtype(stored: np.dtype) -> np.dtype:
-    """Decoded dtype: float64 for 64-bit (or wider) floats, float32 for everything else."""
+    """Decoded dtype: the precision the values are computed in.
+
+    float64 for 64-bit (or wider) floats and for integers of 32 or more bits (float32
+    holds integers exactly only up to 2**24, and 32-bit integers go beyond it); float32
+    for narrower floats and integers and for booleans, which it holds exactly.
+    """
     if stored.kind == "f" and stored.itemsize >= 8:
         return np.dtype(np.float64)
+    if stored.kind in "iu" and stored.itemsize >= 4:
+        return np.dtype(np.float64)
     return np.dtype(np.float32)
+
+
+def precision_note(stored: np.dtype) -> dict[str, str]:
+    """What a record of the run should say about the precision chosen for integer input."""
+    if stored.kind in "iu" and stored.itemsize >= 4:
+        return {"computed_in": f"float64, since {stored.name} values can exceed 2**24, the largest integer "
+                               "float32 holds exactly"}
+    return {}
 
 
 def file_size(path: pathlib.Path) -> int:
@@ -52,6 +68,19 @@ def file_size(path: pathlib.Path) -> int:
             total += sum(os.path.getsize(os.path.join(root, name)) for name in files)
         return total
     return path.stat().st_size
+
+
+def value_limit(dtype: np.dtype, shape: tuple[int, int]) -> float:
+    """Largest magnitude of a value that a matrix of ``shape`` may hold in ``dtype``.
+
+    ``sqrt(max / (16·n·p))`` with ``max`` the largest finite number of ``dtype``: then no
+    sum of squared values over the whole matrix, nor the product with a random test
+    matrix (entries below 6 in practice, 16 leaves room), overflows in ``dtype``. For a
+    float64 matrix of 10⁶ × 10⁶ this is about 3e147; for float32, 4.6e12.
+    """
+    largest = float(np.finfo(dtype).max)
+    cells = max(1, int(shape[0]) * int(shape[1]))
+    return float(np.sqrt(largest / (16.0 * cells)))
 
 
 # ------------------------------------------------------------------------------ back-ends
@@ -106,7 +135,7 @@ def pread_rows(fd: int, offset: int, start: int, stop: int, n_cols: int,
 
 
 class MemoryBackend(Backend):
-    """A matrix already held in memory in logical orientation (parsed text, an array)."""
+    """A matrix already held in memory in logical orientation (an array)."""
 
     def __init__(self, data: np.ndarray, file_shape: tuple[int, int]) -> None:
         self._data = data
@@ -124,7 +153,8 @@ class MatrixSource:
     """A 2-D numeric matrix on disk, read in blocks of samples.
 
     Create instances with :func:`axiscope.io.open_matrix`. The matrix is never loaded
-    whole, except for delimited text, which is parsed into memory when opened.
+    whole; delimited text is parsed once, block by block, into an anonymous scratch file
+    when opened.
 
     Attributes
     ----------
@@ -139,9 +169,10 @@ class MatrixSource:
     shape : tuple of int
         Logical shape ``(n_samples, n_features)``.
     dtype : numpy.dtype
-        float64 if the stored values are float64, float32 otherwise.
+        The precision blocks are read and computed in (:func:`logical_dtype`): float64 for
+        float64 and for integers of 32 or more bits, float32 otherwise.
     stored_dtype : numpy.dtype
-        The dtype stored on disk (float64 for text).
+        The dtype stored on disk (float64 for text, as parsed).
     sample_ids, feature_ids : numpy.ndarray
         1-D object arrays of str.
     disk_chunks : tuple of int or None
@@ -158,6 +189,13 @@ class MatrixSource:
         no decoding.
     ids_source : dict
         Where the ids came from, keys ``"samples"`` and ``"features"``.
+    value_limit : float
+        Largest magnitude a finite value may have (:func:`value_limit`); reading a larger
+        one is an error naming its cell, unless the caller asks not to check.
+    notes : dict
+        What the reader accepted or decided that a record of the run should say (plain
+        JSON values): ``missing_chunks``/``chunks``/``fill_value`` when chunks never written
+        were allowed (Zarr, HDF5), ``computed_in`` when integers are computed in float64.
     """
 
     def __init__(self, *, path: pathlib.Path, format: str, dataset: str | None, samples_in: str,
@@ -180,6 +218,8 @@ class MatrixSource:
         self.sample_ids = sample_ids
         self.feature_ids = feature_ids
         self.ids_source = ids_source
+        self.notes: dict[str, Any] = precision_note(self.stored_dtype)
+        self.value_limit: float = value_limit(self.dtype, self.shape)
         self.nbytes = self.shape[0] * self.shape[1] * self.dtype.itemsize
         self.file_size = file_size(path)
         #: Sample blocks are plain positioned reads of an uncompressed file: reading
@@ -190,13 +230,16 @@ class MatrixSource:
         """``path`` plus the dataset name, for messages."""
         return f"{self.path.name} (dataset {self.dataset})" if self.dataset else self.path.name
 
-    def read_samples(self, start: int, stop: int) -> np.ndarray:
+    def read_samples(self, start: int, stop: int, *, check_range: bool = True) -> np.ndarray:
         """Read samples ``start`` to ``stop`` (exclusive) of the logical matrix.
 
         Parameters
         ----------
         start, stop : int
             Sample range, ``0 <= start <= stop <= n_samples``.
+        check_range : bool, default=True
+            Refuse finite values larger in magnitude than :attr:`value_limit` (their sums
+            of squares would overflow). Scoring turns it off and flags such samples instead.
 
         Returns
         -------
@@ -207,7 +250,8 @@ class MatrixSource:
         Raises
         ------
         InputError
-            If the underlying file cannot be read (corrupted chunk, truncated file, ...).
+            If the underlying file cannot be read (corrupted chunk, truncated file, ...),
+            or a value is out of range (``check_range``).
         ValueError
             If the range is out of bounds or the source is closed.
         """
@@ -233,7 +277,27 @@ class MatrixSource:
                 f"{self._where()}: reading samples {start}:{stop} returned shape {block.shape} "
                 f"instead of {(stop - start, n_features)}; the file may be corrupted"
             )
+        if check_range:
+            self._check_range(block, start)
         return block
+
+    def _check_range(self, block: np.ndarray, start: int) -> None:
+        """Stop at the first finite value beyond :attr:`value_limit`, naming its cell."""
+        limit = self.value_limit
+        if block.size == 0 or (-limit <= block.min() and block.max() <= limit):
+            return  # the common case: two reductions, no copy (NaN fails both tests)
+        with np.errstate(invalid="ignore"):
+            bad = np.isfinite(block) & (np.abs(block) > limit)
+        if not bad.any():
+            return
+        rows, cols = np.nonzero(bad)
+        row, col = int(rows[0]), int(cols[0])
+        n, p = self.shape
+        raise InputError(
+            f"{self._where()}: sample {self.sample_ids[start + row]!r}, feature {self.feature_ids[col]!r} is "
+            f"{float(block[row, col]):g}; in {self.dtype.name} a {n} × {p} matrix can hold values up to "
+            f"±{limit:.3g} (beyond that, sums of squared values overflow); rescale the input, e.g. divide "
+            "it by a power of ten")
 
     def close(self) -> None:
         """Close the underlying file handles; further reads raise ``ValueError``."""
@@ -336,7 +400,7 @@ def describe_source(source: MatrixSource) -> dict[str, Any]:
     dict
         Keys ``path``, ``format``, ``dataset``, ``samples_in``, ``shape``, ``dtype``,
         ``stored_dtype``, ``disk_chunks``, ``sample_chunk``, ``nbytes``, ``file_size``,
-        ``ids_source``, ``first_sample_ids`` and ``first_feature_ids``; all values are plain
+        ``ids_source``, ``notes``, ``first_sample_ids`` and ``first_feature_ids``; all values are plain
         Python objects (str, int, list, dict, None).
     """
     return {
@@ -352,6 +416,7 @@ def describe_source(source: MatrixSource) -> dict[str, Any]:
         "nbytes": int(source.nbytes),
         "file_size": int(source.file_size),
         "ids_source": dict(source.ids_source),
+        "notes": dict(source.notes),
         "first_sample_ids": [str(v) for v in source.sample_ids[:_ID_HEAD]],
         "first_feature_ids": [str(v) for v in source.feature_ids[:_ID_HEAD]],
     }

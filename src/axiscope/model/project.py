@@ -20,6 +20,7 @@ from ..core.plan import plan_blocks
 from ..core.preprocess import first_nonfinite, row_totals, transform_block
 from ..errors import InputError, agree, counted
 from ..io import MatrixSource
+from ..io.source import value_limit
 from .store import Model
 
 __all__ = ["FeatureMatch", "match_features", "Projection", "project"]
@@ -159,12 +160,12 @@ def project(
 
     def load(i):
         a, b = spans[i]
-        block = source.read_samples(a, b)
+        # values too large for sums of squares are placed in float64 and flagged, not refused
+        block = source.read_samples(a, b, check_range=False)
         return block[rows[a:b]] if not rows[a:b].all() else block
 
     dtype = source.dtype
-    mean_t, inv_t, V_t = mean.astype(dtype), inv.astype(dtype), V.astype(dtype)
-    fill_centred = ((fill - mean) * inv).astype(dtype)
+    mean_t, inv_t, V_t, fill_t = mean.astype(dtype), inv.astype(dtype), V.astype(dtype), fill.astype(dtype)
     # An absent feature takes its training mean too: a constant contribution to every
     # sample (zero when features are centred).
     absent = ~present
@@ -175,6 +176,18 @@ def project(
     # the common case of the same features in the same order needs no gathered copy
     same_columns = match.model_columns.shape[0] == p_in and bool(
         np.array_equal(match.model_columns, np.arange(p_in)))
+    # a row whose values all stay within this squares and sums without overflow in ``dtype``
+    limit = value_limit(dtype, (1, int(present.sum())))
+
+    def place(x, centre, inverse, loadings):
+        """Scores and squared norms of transformed, filled rows (in place, in their own dtype)."""
+        with np.errstate(over="ignore", invalid="ignore"):
+            x -= centre
+            x *= inverse
+            scores = (x @ loadings).astype(np.float64)
+            sq = np.einsum("ij,ij->i", x, x, dtype=np.float64)
+        sq[~np.isfinite(sq)] = np.inf  # overflow: the sample lies beyond any limit
+        return scores, sq
 
     def task(block):
         # at most one gathered copy of the model's columns, then everything in place in the input dtype
@@ -183,20 +196,25 @@ def project(
             totals = row_totals(block if all_total else block[:, match.total_columns])
         x = block if same_columns else block[:, match.model_columns]
         x = transform_block(x, spec, totals=totals)
-        x -= mean_t
-        x *= inv_t
-        scores = (x @ V_t).astype(np.float64)
-        sq = np.einsum("ij,ij->i", x, x, dtype=np.float64)
         n_bad = np.zeros(x.shape[0])
-        if not np.isfinite(sq).all():  # non-finite cells: an error, or the training mean
-            bad = first_nonfinite(x)
+        if x.size and -limit <= x.min() and x.max() <= limit:  # the common case: two reductions
+            return (*place(x, mean_t, inv_t, V_t), n_bad), None
+        missing = ~np.isfinite(x)
+        if missing.any():  # non-finite cells: an error, or the training mean
             if spec.missing != "mean" and not fill_missing:
-                return None, bad
-            mask = ~np.isfinite(x)
-            n_bad = mask.sum(axis=1)
-            x = np.where(mask, fill_centred, x)
-            scores = (x @ V_t).astype(np.float64)
-            sq = np.einsum("ij,ij->i", x, x, dtype=np.float64)
+                return None, first_nonfinite(x)
+            n_bad = missing.sum(axis=1)
+            x[missing] = fill_t[np.nonzero(missing)[1]]
+        with np.errstate(invalid="ignore"):
+            wide = (np.abs(x) > limit).any(axis=1)
+        if not wide.any():
+            return (*place(x, mean_t, inv_t, V_t), n_bad), None
+        # rows with values too large for sums of squares in the input dtype: placed in float64
+        # (where their squared norm may still overflow: it is then infinite, and flagged)
+        scores = np.empty((x.shape[0], V.shape[1]))
+        sq = np.empty(x.shape[0])
+        scores[~wide], sq[~wide] = place(x[~wide], mean_t, inv_t, V_t)
+        scores[wide], sq[wide] = place(x[wide].astype(np.float64), mean, inv, V)
         return (scores, sq, n_bad), None
 
     counts = [int(rows[a:b].sum()) for a, b in spans]
@@ -226,7 +244,17 @@ def project(
     runner = PassRunner(threads=threads, progress=progress)
     with blas_threads(threads):
         runner.run("projection", "input", X, task, fold)
-    residual = np.maximum(sq - np.einsum("ij,ij->i", scores, scores), 0.0)
+    with np.errstate(over="ignore", invalid="ignore"):
+        residual = np.maximum(sq - np.einsum("ij,ij->i", scores, scores), 0.0)
+    overflow = np.isinf(sq)
+    residual[overflow] = np.inf
+    if overflow.any():
+        logger.warning(
+            "%s: %s %s values so large that %s squared distance to the model overflows float64 "
+            "(first: %r); %s Q is infinite and %s flagged", where, counted(int(overflow.sum()), "sample"),
+            agree(int(overflow.sum()), "holds", "hold"), agree(int(overflow.sum()), "its", "their"),
+            str(ids[np.flatnonzero(overflow)[0]]), agree(int(overflow.sum()), "its", "their"),
+            agree(int(overflow.sum()), "it is", "they are"))
     missing_fraction = (n_bad + match.n_missing) / model.n_features
     return Projection(ids, scores, sq, residual, missing_fraction, match, runner)
 

@@ -356,6 +356,8 @@ def score(
     sample_ids: str | None = None,
     feature_ids: str | None = None,
     samples_in: str = "rows",
+    allow_external_data: bool = False,
+    allow_missing_chunks: bool = False,
 ) -> ScoreResult:
     """Score new samples against a saved model and flag those the model does not describe.
 
@@ -368,7 +370,8 @@ def score(
         (format version and checksums) by :func:`axiscope.model.load_model`.
     source : MatrixSource or path
         The new samples. A path is opened with :func:`axiscope.io.open_matrix` using
-        ``dataset``, ``sample_ids``, ``feature_ids`` and ``samples_in``.
+        ``dataset``, ``sample_ids``, ``feature_ids``, ``samples_in``, ``allow_external_data``
+        and ``allow_missing_chunks`` (see :func:`axiscope.io.open_matrix`).
     fill_missing : {"mean"} or None, default=None
         Model features absent from the input (and NaN cells) take their training mean,
         adding nothing to scores, T² or Q; otherwise their absence is an error.
@@ -433,7 +436,8 @@ def score(
     limits = {level: model_limits(model, level, q_method=used_method, q_offset=offset) for level in levels}
 
     with opened(source, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
-                samples_in=samples_in) as src:
+                samples_in=samples_in, allow_external_data=allow_external_data,
+                allow_missing_chunks=allow_missing_chunks) as src:
         proj = project(model, src, fill_missing=fill, memory_limit=memory_limit, threads=threads,
                        progress=progress)
         input_info = {
@@ -447,8 +451,9 @@ def score(
 
     scores = proj.scores / factor
     axis_var = model.singular_values**2 / max(model.n_samples - 1, 1)
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         t2 = np.sum(scores**2 / axis_var, axis=1)
+    t2[np.isnan(t2) & np.isinf(proj.residual)] = np.inf  # overflowing samples: beyond every limit
     q = proj.residual
     main = limits[float(confidence)]
     over_t2 = t2 > main.t2
