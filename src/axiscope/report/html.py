@@ -145,6 +145,7 @@ class _ResultFiles:
         self.components: pd.DataFrame | None = None
         self.cards: dict | None = None
         self.sample_scores: pd.DataFrame | None = None
+        self.supplementary_scores: pd.DataFrame | None = None
         self.sample_statistics: pd.DataFrame | None = None
         self.feature_statistics: pd.DataFrame | None = None
         self.dropped_features: pd.DataFrame | None = None
@@ -167,6 +168,7 @@ class _ResultFiles:
                              "'axiscope fit'")
         files.cards = _json(directory / "axis_cards.json")
         files.sample_scores = _tsv(directory / "sample_scores.tsv")
+        files.supplementary_scores = _tsv(directory / "supplementary_sample_scores.tsv")
         files.sample_statistics = _tsv(directory / "sample_statistics.tsv")
         files.feature_statistics = _tsv(directory / "feature_statistics.tsv")
         files.dropped_features = _tsv(directory / "dropped_features.tsv")
@@ -496,10 +498,11 @@ def _maps_section(files: _ResultFiles, charts, *, annotations: Path | None, id_c
     if scores is not None and len(scores) and "sample_id" in scores:
         axes = [c for c in scores.columns if c != "sample_id"][:MAX_MAP_AXES]
         if len(axes) >= 2:
-            supplementary = None
-            stats = files.sample_statistics
-            if stats is not None and "supplementary" in stats and len(stats) == len(scores):
-                supplementary = _flags(stats.set_index("sample_id")["supplementary"].reindex(scores["sample_id"]))
+            supplementary = np.zeros(len(scores), dtype=bool)
+            extra = files.supplementary_scores
+            if extra is not None and len(extra) and all(a in extra for a in axes):
+                scores = pd.concat([scores[["sample_id", *axes]], extra[["sample_id", *axes]]], ignore_index=True)
+                supplementary = np.r_[supplementary, np.ones(len(extra), dtype=bool)]
             table, treatments, default, note = _annotation_table(files, scores["sample_id"], annotations, id_column)
             scored = None
             if files.scores is not None and files.diagnostics is not None and all(a in files.scores for a in axes):

@@ -235,6 +235,7 @@ def sample_map(scores: pd.DataFrame, axes: Sequence[str], *, ratios: Mapping[str
     for j, axis in enumerate(axes):
         data[axis] = values[drawn, j].astype(np.float32)
     data["sample_set"] = np.where(supplementary[drawn], "supplementary", "active")
+    data["marker"] = np.where(supplementary[drawn], "square", "circle")  # supplementary samples stand out
 
     labels = {axis: _axis_label(axis, ratios) for axis in axes}
     bounds = {axis: _bounds(values[:, j]) for j, axis in enumerate(axes)}
@@ -278,7 +279,7 @@ def sample_map(scores: pd.DataFrame, axes: Sequence[str], *, ratios: Mapping[str
     first = next((i for i, c in enumerate(colourings) if c.label == default_colour), 0)
     start = colourings[first]
     fill = {"field": start.field, "transform": start.mapper} if start.field else PLAIN
-    renderer = plot.scatter(axes[0], axes[1], source=source, size=6, fill_color=fill, fill_alpha=0.75,
+    renderer = plot.scatter(axes[0], axes[1], source=source, size=6, marker="marker", fill_color=fill, fill_alpha=0.75,
                             line_color=None, name="samples")
     renderers = [renderer]
     glyphs = [renderer.glyph]
