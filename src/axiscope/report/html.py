@@ -33,7 +33,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from ..errors import InputError
+from ..errors import InputError, agree, counted
 from ..explain.pages import format_number, format_p_value
 
 __all__ = ["build_report", "CAUTIONS", "MAX_LISTED", "sanitise_svg"]
@@ -628,10 +628,11 @@ def _warnings_section(files: _ResultFiles) -> dict | None:
     items: list[str] = []
     dropped = manifest.get("features_dropped") or {}
     for reason, count in dropped.items():
-        items.append(f"{_fmt(count)} features left out of the axes ({reason}).")
+        items.append(f"{counted(int(count), 'feature')} left out of the axes ({reason}).")
     imputed = manifest.get("n_missing_imputed") or 0
     if imputed:
-        items.append(f"{_fmt(imputed)} missing cells were filled with their feature's mean before the fit.")
+        items.append(f"{counted(int(imputed), 'missing cell')} {agree(int(imputed), 'was', 'were')} filled with "
+                     "their feature's mean before the fit.")
     technical = []
     if files.cards and files.cards.get("records"):
         for record in files.cards["records"]:
