@@ -408,11 +408,9 @@ def _axes_section(cards: dict | None) -> list[dict] | None:
     settings = cards.get("settings", {})
     alpha = float(settings.get("alpha", 0.05))
     annotated = bool((records["section"] == "lines_up").any())
-    out = []
-    for axis in cards.get("axes", []):
-        rows = records[records["axis"] == axis]
-        out.append(_card(str(axis), rows, alpha=alpha, annotated=annotated))
-    return out
+    by_axis = {str(axis): rows for axis, rows in records.groupby("axis", sort=False)}
+    return [_card(str(axis), by_axis.get(str(axis), records.iloc[:0]), alpha=alpha, annotated=annotated)
+            for axis in cards.get("axes", [])]
 
 
 def _part(rows: pd.DataFrame, section: str, side: str | None = None) -> pd.DataFrame:
@@ -442,7 +440,8 @@ def _card(axis: str, rows: pd.DataFrame, *, alpha: float, annotated: bool) -> di
               "supplementary"]
     card["drivers"] = {side: _table(header, [
         [r["rank"], str(r["feature_id"]), r["loading"], r["correlation"], r["contribution_pct"], r["sq_cosine"],
-         format_p_value(r["p_adjusted"]), _yes(r["supplementary"])] for _, r in _part(rows, "built_from", side).iterrows()
+         format_p_value(r["p_adjusted"]), _yes(r["supplementary"])]
+        for r in _part(rows, "built_from", side).to_dict("records")
     ], numeric=[True, False, True, True, True, True, True, False], optional=("supplementary",))
         for side in ("positive", "negative")}
     card["associations"] = None
@@ -453,7 +452,7 @@ def _card(axis: str, rows: pd.DataFrame, *, alpha: float, annotated: bool) -> di
             ["annotation", "treated as", "technical", "samples", "R²", "correlation", "p-value", "adjusted p"],
             [[str(r["annotation"]), str(r["treated_as"]), _yes(r["technical"]), r["n"], r["r_squared"],
               r["correlation"], format_p_value(r["p_value"]), format_p_value(r["p_adjusted"])]
-             for _, r in lines_up.iterrows()],
+             for r in lines_up.to_dict("records")],
             numeric=[False, False, False, True, True, True, True, True])
         shown = lines_up[(lines_up["treated_as"] == "categorical") & (lines_up["p_adjusted"].astype(float) < alpha)]
         names = [str(a) for a in shown["annotation"]]
@@ -465,18 +464,18 @@ def _card(axis: str, rows: pd.DataFrame, *, alpha: float, annotated: bool) -> di
         card["categories"] = _table(
             ["annotation", "category", "samples", "mean score", "z", "p-value"],
             [[str(r["annotation"]), str(r["category"]), r["n"], r["category_mean"], r["z"],
-              format_p_value(r["p_value"])] for _, r in categories.iterrows()],
+              format_p_value(r["p_value"])] for r in categories.to_dict("records")],
             numeric=[False, False, True, True, True, True])
         card["alpha"] = _fmt(alpha)
     sample_header = ["rank", "sample", "score", "squared cosine", "supplementary"]
     card["ends"] = {side: _table(sample_header, [
         [r["rank"], str(r["sample_id"]), r["score"], r["sq_cosine"], _yes(r["supplementary"])]
-        for _, r in _part(rows, "end", side).iterrows()], numeric=[True, False, True, True, False],
+        for r in _part(rows, "end", side).to_dict("records")], numeric=[True, False, True, True, False],
         optional=("supplementary",))
         for side in ("positive", "negative")}
     card["poorly"] = _table(sample_header, [
         [r["rank"], str(r["sample_id"]), r["score"], r["sq_cosine"], _yes(r["supplementary"])]
-        for _, r in _part(rows, "off_axis").iterrows()], numeric=[True, False, True, True, False],
+        for r in _part(rows, "off_axis").to_dict("records")], numeric=[True, False, True, True, False],
         optional=("supplementary",))
     return card
 
@@ -547,7 +546,7 @@ def _annotation_table(files: _ResultFiles, sample_ids: pd.Series, annotations: P
     records = pd.DataFrame.from_records(cards.get("records", [])) if cards.get("records") else pd.DataFrame()
     treatments: dict[str, str] = {}
     if len(records) and "section" in records:
-        for _, r in records[records["section"] == "annotation_use"].iterrows():
+        for r in records[records["section"] == "annotation_use"].to_dict("records"):
             if isinstance(r.get("treated_as"), str):
                 treatments[str(r["annotation"])] = r["treated_as"]
     for name in aligned.columns:
@@ -615,7 +614,7 @@ def _scoring_section(files: _ResultFiles, charts) -> dict | None:
         "features_matched": counts.get("model_features_matched"),
         "features_filled": counts.get("model_features_filled"),
         "flagged": _table(["sample", "diagnosis", "T²", "Q"],
-                          [[str(r["sample_id"]), str(r["flag"]), r["t2"], r["q"]] for _, r in shown.iterrows()],
+                          [[str(r["sample_id"]), str(r["flag"]), r["t2"], r["q"]] for r in shown.to_dict("records")],
                           numeric=[False, False, True, True], more=len(flagged) - len(shown)),
     }
 
@@ -653,7 +652,8 @@ def _warnings_section(files: _ResultFiles) -> dict | None:
         shown = d.head(MAX_LISTED)
         table = _table(["feature", "reason", "mean", "variance"],
                        [[str(r.get("feature_id")), str(r.get("reason", "")), r.get("mean"), r.get("variance")]
-                        for _, r in shown.iterrows()], numeric=[False, False, True, True], more=len(d) - len(shown))
+                        for r in shown.to_dict("records")], numeric=[False, False, True, True],
+                       more=len(d) - len(shown))
     if not items and not technical and table is None:
         return None
     return {"items": items, "technical": technical, "dropped": table}
