@@ -300,6 +300,11 @@ def _table(header: Sequence[str], rows: Sequence[Sequence[Any]], *, numeric: Seq
 
 # ------------------------------------------------------------------------------- the run
 
+_SETTING_NAMES = {"n_components": "axes requested", "oversample": "extra basis columns",
+                  "power_iterations": "power iterations", "tol": "requested relative accuracy",
+                  "seed": "random seed", "threads": "threads"}
+
+
 
 def _run_section(manifest: dict) -> dict:
     source = manifest.get("input", {})
@@ -327,12 +332,12 @@ def _run_section(manifest: dict) -> dict:
         steps.append(f"features with variance below {_fmt(prep['min_variance'])} dropped")
     if prep.get("top_variable") is not None:
         steps.append(f"the {_fmt(prep['top_variable'])} most variable features kept")
-    steps.append("centred on feature means" if prep.get("center", True) else "not centred")
-    steps.append(_SCALES.get(str(prep.get("scale")), f"scale {prep.get('scale')}"))
     if prep.get("missing") == "mean":
         steps.append("missing cells filled with the feature mean")
-    settings = [(k, _fmt(v) if not isinstance(v, str) else v) for k, v in options.items()
-                if k != "preprocessing" and not isinstance(v, dict)]
+    steps.append("centred on feature means" if prep.get("center", True) else "not centred")
+    steps.append(_SCALES.get(str(prep.get("scale")), f"scale {prep.get('scale')}"))
+    settings = [(_SETTING_NAMES.get(k, k.replace("_", " ")), _fmt(v) if not isinstance(v, str) else v)
+                for k, v in options.items() if k != "preprocessing" and not isinstance(v, dict)]
     passes = manifest.get("passes", {}).get("detail", [])
     accuracy = manifest.get("accuracy")
     return {
@@ -631,12 +636,12 @@ def _warnings_section(files: _ResultFiles) -> dict | None:
     imputed = manifest.get("n_missing_imputed") or 0
     if imputed:
         items.append(f"{counted(int(imputed), 'missing cell')} {agree(int(imputed), 'was', 'were')} filled with "
-                     "their feature's mean before the fit.")
+                     "the feature mean before the fit.")
     technical = []
     if files.cards and files.cards.get("records"):
         for record in files.cards["records"]:
             if record.get("section") == "warning" and isinstance(record.get("text"), str):
-                technical.append(f"{record.get('axis')}: {record['text']}.")
+                technical.append(f"{record['text']}.")
         for record in files.cards["records"]:
             if record.get("section") == "annotation_use" and record.get("used") is False:
                 text = record.get("text") or "not analysed"
