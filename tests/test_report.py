@@ -323,28 +323,59 @@ const __consoleError = console.error;
 console.error = function (...a) { window.__errors.push(a.join(' ')); __consoleError.apply(console, a); };
 </script>"""
 _PROBE_TAIL = """<script>
+function __walk(node, visit, chart) {
+  if (node.nodeType === 1) {
+    chart = node.getAttribute('data-chart') || chart;
+    visit(node, chart);
+    if (node.shadowRoot) { __walk(node.shadowRoot, visit, chart); }
+  }
+  for (const child of node.children || []) { __walk(child, visit, chart); }
+}
 setTimeout(function () {
   const counts = {};
-  function walk(node, chart) {
-    if (node.nodeType === 1) {
-      const name = node.getAttribute('data-chart') || chart;
-      const tag = node.tagName.toLowerCase();
-      if (name && (tag === 'canvas' || tag === 'svg')) {
-        counts[name] = counts[name] || {canvas: 0, svg: 0, pixels: 0};
-        counts[name][tag] += 1;
-        if (tag === 'canvas') { counts[name].pixels += node.width * node.height; }
-      }
-      if (node.shadowRoot) { walk(node.shadowRoot, name); }
-      for (const child of node.children) { walk(child, name); }
-      return;
+  __walk(document.body, function (node, chart) {
+    const tag = node.tagName.toLowerCase();
+    if (chart && (tag === 'canvas' || tag === 'svg')) {
+      counts[chart] = counts[chart] || {canvas: 0, svg: 0, pixels: 0};
+      counts[chart][tag] += 1;
+      if (tag === 'canvas') { counts[chart].pixels += node.width * node.height; }
     }
-    for (const child of node.children || []) { walk(child, chart); }
-  }
-  walk(document.body, null);
+  }, null);
   document.documentElement.setAttribute('data-drawn', JSON.stringify(counts));
-  document.documentElement.setAttribute('data-errors', JSON.stringify(window.__errors));
+  // hover the sample whose id is HOVER_ID, as a mouse would, and switch the colouring
+  const probe = {};
+  try {
+    const doc = Bokeh.documents[0];
+    const source = doc.get_model_by_name('sample-points');
+    const view = Bokeh.index.find_one(doc.get_model_by_name('samples')).parent;
+    const i = Array.from(source.data.sample_id).indexOf(HOVER_ID);
+    const events = view.canvas_view.events_el;
+    const box = events.getBoundingClientRect();
+    const x = box.left + view.frame.x_scale.compute(source.data.PC1[i]);
+    const y = box.top + view.frame.y_scale.compute(source.data.PC2[i]);
+    for (const type of ['pointerenter', 'pointerover', 'pointermove']) {
+      events.dispatchEvent(new PointerEvent(type, {clientX: x, clientY: y, bubbles: true, composed: true,
+                                                   pointerType: 'mouse', isPrimary: true}));
+    }
+    const select = Array.from(doc.all_models).find(m => m.constructor.__name__ === 'Select' && m.title === 'Colour by');
+    const glyph = doc.get_model_by_name('samples').glyph;
+    probe.colour_before = glyph.fill_color.field;
+    select.value = String(select.options.findIndex(o => o[1] === 'batch'));
+    probe.glyph = glyph;
+  } catch (e) { window.__errors.push('probe: ' + e); }
+  setTimeout(function () {
+    if (probe.glyph) { probe.colour_after = probe.glyph.fill_color.field; delete probe.glyph; }
+    const tips = [];
+    __walk(document.body, function (node) {
+      if (String(node.className || '').includes('tooltip') && node.textContent.trim()) { tips.push(node.textContent); }
+    }, null);
+    probe.tooltips = tips;
+    document.documentElement.setAttribute('data-probe', JSON.stringify(probe));
+    document.documentElement.setAttribute('data-errors', JSON.stringify(window.__errors));
+  }, 500);
 }, 4000);
 </script>"""
+HOVER_ID = "a&b"
 
 
 def _chromium() -> str | None:
@@ -358,7 +389,8 @@ def test_report_renders_in_a_real_browser(full_html, tmp_path):
     html = full_html.read_text(encoding="utf-8")
     probe = tmp_path / "probe.html"
     head, tail = html.replace("<head>", "<head>" + _PROBE_HEAD, 1).rsplit("</body>", 1)
-    probe.write_text(head + _PROBE_TAIL + "</body>" + tail, encoding="utf-8")
+    probe.write_text(head + _PROBE_TAIL.replace("HOVER_ID", json.dumps(HOVER_ID)) + "</body>" + tail,
+                     encoding="utf-8")
     base = [_chromium(), "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
             "--disable-background-networking", "--disable-component-update", "--disable-sync",
             "--host-resolver-rules=MAP * ~NOTFOUND", "--enable-logging=stderr", "--v=0",
@@ -382,6 +414,11 @@ def test_report_renders_in_a_real_browser(full_html, tmp_path):
     assert errors == []
     for chart in ("variance", "sample_map", "feature_map", "diagnostics"):
         assert chart in drawn and drawn[chart]["canvas"] >= 1 and drawn[chart]["pixels"] > 10_000, drawn
+    # hovering a point names the sample and shows its annotations, as text; the colouring switches
+    probe = json.loads(_attribute(root, "data-probe"))
+    tip = " ".join(" ".join(probe["tooltips"]).split())
+    assert "sample: a&b" in tip and "tissue: <i>liver</i>" in tip and "batch: b2" in tip, probe
+    assert (probe["colour_before"], probe["colour_after"]) == ("annotation_0", "annotation_1")  # tissue, then batch
     # the rendered DOM still holds the report's own text, escaped ids included
     assert "Before reading further" in dump.stdout and "a&amp;b" in dump.stdout
 

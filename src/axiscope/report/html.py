@@ -242,6 +242,7 @@ def _context(files: _ResultFiles, *, annotations: Path | None, id_column: str) -
         "run": _run_section(manifest),
         "variance": _variance_section(files, charts),
         "axes": _axes_section(files.cards),
+        "annotation_notes": _annotation_notes(files.cards),
         "maps": _maps_section(files, charts, annotations=annotations, id_column=id_column),
         "groups": _groups_section(files.groups),
         "scoring": _scoring_section(files, charts),
@@ -416,6 +417,17 @@ def _axes_section(cards: dict | None) -> list[dict] | None:
     by_axis = {str(axis): rows for axis, rows in records.groupby("axis", sort=False)}
     return [_card(str(axis), by_axis.get(str(axis), records.iloc[:0]), alpha=alpha, annotated=annotated)
             for axis in cards.get("axes", [])]
+
+
+def _annotation_notes(cards: dict | None) -> list[dict]:
+    """How each annotation column was treated, from the ``annotation_use`` records."""
+    notes = []
+    for record in (cards or {}).get("records", []):
+        if record.get("section") == "annotation_use":
+            treated = record.get("treated_as") if record.get("used") is not False else "not used"
+            notes.append({"annotation": str(record.get("annotation")), "treated_as": str(treated or "—"),
+                          "technical": bool(record.get("technical")), "text": str(record.get("text") or "")})
+    return notes
 
 
 def _part(rows: pd.DataFrame, section: str, side: str | None = None) -> pd.DataFrame:
