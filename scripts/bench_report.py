@@ -91,8 +91,9 @@ print(time.perf_counter() - start)
 
 def build(result: Path, out: Path) -> tuple[float, float]:
     start = time.perf_counter()
-    child = subprocess.run([sys.executable, "-c", _BUILD, str(result), str(out)], check=True,
-                           capture_output=True, text=True)
+    child = subprocess.run([sys.executable, "-c", _BUILD, str(result), str(out)], capture_output=True, text=True)
+    if child.returncode:
+        raise SystemExit(f"building the report failed:\n{child.stderr}")
     return float(child.stdout.strip().splitlines()[-1]), time.perf_counter() - start
 
 
