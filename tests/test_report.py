@@ -429,3 +429,15 @@ def _attribute(tag: str, name: str) -> str:
     match = re.search(rf'{name}="([^"]*)"', tag)
     assert match, f"{name} missing: the probe did not run"
     return html.unescape(match.group(1))
+
+
+def test_annotations_missing_for_some_samples(full, tmp_path):
+    table = pd.read_csv(full / "ann.tsv", sep="\t", dtype=str, keep_default_na=False)
+    table.iloc[10:17].to_csv(tmp_path / "few.tsv", sep="\t", index=False)  # rows of 7 samples only
+    page = _parse(build_report(full / "res", annotations=tmp_path / "few.tsv", out=tmp_path / "r.html"))
+    text = " ".join(" ".join(page.text).split())
+    assert f"{N - 7} samples have no row there" in text
+    chart_data = next(s for s in page.scripts if "sample-points" in s)
+    tissue = re.search(r'\["annotation_0",\{"type":"ndarray","array":\[(.*?)\]', chart_data).group(1)
+    values = json.loads(f"[{tissue}]")
+    assert values.count("") == N - 7 and "nan" not in values  # missing rows hover as empty, never "nan"

@@ -267,7 +267,8 @@ def sample_map(scores: pd.DataFrame, axes: Sequence[str], *, ratios: Mapping[str
                                  title_text_font=FONT, title_text_font_style="normal")
                 colourings.append(Colouring(str(name), key, mapper, guide))
             else:
-                text = np.array(["" if c is None else str(c) for c in cells], dtype=object)
+                text = np.array(["" if c is None or (isinstance(c, float) and c != c) else str(c) for c in cells],
+                                dtype=object)
                 data[key] = text
                 colourings.append(_categorical_colouring(str(name), key, text))
             tooltips.append((str(name), f"@{key}"))
