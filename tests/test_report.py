@@ -372,6 +372,9 @@ setTimeout(function () {
     probe.tooltips = tips;
     document.documentElement.setAttribute('data-probe', JSON.stringify(probe));
     document.documentElement.setAttribute('data-errors', JSON.stringify(window.__errors));
+    // every resource the page asked for, loaded or failed (resource timing lists both)
+    const asked = performance.getEntriesByType('resource').map(e => e.name);
+    document.documentElement.setAttribute('data-resources', JSON.stringify(asked));
   }, 500);
 }, 4000);
 </script>"""
@@ -412,6 +415,8 @@ def test_report_renders_in_a_real_browser(full_html, tmp_path):
     drawn = json.loads(_attribute(root, "data-drawn"))
     errors = json.loads(_attribute(root, "data-errors"))
     assert errors == []
+    asked = json.loads(_attribute(root, "data-resources"))
+    assert [url for url in asked if not url.startswith(("data:", "blob:"))] == []  # nothing fetched
     for chart in ("variance", "sample_map", "feature_map", "diagnostics"):
         assert chart in drawn and drawn[chart]["canvas"] >= 1 and drawn[chart]["pixels"] > 10_000, drawn
     # hovering a point names the sample and shows its annotations, as text; the colouring switches
