@@ -7,7 +7,7 @@ same result gives the same picture) and says so; the tables and statistics keep 
 
 Why Bokeh: its inline resources put the whole library into the file (about 1.7 MB with the
 widgets), so the report opens with no network; it sends numeric columns as base64 binary
-arrays, so 100,000 points cost about 40 % of the size of the same data as JSON text; and it
+arrays, so 100,000 points cost less than half of what the same data cost as JSON text; and it
 draws on a canvas, which stays responsive with 100,000 points in a headless browser
 without WebGL. Its static export needs a browser, so the static figures are matplotlib's.
 """
@@ -216,7 +216,6 @@ def sample_map(scores: pd.DataFrame, axes: Sequence[str], *, ratios: Mapping[str
     """
     from bokeh.layouts import column, row
     from bokeh.models import (
-        CategoricalColorMapper,
         ColorBar,
         ColumnDataSource,
         CustomJS,
