@@ -118,7 +118,7 @@ def _render(context: dict) -> str:
 
 def _write_atomically(text: str, target: Path) -> None:
     if not target.parent.is_dir():
-        raise InputError(f"{target.parent}: no such folder for the report; create it or choose another out")
+        raise InputError(f"{target.parent}: no such folder for the report; create it first")
     handle = tempfile.NamedTemporaryFile("w", encoding="utf-8", dir=target.parent, prefix=f".{target.name}.",
                                          suffix=".tmp", delete=False)
     try:
