@@ -9,8 +9,7 @@ from __future__ import annotations
 import sys
 
 # Importing the command modules registers their commands on the app.
-# explain_cmd before figures_cmd: commands not in COMMAND_ORDER are listed in the order they register.
-from . import demo_cmd, explain_cmd, figures_cmd, fit_cmd, inspect_cmd, score_cmd  # noqa: E402,F401
+from . import demo_cmd, explain_cmd, figures_cmd, fit_cmd, inspect_cmd, report_cmd, score_cmd  # noqa: E402,F401
 from ._app import app, main
 
 __all__ = ["app", "main"]

@@ -22,10 +22,11 @@ __all__ = ["app", "main", "fail", "say", "setup_logging", "progress_display", "u
            "to_option_spellings", "COMMAND_ORDER"]
 
 #: The commands in the order of the work. A command not named here (the explanation of
-#: the axes, then the figures, and any stage added later) is listed after ``fit`` and
-#: before ``score``, in the order the commands register (``cli/__init__.py``).
+#: the axes, and any stage added later) is listed after ``fit`` and before ``score``,
+#: in the order of :data:`_AFTER_FIT`, then in the order they were registered.
 COMMAND_ORDER = ("inspect", "fit", "score", "demo", "simulate")
 _UNLISTED_AFTER = "fit"
+_AFTER_FIT = ("explain", "figures", "report")
 
 _HELP = "Principal component analysis of large, wide numeric tables, out of core."
 
@@ -34,9 +35,15 @@ class _CommandList(TyperGroup):
     """Lists commands in the order of the work, each with its whole first sentence."""
 
     def list_commands(self, ctx: Any) -> list[str]:
-        after = COMMAND_ORDER.index(_UNLISTED_AFTER) + 0.5
+        after = COMMAND_ORDER.index(_UNLISTED_AFTER)
         names = list(self.commands)
-        return sorted(names, key=lambda name: COMMAND_ORDER.index(name) if name in COMMAND_ORDER else after)
+
+        def position(name: str) -> tuple[float, int]:
+            if name in COMMAND_ORDER:
+                return COMMAND_ORDER.index(name), 0
+            return after + 0.5, _AFTER_FIT.index(name) if name in _AFTER_FIT else len(_AFTER_FIT)
+
+        return sorted(names, key=position)
 
     def format_commands(self, ctx: Any, formatter: Any) -> None:
         # A command's short_help, or its help up to the end of the first sentence; never

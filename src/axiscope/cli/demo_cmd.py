@@ -26,7 +26,7 @@ def demo_command(
     overwrite: Overwrite = False,
     quiet: Quiet = False,
 ) -> None:
-    """Simulate a synthetic RNA-sequencing cohort, fit it, explain the axes, score a new batch."""
+    """Simulate a synthetic RNA-sequencing cohort, fit it, explain the axes, score a new batch, draw it all."""
     import pandas as pd
 
     from ..core.options import Resources
@@ -35,6 +35,8 @@ def demo_command(
     from ..explain.cards import explain_axes
     from ..fitting.run import fit
     from ..io.output import atomic_directory, check_target
+    from ..report.figures import write_figures
+    from ..report.html import build_report
     from ..scoring.score import score
 
     setup_logging(quiet)
@@ -58,6 +60,12 @@ def demo_command(
                 scored = score(tmp / "fit" / "model", data["new"], threads=threads, progress=progress)
                 scored.manifest = relocated(scored.manifest, tmp, out)
                 scored.write(tmp / "score", parquet=parquet, command_line=sys.argv)
+                # pictures: every sample's annotations, reference and new batch together
+                annotations = pd.concat([pd.read_csv(data[name], sep="\t", dtype={"sample_id": str})
+                                         for name in ("reference_annotations", "new_annotations")])
+                write_figures(tmp / "fit", annotations=annotations, diagnostics_dir=tmp / "score")
+                build_report(tmp / "fit", annotations=annotations, scores_dir=tmp / "score",
+                             out=tmp / "report.html")
             corrupted = pd.read_csv(data["new_annotations"], sep="\t")["corrupted"].to_numpy(dtype=bool)
     print_fit_summary(result, out / "fit", quiet)
     for axis in cards.axis_names[:3]:
@@ -74,6 +82,7 @@ def demo_command(
         f"results in {out / 'score'}",
         quiet,
     )
+    say(f"figures in {out / 'fit' / 'figures'}; report in {out / 'report.html'} (opens offline)", quiet)
     say(f"demo data in {out / 'data'}; {time.perf_counter() - t0:.1f} s in all", quiet)
 
 

@@ -103,6 +103,9 @@ def fit_command(
     supplementary_features: Annotated[Path | None, typer.Option(help="Text file with one feature id per line: left out of the axes and reported as supplementary.")] = None,
     supplementary_samples_column: Annotated[str | None, typer.Option(help="true/false annotation column: true rows are left out of the fit and projected afterwards.")] = None,
     allow_missing: AllowMissing = False,
+    report: Annotated[bool, typer.Option(
+        "--report", help="Also write report.html into --out: one self-contained page with the maps, the axis "
+                         "cards and the warnings (see 'axiscope report').")] = False,
     overwrite: Overwrite = False,
     quiet: Quiet = False,
 ) -> None:
@@ -144,8 +147,14 @@ def fit_command(
         with atomic_directory(out, overwrite=overwrite) as tmp:
             result.write(tmp, top=top, parquet=format is TableFormat.parquet, command_line=sys.argv)
             cards.write(tmp, parquet=format is TableFormat.parquet)
+            if report:
+                from ..report.html import build_report
+
+                build_report(tmp, annotations=annotations, id_column=id_column)
     print_fit_summary(result, out, quiet)
     print_axis_readings(cards, quiet)
+    if report:
+        say(f"  report in {out / 'report.html'}", quiet)
 
 
 def print_fit_summary(result, out: Path, quiet: bool) -> None:

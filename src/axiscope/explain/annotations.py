@@ -78,13 +78,14 @@ def split_names(values: Iterable[str] | str | None) -> list[str]:
 # --------------------------------------------------------------------------- reading
 
 
-def read_annotations(path: str | Path, *, id_column: str = "sample_id") -> pd.DataFrame:
+def read_annotations(path: str | Path | pd.DataFrame, *, id_column: str = "sample_id") -> pd.DataFrame:
     """Read a tab-separated annotation table as text, one row per sample.
 
     Parameters
     ----------
-    path : path
-        Tab-separated file with a header line.
+    path : path or DataFrame
+        Tab-separated file with a header line (or a table already read, with an
+        ``id_column`` column or index).
     id_column : str, default="sample_id"
         Column holding the sample ids; must exist, be complete and unique.
 
@@ -94,6 +95,8 @@ def read_annotations(path: str | Path, *, id_column: str = "sample_id") -> pd.Da
         All cells as ``str`` (missing cells as ``None``), indexed by sample id; the id
         column itself is removed.
     """
+    if isinstance(path, pd.DataFrame):  # a caller's table, put in the same form
+        return _frame_as_text(path, id_column, "annotations")
     path = Path(path)
     if not path.is_file():
         raise InputError(f"{path}: no such annotation file; check annotations")

@@ -1,14 +1,15 @@
-"""Figures of a fit and of a scoring run (and, beside them, the report).
+"""Pictures of a fit: static figures (:mod:`.figures`, look in :mod:`.style`) and the
+self-contained, interactive HTML report (:mod:`.html`, charts in :mod:`.interactive`).
 
-:func:`write_figures` is re-exported lazily, so that importing this package loads no
-numerical library until a figure is asked for.
+:func:`write_figures` and :func:`build_report` are re-exported lazily, so that importing this
+package loads no numerical library until a picture is asked for.
 """
 
 from __future__ import annotations
 
 from typing import Any
 
-__all__ = ["write_figures"]
+__all__ = ["write_figures", "build_report"]
 
 
 def __getattr__(name: str) -> Any:
@@ -16,4 +17,8 @@ def __getattr__(name: str) -> Any:
         from .figures import write_figures
 
         return write_figures
+    if name == "build_report":
+        from .html import build_report
+
+        return build_report
     raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
