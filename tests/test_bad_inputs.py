@@ -1,0 +1,96 @@
+"""Every case of the corpus of malformed and tricky inputs (``tests/bad_inputs``), through the CLI.
+
+For each case: the exit code; for an error, exactly one line on standard error that starts
+with ``error:`` and holds the case's fragment, no traceback and no Python warning; for a
+valid input, the case's own check of the result; and in every case nothing left behind
+(no output folder, no hidden temporary folder beside it, no new file anywhere in the
+case's folder, nothing in a private temporary folder given to the run).
+
+Cases fixed on another branch are marked ``xfail(strict=True)`` with that branch as the
+reason: they must fail here, and the mark goes when the branch is merged. Cases that
+would run for minutes before the fix (a never-written 10⁷ × 10⁶ dataset read as fill
+values) are not run until then (``run=False``).
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+import warnings
+from pathlib import Path
+
+import pytest
+
+from bad_inputs import CASES, Case
+
+#: Cases not run before their fix (they take minutes or hours today).
+SLOW_BEFORE_FIX = {"h5_never_written_huge"}
+
+
+def _param(case: Case):
+    marks = []
+    if case.owner is not None:
+        marks.append(pytest.mark.xfail(strict=True, reason=f"fixed on branch {case.owner}",
+                                       run=case.name not in SLOW_BEFORE_FIX))
+    if case.needs_non_root:
+        marks.append(pytest.mark.skipif(hasattr(os, "geteuid") and os.geteuid() == 0,
+                                        reason="root reads and writes regardless of permissions"))
+    return pytest.param(case, id=case.name, marks=marks)
+
+
+def _tree(folder: Path) -> set[str]:
+    return {str(p.relative_to(folder)) for p in folder.rglob("*")}
+
+
+def _unlock(folder: Path) -> None:
+    """Give back permissions that a case took away, so that pytest can clean up."""
+    for path in [folder, *folder.rglob("*")]:
+        try:
+            path.chmod(0o755 if path.is_dir() else 0o644)
+        except OSError:
+            pass
+
+
+def test_corpus_is_large_and_covers_every_kind():
+    kinds = {case.kind for case in CASES}
+    assert kinds == {"text", "hdf5", "zarr", "npy", "model", "option"}
+    assert len(CASES) >= 60
+
+
+@pytest.mark.parametrize("case", [_param(c) for c in CASES])
+def test_bad_input(case: Case, tmp_path, monkeypatch, capsys):
+    from axiscope.cli._app import main
+
+    work = tmp_path / "case"
+    work.mkdir()
+    private_tmp = tmp_path / "private_tmp"
+    private_tmp.mkdir()
+    monkeypatch.setenv("TMPDIR", str(private_tmp))
+    monkeypatch.setattr(tempfile, "tempdir", str(private_tmp))
+    try:
+        argv = case.build(work)
+        out = Path(argv[argv.index("--out") + 1]) if "--out" in argv else work / "out"
+        if "--out" not in argv:
+            argv = [*argv, "--out", str(out)]
+        before = _tree(work)
+        capsys.readouterr()
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            code = main(argv)  # an exception escaping here is a traceback for the user
+        captured = capsys.readouterr()
+        after = _tree(work)
+    finally:
+        _unlock(work)
+    assert code == case.code, f"exit code {code}, stderr: {captured.err!r}"
+    assert "Traceback" not in captured.err + captured.out
+    assert not [str(w.message) for w in caught], "Python warnings were shown"
+    assert not list(private_tmp.iterdir()), "files left in the temporary folder"
+    if case.code == 0:
+        assert after - before == {str(out.relative_to(work))} | {
+            str(p.relative_to(work)) for p in out.rglob("*")}, "files other than the output"
+        case.check(out)
+        return
+    lines = captured.err.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("error: "), captured.err
+    assert case.fragment in lines[0], lines[0]
+    assert after == before, f"left behind: {sorted(after ^ before)}"
