@@ -94,3 +94,52 @@ def test_bad_input(case: Case, tmp_path, monkeypatch, capsys):
     assert len(lines) == 1 and lines[0].startswith("error: "), captured.err
     assert case.fragment in lines[0], lines[0]
     assert after == before, f"left behind: {sorted(after ^ before)}"
+
+
+# ----------------------------------------------------------- the same rules in the Python API
+
+_NAN, _INF = float("nan"), float("inf")
+
+
+def _options():
+    from axiscope import PreprocessSpec
+    from axiscope.core.options import EngineSettings, Resources
+
+    return [
+        ("counts_per_inf", lambda: PreprocessSpec(counts_per=_INF), r"^counts_per=inf is not a finite number"),
+        ("counts_per_nan", lambda: PreprocessSpec(counts_per=_NAN), r"^counts_per=nan is not a finite number"),
+        ("counts_per_huge_int", lambda: PreprocessSpec(counts_per=10**400), r"is not a finite number"),
+        ("min_variance_nan", lambda: PreprocessSpec(min_variance=_NAN), r"^min_variance=nan is not a finite"),
+        ("min_variance_inf", lambda: PreprocessSpec(min_variance=_INF), r"^min_variance=inf is not a finite"),
+        ("top_variable_float", lambda: PreprocessSpec(top_variable=5.0), r"^top_variable=5\.0 is not a whole"),
+        ("tol_nan", lambda: EngineSettings(tol=_NAN), r"^tol=nan is not a number between 0 and 1"),
+        ("tol_inf", lambda: EngineSettings(tol=_INF), r"^tol=inf is not a number between 0 and 1"),
+        ("seed_negative", lambda: EngineSettings(seed=-1), r"^seed=-1 is not a whole number >= 0"),
+        ("seed_float", lambda: EngineSettings(seed=1.5), r"^seed=1\.5 is not a whole number"),
+        ("memory_limit_inf", lambda: Resources(memory_limit=_INF), r"^memory_limit=inf is not a finite size"),
+        ("memory_limit_nan", lambda: Resources(memory_limit=_NAN), r"^memory_limit=nan is not a finite size"),
+        ("memory_limit_1e400", lambda: Resources(memory_limit="1e400"), r"^memory_limit='1e400' is not a finite"),
+    ]
+
+
+@pytest.mark.parametrize("name", [name for name, _, _ in _options()])
+def test_option_objects_refuse_non_finite_values_without_warnings(name):
+    from axiscope.errors import OptionError
+
+    _, make, message = next(option for option in _options() if option[0] == name)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # a Python warning before the refusal fails the test
+        with pytest.raises(OptionError, match=message):
+            make()
+
+
+@pytest.mark.parametrize("value", [_NAN, _INF, 1.0, 0.5])
+def test_score_refuses_confidence_outside_the_open_interval(value, tmp_path):
+    from bad_inputs import fit_model
+
+    from axiscope.errors import OptionError
+    from axiscope.scoring.score import score
+
+    model, new = fit_model(tmp_path)
+    with pytest.raises(OptionError, match=r"^confidence=\S+ is out of range"):
+        score(model, new, confidence=value, threads=1)
