@@ -3,6 +3,13 @@
 On disk a model is a directory with ``model.json`` (format name and version, settings,
 scalars, and a SHA-256 checksum of every array file) and one ``.npy`` file per array,
 read with ``allow_pickle=False``: loading a model never executes code.
+
+Loading verifies, in this order, the format and version, the checksums (of the
+description and of every array), that every array is a plain ``.npy`` array of the
+expected kind and shape, and the numbers themselves (:func:`check_numbers`): a model
+edited with its checksums recomputed is still refused when its numbers cannot have come
+from a fit (NaN, non-orthonormal components, non-positive variances, fewer than two
+samples), since it would otherwise score every new sample silently wrong.
 """
 
 from __future__ import annotations
@@ -17,7 +24,7 @@ import numpy as np
 from ..core.preprocess import PreprocessSpec
 from ..errors import AxiscopeError, ModelError, agree, counted, reason
 
-__all__ = ["Model", "MODEL_FORMAT", "MODEL_VERSION", "load_model"]
+__all__ = ["Model", "MODEL_FORMAT", "MODEL_VERSION", "load_model", "check_numbers", "orthonormality_tolerance"]
 
 MODEL_FORMAT = "axiscope-model"
 #: Version 2: preprocessing settings ``log_transform``, ``counts_per`` and
@@ -121,7 +128,14 @@ class Model:
 
 
 def load_model(directory: Path) -> Model:
-    """Read a model directory written by :meth:`Model.save`, verifying format and checksums."""
+    """Read a model directory written by :meth:`Model.save`, verifying format, checksums and numbers.
+
+    Raises
+    ------
+    ModelError
+        One line naming the file and the fault, for a missing, damaged, tampered or
+        foreign model, or one whose numbers fail :func:`check_numbers`.
+    """
     directory = Path(directory)
     meta_path = directory / "model.json"
     if not directory.is_dir():
@@ -151,7 +165,7 @@ def load_model(directory: Path) -> Model:
     if not _is_str_map(checksums):
         raise ModelError(f"{meta_path}: 'checksums' is not a mapping of file names to checksums; "
                          "the model was modified or damaged, refit or restore it")
-    if not (isinstance(extra_names, list) and all(isinstance(n, str) for n in extra_names)):
+    if not (isinstance(extra_names, list) and all(isinstance(n, str) and n.isidentifier() for n in extra_names)):
         raise ModelError(f"{meta_path}: 'extras' is not a list of array names; the model was modified "
                          "or damaged, refit or restore it")
     arrays = {}
