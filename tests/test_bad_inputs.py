@@ -7,9 +7,7 @@ valid input, the case's own check of the result; and in every case nothing left 
 case's folder, nothing in a private temporary folder given to the run).
 
 Cases fixed on another branch are marked ``xfail(strict=True)`` with that branch as the
-reason: they must fail here, and the mark goes when the branch is merged. Cases that
-would run for minutes before the fix (a never-written 10⁷ × 10⁶ dataset read as fill
-values) are not run until then (``run=False``).
+reason: they must fail here, and the mark goes when the branch is merged.
 """
 
 from __future__ import annotations
@@ -23,15 +21,10 @@ import pytest
 
 from bad_inputs import CASES, Case
 
-#: Cases not run before their fix (they take minutes or hours today).
-SLOW_BEFORE_FIX = {"h5_never_written_huge"}
-
-
 def _param(case: Case):
     marks = []
     if case.owner is not None:
-        marks.append(pytest.mark.xfail(strict=True, reason=f"fixed on branch {case.owner}",
-                                       run=case.name not in SLOW_BEFORE_FIX))
+        marks.append(pytest.mark.xfail(strict=True, reason=f"fixed on branch {case.owner}"))
     if case.needs_non_root:
         marks.append(pytest.mark.skipif(hasattr(os, "geteuid") and os.geteuid() == 0,
                                         reason="root reads and writes regardless of permissions"))
@@ -91,8 +84,10 @@ def test_bad_input(case: Case, tmp_path, monkeypatch, capsys):
         case.check(out)
         return
     lines = captured.err.strip().splitlines()
-    assert len(lines) == 1 and lines[0].startswith("error: "), captured.err
-    assert case.fragment in lines[0], lines[0]
+    assert len(lines) == 1 + case.warnings, captured.err
+    assert all(line.startswith("warning: ") for line in lines[:-1]), captured.err
+    assert lines[-1].startswith("error: "), captured.err
+    assert case.fragment in lines[-1], lines[-1]
     assert after == before, f"left behind: {sorted(after ^ before)}"
 
 

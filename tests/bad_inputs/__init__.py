@@ -53,6 +53,9 @@ class Case:
         ``check(out_folder)`` for ``code == 0``: asserts that the result is right.
     needs_non_root : bool
         Permission cases: root reads and writes everywhere, so they are skipped as root.
+    warnings : int
+        Lines starting with ``warning:`` expected before the error line (an option that
+        accepts damage reports what it accepted).
     """
 
     name: str
@@ -63,6 +66,7 @@ class Case:
     owner: str | None = None
     check: Callable[[Path], None] | None = None
     needs_non_root: bool = False
+    warnings: int = 0
 
 
 def good_matrix(n: int = 40, p: int = 12, seed: int = 0) -> np.ndarray:
