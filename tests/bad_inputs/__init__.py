@@ -11,7 +11,8 @@ in the private temporary folder).
 Cases whose fix belongs to another branch carry ``owner`` (``"h-inputs"``: readers and
 integrity; ``"h-process"``: process safety, locks, resource limits); they are expected to
 fail here until that branch is merged (``xfail(strict=True)``), after which the mark is
-removed. The expected outcome of those cases is the one issue 10 states.
+removed. ``"open"`` marks faults that no branch fixes yet. The expected outcome of those
+cases is the one issue 10 states.
 
 Modules: :mod:`.text`, :mod:`.hdf5`, :mod:`.zarr_cases`, :mod:`.npy`, :mod:`.models`,
 :mod:`.options`. The matrices are invented (random numbers); none encodes a truth a test
@@ -48,7 +49,8 @@ class Case:
     fragment : str
         A piece of the single error line (for ``code != 0``).
     owner : str or None
-        Branch that fixes the case (then expected to fail until merged), or None.
+        Branch that fixes the case (then expected to fail until merged), ``"open"`` for a
+        fault no branch fixes yet, or None.
     check : callable or None
         ``check(out_folder)`` for ``code == 0``: asserts that the result is right.
     needs_non_root : bool
