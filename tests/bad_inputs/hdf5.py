@@ -182,5 +182,5 @@ CASES = [
     # absent chunks accepted, and counted in a warning line, to reach the budget check)
     Case("h5_never_written_huge", "hdf5",
          _h5("huge_unwritten.h5", _never_written, "--memory-limit", "1GB", "--allow-missing-chunks"), 3,
-         "--memory-limit", owner="open", warnings=1),  # h-process: exit 2 (an option error) today
+         "--memory-limit", owner="h-process", warnings=1),
 ]

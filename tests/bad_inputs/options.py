@@ -133,9 +133,8 @@ CASES = [
     Case("option_score_confidence_one", "option", _score_with("--confidence", "1"), 2, "--confidence 1"),
     Case("option_score_missing_fraction_nan", "option", _score_with("--max-missing-fraction", "nan"), 2,
          "--max-missing-fraction"),
-    # score passes memory_limit to the projection without the option object's check
     Case("option_score_memory_limit_1e400", "option", _score_with("--memory-limit", "1e400"), 2,
-         "--memory-limit", owner="open"),
+         "--memory-limit", owner="h-process"),
     Case("input_missing", "option", _missing_input, 2, "absent.npy"),
     Case("input_unknown_suffix", "option", _unknown_suffix, 2, "matrix.xyz"),
     Case("input_unreadable", "option", _unreadable, 2, "locked.npy", needs_non_root=True),
