@@ -143,7 +143,7 @@ CASES = [
          check=_kept_every_feature, owner="h-inputs"),
     Case("npy_float32_far_from_zero_randomized", "npy",
          _npy("offset.npy", _far_from_zero, "--method", "randomized"), 0, check=_scores_match_float64_lapack,
-         owner="h-inputs"),
+         owner="h-process"),
     Case("npy_dosage_scaling_of_non_dosages", "npy",
          _npy("dosages.npy", _dosages_with_other_values, "--scale", "allele-frequency"), 2, "dosages.npy",
          owner="open"),  # refused on h-inputs, but the line names neither the file nor the feature
