@@ -169,10 +169,12 @@ def test_flagged_fraction_is_calibrated_on_samples_from_the_model_distribution(c
     d = res.diagnostics
     assert len(d) >= 4000
     lim = res.limits[0.95]
-    # reference: definition of a 95% limit; tolerance ±2 points from the issue
-    # (SD of the flagged share: 0.34 points)
-    assert abs(np.mean(d["t2"] > lim.t2) - 0.05) <= 0.02
-    assert abs(np.mean(d["q"] > lim.q) - 0.05) <= 0.02
+    # reference: definition of a 95% limit; the share beyond it is binomial with SD
+    # sqrt(0.05·0.95/4000) = 0.0034 (scipy.stats.binom), tolerance 3 SD = ±0.011
+    sd = stats.binom(len(d), 0.05).std() / len(d)
+    assert sd == pytest.approx(0.00345, abs=1e-5)
+    assert abs(np.mean(d["t2"] > lim.t2) - 0.05) <= 3 * sd
+    assert abs(np.mean(d["q"] > lim.q) - 0.05) <= 3 * sd
     # at the default 0.99 the flags are rare (expected 2% for either limit, 1% each)
     assert np.mean(d["flag"] != "within") <= 0.04
 
@@ -402,12 +404,45 @@ def test_model_stores_what_the_limits_need(cli_setup):
     np.testing.assert_allclose(theta[1:], [stats.moment(q, 2) / 2, stats.moment(q, 3) / 8], rtol=1e-6)
 
 
+@pytest.mark.parametrize("n", [12, 40])
+def test_q_offset_for_estimated_scales_is_the_inverse_chi_square_mean(n):
+    # residual_excess (scoring/score.py) adds, under unit scaling, θ1·(E[σ²/s²] − 1) for the
+    # scales estimated from n training samples: s² = σ²·χ²_{n−1}/(n−1), so
+    # E[σ²/s²] = (n−1)·E[1/χ²_{n−1}] = (n−1)/(n−3), an excess of 2θ1/(n−3). Reference for E[1/χ²_ν]: numerical
+    # integration with scipy.stats.chi2(ν).expect, independent of the closed form; the
+    # other two terms are written from the docstring's formula. With n − 1 written for
+    # n − 3 the offset moves by 2θ1·(1/(n−3) − 1/(n−1)), 4% of θ1 at n = 12.
+    from axiscope.scoring.score import residual_excess
+
+    rng = np.random.default_rng(n)
+    X = rng.standard_normal((n, 8)) @ np.diag(np.linspace(3, 1, 8)) + 5.0
+    unit = fit(array_source(X), n_components=2, resources=Resources(threads=1)).model
+    theta1 = float(unit.extras["residual_moments"][0])
+    f = unit.extras["shrinkage_factor"]
+    shrink_and_mean = np.sum(unit.variance * (1 - f**2)) + 2 * theta1 / n
+    inverse_chi2_mean = stats.chi2(n - 1).expect(lambda x: 1 / x)
+    expected = shrink_and_mean + theta1 * ((n - 1) * inverse_chi2_mean - 1)
+    assert residual_excess(unit) == pytest.approx(expected, rel=1e-8)
+    # the check tells the two apart by far more than its tolerance
+    written_with_n_minus_1 = shrink_and_mean + 2 * theta1 / (n - 1)
+    assert written_with_n_minus_1 != pytest.approx(expected, rel=1e-3)
+    # covariance PCA (scale none): no scale was estimated, no such term
+    none = fit(array_source(X), n_components=2, preprocess=PreprocessSpec(scale="none"),
+               resources=Resources(threads=1)).model
+    theta1 = float(none.extras["residual_moments"][0])
+    f = none.extras["shrinkage_factor"]
+    assert residual_excess(none) == pytest.approx(np.sum(none.variance * (1 - f**2)) + 2 * theta1 / n, rel=1e-10)
+
+
 def test_q_calibrated_when_features_far_outnumber_training_samples():
     # Simulation whose truth is planted: new samples drawn from the training distribution
     # (3 spikes + unit noise, 300 training samples × 4,000 features, default unit scaling).
-    # At 0.95 confidence 5% ± 2% of them should exceed the Q limit (issue's calibration
-    # tolerance); this regime needs the offset for axes fitted to the training samples and
-    # for scales estimated from them.
+    # At 0.95 confidence 5% ± 2% of them should exceed the Q limit; this regime needs the
+    # offset for axes fitted to the training samples and for scales estimated from them.
+    # Not ±3 binomial SD (±0.011) as in the test above: given one training set of 300 the
+    # rate varies by more than the binomial spread, and it runs high on average (measured
+    # for training seeds 0–5: Q 0.049–0.078, mean 0.064; T² 0.048–0.064, mean 0.059), a
+    # known shortfall of the limits when features far outnumber samples.
     rng = np.random.default_rng(0)
     n, p, m = 300, 4000, 4000
     spikes = np.array([8.0, 6.0, 4.0])

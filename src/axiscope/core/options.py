@@ -76,8 +76,9 @@ class EngineSettings:
         if q != "auto" and not (_is_int(q) and 0 <= q <= MAX_POWER_ITERATIONS):
             raise OptionError(f"power_iterations={q!r} is not 'auto' or a whole number from 0 to "
                               f"{MAX_POWER_ITERATIONS}; pass one of those")
-        if not (_is_real(self.tol) and 0 < self.tol < 1):
+        if not (_is_real(self.tol) and 0 < self.tol < 1):  # NaN fails both comparisons
             raise OptionError(f"tol={self.tol!r} is not a number between 0 and 1; pass e.g. 1e-6")
+        # numpy's generators take no negative seed: refused here, rather than failing inside numpy
         if not (isinstance(self.seed, np.random.Generator) or (_is_int(self.seed) and self.seed >= 0)):
             raise OptionError(f"seed={self.seed!r} is not a whole number >= 0 or a numpy Generator; pass one")
         if q != "auto":
@@ -126,7 +127,14 @@ class Resources:
                     self.memory_limit, (str, numbers.Real)):
                 raise OptionError(f"memory_limit={self.memory_limit!r} is not a size; write it like 512MB, "
                                   "4GB or 1.5GiB")
-            parse_memory(self.memory_limit)  # raises with the parameter's name
+            if not isinstance(self.memory_limit, str) and not np.isfinite(float(self.memory_limit)):
+                raise OptionError(f"memory_limit={self.memory_limit!r} is not a finite size; write it like "
+                                  "512MB, 4GB or 1.5GiB")
+            try:
+                parse_memory(self.memory_limit)  # raises with the parameter's name
+            except (OverflowError, ValueError) as exc:  # a number too large for a float ("1e400")
+                raise OptionError(f"memory_limit={self.memory_limit!r} is not a finite size; write it like "
+                                  "512MB, 4GB or 1.5GiB") from exc
         if self.threads is not None and not (_is_int(self.threads) and self.threads >= 1):
             raise OptionError(f"threads={self.threads!r} is not a whole number >= 1; pass one")
         if self.scratch is not None:

@@ -80,12 +80,16 @@ class PreprocessSpec:
             raise OptionError(f"scale={self.scale!r} is not one of {_choices(SCALES)}; choose one of them")
         if self.missing not in MISSING:
             raise OptionError(f"missing={self.missing!r} is not one of {_choices(MISSING)}; choose one of them")
-        if self.counts_per is not None and not (_is_real(self.counts_per) and self.counts_per > 0
-                                                and np.isfinite(self.counts_per)):
+        if self.counts_per is not None and _is_real(self.counts_per) and not _is_finite(self.counts_per):
+            raise OptionError(f"counts_per={self.counts_per!r} is not a finite number; "
+                              "pass the total each sample is scaled to (1e6 for counts per million)")
+        if self.counts_per is not None and not (_is_real(self.counts_per) and self.counts_per > 0):
             raise OptionError(f"counts_per={self.counts_per!r} is not a positive number; "
                               "pass the total each sample is scaled to (1e6 for counts per million)")
-        if self.min_variance is not None and not (_is_real(self.min_variance) and self.min_variance >= 0):
-            raise OptionError(f"min_variance={self.min_variance!r} is not a number >= 0; pass one")
+        if self.min_variance is not None and not (_is_real(self.min_variance) and self.min_variance >= 0
+                                                  and _is_finite(self.min_variance)):
+            # NaN would compare False with every variance and keep all features silently
+            raise OptionError(f"min_variance={self.min_variance!r} is not a finite number >= 0; pass one")
         if self.top_variable is not None and not (_is_integer(self.top_variable) and self.top_variable >= 2):
             raise OptionError(f"top_variable={self.top_variable!r} is not a whole number >= 2; pass one")
         # plain Python values, so that the spec is written to JSON as it reads
@@ -122,6 +126,14 @@ def _choices(values: tuple[str, ...]) -> str:
 
 def _is_real(value) -> bool:
     return isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, (bool, np.bool_))
+
+
+def _is_finite(value) -> bool:
+    """Whether a real number is finite (a Python int too large for a float is not)."""
+    try:
+        return bool(np.isfinite(float(value)))
+    except OverflowError:
+        return False
 
 
 def _is_integer(value) -> bool:

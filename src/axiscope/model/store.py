@@ -3,6 +3,13 @@
 On disk a model is a directory with ``model.json`` (format name and version, settings,
 scalars, and a SHA-256 checksum of every array file) and one ``.npy`` file per array,
 read with ``allow_pickle=False``: loading a model never executes code.
+
+Loading verifies, in this order, the format and version, the checksums (of the
+description and of every array), that every array is a plain ``.npy`` array of the
+expected kind and shape, and the numbers themselves (:func:`check_numbers`): a model
+edited with its checksums recomputed is still refused when its numbers cannot have come
+from a fit (NaN, non-orthonormal components, non-positive variances, fewer than two
+samples), since it would otherwise score every new sample silently wrong.
 """
 
 from __future__ import annotations
@@ -15,9 +22,9 @@ from pathlib import Path
 import numpy as np
 
 from ..core.preprocess import PreprocessSpec
-from ..errors import AxiscopeError, ModelError
+from ..errors import AxiscopeError, ModelError, agree, counted, reason
 
-__all__ = ["Model", "MODEL_FORMAT", "MODEL_VERSION", "load_model"]
+__all__ = ["Model", "MODEL_FORMAT", "MODEL_VERSION", "load_model", "check_numbers", "orthonormality_tolerance"]
 
 MODEL_FORMAT = "axiscope-model"
 #: Version 2: preprocessing settings ``log_transform``, ``counts_per`` and
@@ -121,7 +128,14 @@ class Model:
 
 
 def load_model(directory: Path) -> Model:
-    """Read a model directory written by :meth:`Model.save`, verifying format and checksums."""
+    """Read a model directory written by :meth:`Model.save`, verifying format, checksums and numbers.
+
+    Raises
+    ------
+    ModelError
+        One line naming the file and the fault, for a missing, damaged, tampered or
+        foreign model, or one whose numbers fail :func:`check_numbers`.
+    """
     directory = Path(directory)
     meta_path = directory / "model.json"
     if not directory.is_dir():
@@ -147,28 +161,136 @@ def load_model(directory: Path) -> Model:
         raise ModelError(f"{meta_path}: its contents do not match their checksum; the model was "
                          "modified or damaged, refit or restore it")
     checksums = meta.get("checksums", {})
+    extra_names = meta.get("extras", [])
+    if not _is_str_map(checksums):
+        raise ModelError(f"{meta_path}: 'checksums' is not a mapping of file names to checksums; "
+                         "the model was modified or damaged, refit or restore it")
+    if not (isinstance(extra_names, list) and all(isinstance(n, str) and n.isidentifier() for n in extra_names)):
+        raise ModelError(f"{meta_path}: 'extras' is not a list of array names; the model was modified "
+                         "or damaged, refit or restore it")
     arrays = {}
-    names = list(_ARRAYS) + [f"extra_{n}" for n in meta.get("extras", [])]
-    for name in names:
-        path = directory / f"{name}.npy"
-        if not path.is_file():
-            raise ModelError(f"{path}: missing from the model; restore it or refit")
-        if checksums.get(path.name) != _sha256(path):
-            raise ModelError(f"{path}: checksum does not match model.json; the model was modified or damaged, refit or restore it")
-        try:
-            arrays[name] = np.load(path, allow_pickle=False)
-        except ValueError as exc:
-            raise ModelError(f"{path}: unreadable array ({exc}); refit or restore the model") from exc
-    extras = {n: arrays[f"extra_{n}"] for n in meta.get("extras", [])}
-    p, k = arrays["components"].shape if arrays["components"].ndim == 2 else (-1, -1)
-    if any(arrays[name].shape != (p,) for name in ("feature_ids", "mean", "scale", "std")) or \
-            arrays["singular_values"].shape != (k,):
-        raise ModelError(f"{directory}: array shapes do not agree with each other; refit or restore the model")
+    for name in list(_ARRAYS) + [f"extra_{n}" for n in extra_names]:
+        arrays[name] = _load_array(directory / f"{name}.npy", checksums)
+    extras = {n: arrays[f"extra_{n}"] for n in extra_names}
+    _check_shapes(directory, arrays)
     try:
-        return _build(meta, arrays, extras)
+        model = _build(meta, arrays, extras)
     except (KeyError, TypeError, ValueError) as exc:
         raise ModelError(f"{meta_path}: malformed model description ({exc.__class__.__name__}: {exc}); "
                          "refit or restore the model") from exc
+    if (meta.get("n_components"), meta.get("n_features")) != (model.n_components, model.n_features) \
+            or not model.n_input_features >= model.n_features:
+        raise ModelError(f"{meta_path}: the counts of axes and features do not agree with the arrays; "
+                         "refit or restore the model")
+    check_numbers(model, directory)
+    return model
+
+
+def _is_str_map(value) -> bool:
+    return isinstance(value, dict) and all(isinstance(k, str) and isinstance(v, str) for k, v in value.items())
+
+
+def _load_array(path: Path, checksums: dict) -> np.ndarray:
+    """One verified array file: present, matching its checksum, a plain ``.npy`` array."""
+    if not path.is_file():
+        raise ModelError(f"{path}: missing from the model; restore it or refit")
+    if checksums.get(path.name) != _sha256(path):
+        raise ModelError(f"{path}: checksum does not match model.json; the model was modified or damaged, refit or restore it")
+    try:
+        array = np.load(path, allow_pickle=False)
+    except (ValueError, OSError, EOFError) as exc:
+        raise ModelError(f"{path}: unreadable array ({reason(exc)}); refit or restore the model") from exc
+    if not isinstance(array, np.ndarray):  # np.load opens a zip archive (.npz) as a mapping
+        if hasattr(array, "close"):
+            array.close()
+        raise ModelError(f"{path}: not a single .npy array (an .npz archive?); refit or restore the model")
+    return array
+
+
+def _check_shapes(directory: Path, arrays: dict) -> None:
+    """The arrays' shapes and kinds agree: ``components`` (p, k), the vectors (p,) and (k,)."""
+    components = arrays["components"]
+    p, k = components.shape if components.ndim == 2 else (-1, -1)
+    if any(arrays[name].shape != (p,) for name in ("feature_ids", "mean", "scale", "std")) or \
+            arrays["singular_values"].shape != (k,) or k < 1 or p < 1:
+        raise ModelError(f"{directory}: array shapes do not agree with each other; refit or restore the model")
+    if arrays["feature_ids"].dtype.kind != "U":
+        raise ModelError(f"{directory / 'feature_ids.npy'}: feature ids are not text "
+                         f"(dtype {arrays['feature_ids'].dtype}); refit or restore the model")
+    for name in ("mean", "scale", "std", "components", "singular_values"):
+        if arrays[name].dtype.kind != "f":
+            raise ModelError(f"{directory / (name + '.npy')}: not an array of floating-point numbers "
+                             f"(dtype {arrays[name].dtype}); refit or restore the model")
+
+
+def orthonormality_tolerance(dtype: np.dtype, n_features: int) -> float:
+    """Largest ``max |VᵀV − I|`` accepted for stored components of ``dtype`` with ``p`` rows.
+
+    ``max(1e-6, 10·√p·ε)``, ``ε`` the machine epsilon of the stored dtype. An inner product
+    of length ``p`` carries a rounding error of at most about ``p·ε`` and typically
+    ``√p·ε`` (Higham 2002, *Accuracy and Stability of Numerical Algorithms*, §3.1 and
+    §2.8); orthonormal bases from Householder QR or LAPACK's SVD lose orthogonality of
+    the same order. For float64 the floor 1e-6 decides (LAPACK reaches about 1e-14 here):
+    far above rounding, and far below any change that moves scores by the 1e-4 relative
+    accuracy a fit promises. For float32 (``ε ≈ 1.2e-7``) the √p term decides from
+    ``p ≈ 70`` on (1.2e-3 at a million features).
+    """
+    eps = float(np.finfo(dtype).eps)
+    return max(1e-6, 10.0 * np.sqrt(max(int(n_features), 1)) * eps)
+
+
+def check_numbers(model: Model, directory: Path) -> None:
+    """Refuse a model whose numbers cannot have come from a fit.
+
+    Every floating-point array is finite; ``n_samples`` is a whole number >= 2 (and at
+    least the number of axes); the components are orthonormal within
+    :func:`orthonormality_tolerance`; the singular values are positive and non-increasing;
+    the divisors ``scale`` are positive and ``std`` non-negative; the total inertia is
+    positive and at least the variance of the axes; the shrinkage factors lie in (0, 1].
+    """
+    where = Path(directory)
+
+    def refuse(what: str) -> ModelError:
+        return ModelError(f"{where}: {what}; the model was modified or damaged, refit or restore it")
+
+    n, k = model.n_samples, model.n_components
+    if not (isinstance(n, int) and n >= 2):
+        raise refuse(f"n_samples={n} is not a whole number >= 2")
+    if k > n:
+        raise refuse(f"{counted(k, 'axis', 'axes')} from {counted(n, 'sample')} is impossible")
+    arrays = {name: getattr(model, name) for name in _ARRAYS if name != "feature_ids"}
+    arrays.update({f"extra_{name}": value for name, value in model.extras.items()})
+    for name, value in arrays.items():
+        value = np.asarray(value)
+        if value.dtype.kind == "O":
+            raise refuse(f"{name}.npy holds Python objects")
+        if value.dtype.kind in "fc" and not np.isfinite(value).all():
+            bad = int(np.sum(~np.isfinite(value)))
+            raise refuse(f"{name}.npy has {counted(bad, 'value')} that {agree(bad, 'is', 'are')} NaN or infinite")
+    V = np.asarray(model.components)
+    gram = V.T.astype(np.float64) @ V.astype(np.float64)
+    error = float(np.max(np.abs(gram - np.eye(k))))
+    tol = orthonormality_tolerance(V.dtype, V.shape[0])
+    if not error <= tol:
+        raise refuse(f"components are not orthonormal (max |V'V - I| = {error:.2g} > {tol:.0e})")
+    s = np.asarray(model.singular_values, dtype=np.float64)
+    if not (s > 0).all():
+        raise refuse("singular values are not all positive")
+    if not (np.diff(s) <= 0).all():
+        raise refuse("singular values are not in non-increasing order")
+    if not (np.asarray(model.scale) > 0).all():
+        raise refuse("feature scales (divisors) are not all positive")
+    if not (np.asarray(model.std) >= 0).all():
+        raise refuse("feature standard deviations are not all >= 0")
+    inertia = model.total_inertia
+    if not (np.isfinite(inertia) and inertia > 0 and float(np.sum(s**2)) / n <= inertia * (1 + 1e-6)):
+        raise refuse(f"total_inertia={inertia!r} is not positive and at least the variance of the axes")
+    factor = model.extras.get("shrinkage_factor")
+    if factor is not None and not (np.shape(factor) == (k,) and ((factor > 0) & (factor <= 1)).all()):
+        raise refuse("shrinkage factors are not k numbers in (0, 1]")
+    moments = model.extras.get("residual_moments")
+    if moments is not None and not (np.shape(moments) == (3,) and moments[0] >= 0 and moments[1] >= 0):
+        raise refuse("residual moments are not (theta1 >= 0, theta2 >= 0, theta3)")
 
 
 def _description_checksum(meta: dict) -> str:
@@ -190,12 +312,24 @@ def _build(meta: dict, arrays: dict, extras: dict) -> Model:
         std=arrays["std"],
         components=arrays["components"],
         singular_values=arrays["singular_values"],
-        n_samples=int(meta["n_samples"]),
+        n_samples=_whole(meta["n_samples"], "n_samples"),
         total_inertia=float(meta["total_inertia"]),
-        n_input_features=int(meta["n_input_features"]),
+        n_input_features=_whole(meta["n_input_features"], "n_input_features"),
         extras=extras,
-        info=meta.get("info", {}),
+        info=_mapping(meta.get("info", {}), "info"),
     )
+
+
+def _mapping(value, name: str) -> dict:
+    if not isinstance(value, dict):
+        raise TypeError(f"{name} is not a mapping")
+    return value
+
+
+def _whole(value, name: str) -> int:
+    if not isinstance(value, int) or isinstance(value, bool):
+        raise TypeError(f"{name}={value!r} is not a whole number")
+    return value
 
 
 def _sha256(path: Path) -> str:
