@@ -22,12 +22,13 @@ import logging
 import math
 import os
 import pathlib
+import warnings
 from collections.abc import Iterator
 from typing import Any
 
 import numpy as np
 
-from ..errors import InputError, OptionError, agree, counted, reason
+from ..errors import InputError, OptionError, agree, counted, one_line, reason
 from .ids import container_ids, plain_ids
 from .source import Backend, MatrixSource, build_source, is_numeric, orient_block, select_matrix, slab_key
 
@@ -178,14 +179,23 @@ def open_zarr(path: pathlib.Path, *, dataset: str | None, sample_ids: str | None
     except Exception as exc:
         raise InputError(f"{path.name}: cannot open as a Zarr store ({reason(exc)}); "
                          "its metadata may be corrupted") from exc
-    try:
-        return _open_matrix(zarr, root, path, dataset, sample_ids, feature_ids, samples_in,
-                            allow_missing_chunks)
-    except (InputError, OptionError):
-        raise
-    except Exception as exc:  # metadata Zarr cannot parse, found while walking the store
-        raise InputError(f"{path.name}: cannot read the Zarr store ({reason(exc)}); "
-                         "its metadata may be corrupted") from exc
+    # Zarr warns (Python warnings) about objects it does not recognise while walking the
+    # store; they become part of the one error line, or log lines when the store opens.
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            source = _open_matrix(zarr, root, path, dataset, sample_ids, feature_ids, samples_in,
+                                  allow_missing_chunks)
+        except (InputError, OptionError) as exc:
+            if caught:
+                exc.args = (f"{exc.args[0]} (Zarr: {one_line(str(caught[0].message))})",) + exc.args[1:]
+            raise
+        except Exception as exc:  # metadata Zarr cannot parse, found while walking the store
+            raise InputError(f"{path.name}: cannot read the Zarr store ({reason(exc)}); "
+                             "its metadata may be corrupted") from exc
+    for warning in caught:
+        logger.warning("%s: %s", path.name, one_line(str(warning.message)))
+    return source
 
 
 def _open_matrix(zarr: Any, root: Any, path: pathlib.Path, dataset: str | None, sample_ids: str | None,
