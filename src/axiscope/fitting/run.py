@@ -176,12 +176,16 @@ def _fit(src: MatrixSource, job: _Job, active, exclude) -> FitResult:
         first_cache = None if filtered else caches.new(n, src.shape[1], src.dtype)
         fuse = not filtered and job.spec.missing == "error" and method == "randomized"
         l = min(job.k + job.engine.oversample, min(n, src.shape[1]))
-        omega = rng.standard_normal((src.shape[1], l)) if fuse else None
+        # Ω rounded to the data's dtype, so that the float64 correction of the sketch uses
+        # the very numbers the products used
+        omega = rng.standard_normal((src.shape[1], l)).astype(np.result_type(src.dtype, np.float32)) \
+            .astype(np.float64) if fuse else None
+        shift = reader.first_row() if fuse and job.spec.center else None
         stats, raw_sketch = _statistics_pass(reader.array("read", cache=first_cache), job.spec, omega,
-                                             runner, src, active)
+                                             runner, src, active, shift)
         prep = _preprocessing(job, stats, exclude, src, n)
         operand = _Operand.build(job.spec, stats, prep, reader, caches, filtered=filtered, filled=first_cache)
-        fac = _factorise(method, operand, job, n, rng, runner, plan, raw_sketch, omega)
+        fac = _factorise(method, operand, job, n, rng, runner, plan, raw_sketch, omega, shift)
     _check_numerical_rank(fac, job.k, src.dtype, n, int(prep.kept.shape[0]))
     model = _model(src, job.spec, prep, stats, fac, n, operand.columns is not None)
     manifest = _manifest(src, job, n, prep, stats, fac, plan, runner)
@@ -266,6 +270,16 @@ class _Reader:
         if cache is not None:
             cache.put(int(self.starts[i]), block)
         return block
+
+    def first_row(self) -> np.ndarray:
+        """The first active sample, transformed (non-finite cells as 0), shape (p,).
+
+        The fused statistics-and-sketch pass subtracts it from every block: a shift of the
+        size of the spread keeps ``XᵀX·Ω`` from cancelling when means are far from zero.
+        """
+        a = int(np.flatnonzero(self.active)[0])
+        row = transform_block(self.src.read_samples(a, a + 1), self.spec)[0]
+        return np.where(np.isfinite(row), row, 0).astype(self.src.dtype)
 
     def array(self, name: str, columns=None, cache: BlockCache | None = None):
         """The input read once more (filling ``cache`` when given), as a Dask array."""
@@ -368,17 +382,15 @@ class _Operand:
 
 
 def _factorise(method: str, op: _Operand, job: _Job, n: int, rng, runner, plan: BlockPlan,
-               raw_sketch, omega) -> Factorization:
+               raw_sketch, omega, shift) -> Factorization:
     """LAPACK on the dense matrix, or randomized block Krylov iterations on the blocks."""
     if method == "exact":
         return exact_factorization(op.first if op.first is not None else op.later, op.mean,
                                    op.inverse_scale, n_components=job.k, fill=op.fill, runner=runner,
                                    source=op.later_source if op.first is None else "input")
     start = None
-    if raw_sketch is not None:  # the statistics pass took X_rawᵀX_raw·Ω; centre and scale it
-        d, mean = op.inverse_scale, op.mean
-        start = d[:, None] * (raw_sketch - n * np.outer(mean, mean @ omega)) \
-            if job.spec.center else d[:, None] * raw_sketch
+    if raw_sketch is not None:  # the statistics pass took (X − 1sᵀ)ᵀ(X − 1sᵀ)·Ω; centre and scale it
+        start = _centred_sketch(raw_sketch, omega, op.mean, op.inverse_scale, n, shift)
     # without a fused start, the sketch pass reads the input (filling the cache)
     eng = job.engine
     return randomized_factorization(
@@ -387,6 +399,20 @@ def _factorise(method: str, op: _Operand, job: _Job, n: int, rng, runner, plan: 
         fill=op.fill, runner=runner, source=op.later_source, max_basis=plan.max_basis,
         sketch_from=op.first,
     )
+
+
+def _centred_sketch(raw: np.ndarray, omega: np.ndarray, mean: np.ndarray, d: np.ndarray, n: int,
+                    shift: np.ndarray | None) -> np.ndarray:
+    """``X̃ᵀX̃·Ω`` from ``raw = (X − 1sᵀ)ᵀ(X − 1sᵀ)·Ω`` taken by the statistics pass.
+
+    ``Σ(x−μ)(x−μ)ᵀ = Σ(x−s)(x−s)ᵀ − n·(μ−s)(μ−s)ᵀ``; with ``s`` one sample of the data,
+    ``μ − s`` is of the size of the spread, so the correction cancels nothing. Without
+    centring (``shift`` None) only the scaling applies.
+    """
+    if shift is None:
+        return d[:, None] * raw
+    delta = mean - shift.astype(np.float64)
+    return d[:, None] * (raw - n * np.outer(delta, delta @ omega))
 
 
 def _check_numerical_rank(fac: Factorization, k: int, dtype, n: int, p: int) -> None:
@@ -488,17 +514,24 @@ def _accuracy_record(fac: Factorization, tol: float) -> dict:
     }
 
 
-def _stats_task(block, omega32):
+def _stats_task(block, omega32, shift):
     stats = block_statistics(block)
     bad = first_nonfinite(block) if stats.n_nonfinite else None
     sketch = None
     if omega32 is not None and bad is None:
-        sketch = (block.T @ (block @ omega32)).astype(np.float64)
+        shifted = block if shift is None else block - shift
+        sketch = (shifted.T @ (shifted @ omega32)).astype(np.float64)
     return stats, sketch, bad
 
 
-def _statistics_pass(X, spec, omega, runner, src, active):
-    """One pass: feature statistics, and the uncentred sketch ``XᵀX·Ω`` when ``omega`` is given."""
+def _statistics_pass(X, spec, omega, runner, src, active, shift=None):
+    """One pass: feature statistics, and the sketch ``(X − 1sᵀ)ᵀ(X − 1sᵀ)·Ω`` when ``omega`` is given.
+
+    ``shift`` (``s``, one sample of the data, or None for no shift) is subtracted from each
+    block in its own dtype before the products: the mean is not known yet, and an
+    uncentred ``XᵀX·Ω`` would lose every digit to the centring afterwards when means lie
+    far from zero. ``omega`` must hold values exact in the data's dtype.
+    """
     omega32 = None if omega is None else omega.astype(X.dtype)
     state: dict = {"stats": None, "sketch": None}
     active_index = np.flatnonzero(active)
@@ -518,7 +551,7 @@ def _statistics_pass(X, spec, omega, runner, src, active):
             state["sketch"] = sketch if state["sketch"] is None else state["sketch"] + sketch
 
     runner.run("statistics" + (" + sketch" if omega is not None else ""), "input", X,
-               _stats_task, fold, omega32)
+               _stats_task, fold, omega32, shift)
     merged: BlockStats = state["stats"]
     return FeatureStatistics.from_block_stats(merged), state["sketch"]
 
