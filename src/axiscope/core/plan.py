@@ -23,11 +23,24 @@ logger = logging.getLogger(__name__)
 
 
 _MAX_BLOCK_BYTES = 128 * 2**20
+#: Block rows are sized as if this many blocks were in flight, whatever the number of
+#: threads, so that the partition of the samples (and with it every rounding) does not
+#: depend on the threads; more threads than the budget holds run fewer blocks at once.
+_REFERENCE_WINDOW = 4
+#: Inputs of at least 512 samples are cut into at least this many blocks, so that threads
+#: have blocks to share (a constant, not the thread count: see ``_REFERENCE_WINDOW``).
+_MIN_BLOCKS = 8
 
 
 @dataclass
 class BlockPlan:
-    """How the matrix is cut into row blocks and where transformed blocks are kept."""
+    """How the matrix is cut into row blocks and where transformed blocks are kept.
+
+    ``block_rows`` depends on the shape, the dtype, the sketch width, the budget and the
+    on-disk chunking only, never on the number of threads; ``threads`` is how many blocks
+    are worked on at once (at most the threads asked for, fewer when the budget holds fewer
+    blocks in flight).
+    """
 
     block_rows: int
     cache: str  # "memory" | "scratch" | "source"
@@ -68,10 +81,16 @@ def plan_blocks(
 
     Memory held: the Krylov basis and its image, ``(n + p)·max_basis`` float64 (at most a
     quarter of the budget, between ``2·l`` and ``8·l`` columns); vectors of per-feature
-    statistics; a window of ``2·threads`` blocks, each with one work array of its size and a
-    ``p × l`` partial product; and the cache when it is kept in memory. When the cache
+    statistics; a window of two blocks per thread, each with one work array of its size and
+    a ``p × l`` partial product; and the cache when it is kept in memory. When the cache
     does not fit and ``reread_cheap`` (an uncompressed input needing no per-sample
     transform), later passes re-read the input instead of writing a scratch copy of it.
+
+    The block rows do not depend on ``threads``: they are sized for a window of
+    ``_REFERENCE_WINDOW`` blocks (two threads' worth), or for two blocks when the budget is
+    smaller than that, so that any thread count cuts the samples the same way and gives the
+    same numbers to the last bit. The plan's ``threads`` is then the number of threads
+    whose window of blocks fits the budget (at least one).
     """
     cache_features = n_features if cache_features is None else cache_features
     l = sketch_width
@@ -79,29 +98,34 @@ def plan_blocks(
     per_column = 8 * (n_samples + 2 * n_features)
     max_basis = int(min(8 * l, max(2 * l, (budget // 4) // per_column)))
     fixed = per_column * (max_basis + 2 * width) + 8 * 12 * n_features
-    window = 2 * threads
     row_bytes = 2 * n_features * itemsize + 8 * width
     partial = 8 * n_features * width
-    room = budget - fixed - window * partial
-    if room < window * row_bytes:
-        need = fixed + window * (partial + row_bytes)
+    free = budget - fixed
+    rows = window = 0
+    for window in (_REFERENCE_WINDOW, 2):  # two threads' worth, else one thread's
+        rows = int((free // window - partial) // row_bytes)
+        if rows >= 1:
+            break
+    if rows < 1:
+        need = fixed + 2 * (partial + row_bytes)
         raise OptionError(
             f"memory_limit={format_bytes(budget).replace(' ', '')} is too small for {n_samples} samples × "
             f"{n_features} features with {l} sketch columns (needs at least "
-            f"{format_bytes(need)} with {threads} threads); raise memory_limit, or lower n_components or threads"
+            f"{format_bytes(need)}); raise memory_limit, or lower n_components"
         )
-    rows = int(min(room // (window * row_bytes), _MAX_BLOCK_BYTES // max(1, n_features * itemsize)))
+    rows = int(min(rows, _MAX_BLOCK_BYTES // max(1, n_features * itemsize)))
     rows = max(1, min(rows, n_samples))
-    if n_samples >= 512:  # enough blocks to keep every thread busy
-        rows = min(rows, -(-n_samples // (2 * threads)))
+    if n_samples >= 512:  # enough blocks to keep threads busy
+        rows = min(rows, -(-n_samples // _MIN_BLOCKS))
     if sample_chunk and sample_chunk < n_samples:
         # whole on-disk chunks per block, so no chunk is decoded twice
         if rows >= sample_chunk:
             rows = (rows // sample_chunk) * sample_chunk
-        elif window * sample_chunk * row_bytes <= room:
+        elif window * (partial + sample_chunk * row_bytes) <= free:
             rows = sample_chunk
+    in_flight = partial + rows * row_bytes
     cache_bytes = n_samples * cache_features * itemsize
-    if fixed + window * (partial + rows * row_bytes) + cache_bytes <= budget:
+    if fixed + 2 * threads * in_flight + cache_bytes <= budget:
         cache = "memory"
     elif reread_cheap:  # the input is an uncompressed file: reading it again is as cheap as a scratch copy
         cache = "source"
@@ -113,7 +137,10 @@ def plan_blocks(
             format_bytes(cache_bytes), scratch or "the temporary directory",
         )
         cache = "source"
-    return BlockPlan(rows, cache, budget, fixed, rows * n_features * itemsize, cache_bytes, max_basis, threads)
+    held = cache_bytes if cache == "memory" else 0
+    fitting = max(1, int((budget - fixed - held) // (2 * in_flight)))
+    return BlockPlan(rows, cache, budget, fixed, rows * n_features * itemsize, cache_bytes, max_basis,
+                     min(threads, fitting))
 
 
 def plan_fit(

@@ -137,7 +137,9 @@ def _block_rows(source: MatrixSource, n: int, p: int, k: int, threads: int, memo
     # after the pass: correlation, loading, squared cosine and the NaN contribution returned
     # (p, k each), the SD and ids (p each), and the temporaries of one step of features
     results = 8 * p * (4 * k + 2) + 8 * min(p, _STEP) * (4 * k + 8)
-    window = 2 * threads
+    # sized for a window of four blocks whatever ``threads``: the partition into blocks, and so
+    # the rounding of every sum, must not depend on the number of threads
+    window = 4
     row_bytes = p_all * source.dtype.itemsize * 2 + p * 8 * 3 + 8 * p * k // max(1, n)
     needed = max(accumulators + window * row_bytes, accumulators + results)
     if needed > budget:

@@ -168,7 +168,7 @@ def _fit(src: MatrixSource, job: _Job, active, exclude) -> FitResult:
     plan = plan_fit(src, n_components=job.k, preprocess=job.spec, engine=job.engine,
                     resources=job.resources)
     method = _choose_method(job.engine.method, n, src.shape[1], job.spec, job.resources.budget)
-    runner = PassRunner(threads=job.resources.n_threads, progress=job.progress)
+    runner = PassRunner(threads=plan.threads, progress=job.progress)
     rng = job.engine.generator()
     reader = _Reader(src, job.spec, active, plan.block_rows)
     filtered = job.spec.has_filter or exclude is not None
