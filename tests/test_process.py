@@ -11,6 +11,10 @@ from __future__ import annotations
 import filecmp
 import json
 import os
+import signal
+import subprocess
+import sys
+import time
 from pathlib import Path
 
 import numpy as np
@@ -58,3 +62,177 @@ def test_tables_are_byte_identical_whatever_the_threads(cohort_h5, tmp_path, lim
         assert mismatch == [] and errors == [], f"threads={threads}: {mismatch or errors} differ"
         plans.append(json.loads((outs[threads] / "manifest.json").read_text())["plan"]["block_rows"])
     assert json.loads((reference / "manifest.json").read_text())["plan"]["block_rows"] == plans[0] == plans[1]
+
+
+# ------------------------------------------------------------------ kill safety and locks
+
+#: A child process running the command line, paused where the test wants it: after the
+#: second block of the first pass (``pass``: the scratch file exists) or after the first
+#: table was written into the temporary output folder (``write``). It touches FLAG when it
+#: gets there, then waits for GO to exist (at most 60 s) before going on.
+_DRIVER = r'''
+import os, sys, time
+from pathlib import Path
+
+where, flag, go = os.environ["PAUSE_AT"], Path(os.environ["FLAG"]), Path(os.environ["GO"])
+
+def pause():
+    flag.touch()
+    deadline = time.monotonic() + 60
+    while not go.exists() and time.monotonic() < deadline:
+        time.sleep(0.05)
+
+if where == "pass":
+    from axiscope.core import passes
+    original = passes.PassRunner._run_pipelined
+    def paused(self, name, blocks, starts, task, fold, args):
+        def fold_then_pause(result, index, start):
+            fold(result, index, start)
+            if index == 1 and not flag.exists():
+                pause()
+        return original(self, name, blocks, starts, task, fold_then_pause, args)
+    passes.PassRunner._run_pipelined = paused
+elif where == "write":
+    from axiscope.io import output
+    original = output.write_table
+    def paused(df, path, **kwargs):
+        original(df, path, **kwargs)
+        if not flag.exists():
+            pause()
+    output.write_table = paused
+
+from axiscope.cli._app import main
+sys.exit(main(sys.argv[1:]))
+'''
+
+
+@pytest.fixture
+def scratch_input(tmp_path, planted):
+    """1,200 × 2,000 float32 (9.6 MB) in Zarr: under a 16 MB limit the fit keeps blocks in a scratch file."""
+    import zarr
+
+    X = planted(1200, 2000, rank=4, dtype="float32", seed=45).X
+    path = tmp_path / "big.zarr"
+    group = zarr.open_group(str(path), mode="w", zarr_format=3)
+    array = group.create_array("X", shape=X.shape, chunks=(125, 2000), dtype="float32")
+    array[...] = X
+    return path
+
+
+class _Child:
+    """One ``axiscope`` process, paused at ``pause_at`` (or not paused: ``None``)."""
+
+    def __init__(self, tmp_path: Path, name: str, args: list[str], pause_at: str | None = None):
+        self.flag, self.go = tmp_path / f"{name}.flag", tmp_path / f"{name}.go"
+        if pause_at is None:
+            self.go.touch()
+        env = dict(os.environ, PAUSE_AT=pause_at or "none", FLAG=str(self.flag), GO=str(self.go),
+                   OPENBLAS_NUM_THREADS="1", OMP_NUM_THREADS="1")
+        self.proc = subprocess.Popen([sys.executable, "-c", _DRIVER, *map(str, args)], env=env,
+                                     stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+
+    def paused(self, timeout: float = 60) -> None:
+        deadline = time.monotonic() + timeout
+        while not self.flag.exists():
+            assert self.proc.poll() is None, self.proc.communicate()
+            assert time.monotonic() < deadline, "the child never reached its pause"
+            time.sleep(0.05)
+
+    def release(self) -> None:
+        self.go.touch()
+
+    def finish(self, timeout: float = 120) -> tuple[int, str]:
+        _, err = self.proc.communicate(timeout=timeout)
+        return self.proc.returncode, err
+
+
+def _fit_args(path: Path, out: Path, scratch: Path, *extra: str) -> list[str]:
+    return ["fit", path, "--out", out, "--memory-limit", "16MB", "--threads", "2", "--scratch", scratch,
+            "-k", "3", "--power-iterations", "1", "-q", *extra]
+
+
+def _left_behind(tmp_path: Path, scratch: Path) -> list[str]:
+    """Temporary outputs, locks and scratch folders anywhere under the test's folder."""
+    names = [p for p in tmp_path.rglob(".*") if ".tmp-" in p.name or ".old-" in p.name or p.name.endswith(".lock")]
+    names += list(scratch.iterdir()) if scratch.exists() else []
+    return sorted(str(p.relative_to(tmp_path)) for p in names)
+
+
+@pytest.mark.parametrize("pause_at", ["pass", "write"])
+def test_sigterm_cleans_up_and_exits_143(scratch_input, tmp_path, pause_at):
+    """SIGTERM mid-pass (scratch file written) or mid-write (temporary output folder half
+    full): one line, exit 143 (128 + 15), and no output, temporary folder, lock or scratch."""
+    out, scratch = tmp_path / "out", tmp_path / "scratch"
+    child = _Child(tmp_path, "a", _fit_args(scratch_input, out, scratch), pause_at)
+    child.paused()
+    if pause_at == "pass":
+        assert [p.name for p in scratch.iterdir()][0].startswith("axiscope-scratch-")  # the test has teeth
+    else:
+        assert list(tmp_path.glob(".out.tmp-*/*.tsv"))
+    child.proc.send_signal(signal.SIGTERM)
+    code, err = child.finish()
+    assert code == 143, err
+    assert err.strip().splitlines() == ["error: terminated; nothing was written"]
+    assert not out.exists()
+    assert _left_behind(tmp_path, scratch) == []
+
+
+@pytest.mark.parametrize("pause_at,leftover,said", [
+    ("pass", "scratch/axiscope-scratch-", "removed scratch folder"),
+    ("write", ".out.tmp-", "removed temporary output folder"),
+])
+def test_kill_9_leftovers_are_removed_by_the_next_run(scratch_input, tmp_path, pause_at, leftover, said):
+    """kill -9 cannot be caught: the scratch folder (mid-pass) or the temporary output folder
+    (mid-write) stays. The next run removes it, says so, and succeeds; nothing is left."""
+    out, scratch = tmp_path / "out", tmp_path / "scratch"
+    child = _Child(tmp_path, pause_at, _fit_args(scratch_input, out, scratch), pause_at)
+    child.paused()
+    child.proc.kill()
+    child.finish()
+    left = _left_behind(tmp_path, scratch)
+    assert any(name.startswith(leftover) for name in left), left
+    rerun = _Child(tmp_path, "rerun", _fit_args(scratch_input, out, scratch))
+    code, err = rerun.finish()
+    assert code == 0, err
+    assert said in err and f"process {child.proc.pid}" in err
+    assert (out / "sample_scores.tsv").is_file()
+    assert _left_behind(tmp_path, scratch) == []
+
+
+def test_a_second_writer_is_refused_at_once(scratch_input, tmp_path):
+    """Two fits to one --out: the second stops at once with one line naming the first (exit 2),
+    also with --overwrite, and the first finishes undisturbed."""
+    out, scratch = tmp_path / "out", tmp_path / "scratch"
+    first = _Child(tmp_path, "first", _fit_args(scratch_input, out, scratch, "--overwrite"), "pass")
+    first.paused()
+    started = time.monotonic()
+    second = _Child(tmp_path, "second", _fit_args(scratch_input, out, tmp_path / "scratch2", "--overwrite"))
+    code, err = second.finish()
+    assert code == 2
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and "another axiscope run" in lines[0] and f"process {first.proc.pid}" in lines[0]
+    assert "--wait" in lines[0]
+    assert time.monotonic() - started < 30  # at once: it did not fit first
+    first.release()
+    code, err = first.finish()
+    assert code == 0, err
+    assert (out / "sample_scores.tsv").is_file()
+    assert _left_behind(tmp_path, scratch) == []
+
+
+def test_wait_queues_behind_the_running_writer(scratch_input, tmp_path):
+    """--wait: the second run starts when the first has finished, then replaces its output."""
+    out, scratch = tmp_path / "out", tmp_path / "scratch"
+    first = _Child(tmp_path, "first", _fit_args(scratch_input, out, scratch), "write")
+    first.paused()
+    second = _Child(tmp_path, "second", _fit_args(scratch_input, out, scratch, "--overwrite", "--wait", "-k", "2"))
+    time.sleep(3)
+    assert second.proc.poll() is None  # still waiting
+    first.release()
+    assert first.finish()[0] == 0
+    code, err = second.finish()
+    assert code == 0, err
+    assert "waiting for process" in err
+    header = (out / "sample_scores.tsv").read_text().splitlines()[0]
+    assert header.split("\t") == ["sample_id", "PC1", "PC2"]  # the second run's output
+    assert _left_behind(tmp_path, scratch) == []

@@ -53,6 +53,8 @@ MemoryLimit = Annotated[str | None, typer.Option(
 Threads = Annotated[int | None, typer.Option(
     min=1, help="Blocks processed at once.", show_default="number of cores")]
 Overwrite = Annotated[bool, typer.Option(help="Replace an existing output directory.")]
+Wait = Annotated[bool, typer.Option(
+    help="When another run is writing the same --out, wait for it to end instead of stopping at once.")]
 Quiet = Annotated[bool, typer.Option("--quiet", "-q", help="No progress bars or summary.", show_default="off")]
 #: ``--format``: the writer of the command's tables takes ``parquet=format is TableFormat.parquet``
 #: and passes it on to every table it writes.

@@ -21,6 +21,7 @@ from ._options import (
     OutDir,
     Overwrite,
     Quiet,
+    Wait,
     SampleIds,
     SamplesIn,
     SamplesInOpt,
@@ -100,6 +101,7 @@ def fit_command(
     supplementary_samples_column: Annotated[str | None, typer.Option(help="true/false annotation column: true rows are left out of the fit and projected afterwards.")] = None,
     allow_missing: AllowMissing = False,
     overwrite: Overwrite = False,
+    wait: Wait = False,
     quiet: Quiet = False,
 ) -> None:
     """Fit principal axes to INPUT and write tables, the model, a manifest and the axis cards to --out."""
@@ -112,7 +114,7 @@ def fit_command(
 
     setup_logging(quiet)
     with user_errors():
-        check_target(out, overwrite)
+        check_target(out, overwrite, wait=wait)
         spec = PreprocessSpec(
             center=center, scale=scale.value, log_transform=log_transform, counts_per=counts_per,
             min_variance=min_variance, top_variable=top_variable, missing=missing.value,

@@ -21,7 +21,7 @@ import numpy as np
 import pandas as pd
 
 from .. import __version__
-from ..core.cache import BlockCache
+from ..core.cache import BlockCache, remove_scratch_leftovers
 from ..core.engine import Factorization, exact_factorization, randomized_factorization
 from ..core.options import METHODS, EngineSettings, InputLayout, Resources
 from ..core.passes import PassRunner, Progress, array_from_blocks, blas_threads
@@ -165,6 +165,7 @@ def _fit(src: MatrixSource, job: _Job, active, exclude) -> FitResult:
     n = int(active.sum())
     _check_components(job.k, n, src.shape[1], job.spec.center,
                       "the array" if src.format == "array" else src.path)
+    remove_scratch_leftovers(job.resources.scratch)
     plan = plan_fit(src, n_components=job.k, preprocess=job.spec, engine=job.engine,
                     resources=job.resources)
     method = _choose_method(job.engine.method, n, src.shape[1], job.spec, job.resources.budget)
