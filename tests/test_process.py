@@ -42,9 +42,12 @@ def cohort_h5(tmp_path, planted):
 
 
 @pytest.mark.parametrize("limit", ["1GB", "17MB"])
-def test_tables_are_byte_identical_whatever_the_threads(cohort_h5, tmp_path, limit):
+def test_tables_are_byte_identical_whatever_the_threads(cohort_h5, tmp_path, limit, monkeypatch):
     """threads 1, 2 and 4: every written file but the manifest (which records the threads and
     timings) is the same byte for byte, supplementary-feature statistics included (issue 10)."""
+    from axiscope.core import plan
+
+    monkeypatch.setattr(plan, "process_baseline", lambda: 0)  # the limit for the data alone (test process)
     path, listed = cohort_h5
     outs = {}
     for threads in (1, 2, 4):
@@ -75,6 +78,11 @@ import os, sys, time
 from pathlib import Path
 
 where, flag, go = os.environ["PAUSE_AT"], Path(os.environ["FLAG"]), Path(os.environ["GO"])
+
+# --memory-limit counts the whole process; these tests want a small budget for the data alone
+# whatever the interpreter and libraries hold on this machine
+import axiscope.core.plan
+axiscope.core.plan.process_baseline = lambda: 0
 
 def pause():
     flag.touch()
@@ -236,3 +244,36 @@ def test_wait_queues_behind_the_running_writer(scratch_input, tmp_path):
     header = (out / "sample_scores.tsv").read_text().splitlines()[0]
     assert header.split("\t") == ["sample_id", "PC1", "PC2"]  # the second run's output
     assert _left_behind(tmp_path, scratch) == []
+
+
+# ------------------------------------------------------------------ checks before the work
+
+
+def test_resource_refusals_exit_3_and_option_errors_exit_2(cohort_h5, tmp_path, capsys):
+    """A limit below what the process and one block need: exit 3, one line saying how much
+    would do; a limit no machine has: exit 2, one line. Nothing written either way."""
+    path, _ = cohort_h5
+    out = tmp_path / "out"
+    assert main(["fit", str(path), "--out", str(out), "--memory-limit", "17MB", "-k", "3", "-q"]) == 3
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "too small" in err[0] and "raise --memory-limit to at least" in err[0]
+    assert "the process already holds" in err[0]  # the command line's limit is for the whole process
+    assert main(["fit", str(path), "--out", str(out), "--memory-limit", "1e400", "-q"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("error: --memory-limit")
+    assert not out.exists() and _left_behind(tmp_path, tmp_path / "none") == []
+
+
+def test_unwritable_output_is_refused_before_the_fit(cohort_h5, tmp_path, capsys, monkeypatch):
+    """--out under a file (so its folder cannot be made): one line, exit 2, before any pass."""
+    from axiscope.core import passes
+
+    path, _ = cohort_h5
+    ran = []
+    monkeypatch.setattr(passes.PassRunner, "run", lambda *a, **k: ran.append(1))
+    blocker = tmp_path / "a_file"
+    blocker.write_text("x")
+    assert main(["fit", str(path), "--out", str(blocker / "nested" / "out"), "-q"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "cannot be made" in err[0] and "--out" in err[0]
+    assert ran == []

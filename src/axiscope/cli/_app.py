@@ -286,9 +286,12 @@ def main(argv: list[str] | None = None) -> int:
     like every other error: one line on standard error, exit code 2. SIGTERM stops a run
     like Ctrl-C (clean-up included) and exits with 143.
     """
+    from ..core.memory import count_whole_process
+
     install_signal_handlers()
     try:
-        result = app(args=argv, prog_name="axiscope", standalone_mode=False)
+        with count_whole_process():  # --memory-limit is for the whole process
+            result = app(args=argv, prog_name="axiscope", standalone_mode=False)
     except SystemExit as exc:
         return int(exc.code or 0)
     except KeyboardInterrupt as exc:  # before or after a command's own handling
