@@ -155,7 +155,7 @@ class _Child:
 
 
 def _fit_args(path: Path, out: Path, scratch: Path, *extra: str) -> list[str]:
-    return ["fit", path, "--out", out, "--memory-limit", "16MB", "--threads", "2", "--scratch", scratch,
+    return ["fit", str(path), "--out", str(out), "--memory-limit", "16MB", "--threads", "2", "--scratch", str(scratch),
             "-k", "3", "--power-iterations", "1", "-q", *extra]
 
 
@@ -277,3 +277,81 @@ def test_unwritable_output_is_refused_before_the_fit(cohort_h5, tmp_path, capsys
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "cannot be made" in err[0] and "--out" in err[0]
     assert ran == []
+
+
+@pytest.fixture
+def small_disk(tmp_path):
+    """A tmpfs of a given size or number of inodes (root only; skipped elsewhere), unmounted after."""
+    mounted = []
+
+    def make(name: str, options: str) -> Path:
+        where = tmp_path / name
+        where.mkdir()
+        done = subprocess.run(["mount", "-t", "tmpfs", "-o", options, "tmpfs", str(where)],
+                              capture_output=True, check=False)
+        if done.returncode != 0:
+            pytest.skip("cannot mount a small tmpfs here (needs root)")
+        mounted.append(where)
+        return where
+
+    yield make
+    for where in mounted:
+        subprocess.run(["umount", "-l", str(where)], check=False)
+
+
+@pytest.mark.parametrize("options", ["size=64k", "nr_inodes=6"])
+def test_full_output_disk_is_exit_3_and_leaves_nothing(cohort_h5, small_disk, capsys, monkeypatch, options):
+    """The output's file system fills up (bytes, or inodes) while the tables are written:
+    one line naming the place, exit 3, and neither the output nor its temporary folder."""
+    from axiscope.core import plan
+
+    monkeypatch.setattr(plan, "process_baseline", lambda: 0)
+    path, _ = cohort_h5
+    disk = small_disk("outdisk", options)
+    out = disk / "out"
+    assert main(["fit", str(path), "--out", str(out), "-k", "3", "-q"]) == 3
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "no space left" in err[0] and str(out) in err[0], err
+    assert os.listdir(disk) == []
+
+
+def test_full_scratch_disk_is_exit_3_and_leaves_nothing(scratch_input, small_disk, capsys, monkeypatch, tmp_path):
+    """The scratch file system fills up mid-pass (free space taken after the plan looked):
+    one line, exit 3, no scratch folder left, no output."""
+    from axiscope.core import plan
+
+    monkeypatch.setattr(plan, "process_baseline", lambda: 0)
+    monkeypatch.setattr(plan, "scratch_has_room", lambda where, nbytes: True)
+    disk = small_disk("scratchdisk", "size=256k")
+    out = tmp_path / "out"
+    assert main(_fit_args(scratch_input, out, disk)) == 3
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "no space left for the scratch file" in err[0] and "--scratch" in err[0], err
+    assert os.listdir(disk) == []
+    assert not out.exists() and _left_behind(tmp_path, disk) == []
+
+
+def test_no_space_while_writing_tables_without_root(cohort_h5, tmp_path, capsys, monkeypatch):
+    """The same as the tmpfs case, by a writer that fails with ENOSPC after its first table
+    (runs everywhere): exit 3, one line, no output, no temporary folder."""
+    import errno
+
+    from axiscope.core import plan
+    from axiscope.io import output
+
+    monkeypatch.setattr(plan, "process_baseline", lambda: 0)
+    original, calls = output.write_table, []
+
+    def failing(df, path, **kwargs):
+        calls.append(path)
+        if len(calls) > 1:
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(path))
+        original(df, path, **kwargs)
+
+    monkeypatch.setattr(output, "write_table", failing)
+    path, _ = cohort_h5
+    out = tmp_path / "out"
+    assert main(["fit", str(path), "--out", str(out), "-k", "3", "-q"]) == 3
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "no space left" in err[0], err
+    assert not out.exists() and _left_behind(tmp_path, tmp_path / "none") == []
