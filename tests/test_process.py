@@ -355,3 +355,36 @@ def test_no_space_while_writing_tables_without_root(cohort_h5, tmp_path, capsys,
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "no space left" in err[0], err
     assert not out.exists() and _left_behind(tmp_path, tmp_path / "none") == []
+
+
+def test_read_only_scratch_is_refused_before_the_work(scratch_input, small_disk, capsys, monkeypatch, tmp_path):
+    """--scratch on a read-only file system, when the plan needs it: one line, exit 2, no pass run."""
+    from axiscope.core import passes
+
+    ran = []
+    monkeypatch.setattr(passes.PassRunner, "run", lambda *a, **k: ran.append(1))
+    from axiscope.core import plan
+
+    monkeypatch.setattr(plan, "process_baseline", lambda: 0)
+    monkeypatch.setattr(plan, "scratch_has_room", lambda where, nbytes: True)  # a large read-only disk
+    disk = small_disk("readonly", "ro,size=1m")
+    out = tmp_path / "out"
+    assert main(_fit_args(scratch_input, out, disk)) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "--scratch" in err[0] and "cannot be written" in err[0], err
+    assert ran == [] and not out.exists() and _left_behind(tmp_path, disk) == []
+
+
+def test_output_on_a_read_only_file_system_is_refused_before_the_fit(cohort_h5, small_disk, capsys, monkeypatch):
+    """--out in (and nested under) a read-only place: one line, exit 2, before any pass."""
+    from axiscope.core import passes
+
+    ran = []
+    monkeypatch.setattr(passes.PassRunner, "run", lambda *a, **k: ran.append(1))
+    path, _ = cohort_h5
+    disk = small_disk("readonly", "ro,size=1m")
+    for out in (disk / "out", disk / "deeper" / "still" / "out"):
+        assert main(["fit", str(path), "--out", str(out), "-q"]) == 2
+        err = capsys.readouterr().err.strip().splitlines()
+        assert len(err) == 1 and "Read-only file system" in err[0] and "--out" in err[0], err
+    assert ran == [] and os.listdir(disk) == []
