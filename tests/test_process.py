@@ -45,9 +45,9 @@ def cohort_h5(tmp_path, planted):
 def test_tables_are_byte_identical_whatever_the_threads(cohort_h5, tmp_path, limit, monkeypatch):
     """threads 1, 2 and 4: every written file but the manifest (which records the threads and
     timings) is the same byte for byte, supplementary-feature statistics included (issue 10)."""
-    from axiscope.core import plan
+    from axiscope.core import memory
 
-    monkeypatch.setattr(plan, "process_baseline", lambda: 0)  # the limit for the data alone (test process)
+    monkeypatch.setattr(memory, "resident_bytes", lambda: 0)  # the limit for the data alone (test process)
     path, listed = cohort_h5
     outs = {}
     for threads in (1, 2, 4):
@@ -81,8 +81,8 @@ where, flag, go = os.environ["PAUSE_AT"], Path(os.environ["FLAG"]), Path(os.envi
 
 # --memory-limit counts the whole process; these tests want a small budget for the data alone
 # whatever the interpreter and libraries hold on this machine
-import axiscope.core.plan
-axiscope.core.plan.process_baseline = lambda: 0
+import axiscope.core.memory
+axiscope.core.memory.resident_bytes = lambda: 0
 
 def pause():
     flag.touch()
@@ -303,9 +303,9 @@ def small_disk(tmp_path):
 def test_full_output_disk_is_exit_3_and_leaves_nothing(cohort_h5, small_disk, capsys, monkeypatch, options):
     """The output's file system fills up (bytes, or inodes) while the tables are written:
     one line naming the place, exit 3, and neither the output nor its temporary folder."""
-    from axiscope.core import plan
+    from axiscope.core import memory
 
-    monkeypatch.setattr(plan, "process_baseline", lambda: 0)
+    monkeypatch.setattr(memory, "resident_bytes", lambda: 0)
     path, _ = cohort_h5
     disk = small_disk("outdisk", options)
     out = disk / "out"
@@ -318,9 +318,9 @@ def test_full_output_disk_is_exit_3_and_leaves_nothing(cohort_h5, small_disk, ca
 def test_full_scratch_disk_is_exit_3_and_leaves_nothing(scratch_input, small_disk, capsys, monkeypatch, tmp_path):
     """The scratch file system fills up mid-pass (free space taken after the plan looked):
     one line, exit 3, no scratch folder left, no output."""
-    from axiscope.core import plan
+    from axiscope.core import memory, plan
 
-    monkeypatch.setattr(plan, "process_baseline", lambda: 0)
+    monkeypatch.setattr(memory, "resident_bytes", lambda: 0)
     monkeypatch.setattr(plan, "scratch_has_room", lambda where, nbytes: True)
     disk = small_disk("scratchdisk", "size=256k")
     out = tmp_path / "out"
@@ -336,10 +336,10 @@ def test_no_space_while_writing_tables_without_root(cohort_h5, tmp_path, capsys,
     (runs everywhere): exit 3, one line, no output, no temporary folder."""
     import errno
 
-    from axiscope.core import plan
+    from axiscope.core import memory, plan
     from axiscope.io import output
 
-    monkeypatch.setattr(plan, "process_baseline", lambda: 0)
+    monkeypatch.setattr(memory, "resident_bytes", lambda: 0)
     original, calls = output.write_table, []
 
     def failing(df, path, **kwargs):
@@ -363,9 +363,9 @@ def test_read_only_scratch_is_refused_before_the_work(scratch_input, small_disk,
 
     ran = []
     monkeypatch.setattr(passes.PassRunner, "run", lambda *a, **k: ran.append(1))
-    from axiscope.core import plan
+    from axiscope.core import memory, plan
 
-    monkeypatch.setattr(plan, "process_baseline", lambda: 0)
+    monkeypatch.setattr(memory, "resident_bytes", lambda: 0)
     monkeypatch.setattr(plan, "scratch_has_room", lambda where, nbytes: True)  # a large read-only disk
     disk = small_disk("readonly", "ro,size=1m")
     out = tmp_path / "out"
@@ -388,3 +388,25 @@ def test_output_on_a_read_only_file_system_is_refused_before_the_fit(cohort_h5, 
         err = capsys.readouterr().err.strip().splitlines()
         assert len(err) == 1 and "Read-only file system" in err[0] and "--out" in err[0], err
     assert ran == [] and os.listdir(disk) == []
+
+
+def test_output_moved_aside_by_a_killed_run_is_restored(cohort_h5, tmp_path, capsys, monkeypatch):
+    """kill -9 between moving the old output aside and moving the new one in: the next run
+    puts the old one back (and says so) before deciding anything about the target."""
+    from axiscope.core import memory
+    from axiscope.io.output import owner_tag
+
+    monkeypatch.setattr(memory, "resident_bytes", lambda: 0)
+    path, _ = cohort_h5
+    out = tmp_path / "out"
+    assert main(["fit", str(path), "--out", str(out), "-k", "2", "-q"]) == 0
+    dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True,
+                          text=True, check=True)
+    host = owner_tag().rsplit("-", 1)[0]
+    aside = tmp_path / f".out.old-{host}-{dead.stdout.strip()}-x"
+    os.replace(out, aside)
+    capsys.readouterr()
+    assert main(["fit", str(path), "--out", str(out), "-k", "2", "-q"]) == 2  # exists, no --overwrite
+    err = capsys.readouterr().err
+    assert "restored" in err and "already exists" in err
+    assert (out / "sample_scores.tsv").is_file() and not aside.exists()

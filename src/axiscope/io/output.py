@@ -269,15 +269,17 @@ def check_target(out: Path, overwrite: bool, *, wait: bool = False) -> None:
     :func:`atomic_directory` when it is done, or by :func:`release_target`.
     """
     out = Path(out)
-    if out.exists() and not overwrite:
-        raise OptionError(f"{out}: already exists; choose another directory or pass overwrite=True")
     if out.exists() and not out.is_dir():
         raise OptionError(f"{out}: exists and is not a directory; choose another directory")
     lock_target(out, wait=wait)
     try:
-        remove_leftovers(Path(os.path.abspath(out)).parent, f".{out.name}.tmp-", "temporary output folder")
-        remove_leftovers(Path(os.path.abspath(out)).parent, f".{out.name}.old-", "previous output folder")
-        probe = owned_temporary_folder(Path(os.path.abspath(out)).parent, f".{out.name}.tmp-")
+        folder = Path(os.path.abspath(out)).parent
+        _restore_previous(out, folder)
+        if out.exists() and not overwrite:
+            raise OptionError(f"{out}: already exists; choose another directory or pass overwrite=True")
+        remove_leftovers(folder, f".{out.name}.tmp-", "temporary output folder")
+        remove_leftovers(folder, f".{out.name}.old-", "previous output folder")
+        probe = owned_temporary_folder(folder, f".{out.name}.tmp-")
         probe.rmdir()
     except OSError as exc:
         release_target(out)
@@ -286,6 +288,20 @@ def check_target(out: Path, overwrite: bool, *, wait: bool = False) -> None:
     except BaseException:
         release_target(out)
         raise
+
+
+def _restore_previous(out: Path, folder: Path) -> None:
+    """Put back an output a killed run had moved aside to replace it (``kill -9`` between the
+    two renames of :func:`atomic_directory`), when nothing has taken its place."""
+    if out.exists():
+        return
+    for entry in sorted(folder.glob(f".{out.name}.old-*")):
+        match = _OWNED.search(entry.name[len(f".{out.name}.old-") - 1:])
+        if match and entry.is_dir() and owner_is_gone(match["host"], int(match["pid"]), entry.lstat().st_mtime):
+            os.replace(entry, out)
+            logger.warning("restored %s from %s, left by process %s while it replaced it",
+                           out, entry.name, match["pid"])
+            return
 
 
 @contextlib.contextmanager
