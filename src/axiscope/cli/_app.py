@@ -18,7 +18,7 @@ from typer.core import TyperGroup
 
 from ..errors import AxiscopeError
 
-__all__ = ["app", "main", "fail", "Terminated", "install_signal_handlers", "RESOURCE_EXIT", "say", "setup_logging", "progress_display", "user_errors",
+__all__ = ["app", "main", "fail", "Terminated", "signal_handlers", "RESOURCE_EXIT", "say", "setup_logging", "progress_display", "user_errors",
            "to_option_spellings", "COMMAND_ORDER"]
 
 #: The commands in the order of the work. A command not named here (the explanation of
@@ -168,13 +168,21 @@ def _on_sigterm(signum: int, frame: Any) -> None:
     raise Terminated()
 
 
-def install_signal_handlers() -> None:
-    """Make SIGTERM raise :class:`Terminated` in the main thread (the command line's entry)."""
+@contextlib.contextmanager
+def signal_handlers() -> Iterator[None]:
+    """Within this context SIGTERM raises :class:`Terminated` in the main thread (the command
+    line's entry); the previous handler is put back afterwards."""
     import signal
     import threading
 
-    if threading.current_thread() is threading.main_thread():
-        signal.signal(signal.SIGTERM, _on_sigterm)
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    previous = signal.signal(signal.SIGTERM, _on_sigterm)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)
 
 
 def interrupted_exit(exc: BaseException) -> int:
@@ -288,9 +296,8 @@ def main(argv: list[str] | None = None) -> int:
     """
     from ..core.memory import count_whole_process
 
-    install_signal_handlers()
     try:
-        with count_whole_process():  # --memory-limit is for the whole process
+        with signal_handlers(), count_whole_process():  # --memory-limit is for the whole process
             result = app(args=argv, prog_name="axiscope", standalone_mode=False)
     except SystemExit as exc:
         return int(exc.code or 0)
