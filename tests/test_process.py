@@ -315,18 +315,21 @@ def test_full_output_disk_is_exit_3_and_leaves_nothing(cohort_h5, small_disk, ca
     assert os.listdir(disk) == []
 
 
-def test_full_scratch_disk_is_exit_3_and_leaves_nothing(scratch_input, small_disk, capsys, monkeypatch, tmp_path):
-    """The scratch file system fills up mid-pass (free space taken after the plan looked):
-    one line, exit 3, no scratch folder left, no output."""
+@pytest.mark.parametrize("options,said", [("size=256k", "no space left for the scratch file"),
+                                           ("nr_inodes=1", "has no room for a scratch file")])
+def test_full_scratch_disk_is_exit_3_and_leaves_nothing(scratch_input, small_disk, capsys, monkeypatch, tmp_path,
+                                                        options, said):
+    """The scratch file system fills up mid-pass (free space taken after the plan looked), or
+    has no inode left for the scratch folder: one line, exit 3, no scratch folder, no output."""
     from axiscope.core import memory, plan
 
     monkeypatch.setattr(memory, "resident_bytes", lambda: 0)
     monkeypatch.setattr(plan, "scratch_has_room", lambda where, nbytes: True)
-    disk = small_disk("scratchdisk", "size=256k")
+    disk = small_disk("scratchdisk", options)
     out = tmp_path / "out"
     assert main(_fit_args(scratch_input, out, disk)) == 3
     err = capsys.readouterr().err.strip().splitlines()
-    assert len(err) == 1 and "no space left for the scratch file" in err[0] and "--scratch" in err[0], err
+    assert len(err) == 1 and said in err[0] and "--scratch" in err[0], err
     assert os.listdir(disk) == []
     assert not out.exists() and _left_behind(tmp_path, disk) == []
 

@@ -53,9 +53,13 @@ class BlockCache:
         self._fd: int | None = None
         if mode == "scratch":
             parent = Path(scratch_dir) if scratch_dir is not None else Path(tempfile.gettempdir())
-            self._dir = str(owned_temporary_folder(parent, SCRATCH_PREFIX))
-            path = os.path.join(self._dir, "blocks.bin")
-            self._fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_TRUNC, 0o600)
+            try:
+                self._dir = str(owned_temporary_folder(parent, SCRATCH_PREFIX))
+                path = os.path.join(self._dir, "blocks.bin")
+                self._fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_TRUNC, 0o600)
+            except OSError as exc:
+                self.close()
+                raise scratch_error(parent, exc, self.nbytes) from exc
             self.path = Path(path)
 
     @property
@@ -76,12 +80,7 @@ class BlockCache:
                 written = os.pwrite(self._fd, view, offset)
                 view, offset = view[written:], offset + written
         except OSError as exc:
-            if exc.errno in (errno.ENOSPC, errno.EDQUOT):
-                raise ResourceError(
-                    f"{self.path}: no space left for the scratch file ({exc.strerror}; it needs "
-                    f"{self.nbytes / 1e6:.1f} MB); free space there, or choose another folder with "
-                    "scratch=..., or raise memory_limit so that blocks stay in memory") from exc
-            raise
+            raise scratch_error(self.path, exc, self.nbytes) from exc
 
     def get(self, start: int, stop: int) -> np.ndarray:
         """Rows ``start .. stop`` as a fresh array (blocks are read back as they were put)."""
@@ -133,3 +132,21 @@ def remove_scratch_leftovers(scratch_dir: Path | None) -> list[Path]:
     """Remove scratch folders of ended processes from the scratch location (logged as warnings)."""
     where = Path(scratch_dir) if scratch_dir is not None else Path(tempfile.gettempdir())
     return remove_leftovers(where, SCRATCH_PREFIX, "scratch folder")
+
+
+def scratch_error(where: Path, exc: OSError, nbytes: int) -> Exception:
+    """The error to raise for an ``OSError`` while making or writing scratch at ``where``.
+
+    No space or no inodes left (both ``ENOSPC``) or a full quota is a
+    :class:`~axiscope.errors.ResourceError` (exit code 3); anything else (read-only, no
+    permission) an :class:`~axiscope.errors.OptionError` naming the folder.
+    """
+    from ..errors import OptionError
+
+    if exc.errno in (errno.ENOSPC, errno.EDQUOT):
+        return ResourceError(
+            f"{where}: no space left for the scratch file ({exc.strerror}; it needs "
+            f"{nbytes / 1e6:.1f} MB); free space there, or choose another folder with "
+            "scratch=..., or raise memory_limit so that blocks stay in memory")
+    return OptionError(f"{where}: the scratch file cannot be written ({exc.strerror}); choose a writable "
+                       "folder with scratch=..., or raise memory_limit so that blocks stay in memory")

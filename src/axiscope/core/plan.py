@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import errno
 import logging
 import tempfile
 from dataclasses import dataclass
@@ -183,6 +184,10 @@ def check_scratch_writable(scratch: Path | None) -> None:
         probe = owned_temporary_folder(where, SCRATCH_PREFIX)
         probe.rmdir()
     except OSError as exc:
+        if exc.errno in (errno.ENOSPC, errno.EDQUOT):  # no inodes left (the plan saw bytes free)
+            raise ResourceError(f"{name} has no room for a scratch file ({exc.strerror}); free space "
+                                "there, choose another folder with scratch=..., or raise memory_limit so "
+                                "that blocks stay in memory") from exc
         raise OptionError(f"{name} cannot be written ({exc.strerror}); choose a writable folder "
                           "with scratch=..., or raise memory_limit so that blocks stay in memory") from exc
 
