@@ -6,12 +6,12 @@ limit plus 10%. It writes a float32 Zarr array of ``--samples`` × ``--features`
 ``--chunk-samples`` × all features, then runs the command line in a child process.
 
     python scripts/check_peak_rss.py                       # 4,000 × 20,000 in 160 MB chunks, 1GB
-    python scripts/check_peak_rss.py --samples 3000 --features 10000 --chunk-samples 1000 --limit 512MB
+    python scripts/check_peak_rss.py --samples 3000 --features 16000 --chunk-samples 1500 --limit 512MB
 
-Measured (2 cores, shared): 573 MB peak under 1GB (baseline 211 MB, 10 s); 381 MB under 512MB
-for the second (the test in tests/test_memory.py). With 160 MB chunks a 512MB limit is
-refused before any work (exit code 3): reading one chunk needs about 320 MB on top of the
-211 MB the process holds.
+Measured (2 cores, shared): 545 MB peak under 1GB (baseline 203 MB); 424 MB under 512MB for
+the second (the test in tests/test_memory.py; 630 MB before the limit counted the whole
+process). With 160 MB chunks a 512MB limit is refused before any work (exit code 3): reading
+one chunk needs about 320 MB on top of the ~210 MB the process holds.
 
 Prints one JSON line: limit, peak, ratio, the plan of the fit and the wall time. Exit code 1
 when the peak exceeds the limit by more than 10%.
