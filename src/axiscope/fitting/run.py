@@ -168,7 +168,7 @@ def _fit(src: MatrixSource, job: _Job, active, exclude) -> FitResult:
     remove_scratch_leftovers(job.resources.scratch)
     plan = plan_fit(src, n_components=job.k, preprocess=job.spec, engine=job.engine,
                     resources=job.resources)
-    method = _choose_method(job.engine.method, n, src.shape[1], job.spec, job.resources.budget)
+    method = _choose_method(job.engine.method, n, src.shape[1], job.spec, plan.budget - plan.baseline)
     runner = PassRunner(threads=plan.threads, progress=job.progress)
     rng = job.engine.generator()
     reader = _Reader(src, job.spec, active, plan.block_rows)
