@@ -442,7 +442,7 @@ def test_inspect_predicts_the_plan_fit_uses(plan_h5, tmp_path, extra):
 def test_inspect_text_names_the_plan(plan_h5):
     res = _invoke("inspect", plan_h5, "--memory-limit", "64MB", "--threads", "2")
     assert res.exit_code == 0, res.stderr
-    assert "blocks of 300 samples" in res.stdout and "2 threads" in res.stdout
+    assert "blocks of 100 samples" in res.stdout and "2 threads" in res.stdout
 
 
 # ------------------------------------------------------------------------- the summary

@@ -2,7 +2,8 @@
 
 Every error that a user can fix by changing the input or the options derives from
 :class:`AxiscopeError`. Its message is one line that already names the file or location
-and says what to do; the command-line layer prints it and exits with code 2.
+and says what to do; the command-line layer prints it and exits with code 2, or 3 for a
+:class:`ResourceError` (memory, disk space).
 
 Messages name the arguments of the Python API, never command-line options, and the
 command line rewrites them into its option spellings
@@ -20,7 +21,7 @@ command line rewrites them into its option spellings
 
 from __future__ import annotations
 
-__all__ = ["AxiscopeError", "InputError", "ModelError", "OptionError", "agree", "counted", "one_line", "reason"]
+__all__ = ["AxiscopeError", "InputError", "ModelError", "OptionError", "ResourceError", "agree", "counted", "one_line", "reason"]
 
 
 class AxiscopeError(Exception):
@@ -37,6 +38,14 @@ class OptionError(AxiscopeError):
 
 class ModelError(AxiscopeError):
     """A saved model directory is missing, incomplete, tampered with or of another format."""
+
+
+class ResourceError(AxiscopeError):
+    """The machine lacks what the work needs: memory within the limit, disk space, inodes.
+
+    The message says how much would be needed and where; the command line exits with
+    code 3 (not 2: the input and the options are fine, the resources are not).
+    """
 
 
 # ------------------------------------------------------------------ wording of messages

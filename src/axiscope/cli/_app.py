@@ -18,7 +18,7 @@ from typer.core import TyperGroup
 
 from ..errors import AxiscopeError
 
-__all__ = ["app", "main", "fail", "say", "setup_logging", "progress_display", "user_errors",
+__all__ = ["app", "main", "fail", "Terminated", "signal_handlers", "RESOURCE_EXIT", "say", "setup_logging", "progress_display", "user_errors",
            "to_option_spellings", "COMMAND_ORDER"]
 
 #: The commands in the order of the work. A command not named here (the explanation of
@@ -149,27 +149,85 @@ def to_option_spellings(message: str, params: dict[str, Any]) -> str:
     return pattern.sub(replace, message)
 
 
-def fail(message: str) -> typer.Exit:
-    """Print one error line and return the exit (code 2) to raise."""
+#: Exit code of a run refused for want of resources (memory, disk space, inodes).
+RESOURCE_EXIT = 3
+
+
+def fail(message: str, code: int = 2) -> typer.Exit:
+    """Print one error line and return the exit (code 2 unless told) to raise."""
     typer.echo(f"error: {message}", err=True)
-    return typer.Exit(code=2)
+    return typer.Exit(code=code)
+
+
+class Terminated(KeyboardInterrupt):
+    """SIGTERM (what workflow managers and schedulers send) arrived: stop like Ctrl-C.
+
+    A subclass of KeyboardInterrupt, so every clean-up path of an interrupt (scratch
+    files, temporary output folders, locks) runs for it too.
+    """
+
+    signum = 15
+
+
+def _on_sigterm(signum: int, frame: Any) -> None:
+    import signal
+
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)  # a second SIGTERM must not cut the clean-up short
+    raise Terminated()
+
+
+@contextlib.contextmanager
+def signal_handlers() -> Iterator[None]:
+    """Within this context SIGTERM raises :class:`Terminated` in the main thread (the command
+    line's entry); the previous handler is put back afterwards."""
+    import signal
+    import threading
+
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    previous = signal.signal(signal.SIGTERM, _on_sigterm)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+
+
+def interrupted_exit(exc: BaseException) -> int:
+    """Print the interruption line and give the exit code: 128 + the signal (130, 143)."""
+    signum = getattr(exc, "signum", 2)
+    what = "terminated" if signum == 15 else "interrupted"
+    typer.echo(f"error: {what}; nothing was written", err=True)
+    return 128 + signum
+
+
+def _release_outputs() -> None:
+    """Release output locks still held (the output module is loaded only if a command used it)."""
+    output = sys.modules.get("axiscope.io.output")
+    if output is not None:
+        output.release_targets()
 
 
 @contextlib.contextmanager
 def user_errors() -> Iterator[None]:
-    """Turn library errors into one line on standard error and exit code 2.
+    """Turn library errors into one line on standard error and exit code 2 (3: resources).
 
     The library's messages name Python arguments; the line printed names the running
     command's options instead (:func:`to_option_spellings`), so the message tells a
-    command-line user what to type.
+    command-line user what to type. Interrupts (Ctrl-C, SIGTERM) exit with 130 and 143.
+    Output locks taken inside are released on the way out, however it ends.
     """
+    from ..errors import ResourceError
+
     try:
         yield
     except AxiscopeError as exc:
-        raise fail(to_option_spellings(str(exc), dict(_running))) from None
-    except KeyboardInterrupt:
-        typer.echo("error: interrupted; nothing was written", err=True)
-        raise typer.Exit(code=130) from None
+        code = RESOURCE_EXIT if isinstance(exc, ResourceError) else 2
+        raise fail(to_option_spellings(str(exc), dict(_running)), code) from None
+    except KeyboardInterrupt as exc:
+        raise typer.Exit(code=interrupted_exit(exc)) from None
+    finally:
+        _release_outputs()
 
 
 # ------------------------------------------------------------------------ output helpers
@@ -241,19 +299,24 @@ def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``axiscope`` console script.
 
     Usage errors of the command line (an unknown option, a value out of range) are shown
-    like every other error: one line on standard error, exit code 2.
+    like every other error: one line on standard error, exit code 2. SIGTERM stops a run
+    like Ctrl-C (clean-up included) and exits with 143.
     """
+    from ..core.memory import count_whole_process
+
     try:
-        result = app(args=argv, prog_name="axiscope", standalone_mode=False)
+        with signal_handlers(), count_whole_process():  # --memory-limit is for the whole process
+            result = app(args=argv, prog_name="axiscope", standalone_mode=False)
     except SystemExit as exc:
         return int(exc.code or 0)
+    except KeyboardInterrupt as exc:  # before or after a command's own handling
+        return interrupted_exit(exc)
     except Exception as exc:  # the parser's own exceptions, recognised by their interface
         if type(exc).__name__ == "NoArgsIsHelpError" and hasattr(exc, "show"):
             exc.show()
             return 0
         if type(exc).__name__ == "Abort":
-            typer.echo("error: interrupted; nothing was written", err=True)
-            return 130
+            return interrupted_exit(exc.__cause__ or exc)
         if hasattr(exc, "format_message") and hasattr(exc, "exit_code"):
             ctx = getattr(exc, "ctx", None)
             where = ctx.command_path if ctx is not None else "axiscope"

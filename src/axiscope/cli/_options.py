@@ -49,10 +49,13 @@ FeatureIds = Annotated[str | None, typer.Option(
     show_default="a dataset named feature_ids, else feature_000001, ...")]
 SamplesInOpt = Annotated[SamplesIn, typer.Option(help="Whether samples are the file's rows or its columns.")]
 MemoryLimit = Annotated[str | None, typer.Option(
-    help="Memory budget for data, e.g. 512MB or 4GB.", show_default="half the RAM")]
+    help="Memory limit for the whole process (interpreter and libraries included), e.g. 512MB or 4GB.",
+    show_default="half the RAM")]
 Threads = Annotated[int | None, typer.Option(
     min=1, help="Blocks processed at once.", show_default="number of cores")]
 Overwrite = Annotated[bool, typer.Option(help="Replace an existing output directory.")]
+Wait = Annotated[bool, typer.Option(
+    help="When another run is writing the same --out, wait for it to end instead of stopping at once.")]
 Quiet = Annotated[bool, typer.Option("--quiet", "-q", help="No progress bars or summary.", show_default="off")]
 #: ``--format``: the writer of the command's tables takes ``parquet=format is TableFormat.parquet``
 #: and passes it on to every table it writes.

@@ -23,6 +23,7 @@ from ._options import (
     OutDir,
     Overwrite,
     Quiet,
+    Wait,
     SampleIds,
     SamplesIn,
     SamplesInOpt,
@@ -107,6 +108,7 @@ def fit_command(
         "--report", help="Also write report.html into --out: one self-contained page with the maps, the axis "
                          "cards and the warnings (see 'axiscope report').")] = False,
     overwrite: Overwrite = False,
+    wait: Wait = False,
     quiet: Quiet = False,
 ) -> None:
     """Fit principal axes to INPUT and write tables, the model, a manifest and the axis cards to --out."""
@@ -119,7 +121,7 @@ def fit_command(
 
     setup_logging(quiet)
     with user_errors():
-        check_target(out, overwrite)
+        check_target(out, overwrite, wait=wait)
         spec = PreprocessSpec(
             center=center, scale=scale.value, log_transform=log_transform, counts_per=counts_per,
             min_variance=min_variance, top_variable=top_variable, missing=missing.value,

@@ -8,6 +8,7 @@ fresh buffers (no memory map, so no file pages count towards resident memory).
 
 from __future__ import annotations
 
+import errno
 import logging
 import os
 import shutil
@@ -17,7 +18,14 @@ from pathlib import Path
 
 import numpy as np
 
-__all__ = ["BlockCache"]
+from ..errors import ResourceError
+from ..io.output import owned_temporary_folder, remove_leftovers
+
+__all__ = ["BlockCache", "SCRATCH_PREFIX", "scratch_has_room", "remove_scratch_leftovers"]
+
+#: Scratch folders are named ``axiscope-scratch-<host>-<pid>-<random>``: a later run removes
+#: those of processes that have ended (killed before they could clean up).
+SCRATCH_PREFIX = "axiscope-scratch-"
 
 logger = logging.getLogger(__name__)
 
@@ -44,9 +52,14 @@ class BlockCache:
         self._dir: str | None = None
         self._fd: int | None = None
         if mode == "scratch":
-            self._dir = tempfile.mkdtemp(prefix="axiscope-scratch-", dir=scratch_dir)
-            path = os.path.join(self._dir, "blocks.bin")
-            self._fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_TRUNC, 0o600)
+            parent = Path(scratch_dir) if scratch_dir is not None else Path(tempfile.gettempdir())
+            try:
+                self._dir = str(owned_temporary_folder(parent, SCRATCH_PREFIX))
+                path = os.path.join(self._dir, "blocks.bin")
+                self._fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_TRUNC, 0o600)
+            except OSError as exc:
+                self.close()
+                raise scratch_error(parent, exc, self.nbytes) from exc
             self.path = Path(path)
 
     @property
@@ -62,9 +75,12 @@ class BlockCache:
             return
         view = memoryview(block).cast("B")
         offset = start * self.row_bytes
-        while view.nbytes:
-            written = os.pwrite(self._fd, view, offset)
-            view, offset = view[written:], offset + written
+        try:
+            while view.nbytes:
+                written = os.pwrite(self._fd, view, offset)
+                view, offset = view[written:], offset + written
+        except OSError as exc:
+            raise scratch_error(self.path, exc, self.nbytes) from exc
 
     def get(self, start: int, stop: int) -> np.ndarray:
         """Rows ``start .. stop`` as a fresh array (blocks are read back as they were put)."""
@@ -110,3 +126,27 @@ def scratch_has_room(scratch_dir: Path | None, nbytes: int) -> bool:
         return shutil.disk_usage(where).free >= nbytes * 1.05
     except OSError:
         return False
+
+
+def remove_scratch_leftovers(scratch_dir: Path | None) -> list[Path]:
+    """Remove scratch folders of ended processes from the scratch location (logged as warnings)."""
+    where = Path(scratch_dir) if scratch_dir is not None else Path(tempfile.gettempdir())
+    return remove_leftovers(where, SCRATCH_PREFIX, "scratch folder")
+
+
+def scratch_error(where: Path, exc: OSError, nbytes: int) -> Exception:
+    """The error to raise for an ``OSError`` while making or writing scratch at ``where``.
+
+    No space or no inodes left (both ``ENOSPC``) or a full quota is a
+    :class:`~axiscope.errors.ResourceError` (exit code 3); anything else (read-only, no
+    permission) an :class:`~axiscope.errors.OptionError` naming the folder.
+    """
+    from ..errors import OptionError
+
+    if exc.errno in (errno.ENOSPC, errno.EDQUOT):
+        return ResourceError(
+            f"{where}: no space left for the scratch file ({exc.strerror}; it needs "
+            f"{nbytes / 1e6:.1f} MB); free space there, or choose another folder with "
+            "scratch=..., or raise memory_limit so that blocks stay in memory")
+    return OptionError(f"{where}: the scratch file cannot be written ({exc.strerror}); choose a writable "
+                       "folder with scratch=..., or raise memory_limit so that blocks stay in memory")

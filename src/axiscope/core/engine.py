@@ -5,8 +5,11 @@ transformed) plus the centre ``μ`` and inverse scale ``d`` of each feature, and
 
     X̃ = (X − 1·μᵀ)·diag(d)
 
-without forming ``X̃``: every product is taken block by block as
-``X_b·(d∘W) − 1·(μᵀ(d∘W))`` and ``d∘(X_bᵀY_b − μ·(1ᵀY))``.
+without forming ``X̃`` as a whole: each block is centred inside its own buffer,
+``C_b = X_b − 1·μ'ᵀ`` with ``μ'`` the centre rounded to the data's dtype, before the products
+``C_b·(d∘W)`` and ``d∘(C_bᵀY_b)``. Only the rounding ``μ − μ'`` (zero for float64 data) is
+applied as a rank-one correction, in float64; it is small, so nothing cancels, and float32
+data whose means lie many standard deviations from zero are as exact as float64 copies.
 
 Randomized path (Halko, Martinsson & Tropp 2011, "Finding structure with randomness",
 SIAM Review 53(2), doi:10.1137/090771806, algorithms 4.4 and 5.1, extended to a block
@@ -152,17 +155,26 @@ def _filled(block: np.ndarray, fill: np.ndarray | None) -> np.ndarray:
     return block
 
 
-def _products(block, W, offset, mean, d, fill, gram_width, want_norms):
-    """Block products ``Y_b = X̃_b·W'``, ``X_bᵀ·Y_b[:, :gram_width]`` and ``‖x̃_i‖²`` for one block."""
+def _products(block, W, offset, centre, residual, d, fill, gram_width, want_norms):
+    """Block products ``Y_b = X̃_b·W'``, ``C_bᵀ·Y_b[:, :gram_width]`` and ``‖x̃_i‖²`` for one block.
+
+    The block is centred in a buffer of its own dtype, ``C_b = X_b − 1·centreᵀ`` with
+    ``centre`` the mean rounded to that dtype: the subtraction of nearby numbers loses
+    nothing, so the products see values of the size of the spread, not of the mean, and
+    no cancellation follows however far the mean lies from zero. What the rounding of the
+    mean left over (``residual = μ − centre``, zero for float64 data) is a small rank-one
+    correction taken in float64 by the caller (``offset = residualᵀ·W'``).
+    """
     block = _filled(block, fill)
-    y = (block @ W).astype(np.float64)
+    centred = block - centre
+    y = (centred @ W).astype(np.float64)
     y -= offset
     gram = None
     if gram_width:
-        gram = (block.T @ y[:, :gram_width].astype(block.dtype)).astype(np.float64)
+        gram = (centred.T @ y[:, :gram_width].astype(block.dtype)).astype(np.float64)
     norms = None
     if want_norms:
-        centred = block - mean.astype(block.dtype)
+        centred -= residual.astype(block.dtype)
         centred *= d.astype(block.dtype)
         norms = np.einsum("ij,ij->i", centred, centred, dtype=np.float64)
     return y, gram, norms
@@ -170,7 +182,11 @@ def _products(block, W, offset, mean, d, fill, gram_width, want_norms):
 
 @dataclass
 class _Operator:
-    """Implicit ``X̃ = (X − 1μᵀ)·diag(d)`` over a row-chunked Dask array."""
+    """Implicit ``X̃ = (X − 1μᵀ)·diag(d)`` over a row-chunked Dask array.
+
+    Each block is centred inside its own buffer before any product (see :func:`_products`);
+    only the rounding of ``μ`` to the data's dtype is corrected afterwards, in float64.
+    """
 
     X: da.Array
     mean: np.ndarray
@@ -191,9 +207,11 @@ class _Operator:
         """
         n, p = self.shape
         gram = W.shape[1] if gram is True else int(gram)
+        centre = self.mean.astype(self.X.dtype)
+        residual = self.mean - centre.astype(np.float64)
         dw = self.d[:, None] * W
-        offset = self.mean @ dw
         W_cast = dw.astype(self.X.dtype)
+        offset = residual @ W_cast.astype(np.float64)
         Y = np.empty((n, W.shape[1]))
         acc = {"gram": np.zeros((p, gram)) if gram else None}
         row_norms = np.empty(n) if norms else None
@@ -208,11 +226,11 @@ class _Operator:
 
         self.runner.run(
             name, self.source, self.X, _products,
-            fold, W_cast, offset, self.mean, self.d, self.fill, gram, norms,
+            fold, W_cast, offset, centre, residual, self.d, self.fill, gram, norms,
         )
         Z = None
         if gram:
-            Z = self.d[:, None] * (acc["gram"] - np.outer(self.mean, Y[:, :gram].sum(axis=0)))
+            Z = self.d[:, None] * (acc["gram"] - np.outer(residual, Y[:, :gram].sum(axis=0)))
         return Y, Z, row_norms
 
 

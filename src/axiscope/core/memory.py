@@ -1,13 +1,26 @@
-"""Memory budgets: parsing sizes such as ``512MB`` and sizing blocks of samples from a budget."""
+"""Memory budgets: parsing sizes such as ``512MB``, and what the process itself holds.
+
+On the command line ``--memory-limit`` is a limit for the whole process: the interpreter,
+the libraries and whatever else is resident when the work is planned count against it
+(:func:`process_baseline`), and the plan shares out the rest. From Python, ``memory_limit``
+is the budget of the fit's own data unless :func:`count_whole_process` was switched on.
+"""
 
 from __future__ import annotations
 
+import contextlib
+import math
 import os
 import re
+from collections.abc import Iterator
 
 from ..errors import OptionError
 
-__all__ = ["parse_memory", "default_memory_limit", "format_bytes"]
+__all__ = ["parse_memory", "default_memory_limit", "format_bytes", "resident_bytes", "process_baseline",
+           "count_whole_process", "MAX_MEMORY"]
+
+#: Largest memory size accepted (1 EiB): anything above is a typo, not a machine.
+MAX_MEMORY = 2**60
 
 _UNITS = {
     "": 1,
@@ -36,6 +49,8 @@ def parse_memory(text: str | int | float) -> int:
     """
     if isinstance(text, (int, float)):
         value, unit = float(text), ""
+        if not math.isfinite(value) or value < 0:
+            raise OptionError(f"memory_limit={text!r} is not a size; write it like 512MB, 4GB or 1.5GiB")
     else:
         match = _PATTERN.match(text)
         if match is None or match.group(2).upper() not in _UNITS:
@@ -43,7 +58,11 @@ def parse_memory(text: str | int | float) -> int:
                 f"memory_limit={text!r} is not a size; write it like 512MB, 4GB or 1.5GiB"
             )
         value, unit = float(match.group(1)), match.group(2).upper()
-    size = int(value * _UNITS[unit])
+    total = value * _UNITS[unit]
+    if not math.isfinite(total) or total > MAX_MEMORY:
+        raise OptionError(f"memory_limit={text!r} is larger than any machine (more than 1 EiB); "
+                          "write the size of this one's memory, like 512MB or 4GB")
+    size = int(total)
     if size < 16 * 10**6:
         raise OptionError(f"memory_limit={text!r} is below the minimum of 16MB; raise it")
     return size
@@ -69,3 +88,33 @@ def format_bytes(n: float) -> str:
             return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
         n /= 1000
     return f"{n:.1f} TB"  # pragma: no cover
+
+
+def resident_bytes() -> int:
+    """Resident memory of this process now, in bytes (``/proc/self/statm``; 0 if unknown)."""
+    try:
+        with open("/proc/self/statm", encoding="ascii") as handle:
+            pages = int(handle.read().split()[1])
+        return pages * os.sysconf("SC_PAGE_SIZE")
+    except (OSError, ValueError, IndexError):  # pragma: no cover - non-Linux
+        return 0
+
+
+_whole_process = [False]
+
+
+@contextlib.contextmanager
+def count_whole_process(enabled: bool = True) -> Iterator[None]:
+    """Within this context, memory limits are for the whole process (the command line's rule)."""
+    previous = _whole_process[0]
+    _whole_process[0] = enabled
+    try:
+        yield
+    finally:
+        _whole_process[0] = previous
+
+
+def process_baseline() -> int:
+    """What the process holds before the work (counted against the limit): its resident
+    memory now when the limit is for the whole process, else 0."""
+    return resident_bytes() if _whole_process[0] else 0

@@ -25,7 +25,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..core.memory import default_memory_limit, format_bytes, parse_memory
+from ..core.memory import default_memory_limit, format_bytes, parse_memory, process_baseline
 from ..core.passes import PassRunner, Progress, array_from_blocks
 from ..core.preprocess import PreprocessSpec, feature_scale, first_nonfinite, transform_block
 from ..errors import InputError, OptionError
@@ -128,7 +128,9 @@ def _selection(source: MatrixSource, F: np.ndarray, rows, columns, sample_ids) -
 def _block_rows(source: MatrixSource, n: int, p: int, k: int, threads: int, memory_limit, *,
                 imputing: bool) -> int:
     """Rows per block so that the accumulators, a window of blocks and the results fit the budget."""
-    budget = default_memory_limit() if memory_limit is None else parse_memory(memory_limit)
+    limit = default_memory_limit() if memory_limit is None else parse_memory(memory_limit)
+    held = process_baseline()  # on the command line the limit is for the whole process
+    budget = limit - held
     n_all, p_all = source.shape
     # during the pass: (p, k) accumulators of cross-products and, with imputation, of the
     # scores of missing cells; five length-p vectors (sums, squares, counts, shift, column
@@ -137,13 +139,15 @@ def _block_rows(source: MatrixSource, n: int, p: int, k: int, threads: int, memo
     # after the pass: correlation, loading, squared cosine and the NaN contribution returned
     # (p, k each), the SD and ids (p each), and the temporaries of one step of features
     results = 8 * p * (4 * k + 2) + 8 * min(p, _STEP) * (4 * k + 8)
-    window = 2 * threads
+    # sized for a window of four blocks whatever ``threads``: the partition into blocks, and so
+    # the rounding of every sum, must not depend on the number of threads
+    window = 4
     row_bytes = p_all * source.dtype.itemsize * 2 + p * 8 * 3 + 8 * p * k // max(1, n)
     needed = max(accumulators + window * row_bytes, accumulators + results)
     if needed > budget:
         raise OptionError(
-            f"memory_limit={format_bytes(budget)} is too small for statistics of {p} supplementary "
-            f"features on {k} axes (needs at least {format_bytes(needed)}); raise memory_limit"
+            f"memory_limit={format_bytes(limit)} is too small for statistics of {p} supplementary "
+            f"features on {k} axes (needs at least {format_bytes(needed + held)}); raise memory_limit"
         )
     block_rows = int(max(1, min((budget - accumulators) // (window * row_bytes), n_all)))
     if source.sample_chunk and block_rows >= source.sample_chunk:

@@ -3,58 +3,360 @@
 from __future__ import annotations
 
 import contextlib
+import errno
+import fcntl
+import logging
 import os
 import re
 import shutil
+import socket
 import tempfile
 from collections.abc import Iterator, Sequence
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from ..defaults import DEFAULT_TOP_FEATURES  # noqa: F401  (re-exported)
-from ..errors import InputError, OptionError
+from ..errors import InputError, OptionError, ResourceError
 
-__all__ = ["atomic_directory", "check_target", "write_table", "write_json", "write_zarr_matrix",
+__all__ = ["atomic_directory", "check_target", "lock_target", "release_target", "release_targets",
+           "TargetBusyError", "owner_tag", "owned_temporary_folder", "remove_leftovers", "write_table", "write_json", "write_zarr_matrix",
            "read_result_table", "check_result_table", "REFIT_HINT", "ZARR_FEATURE_THRESHOLD"]
 
+
+logger = logging.getLogger(__name__)
 
 #: Above this many features, per-feature tables are also written as Zarr arrays with ids.
 ZARR_FEATURE_THRESHOLD = 200_000
 
 
-def check_target(out: Path, overwrite: bool) -> None:
-    """Refuse an existing output directory unless ``overwrite``."""
+# ------------------------------------------------------------- owned temporary names
+#
+# Every temporary file or folder a run makes (scratch folders, the temporary output folder,
+# the previous output while it is replaced, the lock file's contents) carries the host and
+# the process id of its owner, so that a later run can tell leftovers of a killed process
+# (kill -9 leaves no chance to clean up) from files of a run still going, and remove them.
+
+
+def owner_tag() -> str:
+    """``host-pid`` of this process, as written into the names of its temporary files."""
+    host = re.sub(r"[^A-Za-z0-9.]", "_", socket.gethostname()) or "localhost"
+    return f"{host}-{os.getpid()}"
+
+
+#: ``<anything>-<host>-<pid>-<random>``: the tail of an owned temporary name (see :func:`owner_tag`).
+_OWNED = re.compile(r"-(?P<host>[A-Za-z0-9._]+)-(?P<pid>\d+)-(?P<rest>[A-Za-z0-9_]*)$")
+
+
+def _boot_time() -> float | None:
+    try:
+        with open("/proc/stat", encoding="ascii") as handle:
+            for line in handle:
+                if line.startswith("btime "):
+                    return float(line.split()[1])
+    except OSError:
+        pass
+    return None
+
+
+def _started(pid: int) -> float | None:
+    """When process ``pid`` started (seconds since the epoch), from /proc; None if unknown."""
+    boot = _boot_time()
+    try:
+        with open(f"/proc/{pid}/stat", encoding="ascii", errors="replace") as handle:
+            fields = handle.read().rsplit(")", 1)[1].split()
+        return None if boot is None else boot + int(fields[19]) / os.sysconf("SC_CLK_TCK")
+    except (OSError, IndexError, ValueError):
+        return None
+
+
+def owner_is_gone(host: str, pid: int, made: float) -> bool:
+    """Whether the process that made a file at time ``made`` (``host``, ``pid``) has ended.
+
+    Only files of this host are judged. A process id in use by a process started after the
+    file was made is a later process that reused the id: the owner is gone.
+    """
+    if host != owner_tag().rsplit("-", 1)[0]:
+        return False
+    if pid == os.getpid():
+        return False
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return True
+    except PermissionError:  # alive, someone else's
+        pass
+    started = _started(pid)
+    return started is not None and started > made + 1.0
+
+
+def remove_leftovers(folder: Path, prefix: str, what: str) -> list[Path]:
+    """Remove entries of ``folder`` named ``prefix<host>-<pid>-…`` whose owner process has ended.
+
+    Each removal is logged as a warning naming the path and the process. Entries of live
+    processes, of other hosts, or that cannot be judged are left alone.
+    """
+    removed: list[Path] = []
+    try:
+        entries = list(Path(folder).iterdir())
+    except OSError:
+        return removed
+    for entry in entries:
+        if not entry.name.startswith(prefix):
+            continue
+        match = _OWNED.search(entry.name[len(prefix) - 1:])
+        if match is None:
+            continue
+        try:
+            made = entry.lstat().st_mtime
+        except OSError:
+            continue
+        if not owner_is_gone(match["host"], int(match["pid"]), made):
+            continue
+        if entry.is_dir() and not entry.is_symlink():
+            shutil.rmtree(entry, ignore_errors=True)
+        else:
+            with contextlib.suppress(OSError):
+                entry.unlink()
+        if not entry.exists():
+            removed.append(entry)
+            logger.warning("removed %s %s left by process %s, which is no longer running",
+                           what, entry, match["pid"])
+    return removed
+
+
+def owned_temporary_folder(parent: Path, prefix: str) -> Path:
+    """A new folder ``parent/<prefix><host>-<pid>-<random>`` (see :func:`remove_leftovers`)."""
+    return Path(tempfile.mkdtemp(prefix=f"{prefix}{owner_tag()}-", dir=parent))
+
+
+# -------------------------------------------------------------------- the output lock
+
+
+class TargetBusyError(OptionError):
+    """Another process is writing the same output directory."""
+
+
+@dataclass
+class _Lock:
+    path: Path
+    fd: int
+    made: list[Path]  # parent folders this run created for the target (removed on failure)
+
+
+#: Output locks held by this process, by target.
+_locks: dict[Path, _Lock] = {}
+
+
+def _lock_path(out: Path) -> Path:
+    return out.parent / f".{out.name}.lock"
+
+
+def lock_target(out: Path, *, wait: bool = False) -> None:
+    """Take the lock on the output directory ``out`` (a file ``.<name>.lock`` beside it).
+
+    The lock is an exclusive ``flock`` on that file, which the kernel releases when the
+    process ends however it ends, so a killed writer never blocks the next one; the file
+    holds the host and process id of the holder for the message. Missing parent folders are
+    made (and removed again by :func:`release_targets` if nothing was written). Taking a lock
+    this process already holds does nothing.
+
+    Raises
+    ------
+    TargetBusyError
+        Another process holds the lock (unless ``wait``: then wait for it).
+    OptionError
+        The output's folder cannot be made or written.
+    """
+    out = Path(os.path.abspath(out))
+    if out in _locks:
+        return
+    made = _make_parents(out.parent)
+    path = _lock_path(out)
+    while True:
+        try:
+            fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+        except OSError as exc:
+            _remove_made(made)
+            raise OptionError(f"{out}: cannot write in {out.parent} ({exc.strerror}); "
+                              "choose another place for out=...") from exc
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            holder = _read_holder(fd)
+            if not wait:
+                os.close(fd)
+                _remove_made(made)
+                raise TargetBusyError(
+                    f"{out}: another axiscope run ({holder}) is writing it; wait for it to end, "
+                    "pass wait=True to queue behind it, or choose another directory") from None
+            logger.warning("%s: waiting for %s, which is writing it", out, holder)
+            fcntl.flock(fd, fcntl.LOCK_EX)
+        # the holder before us may have removed the file while we waited: lock the file that is there
+        try:
+            same = os.path.samestat(os.fstat(fd), os.stat(path))
+        except FileNotFoundError:
+            same = False
+        if same:
+            break
+        os.close(fd)
+    os.ftruncate(fd, 0)
+    os.pwrite(fd, f"process {os.getpid()} on {socket.gethostname()}\n".encode(), 0)
+    _locks[out] = _Lock(path, fd, made)
+
+
+def _read_holder(fd: int) -> str:
+    try:
+        text = os.pread(fd, 200, 0).decode("utf-8", "replace").strip()
+    except OSError:
+        text = ""
+    return text or "process unknown"
+
+
+def _make_parents(folder: Path) -> list[Path]:
+    """Make ``folder`` and missing parents; the ones made, outermost first."""
+    missing = []
+    where = folder
+    while not where.exists() and where.parent != where:
+        missing.append(where)
+        where = where.parent
+    for path in reversed(missing):
+        try:
+            path.mkdir()
+        except FileExistsError:
+            pass
+        except OSError as exc:
+            _remove_made(list(reversed(missing)))
+            raise OptionError(f"{folder}: cannot be made ({exc.strerror}); choose another place "
+                              "for out=...") from exc
+    return list(reversed(missing))
+
+
+def _remove_made(made: list[Path]) -> None:
+    for path in reversed(made):
+        with contextlib.suppress(OSError):
+            path.rmdir()
+
+
+def release_target(out: Path) -> None:
+    """Release the lock on ``out`` (removing the lock file); parents made for it go if empty."""
+    out = Path(os.path.abspath(out))
+    lock = _locks.pop(out, None)
+    if lock is None:
+        return
+    with contextlib.suppress(OSError):
+        os.unlink(lock.path)  # while still holding it: a waiter re-checks the file it locked
+    os.close(lock.fd)
+    if not out.exists():
+        _remove_made(lock.made)
+
+
+def release_targets() -> None:
+    """Release every output lock this process holds (the command line calls this at the end)."""
+    for out in list(_locks):
+        release_target(out)
+
+
+def check_target(out: Path, overwrite: bool, *, wait: bool = False) -> None:
+    """Check that ``out`` can be written, before any work, and lock it for this process.
+
+    Refuses an existing output directory unless ``overwrite``, and a target that is a file.
+    Makes missing parent folders, takes the lock (:func:`lock_target`), checks that a file
+    can be created beside the target, and removes leftovers of killed runs beside it
+    (temporary output folders of processes that have ended). The lock is released by
+    :func:`atomic_directory` when it is done, or by :func:`release_target`.
+    """
     out = Path(out)
-    if out.exists() and not overwrite:
-        raise OptionError(f"{out}: already exists; choose another directory or pass overwrite=True")
     if out.exists() and not out.is_dir():
         raise OptionError(f"{out}: exists and is not a directory; choose another directory")
+    lock_target(out, wait=wait)
+    try:
+        folder = Path(os.path.abspath(out)).parent
+        _restore_previous(out, folder)
+        if out.exists() and not overwrite:
+            raise OptionError(f"{out}: already exists; choose another directory or pass overwrite=True")
+        remove_leftovers(folder, f".{out.name}.tmp-", "temporary output folder")
+        remove_leftovers(folder, f".{out.name}.old-", "previous output folder")
+        probe = owned_temporary_folder(folder, f".{out.name}.tmp-")
+        probe.rmdir()
+    except OSError as exc:
+        release_target(out)
+        raise OptionError(f"{out}: cannot write in {out.parent} ({exc.strerror}); "
+                          "choose another place for out=...") from exc
+    except BaseException:
+        release_target(out)
+        raise
+
+
+def _restore_previous(out: Path, folder: Path) -> None:
+    """Put back an output a killed run had moved aside to replace it (``kill -9`` between the
+    two renames of :func:`atomic_directory`), when nothing has taken its place."""
+    if out.exists():
+        return
+    for entry in sorted(folder.glob(f".{out.name}.old-*")):
+        match = _OWNED.search(entry.name[len(f".{out.name}.old-") - 1:])
+        if match and entry.is_dir() and owner_is_gone(match["host"], int(match["pid"]), entry.lstat().st_mtime):
+            os.replace(entry, out)
+            logger.warning("restored %s from %s, left by process %s while it replaced it",
+                           out, entry.name, match["pid"])
+            return
 
 
 @contextlib.contextmanager
-def atomic_directory(out: Path, *, overwrite: bool = False) -> Iterator[Path]:
+def _signals_held() -> Iterator[None]:
+    """Hold SIGINT and SIGTERM back (main thread only) while the output is swapped into place."""
+    import signal
+    import threading
+
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    held = {signal.SIGINT, signal.SIGTERM}
+    previous = signal.pthread_sigmask(signal.SIG_BLOCK, held)
+    try:
+        yield
+    finally:
+        signal.pthread_sigmask(signal.SIG_SETMASK, previous)
+
+
+@contextlib.contextmanager
+def atomic_directory(out: Path, *, overwrite: bool = False, wait: bool = False) -> Iterator[Path]:
     """Yield a temporary directory beside ``out``; move it to ``out`` only on success.
 
-    A failed or interrupted run leaves neither ``out`` nor the temporary directory.
+    The target is locked from :func:`check_target` (called here if it was not yet) until
+    the directory is in place. A failed or interrupted run leaves neither ``out`` nor the
+    temporary directory; a killed one (``kill -9``) leaves a temporary directory named with
+    its host and process id, which the next run writing there removes. A full disk or an
+    exhausted inode table while writing is a :class:`~axiscope.errors.ResourceError`.
     """
     out = Path(out)
-    check_target(out, overwrite)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.tmp-", dir=out.parent))
+    check_target(out, overwrite, wait=wait)
     try:
-        yield tmp
-        if out.exists():
-            old = out.with_name(f".{out.name}.old-{os.getpid()}")
-            os.replace(out, old)
-            os.replace(tmp, out)
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.replace(tmp, out)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
+        tmp = owned_temporary_folder(Path(os.path.abspath(out)).parent, f".{out.name}.tmp-")
+        try:
+            yield tmp
+            with _signals_held():
+                if out.exists():
+                    old = out.with_name(f".{out.name}.old-{owner_tag()}-x")
+                    os.replace(out, old)
+                    os.replace(tmp, out)
+                    shutil.rmtree(old, ignore_errors=True)
+                else:
+                    os.replace(tmp, out)
+        except OSError as exc:
+            shutil.rmtree(tmp, ignore_errors=True)
+            if exc.errno in (errno.ENOSPC, errno.EDQUOT):
+                raise ResourceError(f"{out}: no space left while writing in {out.parent} "
+                                    f"({exc.strerror}); free space there or choose another place "
+                                    "for out=...; nothing was written") from exc
+            raise
+        except BaseException:
+            shutil.rmtree(tmp, ignore_errors=True)
+            raise
+    finally:
+        release_target(out)
 
 
 def write_table(df: pd.DataFrame, path: Path, *, parquet: bool = False, header: Sequence[str] = ()) -> None:
