@@ -6,9 +6,8 @@ valid input, the case's own check of the result; and in every case nothing left 
 (no output folder, no hidden temporary folder beside it, no new file anywhere in the
 case's folder, nothing in a private temporary folder given to the run).
 
-Cases fixed on another branch are marked ``xfail(strict=True)`` with that branch as the
-reason: they must fail here until that branch is merged. After a merge, add the branch
-to :data:`MERGED` and its cases run unmarked.
+A case with a ``known_fault`` is marked ``xfail(strict=True)``: it must fail until the
+fault is fixed, and then the mark goes.
 """
 
 from __future__ import annotations
@@ -22,15 +21,10 @@ import pytest
 
 from bad_inputs import CASES, Case
 
-#: Branches whose fixes are in this tree: their cases must pass, unmarked.
-MERGED: set[str] = {"h-inputs"}
-
-
 def _param(case: Case):
     marks = []
-    if case.owner is not None and case.owner not in MERGED:
-        reason = "open: no branch fixes it yet" if case.owner == "open" else f"fixed on branch {case.owner}"
-        marks.append(pytest.mark.xfail(strict=True, reason=reason))
+    if case.known_fault is not None:
+        marks.append(pytest.mark.xfail(strict=True, reason=case.known_fault))
     if case.needs_non_root:
         marks.append(pytest.mark.skipif(hasattr(os, "geteuid") and os.geteuid() == 0,
                                         reason="root reads and writes regardless of permissions"))

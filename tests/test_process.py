@@ -17,7 +17,6 @@ import sys
 import time
 from pathlib import Path
 
-import numpy as np
 import pytest
 
 from axiscope.cli._app import main
@@ -339,7 +338,7 @@ def test_no_space_while_writing_tables_without_root(cohort_h5, tmp_path, capsys,
     (runs everywhere): exit 3, one line, no output, no temporary folder."""
     import errno
 
-    from axiscope.core import memory, plan
+    from axiscope.core import memory
     from axiscope.io import output
 
     monkeypatch.setattr(memory, "resident_bytes", lambda: 0)

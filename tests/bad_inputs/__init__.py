@@ -8,11 +8,8 @@ standard error is one line starting with ``error:``, that no traceback escaped a
 nothing was left behind (no output folder, no hidden temporary folder beside it, nothing
 in the private temporary folder).
 
-Cases whose fix belongs to another branch carry ``owner`` (``"h-inputs"``: readers and
-integrity; ``"h-process"``: process safety, locks, resource limits); they are expected to
-fail here until that branch is merged (``xfail(strict=True)``), after which the mark is
-removed. ``"open"`` marks faults that no branch fixes yet. The expected outcome of those
-cases is the one issue 10 states.
+A case whose fault is known and not fixed yet carries ``known_fault`` (why); it is
+expected to fail (``xfail(strict=True)``), so that fixing it shows up at once.
 
 Modules: :mod:`.text`, :mod:`.hdf5`, :mod:`.zarr_cases`, :mod:`.npy`, :mod:`.models`,
 :mod:`.options`. The matrices are invented (random numbers); none encodes a truth a test
@@ -48,9 +45,8 @@ class Case:
         input that is tricky but valid.
     fragment : str
         A piece of the single error line (for ``code != 0``).
-    owner : str or None
-        Branch that fixes the case (then expected to fail until merged), ``"open"`` for a
-        fault no branch fixes yet, or None.
+    known_fault : str or None
+        A fault known and not fixed yet (the case then must fail), or None.
     check : callable or None
         ``check(out_folder)`` for ``code == 0``: asserts that the result is right.
     needs_non_root : bool
@@ -65,7 +61,7 @@ class Case:
     build: Callable[[Path], list[str]]
     code: int
     fragment: str = ""
-    owner: str | None = None
+    known_fault: str | None = None
     check: Callable[[Path], None] | None = None
     needs_non_root: bool = False
     warnings: int = 0

@@ -138,13 +138,12 @@ CASES = [
          check=_shape_is((40, 12))),
     Case("npy_float16", "npy", _npy("half.npy", lambda: good_matrix().astype(np.float16)), 0,
          check=_shape_is((40, 12))),
-    Case("npy_cell_1e200", "npy", _npy("huge.npy", _with(1e200)), 2, "huge.npy", owner="h-inputs"),
+    Case("npy_cell_1e200", "npy", _npy("huge.npy", _with(1e200)), 2, "huge.npy"),
     Case("npy_precise_feature_far_from_zero", "npy", _npy("precise.npy", _constant_but_precise), 0,
-         check=_kept_every_feature, owner="h-inputs"),
+         check=_kept_every_feature),
     Case("npy_float32_far_from_zero_randomized", "npy",
-         _npy("offset.npy", _far_from_zero, "--method", "randomized"), 0, check=_scores_match_float64_lapack,
-         owner="h-process"),
+         _npy("offset.npy", _far_from_zero, "--method", "randomized"), 0, check=_scores_match_float64_lapack),
     Case("npy_dosage_scaling_of_non_dosages", "npy",
          _npy("dosages.npy", _dosages_with_other_values, "--scale", "allele-frequency"), 2, "dosages.npy",
-         owner="open"),  # refused on h-inputs, but the line names neither the file nor the feature
+         known_fault="the error line names neither the file nor the feature"),
 ]
