@@ -97,7 +97,7 @@ CASES = [
     Case("zarr3_garbled_chunk", "zarr", _store("garbled3.zarr", 3, damage=_garble_chunk), 2, "garbled3.zarr"),
     Case("zarr2_missing_array_metadata", "zarr", _store("nometa2.zarr", 2, damage=_delete_metadata), 2,
          "nometa2.zarr"),  # zarr's own warning joins the error line
-    Case("zarr3_garbled_metadata", "zarr", _store("badmeta3.zarr", 3, damage=_garble_metadata), 2, "badmeta3.zarr"),  # today: a JSONDecodeError traceback
+    Case("zarr3_garbled_metadata", "zarr", _store("badmeta3.zarr", 3, damage=_garble_metadata), 2, "badmeta3.zarr"),  # was a JSONDecodeError traceback
     Case("zarr3_1d_array", "zarr", _store("oned.zarr", 3, data=np.arange(30.0)), 2, "oned.zarr"),
     Case("zarr3_3d_array", "zarr", _store("threed.zarr", 3, data=np.zeros((4, 5, 6)), chunks=(2, 5, 6)), 2,
          "threed.zarr"),
