@@ -352,10 +352,12 @@ def test_allele_frequency_refuses_values_that_are_not_dosages():
 
     G = np.random.default_rng(8).integers(0, 3, size=(50, 10)).astype(np.float64)
     G[7, 3] = 267.0
-    with pytest.raises(InputError, match=r"scale='allele-frequency' reads genotype dosages 0, 1 or 2.*holds 267 "):
+    # the line names the sample and feature holding the first such value
+    with pytest.raises(InputError, match=r"sample 'sample_000008', feature 'feature_000004' holds 267, "
+                                         r"but scale='allele-frequency' reads genotype dosages 0, 1 or 2"):
         fit(array_source(G), n_components=2, preprocess=PreprocessSpec(scale="allele-frequency"))
     G[7, 3] = 0.5
-    with pytest.raises(InputError, match=r"holds 0\.5 "):
+    with pytest.raises(InputError, match=r"holds 0\.5, "):
         fit(array_source(G), n_components=2, preprocess=PreprocessSpec(scale="allele-frequency"))
 
 
@@ -379,7 +381,7 @@ def test_allele_frequency_cli_one_line(tmp_path):
     path = tmp_path / "g.npy"
     np.save(path, G)
     res = _invoke("fit", path, "--out", tmp_path / "out", "-k", "2", "--quiet", "--scale", "allele-frequency")
-    _one_line_error(res, "genotype dosages", "holds 3 ", "--scale unit")
+    _one_line_error(res, "genotype dosages", "holds 3, ", "--scale unit")
 
 
 # --------------------------------------------------------------------- values out of range

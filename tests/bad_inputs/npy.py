@@ -144,6 +144,5 @@ CASES = [
     Case("npy_float32_far_from_zero_randomized", "npy",
          _npy("offset.npy", _far_from_zero, "--method", "randomized"), 0, check=_scores_match_float64_lapack),
     Case("npy_dosage_scaling_of_non_dosages", "npy",
-         _npy("dosages.npy", _dosages_with_other_values, "--scale", "allele-frequency"), 2, "dosages.npy",
-         known_fault="the error line names neither the file nor the feature"),
+         _npy("dosages.npy", _dosages_with_other_values, "--scale", "allele-frequency"), 2, "dosages.npy"),
 ]

@@ -29,6 +29,7 @@ __all__ = [
     "constant_features",
     "constant_rule",
     "check_dosages",
+    "NotADosage",
 ]
 
 logger = logging.getLogger(__name__)
@@ -179,23 +180,38 @@ def constant_rule(eps: float) -> str:
 DOSAGES = (0.0, 1.0, 2.0)
 
 
+class NotADosage(InputError):
+    """A value other than 0, 1, 2 or NaN under ``scale="allele-frequency"``.
+
+    ``row`` and ``column`` locate the first such value in the block; callers that know the
+    file and the ids re-raise it with :meth:`located`.
+    """
+
+    def __init__(self, value: float, row: int, column: int, count: int) -> None:
+        self.value, self.row, self.column, self.count = float(value), int(row), int(column), int(count)
+        super().__init__(self.located(""))
+
+    def located(self, where: str) -> str:
+        """The message, with ``where`` (e.g. "file: sample 's1', feature 'g2'") in front."""
+        place = f"{where} holds {self.value:g}" if where else f"the input holds {self.value:g}"
+        return (f"{place}, but scale='allele-frequency' reads genotype dosages 0, 1 or 2 (NaN for "
+                f"missing); {counted(self.count, 'such value')} in that block. Recode the genotypes, "
+                "or choose scale='unit' for other data")
+
+
 def check_dosages(block: np.ndarray) -> None:
     """Under ``scale="allele-frequency"`` every value is a dosage 0, 1 or 2, or NaN (missing).
 
     Raises
     ------
-    InputError
-        Naming the first other value and how many the block holds.
+    NotADosage
+        Locating the first other value in the block and counting them.
     """
     bad = (block != 0) & (block != 1) & (block != 2) & ~np.isnan(block)
     if not bad.any():
         return
     rows, cols = np.nonzero(bad)
-    value = block[rows[0], cols[0]]
-    raise InputError(
-        f"scale='allele-frequency' reads genotype dosages 0, 1 or 2 (NaN for missing), but the input "
-        f"holds {float(value):g} ({counted(int(bad.sum()), 'such value')} in a block of "
-        f"{counted(block.shape[0], 'sample')}); recode the genotypes, or choose scale='unit' for other data")
+    raise NotADosage(block[rows[0], cols[0]], rows[0], cols[0], int(bad.sum()))
 
 
 def row_totals(block: np.ndarray) -> np.ndarray:

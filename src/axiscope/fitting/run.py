@@ -30,6 +30,7 @@ from ..core.preprocess import (
     BlockStats,
     FeatureStatistics,
     Preprocessing,
+    NotADosage,
     PreprocessSpec,
     block_statistics,
     first_nonfinite,
@@ -282,7 +283,12 @@ class _Reader:
         block = self.src.read_samples(a, b)
         if not self.all_active:
             block = block[self.active[a:b]]
-        block = transform_block(block, self.spec)
+        try:
+            block = transform_block(block, self.spec)
+        except NotADosage as exc:
+            sample = self.src.sample_ids[a + np.flatnonzero(self.active[a:b])[exc.row]]
+            feature = self.src.feature_ids[exc.column]
+            raise InputError(exc.located(f"{self.src.path.name}: sample {sample!r}, feature {feature!r}")) from None
         if columns is not None:
             block = np.ascontiguousarray(block[:, columns])
         if cache is not None:
