@@ -634,3 +634,17 @@ def test_hdf5_chunks_never_written(tmp_path, caplog):
         expected[0:4], expected[8:10] = 1.0, 2.0
         np.testing.assert_array_equal(_read_all(src), expected)
     assert "2 of 6 chunks of dataset /X are absent" in caplog.text
+
+
+def test_the_manifest_says_why_integers_are_computed_in_float64_and_why_features_were_dropped():
+    """The record of the run carries the precision rule and the rule behind each drop."""
+    from axiscope import fit
+    from axiscope.io import array_source
+
+    X = np.random.default_rng(4).integers(10**9, 10**9 + 300, size=(40, 6)).astype(np.int64)
+    X[:, 2] = 7  # a constant feature
+    manifest = fit(array_source(X), n_components=2).manifest
+    assert manifest["input"]["stored_dtype"] == "int64"
+    assert manifest["input"]["computed_in"].startswith("float64")
+    assert manifest["features_dropped"] == {"constant": 1}
+    assert "eps" in manifest["features_dropped_rules"]["constant"]

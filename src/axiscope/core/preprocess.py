@@ -459,10 +459,11 @@ class Preprocessing:
     def rules(self) -> dict[str, str]:
         """The rule behind each reason in :attr:`reason` that occurs, in words."""
         texts = {
-            "supplementary": "left out of the axes on request (supplementary features)",
-            "constant": constant_rule(self.eps),
-            "min_variance": f"variance below min_variance={self.spec.min_variance:g}",
-            "top_variable": f"not among the top_variable={self.spec.top_variable} features of largest variance",
+            "supplementary": lambda: "left out of the axes on request (supplementary features)",
+            "constant": lambda: constant_rule(self.eps),
+            "min_variance": lambda: f"variance below min_variance={self.spec.min_variance:g}",
+            "top_variable": lambda: f"not among the top_variable={self.spec.top_variable} features of "
+                                    "largest variance",
         }
         present = set(self.reason.tolist())
-        return {name: text for name, text in texts.items() if name in present}
+        return {name: text() for name, text in texts.items() if name in present}

@@ -36,7 +36,7 @@ from ..core.preprocess import (
     first_nonfinite,
     transform_block,
 )
-from ..errors import InputError, OptionError
+from ..errors import InputError, OptionError, counted
 from ..io import MatrixSource, opened
 from ..model.store import Model
 from ..model.training import (
@@ -345,10 +345,9 @@ def _preprocessing(job: _Job, stats: FeatureStatistics, exclude, src: MatrixSour
     _check_components(job.k, n, n_kept, job.spec.center, "the preprocessed matrix",
                       after=" left after dropping constant or filtered ones")
     if prep.dropped.get("constant"):
-        logger.warning(
-            "%d constant features were dropped (zero variance); they are listed in "
-            "dropped_features.tsv", prep.dropped["constant"],
-        )
+        n_constant = prep.dropped["constant"]
+        logger.warning("%s dropped as constant (%s); listed in dropped_features.tsv",
+                       counted(n_constant, "feature was", "features were"), prep.rules["constant"])
     return prep
 
 
@@ -469,12 +468,15 @@ def _manifest(src, job: _Job, n, prep, stats, fac, plan, runner) -> dict:
             "samples_in": src.samples_in,
             "shape": [n_all, p_all],
             "dtype": str(src.dtype),
+            "stored_dtype": str(src.stored_dtype),
+            **src.notes,
             "file_size": src.file_size,
             "modified": _mtime(src.path),
         },
         "n_active_samples": n,
         "n_features_kept": int(prep.kept.shape[0]),
         "features_dropped": prep.dropped,
+        "features_dropped_rules": prep.rules,
         "n_missing_imputed": int(stats.n_missing),
         "options": {
             "n_components": job.k,
