@@ -125,7 +125,7 @@ CASES = [
     Case("option_top_variable_one", "option", _fit_with("--top-variable", "1"), 2, "--top-variable"),
     Case("option_power_iterations_101", "option", _fit_with("--power-iterations", "101"), 2, "--power-iterations"),
     Case("option_power_iterations_word", "option", _fit_with("--power-iterations", "many"), 2,
-         "'many' is not 'auto' or a whole number"),
+         "Invalid value for '--power-iterations': 'many' is not 'auto' or a whole number"),
     Case("option_threads_zero", "option", _fit_with("--threads", "0"), 2, "--threads"),
     Case("option_scratch_is_a_file", "option",
          lambda d: (d / "afile").write_text("x") and _fit_with("--scratch", str(d / "afile"))(d), 2, "--scratch"),

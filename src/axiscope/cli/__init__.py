@@ -9,7 +9,15 @@ from __future__ import annotations
 import sys
 
 # Importing the command modules registers their commands on the app.
-from . import demo_cmd, explain_cmd, figures_cmd, fit_cmd, inspect_cmd, report_cmd, score_cmd  # noqa: E402,F401
+from . import (  # noqa: E402,F401
+    demo_cmd,
+    explain_cmd,
+    figures_cmd,
+    fit_cmd,
+    inspect_cmd,
+    report_cmd,
+    score_cmd,
+)
 from ._app import app, main
 
 __all__ = ["app", "main"]

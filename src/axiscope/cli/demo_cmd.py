@@ -11,7 +11,7 @@ from typing import Annotated
 import typer
 
 from ._app import app, progress_display, say, setup_logging, user_errors
-from ._options import FormatOpt, Overwrite, Quiet, TableFormat, Threads
+from ._options import FormatOpt, Overwrite, Quiet, TableFormat, Threads, Wait
 from .fit_cmd import print_fit_summary
 
 
@@ -24,6 +24,7 @@ def demo_command(
     threads: Threads = None,
     format: FormatOpt = TableFormat.tsv,
     overwrite: Overwrite = False,
+    wait: Wait = False,
     quiet: Quiet = False,
 ) -> None:
     """Simulate a synthetic RNA-sequencing cohort, fit it, explain the axes, score a new batch, draw it all."""
@@ -42,7 +43,7 @@ def demo_command(
     setup_logging(quiet)
     t0 = time.perf_counter()
     with user_errors():
-        check_target(out, overwrite)
+        check_target(out, overwrite, wait=wait)
         with atomic_directory(out, overwrite=overwrite) as tmp:
             data = make_demo_data(tmp / "data", seed=seed)
             say(f"simulated a reference cohort and a new batch in {time.perf_counter() - t0:.1f} s", quiet)

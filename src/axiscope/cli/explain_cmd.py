@@ -11,9 +11,9 @@ from typing import TYPE_CHECKING, Annotated
 
 import typer
 
-from ._app import app, say, setup_logging, user_errors
 from ..defaults import DEFAULT_TOP_FEATURES, SAMPLES_PER_LIST
-from ._options import FormatOpt, Overwrite, Quiet, TableFormat
+from ._app import app, say, setup_logging, user_errors
+from ._options import FormatOpt, Overwrite, Quiet, TableFormat, Wait
 
 if TYPE_CHECKING:
     from ..explain.cards import AxisCards
@@ -68,6 +68,7 @@ def explain_command(
     out: Annotated[Path | None, typer.Option(
         "--out", "-o", help="Where to write (default: RESULT_DIR/explanation).")] = None,
     overwrite: Overwrite = False,
+    wait: Wait = False,
     quiet: Quiet = False,
 ) -> None:
     """Axis cards of a fit: what each axis carries, is built from, lines up with, and its samples."""
@@ -77,7 +78,7 @@ def explain_command(
         from ..explain.cards import explain_axes
         from ..io.output import atomic_directory, check_target
 
-        check_target(target, overwrite)
+        check_target(target, overwrite, wait=wait)
         cards = explain_axes(
             result_dir, annotations=annotations, id_column=id_column, categorical=categorical, numeric=numeric,
             technical=technical, ignore=ignore, allow_missing=allow_missing, top=top,

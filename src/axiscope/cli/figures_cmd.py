@@ -12,7 +12,7 @@ from typing import Annotated
 import typer
 
 from ._app import app, fail, say, setup_logging, user_errors
-from ._options import Overwrite, Quiet
+from ._options import Overwrite, Quiet, Wait
 from .explain_cmd import AnnotationsFile, IdColumn
 
 
@@ -55,6 +55,7 @@ def figures_command(
     formats: Annotated[FigureFormat, typer.Option(
         "--format", help="png (150 dpi), svg, or both.")] = FigureFormat.both,
     overwrite: Overwrite = False,
+    wait: Wait = False,
     quiet: Quiet = False,
 ) -> None:
     """Figures of a fit: variance per axis, sample and feature maps, contributions, scoring diagnostics."""
@@ -65,7 +66,7 @@ def figures_command(
         from ..io.output import atomic_directory, check_target
         from ..report.figures import DEFAULT_PAIRS, FIGURE_FORMATS, write_figures
 
-        check_target(target, overwrite)
+        check_target(target, overwrite, wait=wait)
         with atomic_directory(target, overwrite=overwrite) as tmp:
             written = write_figures(
                 result_dir, tmp, annotations=annotations, id_column=id_column, color_by=color_by,

@@ -13,9 +13,9 @@ from ._app import app, progress_display, say, setup_logging, user_errors
 from ._options import (
     AllowExternalData,
     AllowMissingChunks,
-    FormatOpt,
     Dataset,
     FeatureIds,
+    FormatOpt,
     InputPath,
     MemoryLimit,
     Method,
@@ -23,13 +23,13 @@ from ._options import (
     OutDir,
     Overwrite,
     Quiet,
-    Wait,
     SampleIds,
     SamplesIn,
     SamplesInOpt,
     Scale,
     TableFormat,
     Threads,
+    Wait,
 )
 from .explain_cmd import (
     AllowMissing,
@@ -41,7 +41,6 @@ from .explain_cmd import (
     Technical,
     print_axis_readings,
 )
-
 
 # Options shared with ``axiscope inspect``, which predicts the block plan of a fit.
 Components = Annotated[int, typer.Option("--components", "-k", min=1, help="Number of principal components (axes).")]
@@ -62,7 +61,8 @@ def parse_power_iterations(value: str) -> int | str:
     try:
         return int(value)
     except ValueError:
-        raise typer.BadParameter(f"{value!r} is not 'auto' or a whole number") from None
+        raise typer.BadParameter(f"{value!r} is not 'auto' or a whole number",
+                                 param_hint="'--power-iterations'") from None
 
 
 @app.command("fit")

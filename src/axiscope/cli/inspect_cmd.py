@@ -20,7 +20,14 @@ from ._options import (
     SamplesInOpt,
     Threads,
 )
-from .fit_cmd import Components, CountsPer, LogTransform, Oversample, Scratch, TopVariable
+from .fit_cmd import (
+    Components,
+    CountsPer,
+    LogTransform,
+    Oversample,
+    Scratch,
+    TopVariable,
+)
 
 
 @app.command("inspect")

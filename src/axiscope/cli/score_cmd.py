@@ -28,6 +28,7 @@ from ._options import (
     SamplesInOpt,
     TableFormat,
     Threads,
+    Wait,
 )
 
 
@@ -81,6 +82,7 @@ def score_command(
     memory_limit: MemoryLimit = None,
     threads: Threads = None,
     overwrite: Overwrite = False,
+    wait: Wait = False,
     quiet: Quiet = False,
 ) -> None:
     """Place the samples of INPUT on the axes of MODEL and flag those the model does not describe.
@@ -93,7 +95,7 @@ def score_command(
 
     setup_logging(quiet)
     with user_errors():
-        check_target(out, overwrite)
+        check_target(out, overwrite, wait=wait)
         with progress_display(quiet) as progress:
             result = score(
                 model, source, fill_missing=fill_missing.value if fill_missing else None,
