@@ -105,8 +105,9 @@ def fit_command(
     supplementary_samples_column: Annotated[str | None, typer.Option(help="true/false annotation column: true rows are left out of the fit and projected afterwards.")] = None,
     allow_missing: AllowMissing = False,
     report: Annotated[bool, typer.Option(
-        "--report", help="Also write report.html into --out: one self-contained page with the maps, the axis "
-                         "cards and the warnings (see 'axiscope report').")] = False,
+        "--report", help="Also draw the figures (figures/) and write report.html into --out: one "
+                         "self-contained page with the maps, the axis cards and the warnings (see 'axiscope "
+                         "figures' and 'axiscope report').")] = False,
     overwrite: Overwrite = False,
     wait: Wait = False,
     quiet: Quiet = False,
@@ -149,14 +150,16 @@ def fit_command(
         with atomic_directory(out, overwrite=overwrite) as tmp:
             result.write(tmp, top=top, parquet=format is TableFormat.parquet, command_line=sys.argv)
             cards.write(tmp, parquet=format is TableFormat.parquet)
-            if report:
+            if report:  # the static figures first, so that the page embeds them
+                from ..report.figures import write_figures
                 from ..report.html import build_report
 
+                write_figures(tmp, annotations=annotations, id_column=id_column)
                 build_report(tmp, annotations=annotations, id_column=id_column)
     print_fit_summary(result, out, quiet)
     print_axis_readings(cards, quiet)
     if report:
-        say(f"  report in {out / 'report.html'}", quiet)
+        say(f"  figures in {out / 'figures'}; report in {out / 'report.html'}", quiet)
 
 
 def print_fit_summary(result, out: Path, quiet: bool) -> None:
