@@ -332,7 +332,7 @@ def annotation_colours(annotations: str | Path | pd.DataFrame, *, id_column: str
         ann = load_annotations(frame, ids, id_column=id_column, ignore=[c for c in columns if c != name], where=where)
         if name in ann.categorical:
             values = pd.Series(ann.categorical[name], index=pd.Index(ann.sample_ids, dtype=object), dtype=object)
-            return Colouring(name, "categorical", values, _ordered_levels(values.dropna().unique()))
+            return Colouring(name, "categorical", values, style.ordered_levels(values.dropna().unique()))
         if name in ann.numeric:
             values = pd.Series(ann.numeric[name], index=pd.Index(ann.sample_ids, dtype=object), dtype=np.float64)
             return Colouring(name, "numeric", values, [])
@@ -353,15 +353,6 @@ def _ranked_columns(columns: list[str], cards: list[dict] | None, axis: str) -> 
             r2 = record.get("r_squared")
             share[record["annotation"]] = float(r2) if isinstance(r2, (int, float)) else -1.0
     return sorted(columns, key=lambda c: (-share.get(c, -2.0), columns.index(c)))
-
-
-def _ordered_levels(levels: Sequence[Any]) -> list[str]:
-    """Categories in a stable order: numerically when they are all numbers, else alphabetically."""
-    labels = [str(v) for v in levels]
-    try:
-        return sorted(labels, key=float)
-    except ValueError:
-        return sorted(labels)
 
 
 # ============================================================================== geometry

@@ -259,8 +259,8 @@ def _context(files: _ResultFiles, *, annotations: Path | pd.DataFrame | None, id
 
 
 _SECTION_TITLES = (
-    ("run", "The run"), ("variance", "Variance along the axes"), ("axes", "The axes one by one"),
-    ("maps", "Maps"), ("groups", "Groups"), ("scoring", "New samples against the model"),
+    ("run", "The run"), ("variance", "Variance along the axes"), ("maps", "Maps"),
+    ("axes", "The axes one by one"), ("groups", "Groups"), ("scoring", "New samples against the model"),
     ("warnings", "Warnings"), ("cautions", "Before reading further"),
 )
 

@@ -20,6 +20,8 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from .style import CATEGORY_COLOURS, NO_VALUE, ordered_levels
+
 __all__ = ["MAX_POINTS", "CATEGORICAL", "ChartSet", "thin", "sample_map", "feature_map",
            "variance_chart", "diagnostics_chart"]
 
@@ -30,23 +32,20 @@ MAX_MAP_AXES = 5
 #: Extreme points kept on each side of each offered axis when a chart is thinned.
 EXTREMES_PER_SIDE = 100
 
-# Colours of the report. Until the figures' style module (report/style.py) is merged, the
-# report keeps its own copy here; report/style.py is the future home of both.
-#: Categorical colours: the Okabe–Ito colour-blind-safe set (Okabe & Ito 2008, "Color
-#: Universal Design"), reordered so that the pale yellow comes late.
-CATEGORICAL = ("#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00", "#F0E442", "#000000")
-#: Colour of points without a value, of categories beyond the palette, and of plain points.
-NEUTRAL = "#9a9a9a"
+#: Categorical colours and the colour of points without a value: those of the static figures
+#: (:mod:`axiscope.report.style`), so that a category has one colour everywhere.
+CATEGORICAL = CATEGORY_COLOURS
+NEUTRAL = NO_VALUE
 PLAIN = "#33658a"
 FLAGGED = "#c0392b"
 FONT = "system-ui, -apple-system, 'Segoe UI', Roboto, 'Helvetica Neue', Arial, sans-serif"
 
 
 def _sequential() -> tuple[str, ...]:
-    """The sequential colour map: viridis (van der Walt & Smith 2015), perceptually uniform."""
-    from bokeh.palettes import Viridis256
+    """The sequential colour map of the static figures (:data:`axiscope.report.style.SEQUENTIAL_MAP`)."""
+    from bokeh.palettes import Cividis256
 
-    return tuple(Viridis256)
+    return tuple(Cividis256)
 
 
 @dataclass
@@ -346,7 +345,8 @@ def _categorical_colouring(label: str, key: str, text: np.ndarray) -> Colouring:
 
     present = text[text != ""]
     counts = pd.Series(present, dtype=object).value_counts(sort=True)
-    factors = [str(c) for c in counts.index[: len(CATEGORICAL)]]
+    kept = {str(c) for c in counts.index[: len(CATEGORICAL)]}  # the most frequent get colours
+    factors = [c for c in ordered_levels(counts.index) if c in kept]  # in the figures' order
     mapper = CategoricalColorMapper(factors=factors, palette=list(CATEGORICAL[: len(factors)]) or [PLAIN],
                                     nan_color=NEUTRAL)
     first_index = {}

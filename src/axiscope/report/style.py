@@ -113,3 +113,12 @@ def category_style(index: int) -> tuple[str, str]:
     """Colour and marker of the ``index``-th category (0-based)."""
     n = len(CATEGORY_COLOURS)
     return CATEGORY_COLOURS[index % n], CATEGORY_MARKERS[(index // n) % len(CATEGORY_MARKERS)]
+
+
+def ordered_levels(levels) -> list[str]:
+    """Categories in a stable order: numerically when they are all numbers, else alphabetically."""
+    labels = [str(v) for v in levels]
+    try:
+        return sorted(labels, key=float)
+    except ValueError:
+        return sorted(labels)
