@@ -449,3 +449,16 @@ def test_annotations_missing_for_some_samples(full, tmp_path):
     tissue = re.search(r'\["annotation_0",\{"type":"ndarray","array":\[(.*?)\]', chart_data).group(1)
     values = json.loads(f"[{tissue}]")
     assert values.count("") == N - 7 and "nan" not in values  # missing rows hover as empty, never "nan"
+
+
+def test_a_scoring_run_of_another_model_is_refused(full, tmp_path):
+    """Samples scored against one model are never drawn on another fit's axes."""
+    from axiscope import fit
+    from axiscope.errors import InputError
+    from axiscope.io import array_source
+
+    other = fit(array_source(np.random.default_rng(3).standard_normal((30, 8))), n_components=2)
+    other.write(tmp_path / "other")
+    with pytest.raises(InputError, match="scored against another model"):
+        build_report(tmp_path / "other", scores_dir=full / "sc", out=tmp_path / "mixed.html")
+    assert not (tmp_path / "mixed.html").exists()

@@ -127,6 +127,13 @@ class Model:
         return _sha256(Path(directory) / "model.json")
 
 
+def stored_checksum(directory: Path) -> str | None:
+    """The checksum :meth:`Model.checksum` gives for the model saved in ``directory``, without
+    loading it; None when there is no model there."""
+    path = Path(directory) / "model.json"
+    return _sha256(path) if path.is_file() else None
+
+
 def load_model(directory: Path) -> Model:
     """Read a model directory written by :meth:`Model.save`, verifying format, checksums and numbers.
 

@@ -23,7 +23,6 @@ module stays light.
 
 from __future__ import annotations
 
-import hashlib
 import json
 import logging
 import time
@@ -39,6 +38,7 @@ from ..errors import InputError, OptionError
 from ..explain.annotations import load_annotations, read_annotations
 from ..io.output import read_result_table
 from ..model.statistics import FeatureAxisStatistics, read_feature_statistics
+from ..model.store import stored_checksum
 from . import style
 
 if TYPE_CHECKING:
@@ -156,10 +156,6 @@ def _read_json(path: Path) -> Any:
                          "that wrote it") from exc
 
 
-def _sha256(path: Path) -> str | None:
-    return hashlib.sha256(path.read_bytes()).hexdigest() if path.is_file() else None
-
-
 def read_fit_records(result_dir: str | Path) -> FitRecords:
     """Read the tables of a directory written by ``axiscope fit`` (or the demo's ``fit/``).
 
@@ -207,7 +203,7 @@ def read_fit_records(result_dir: str | Path) -> FitRecords:
     if cards_path is not None:
         records = _read_json(cards_path).get("records")
         cards = records if isinstance(records, list) else None
-    return FitRecords(directory, components, scores, axes, standardized, _sha256(directory / "model" / "model.json"),
+    return FitRecords(directory, components, scores, axes, standardized, stored_checksum(directory / "model"),
                       supplementary, sample_stats, features, loadings, cards)
 
 

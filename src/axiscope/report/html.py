@@ -35,6 +35,7 @@ import pandas as pd
 
 from ..errors import InputError, agree, counted
 from ..explain.pages import format_number, format_p_value
+from ..model.store import stored_checksum
 
 __all__ = ["build_report", "CAUTIONS", "MAX_LISTED", "sanitise_svg"]
 
@@ -181,6 +182,11 @@ class _ResultFiles:
             files.scoring_manifest = _json(scores_dir / "manifest.json")
             files.diagnostics = _tsv(scores_dir / "diagnostics.tsv", numeric=("t2", "q"))
             files.scores = _tsv(scores_dir / "scores.tsv")
+            scored_with = ((files.scoring_manifest or {}).get("model") or {}).get("checksum")
+            own = stored_checksum(directory / "model")
+            if scored_with and own and scored_with != own:
+                raise InputError(f"{scores_dir}: these samples were scored against another model than the one "
+                                 f"in {directory / 'model'}; pass the scoring run of this fit as scores_dir")
         return files
 
 
