@@ -357,12 +357,14 @@ def _ranked_columns(columns: list[str], cards: list[dict] | None, axis: str) -> 
 def centre_ellipse(points: np.ndarray, level: float = ELLIPSE_LEVEL) -> tuple[np.ndarray, float, float, float]:
     """Confidence ellipse of the mean of 2-D points.
 
-    The large-sample confidence region of a mean vector,
-    ``{μ : n·(x̄ − μ)ᵀ S⁻¹ (x̄ − μ) ≤ χ²₂(level)}`` with ``S`` the sample covariance
-    (denominator n − 1): an ellipse centred on ``x̄`` whose semi-axes are
-    ``sqrt(λ_i · χ²₂(level))`` for the eigenvalues ``λ_i`` of ``S/n``, along their
-    eigenvectors (Johnson & Wichern, *Applied Multivariate Statistical Analysis*, 6th ed.,
-    2007, §5.5).
+    Hotelling's confidence region of a mean vector,
+    ``{μ : n·(x̄ − μ)ᵀ S⁻¹ (x̄ − μ) ≤ c²}`` with ``S`` the sample covariance (denominator
+    n − 1) and ``c² = 2(n − 1)/(n − 2) · F_{2, n−2}(level)``, which covers the true mean with
+    probability ``level`` for normal data of any size n ≥ 3 (Johnson & Wichern, *Applied
+    Multivariate Statistical Analysis*, 6th ed., 2007, §5.2; the chi-square form of §5.5 is
+    its large-sample limit and covers far less for small groups, 50% at n = 3): an ellipse
+    centred on ``x̄`` whose semi-axes are ``sqrt(λ_i · c²)`` for the eigenvalues ``λ_i`` of
+    ``S/n``, along their eigenvectors.
 
     Parameters
     ----------
@@ -378,7 +380,7 @@ def centre_ellipse(points: np.ndarray, level: float = ELLIPSE_LEVEL) -> tuple[np
     angle : float
         Angle of the first eigenvector in degrees, counter-clockwise from the horizontal axis.
     """
-    from scipy.stats import chi2
+    from scipy.stats import f
 
     points = np.asarray(points, dtype=np.float64)
     centre = points.mean(axis=0)
@@ -386,7 +388,8 @@ def centre_ellipse(points: np.ndarray, level: float = ELLIPSE_LEVEL) -> tuple[np
     values, vectors = np.linalg.eigh(cov)
     values = np.clip(values[::-1], 0.0, None)
     first = vectors[:, -1]
-    q = chi2.ppf(level, df=2)
+    n = points.shape[0]
+    q = 2.0 * (n - 1) / (n - 2) * f.ppf(level, 2, n - 2)
     width, height = 2.0 * np.sqrt(values * q)
     return centre, float(width), float(height), float(np.degrees(np.arctan2(first[1], first[0])))
 
