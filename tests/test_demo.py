@@ -56,6 +56,10 @@ def test_demo_describes_the_planted_structure_and_flags_corrupted_samples(tmp_pa
         assert all(Path(value).exists() for value in paths), paths
     assert json.loads((out / "fit" / "manifest.json").read_text())["input"]["path"] == str(
         out / "data" / "reference.zarr")
+    # the axis cards name their annotation file where it now is, so a later report finds it
+    recorded = json.loads((out / "fit" / "axis_cards.json").read_text())["settings"]["annotations"]
+    assert Path(recorded).is_absolute() and Path(recorded).is_file()
+    assert (out / "report.html").is_file() and (out / "fit" / "figures" / "samples_PC1_PC2.png").is_file()
 
 
 def _strings(record):

@@ -53,8 +53,9 @@ def demo_command(
                              resources=Resources(threads=threads), progress=progress)
                 cards = explain_axes(result, annotations=data["reference_annotations"],
                                      technical=DEMO_TECHNICAL, ignore=["corrupted"], top=5)
-                # the manifests record where things are once the folder has its final name
+                # the records say where things are once the folder has its final name
                 result.manifest = relocated(result.manifest, tmp, out)
+                cards.settings = relocated(cards.settings, tmp, Path(out).resolve())
                 parquet = format is TableFormat.parquet
                 result.write(tmp / "fit", parquet=parquet, command_line=sys.argv)
                 cards.write(tmp / "fit", parquet=parquet)

@@ -238,6 +238,13 @@ def _make_html_safe(path: Path) -> None:
 # --------------------------------------------------------------------------- entry points
 
 
+def _recorded_source(source: str) -> str:
+    """Where the annotations came from, as recorded: an absolute path when they were a file
+    (so that a later command finds them from any folder), else the description given."""
+    path = Path(source)
+    return str(path.resolve()) if path.is_file() else source
+
+
 def explain_axes(
     source: "FitResult | str | Path",
     *,
@@ -373,7 +380,7 @@ def build_cards(
         feature_statistics=features,
         supplementary_scores=sup_scores,
         settings={"top": int(top), "samples_per_list": int(samples_per_list), "alpha": float(alpha),
-                  "warn_share": float(warn_share), "annotations": ann.source if annotated else None,
+                  "warn_share": float(warn_share), "annotations": _recorded_source(ann.source) if annotated else None,
                   "technical": list(ann.technical)},
     )
     cards.readings = _readings(cards, alpha, warn_share, annotated)
