@@ -24,6 +24,7 @@ import pytest
 from typer.testing import CliRunner
 
 from axiscope.cli import app
+from axiscope.errors import OptionError
 from axiscope.report.html import CAUTIONS, build_report, sanitise_svg
 from axiscope.report.interactive import EXTREMES_PER_SIDE, sample_map, thin
 
@@ -225,7 +226,11 @@ def test_sections_without_records_are_left_out(cohort, tmp_path):
     (tmp_path / "plain" / "manifest.json").write_text(json.dumps(manifest))
     pd.DataFrame({"group": ["g<1>", "g2"], "samples": [40, 50]}).to_csv(
         tmp_path / "plain" / "groups.tsv", sep="\t", index=False)
-    page = _parse(build_report(tmp_path / "plain"))
+    with pytest.raises(OptionError, match="already exists"):  # an existing page is never replaced unasked
+        build_report(tmp_path / "plain")
+    with pytest.raises(OptionError, match="is a folder"):
+        build_report(tmp_path / "plain", out=tmp_path / "plain" / "model", overwrite=True)
+    page = _parse(build_report(tmp_path / "plain", overwrite=True))
     assert page.ids("section") == {"run", "variance", "maps", "groups", "cautions"}
     text = " ".join(page.text)
     assert "Axes above the noise: 2" in " ".join(text.split()) and "g<1>" in text
@@ -307,7 +312,9 @@ def test_report_command(full, tmp_path):
     assert _parse(out).ids("section") == FULL_SECTIONS
     missing = CliRunner().invoke(app, ["report", str(tmp_path / "nothing")])
     assert missing.exit_code == 2 and "no such result directory" in missing.output
-    not_scored = CliRunner().invoke(app, ["report", str(full / "res"), "--scores-dir", str(tmp_path)])
+    exists = CliRunner().invoke(app, ["report", str(full / "res")])
+    assert exists.exit_code == 2 and "pass --overwrite to replace it, or another path as --out ..." in exists.output
+    not_scored = CliRunner().invoke(app, ["report", str(full / "res"), "--scores-dir", str(tmp_path), "--overwrite"])
     assert not_scored.exit_code == 2 and "no diagnostics.tsv" in not_scored.output
     assert not (full / "res" / "report.html.tmp").exists()
     assert not list((full / "res").glob(".report.html.*"))

@@ -8,7 +8,7 @@ from typing import Annotated
 import typer
 
 from ._app import app, say, setup_logging, user_errors
-from ._options import Quiet
+from ._options import Overwrite, Quiet
 from .explain_cmd import IdColumn
 
 
@@ -25,6 +25,7 @@ def report_command(
                              "diagnostics and the new samples on the map.")] = None,
     out: Annotated[Path | None, typer.Option(
         "--out", "-o", help="Where to write the page (default: RESULT_DIR/report.html).")] = None,
+    overwrite: Overwrite = False,
     quiet: Quiet = False,
 ) -> None:
     """Write report.html: one page about a fit that opens offline, with maps to hover and zoom."""
@@ -33,5 +34,5 @@ def report_command(
         from ..report.html import build_report
 
         path = build_report(result_dir, annotations=annotations, id_column=id_column, scores_dir=scores_dir,
-                            out=out)
+                            out=out, overwrite=overwrite)
     say(f"report in {path}", quiet)

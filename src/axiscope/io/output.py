@@ -386,7 +386,7 @@ def write_table(df: pd.DataFrame, path: Path, *, parquet: bool = False, header: 
 def _awkward(values: pd.Series) -> bool:
     """Whether a text column holds a cell that the csv module's minimal quoting would leave broken."""
     text = values[values.map(lambda v: isinstance(v, str))]
-    return bool(len(text)) and bool(text.str.contains(r'\r|^#|^\s|\s$', regex=True).any())
+    return bool(len(text)) and bool(text.str.contains(r'[\r#]|^\s|\s$', regex=True).any())
 
 
 #: Text cells holding one of these characters are quoted: the separator, line breaks, the

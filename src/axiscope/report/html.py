@@ -33,7 +33,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from ..errors import InputError, agree, counted
+from ..errors import InputError, OptionError, agree, counted
 from ..explain.pages import format_number, format_p_value
 from ..model.store import stored_checksum
 
@@ -67,7 +67,7 @@ _SCALES = {"unit": "each feature divided by its standard deviation (standardised
 
 def build_report(result_dir: str | os.PathLike, *, annotations: str | os.PathLike | pd.DataFrame | None = None,
                  id_column: str = "sample_id", scores_dir: str | os.PathLike | None = None,
-                 out: str | os.PathLike | None = None) -> Path:
+                 out: str | os.PathLike | None = None, overwrite: bool = False) -> Path:
     """Write ``report.html``: one self-contained, interactive page about a fit.
 
     Parameters
@@ -85,6 +85,8 @@ def build_report(result_dir: str | os.PathLike, *, annotations: str | os.PathLik
     out : path, optional
         Where to write (default: ``result_dir/report.html``); written to a temporary file
         beside it and renamed, so a reader never sees half a report.
+    overwrite : bool, default=False
+        Replace an existing file at ``out``; without it an existing file is refused.
 
     Returns
     -------
@@ -96,10 +98,16 @@ def build_report(result_dir: str | os.PathLike, *, annotations: str | os.PathLik
     InputError
         ``result_dir`` holds no fit, a record is unreadable, or ``scores_dir`` holds no
         scoring diagnostics.
+    OptionError
+        ``out`` is a folder, or an existing file and ``overwrite`` is not set.
     """
     started = time.perf_counter()
     result_dir = Path(result_dir)
     target = Path(out) if out is not None else result_dir / "report.html"
+    if target.is_dir():
+        raise OptionError(f"out={str(target)!r} is a folder; give the path of the page to write")
+    if target.exists() and not overwrite:
+        raise OptionError(f"{target}: already exists; pass overwrite=True to replace it, or another path as out=...")
     files = _ResultFiles.read(result_dir, scores_dir=Path(scores_dir) if scores_dir is not None else None)
     if annotations is not None and not isinstance(annotations, pd.DataFrame):
         annotations = Path(annotations)
