@@ -118,7 +118,7 @@ def test_strict_alignment_reports_counts_and_examples(tmp_path, caplog):
          r"column 'x' is declared numeric but sample 'b' has 'low'"),
         ("sample_id\tx\n" + "".join(f"s{i}\t{i}\n" for i in range(19)) + "s19\toops\n", {}, InputError,
          r"column 'x' is numeric except for 1 values.*name the column in categorical"),
-        ("sample_id\tx\na\t1\nb\t2\n", {"technical": "batch"}, OptionError, r"technical: no column 'batch'"),
+        ("sample_id\tx\na\t1\nb\t2\n", {"technical": "batch"}, OptionError, r"technical=batch: no such column"),
     ],
     ids=["id-column", "duplicates", "declared-numeric", "mostly-numeric", "unknown-technical"],
 )

@@ -27,7 +27,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..errors import InputError, OptionError
+from ..errors import InputError, OptionError, counted
 
 __all__ = [
     "MISSING_TOKENS",
@@ -99,7 +99,7 @@ def read_annotations(path: str | Path | pd.DataFrame, *, id_column: str = "sampl
         return _frame_as_text(path, id_column, "annotations")
     path = Path(path)
     if not path.is_file():
-        raise InputError(f"{path}: no such annotation file; check annotations")
+        raise InputError(f"{path}: no such annotation file; check the path given as annotations=...")
     try:
         table = pd.read_csv(path, sep="\t", dtype=str, keep_default_na=False, na_filter=False)
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
@@ -437,12 +437,12 @@ def _declared_treatments(columns: Iterable[str], categorical, numeric, technical
     for parameter, names in named.items():
         unknown = [c for c in names if c not in columns]
         if unknown:
-            raise OptionError(f"{parameter}: no column {', '.join(repr(c) for c in unknown)} in {where} "
+            raise OptionError(f"{parameter}={','.join(unknown)}: no such column in {where} "
                               f"(columns: {_shown(columns, 15)}); check the spelling")
     both = set(named["categorical"]) & set(named["numeric"])
     if both:
-        raise OptionError(f"column(s) {', '.join(sorted(both))} are named both in categorical and in numeric; "
-                          "choose one")
+        raise OptionError(f"{counted(len(both), 'column')} ({', '.join(sorted(both))}) named both in "
+                          f"categorical=... and in numeric=...; choose one")
     declared = {c: "categorical" for c in named["categorical"]}
     declared.update({c: "numeric" for c in named["numeric"]})
     return declared
