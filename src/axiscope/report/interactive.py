@@ -37,7 +37,8 @@ EXTREMES_PER_SIDE = 100
 CATEGORICAL = CATEGORY_COLOURS
 NEUTRAL = NO_VALUE
 PLAIN = "#33658a"
-FLAGGED = "#c0392b"
+#: Outline of flagged samples: black, as the ring of the static figures.
+FLAGGED = "#000000"
 FONT = "system-ui, -apple-system, 'Segoe UI', Roboto, 'Helvetica Neue', Arial, sans-serif"
 
 
@@ -233,7 +234,8 @@ def sample_map(scores: pd.DataFrame, axes: Sequence[str], *, ratios: Mapping[str
     for j, axis in enumerate(axes):
         data[axis] = values[drawn, j].astype(np.float32)
     data["sample_set"] = np.where(supplementary[drawn], "supplementary", "active")
-    data["marker"] = np.where(supplementary[drawn], "square", "circle")  # supplementary samples stand out
+    # markers of the static figures (report/style.py): supplementary samples are triangles
+    data["marker"] = np.where(supplementary[drawn], "triangle", "circle")
 
     labels = {axis: _axis_label(axis, ratios) for axis in axes}
     bounds = {axis: _bounds(values[:, j]) for j, axis in enumerate(axes)}
@@ -298,17 +300,18 @@ def sample_map(scores: pd.DataFrame, axes: Sequence[str], *, ratios: Mapping[str
         keep_scored = thin(len(scored), limit, keep=flagged)
         scored_data = {"sample_id": scored["sample_id"].astype(str).to_numpy()[keep_scored],
                        "flag": scored["flag"].astype(str).to_numpy()[keep_scored],
-                       "colour": np.where(flagged[keep_scored], FLAGGED, "#222222")}
+                       "colour": np.where(flagged[keep_scored], FLAGGED, "#555555"),
+                       "width": np.where(flagged[keep_scored], 2.6, 1.0)}
         for j, axis in enumerate(axes):
             scored_data[axis] = scored[axis].to_numpy(dtype=np.float32)[keep_scored]
-        scored_renderer = plot.scatter(axes[0], axes[1], source=ColumnDataSource(scored_data), marker="triangle",
-                                       size=8, fill_color=None, line_color="colour", line_width=1.5,
+        scored_renderer = plot.scatter(axes[0], axes[1], source=ColumnDataSource(scored_data), marker="diamond",
+                                       size=9, fill_color=None, line_color="colour", line_width="width",
                                        name="scored")
         renderers.append(scored_renderer)
         glyphs.append(scored_renderer.glyph)
         plot.add_tools(HoverTool(renderers=[scored_renderer],
                                  tooltips=[("scored sample", "@sample_id"), ("diagnostics", "@flag")]))
-        key = Legend(items=[LegendItem(label="newly scored (triangles; red: flagged)", renderers=[scored_renderer])],
+        key = Legend(items=[LegendItem(label="newly scored (diamonds; heavy black outline: flagged)", renderers=[scored_renderer])],
                      location="top_left", label_text_font=FONT, click_policy="hide")
         plot.add_layout(key, "above")
 
