@@ -469,3 +469,16 @@ def test_a_scoring_run_of_another_model_is_refused(full, tmp_path):
     with pytest.raises(InputError, match="scored against another model"):
         build_report(tmp_path / "other", scores_dir=full / "sc", out=tmp_path / "mixed.html")
     assert not (tmp_path / "mixed.html").exists()
+
+
+def test_cards_of_a_later_explain_are_the_ones_shown(full, tmp_path):
+    """After 'axiscope explain RESULT' (cards in RESULT/explanation), report and figures use those."""
+    res = tmp_path / "res"
+    shutil.copytree(full / "res", res)
+    before = " ".join(_parse(build_report(res, out=tmp_path / "before.html")).text)
+    assert "Technical axis." in before  # the fit's cards mark batch as technical
+    explained = CliRunner().invoke(app, ["explain", str(res), "--annotations", str(full / "ann.tsv"),
+                                         "--ignore", "holdout", "--quiet"])
+    assert explained.exit_code == 0, explained.output
+    after = " ".join(_parse(build_report(res, out=tmp_path / "after.html")).text)
+    assert "Technical axis." not in after  # re-explained without --technical

@@ -35,13 +35,24 @@ from typing import TYPE_CHECKING
 import numpy as np
 import pandas as pd
 
-from ..errors import OptionError
 from ..defaults import DEFAULT_TOP_FEATURES, SAMPLES_PER_LIST
+from ..errors import OptionError
 from ..io.output import write_table
-from ..model.statistics import FeatureAxisStatistics, feature_statistics, sample_statistics
+from ..model.statistics import (
+    FeatureAxisStatistics,
+    feature_statistics,
+    sample_statistics,
+)
 from .annotations import AnnotationSet, load_annotations
 from .associations import annotation_shares
-from .legend import CARDS_FORMAT, CARDS_VERSION, COLUMNS, RECORD_COLUMNS, SECTIONS, header_lines
+from .legend import (
+    CARDS_FORMAT,
+    CARDS_VERSION,
+    COLUMNS,
+    RECORD_COLUMNS,
+    SECTIONS,
+    header_lines,
+)
 from .pages import render_page
 from .saved import SUPPLEMENTARY_SCORES_FILE, SupplementarySamples, read_saved_fit
 

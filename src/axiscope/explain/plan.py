@@ -11,9 +11,15 @@ from typing import TYPE_CHECKING
 import numpy as np
 import pandas as pd
 
-from ..errors import InputError
 from ..defaults import DEFAULT_TOP_FEATURES
-from .annotations import AnnotationSet, load_annotations, read_annotations, sample_flags, split_names
+from ..errors import InputError
+from .annotations import (
+    AnnotationSet,
+    load_annotations,
+    read_annotations,
+    sample_flags,
+    split_names,
+)
 from .cards import AxisCards, SupplementarySamples, explain_axes
 
 if TYPE_CHECKING:

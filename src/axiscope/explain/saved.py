@@ -11,7 +11,11 @@ import numpy as np
 
 from ..errors import InputError
 from ..io.output import read_result_table
-from ..model.statistics import FeatureAxisStatistics, feature_statistics, read_feature_statistics
+from ..model.statistics import (
+    FeatureAxisStatistics,
+    feature_statistics,
+    read_feature_statistics,
+)
 from ..model.store import Model, load_model
 
 __all__ = ["SavedFit", "SupplementarySamples", "read_saved_fit", "SUPPLEMENTARY_SCORES_FILE"]
@@ -50,6 +54,18 @@ class SavedFit:
     squared_norms: np.ndarray
     features: FeatureAxisStatistics
     supplementary: SupplementarySamples | None
+
+
+#: Where ``axiscope explain`` writes axis cards inside a result directory by default.
+EXPLANATION_DIR = "explanation"
+
+
+def cards_folder(directory: Path) -> Path:
+    """Where the axis cards of a result directory are: its ``explanation/`` folder when
+    ``axiscope explain`` wrote cards there (made after the fit's, so the ones asked for last),
+    else the directory itself."""
+    later = Path(directory) / EXPLANATION_DIR
+    return later if (later / "axis_cards.json").is_file() else Path(directory)
 
 
 def read_saved_fit(directory: Path) -> SavedFit:

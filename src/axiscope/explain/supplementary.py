@@ -25,9 +25,19 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..core.memory import default_memory_limit, format_bytes, parse_memory, process_baseline
+from ..core.memory import (
+    default_memory_limit,
+    format_bytes,
+    parse_memory,
+    process_baseline,
+)
 from ..core.passes import PassRunner, Progress, array_from_blocks
-from ..core.preprocess import PreprocessSpec, feature_scale, first_nonfinite, transform_block
+from ..core.preprocess import (
+    PreprocessSpec,
+    feature_scale,
+    first_nonfinite,
+    transform_block,
+)
 from ..errors import InputError, OptionError
 from ..io import MatrixSource
 from ..model.statistics import FeatureAxisStatistics

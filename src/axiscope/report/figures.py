@@ -36,6 +36,7 @@ import pandas as pd
 
 from ..errors import InputError, OptionError
 from ..explain.annotations import load_annotations, read_annotations
+from ..explain.saved import cards_folder
 from ..io.output import read_result_table
 from ..model.statistics import FeatureAxisStatistics, read_feature_statistics
 from ..model.store import stored_checksum
@@ -72,8 +73,6 @@ TOP_CONTRIBUTIONS = 15
 NAMED_FLAGGED = 20
 #: The diagnostics figure turns a scale logarithmic when a value exceeds its limit this many times.
 LOG_SCALE_BEYOND = 20.0
-#: Where :func:`write_figures` looks for the explanation's tables, besides the result itself.
-EXPLANATION_DIR = "explanation"
 
 
 # =============================================================================== records
@@ -141,8 +140,9 @@ class ScoreRecords:
 
 
 def _find(directory: Path, name: str) -> Path | None:
-    """``directory/name`` or, failing that, ``directory/explanation/name``; None if neither exists."""
-    for place in (directory, directory / EXPLANATION_DIR):
+    """``name`` among the axis cards' tables (:func:`axiscope.explain.saved.cards_folder`: the
+    cards of a later ``axiscope explain`` first), or else in ``directory``; None if absent."""
+    for place in (cards_folder(directory), directory):
         if (place / name).exists():
             return place / name
     return None

@@ -35,6 +35,7 @@ import pandas as pd
 
 from ..errors import InputError, OptionError, agree, counted
 from ..explain.pages import format_number, format_p_value
+from ..explain.saved import cards_folder
 from ..model.store import stored_checksum
 
 __all__ = ["build_report", "CAUTIONS", "MAX_LISTED", "sanitise_svg"]
@@ -176,11 +177,12 @@ class _ResultFiles:
         if files.manifest is None or files.components is None:
             raise InputError(f"{directory}: no manifest.json and components.tsv; give the --out folder of "
                              "'axiscope fit'")
-        files.cards = _json(directory / "axis_cards.json")
+        cards = cards_folder(directory)  # the cards of a later 'axiscope explain' first
+        files.cards = _json(cards / "axis_cards.json")
         files.sample_scores = _tsv(directory / "sample_scores.tsv")
-        files.supplementary_scores = _tsv(directory / "supplementary_sample_scores.tsv")
-        files.sample_statistics = _tsv(directory / "sample_statistics.tsv")
-        files.feature_statistics = _tsv(directory / "feature_statistics.tsv")
+        files.supplementary_scores = _tsv(cards / "supplementary_sample_scores.tsv")
+        files.sample_statistics = _tsv(cards / "sample_statistics.tsv")
+        files.feature_statistics = _tsv(cards / "feature_statistics.tsv")
         files.dropped_features = _tsv(directory / "dropped_features.tsv")
         files.groups = _tsv(directory / "groups.tsv")
         if scores_dir is not None:
