@@ -311,15 +311,9 @@ def annotation_colours(annotations: str | Path | pd.DataFrame, *, id_column: str
     OptionError
         ``color_by`` names no column, or a column that cannot colour.
     """
-    if isinstance(annotations, pd.DataFrame):
-        frame = annotations
-        raw_ids = frame[id_column] if id_column in frame.columns else frame.index
-        columns = [str(c).strip() for c in frame.columns if c != id_column]
-        where = "annotations"
-    else:
-        frame = read_annotations(annotations, id_column=id_column)
-        raw_ids, columns, where = frame.index, list(frame.columns), str(annotations)
-    ids = [str(i).strip() for i in raw_ids]
+    where = "annotations" if isinstance(annotations, pd.DataFrame) else str(annotations)
+    frame = read_annotations(annotations, id_column=id_column)  # a file or a table, as text by id
+    columns, ids = list(frame.columns), [str(i) for i in frame.index]
     if color_by is not None and color_by not in columns:
         shown = ", ".join(repr(c) for c in columns[:15])
         raise OptionError(f"color_by={color_by!r}: no such column in {where} (columns: {shown}); check the spelling")
