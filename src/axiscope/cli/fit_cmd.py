@@ -9,6 +9,7 @@ from typing import Annotated
 import typer
 
 from ..defaults import DEFAULT_TOP_FEATURES
+from ..errors import counted
 from ._app import app, progress_display, say, setup_logging, user_errors
 from ._options import (
     AllowExternalData,
@@ -65,6 +66,18 @@ def parse_power_iterations(value: str) -> int | str:
                                  param_hint="'--power-iterations'") from None
 
 
+def _method(method: str, passes: str) -> str:
+    """The engine's method from --method and --passes."""
+    if passes == "auto":
+        return method
+    if passes != "1":
+        raise typer.BadParameter(f"{passes!r} is not 'auto' or 1", param_hint="'--passes'")
+    if method != "auto":
+        raise typer.BadParameter(f"--passes 1 reads the input once, which --method {method} cannot; "
+                                 "leave --method out", param_hint="'--passes'")
+    return "one-pass"
+
+
 @app.command("fit")
 def fit_command(
     input: InputPath,
@@ -83,6 +96,10 @@ def fit_command(
     power_iterations: Annotated[str, typer.Option(help="'auto' (until the singular values settle to --tol) or a number from 0 to 100.")] = "auto",
     tol: Annotated[float, typer.Option(help="Requested relative accuracy of the singular values; 'auto' iterations stop there.")] = 1e-6,
     method: Annotated[Method, typer.Option(help="auto, randomized, or exact (LAPACK, small inputs).")] = Method.auto,
+    passes: Annotated[str, typer.Option(
+        help="'auto': as many reads of INPUT as the accuracy needs; 1: read it once (statistics and two "
+             "random sketches together, for storage read once or billed per read): less accurate, per-sample "
+             "distances estimated, no --min-variance/--top-variable/--missing mean.")] = "auto",
     seed: Annotated[int, typer.Option(min=0, help="Seed of the random test matrices.")] = 0,
     memory_limit: MemoryLimit = None,
     threads: Threads = None,
@@ -127,7 +144,7 @@ def fit_command(
             center=center, scale=scale.value, log_transform=log_transform, counts_per=counts_per,
             min_variance=min_variance, top_variable=top_variable, missing=missing.value,
         )
-        engine = EngineSettings(method=method.value, oversample=oversample, tol=tol, seed=seed,
+        engine = EngineSettings(method=_method(method.value, passes), oversample=oversample, tol=tol, seed=seed,
                                 power_iterations=parse_power_iterations(power_iterations))
         resources = Resources(memory_limit=memory_limit, threads=threads, scratch=scratch)
         layout = InputLayout(dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
@@ -167,8 +184,8 @@ def print_fit_summary(result, out: Path, quiet: bool) -> None:
     m = result.manifest
     say(
         f"fitted {result.model.n_components} components to {m['n_active_samples']} samples × "
-        f"{m['n_features_kept']} features ({m['options']['method']}, {m['passes']['count']} passes "
-        f"over the data, {m['seconds']:.1f} s)",
+        f"{m['n_features_kept']} features ({m['options']['method']}, "
+        f"{counted(m['passes']['count'], 'pass', 'passes')} over the data, {m['seconds']:.1f} s)",
         quiet,
     )
     for line in accuracy_lines(m["accuracy"]):
@@ -199,8 +216,10 @@ def accuracy_lines(accuracy: dict) -> list[str]:
     """
     axes = accuracy["axes"]
     tol = accuracy["requested_tol"]
-    how = "estimated from the Ritz residuals" if accuracy["estimated_from"] == "ritz residuals" \
-        else "LAPACK's error bounds"
+    source = accuracy["estimated_from"]
+    how = {"ritz residuals": "estimated from the Ritz residuals",
+           "sketch error estimate": "bounded by the error a separate sketch estimates"}.get(source, "LAPACK's error bounds")
+    one_pass = source == "sketch error estimate"
     met = [a for a in axes if a["below_tol"]]
     missed = [a for a in axes if not a["below_tol"]]
     if not missed:
@@ -218,13 +237,16 @@ def accuracy_lines(accuracy: dict) -> list[str]:
         if close:
             values += (f" (a bound, loose where variances lie within {CLOSE_GAP:.0%} of each other, as for "
                        f"{_span(close)})")
-        values += "; more --power-iterations or --method exact tighten it"
+        values += ("; this is a one-pass fit: the default --passes auto tightens it" if one_pass
+                   else "; more --power-iterations or --method exact tighten it")
     shown = axes[:MAX_AXES_LISTED]
     loadings = "loadings, sine of the angle to the exact vector: " + ", ".join(
         f"{a['axis']} {a['loading_error']:.0e}" if a["loading_error"] <= LOOSE_VECTOR else f"{a['axis']} —"
         for a in shown) + (", …" if len(axes) > len(shown) else "")
     loose = [a for a in axes if a["loading_error"] > LOOSE_VECTOR]
-    if loose:
+    if loose and one_pass:
+        loadings += f" (—: the one-pass bound on {_span(loose)} is above {LOOSE_VECTOR:g})"
+    elif loose:
         verb = "is" if len(loose) == 1 else "are"
         loadings += (f" (—: {_span(loose)} {verb} not separated from a neighbour of nearly equal variance; "
                      "only the space such axes span together is determined)")

@@ -132,6 +132,8 @@ class Factorization:
     residual_bound: float = float("nan")
     ritz_history: list = field(default_factory=list)
     accuracy: AxisAccuracy | None = None
+    #: one-pass mode only: sketch widths, estimated relative error, estimated distances
+    sketch: dict | None = None
 
 
 def orient_signs(components: np.ndarray, scores: np.ndarray) -> None:

@@ -21,7 +21,7 @@ from .memory import default_memory_limit, parse_memory
 __all__ = ["METHODS", "MAX_POWER_ITERATIONS", "EngineSettings", "Resources", "InputLayout"]
 
 #: Ways of computing the factorisation.
-METHODS = ("auto", "randomized", "exact")
+METHODS = ("auto", "randomized", "exact", "one-pass")
 #: Largest fixed number of power iterations accepted.
 MAX_POWER_ITERATIONS = 100
 #: Orientations of the matrix in its file.
@@ -42,10 +42,13 @@ class EngineSettings:
 
     Parameters
     ----------
-    method : {"auto", "randomized", "exact"}, default="auto"
+    method : {"auto", "randomized", "exact", "one-pass"}, default="auto"
         ``exact`` holds the preprocessed matrix in memory and calls LAPACK; ``randomized``
         streams it through block Krylov iterations; ``auto`` takes ``exact`` when the
         smaller side is at most 300 and the matrix fits a third of the memory budget.
+        ``one-pass`` reads the input once, for statistics and two sketches together
+        (:mod:`axiscope.core.onepass`): less accurate, and the per-sample distances are
+        estimated.
     oversample : int, default=10
         Extra dimensions of each Krylov block beyond the number of components.
     power_iterations : int or "auto", default="auto"

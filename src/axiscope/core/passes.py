@@ -63,8 +63,12 @@ class PassRunner:
         task: Callable[..., Any],
         fold: Callable[[Any, int, int], None],
         *args: Any,
+        with_start: bool = False,
     ) -> None:
         """Compute ``task(block, *args)`` for every row block and call ``fold(result, index, start)``.
+
+        With ``with_start`` the task is called as ``task(block, start, *args)``, ``start``
+        being the block's first row, for tasks whose work depends on where the block lies.
 
         ``fold`` is called on the calling thread, in block order. On the threaded scheduler
         the whole pass is one Dask computation, and each result is folded as soon as the
@@ -78,12 +82,12 @@ class PassRunner:
         if self.progress:
             self.progress(name, 0, n)
         if _local_scheduler():
-            self._run_pipelined(name, blocks, starts, task, fold, args)
+            self._run_pipelined(name, blocks, starts, task, fold, args, with_start)
         else:
-            self._run_windowed(name, blocks, starts, task, fold, args)
+            self._run_windowed(name, blocks, starts, task, fold, args, with_start)
         self.records.append(PassRecord(name, source, time.perf_counter() - t0, n))
 
-    def _run_pipelined(self, name, blocks, starts, task, fold, args) -> None:
+    def _run_pipelined(self, name, blocks, starts, task, fold, args, with_start=False) -> None:
         """Blocks in order on a pool of threads, at most ``2·threads`` in flight, folded in order.
 
         Each block's Dask graph is computed with the synchronous scheduler inside a pool
@@ -94,7 +98,7 @@ class PassRunner:
 
         def work(i):
             (block,) = dask.compute(blocks[i], scheduler="synchronous")
-            return task(block, *args)
+            return task(block, starts[i], *args) if with_start else task(block, *args)
 
         with ThreadPoolExecutor(max_workers=self.threads, thread_name_prefix="axiscope") as pool:
             pending: deque = deque()
@@ -113,12 +117,13 @@ class PassRunner:
                 for future in pending:
                     future.cancel()
 
-    def _run_windowed(self, name, blocks, starts, task, fold, args) -> None:
+    def _run_windowed(self, name, blocks, starts, task, fold, args, with_start=False) -> None:
         n = len(blocks)
         window = max(1, 2 * self.threads)
         for lo in range(0, n, window):
             hi = min(n, lo + window)
-            work = [dask.delayed(task)(blocks[i], *args) for i in range(lo, hi)]
+            work = [dask.delayed(task)(blocks[i], *((starts[i],) if with_start else ()), *args)
+                    for i in range(lo, hi)]
             results = dask.compute(*work)
             for offset, result in enumerate(results):
                 fold(result, lo + offset, starts[lo + offset])

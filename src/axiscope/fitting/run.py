@@ -23,6 +23,7 @@ import pandas as pd
 from .. import __version__
 from ..core.cache import BlockCache, remove_scratch_leftovers
 from ..core.engine import Factorization, exact_factorization, randomized_factorization
+from ..core.onepass import one_pass_factorization
 from ..core.options import METHODS, EngineSettings, InputLayout, Resources
 from ..core.passes import PassRunner, Progress, array_from_blocks, blas_threads
 from ..core.plan import BlockPlan, plan_fit
@@ -173,6 +174,9 @@ def _fit(src: MatrixSource, job: _Job, active, exclude) -> FitResult:
     runner = PassRunner(threads=plan.threads, progress=job.progress)
     rng = job.engine.generator()
     reader = _Reader(src, job.spec, active, plan.block_rows)
+    if method == "one-pass":
+        stats, prep, fac = _one_pass(src, job, reader, exclude, n, rng, runner)
+        return _result(src, job, active, n, prep, stats, fac, plan, runner, filtered=False)
     filtered = job.spec.has_filter or exclude is not None
     with _Caches(plan, job.resources) as caches:
         first_cache = None if filtered else caches.new(n, src.shape[1], src.dtype)
@@ -187,8 +191,13 @@ def _fit(src: MatrixSource, job: _Job, active, exclude) -> FitResult:
         prep = _preprocessing(job, stats, exclude, src, n)
         operand = _Operand.build(job.spec, stats, prep, reader, caches, filtered=filtered, filled=first_cache)
         fac = _factorise(method, operand, job, n, rng, runner, plan, sketch)
+    return _result(src, job, active, n, prep, stats, fac, plan, runner, filtered=operand.columns is not None)
+
+
+def _result(src, job, active, n, prep, stats, fac, plan, runner, *, filtered: bool) -> FitResult:
+    """The model, the manifest and the tables of a finished factorisation."""
     _check_numerical_rank(fac, job.k, src.dtype, n, int(prep.kept.shape[0]))
-    model = _model(src, job.spec, prep, stats, fac, n, operand.columns is not None)
+    model = _model(src, job.spec, prep, stats, fac, n, filtered)
     manifest = _manifest(src, job, n, prep, stats, fac, plan, runner)
     return FitResult(
         model=model,
@@ -235,6 +244,40 @@ def _check_components(k: int, n: int, p: int, center: bool, where, *, after: str
             f"n_components={k} is more axes than {where} can give: {n} samples × {p} features{after} "
             f"have rank at most {limit} ({rule}); choose at most {limit}"
         )
+
+
+def _one_pass(src: MatrixSource, job: _Job, reader: _Reader, exclude, n: int, rng, runner):
+    """Statistics and both sketches in one read of the input (no cache, no second pass)."""
+    spec = job.spec
+    if spec.has_filter or spec.missing != "error":
+        raise OptionError(
+            "a one-pass fit cannot use min_variance, top_variable or missing='mean': they need the "
+            "feature statistics before the pass that reads the values; drop them or use the default passes"
+        )
+    active_index = np.flatnonzero(reader.active)
+    found: dict = {}
+
+    def finish(block_stats: BlockStats):
+        stats = FeatureStatistics.from_block_stats(block_stats)
+        prep = _preprocessing(job, stats, exclude, src, n)
+        found.update(stats=stats, prep=prep)
+        d = np.zeros(src.shape[1])
+        d[prep.kept] = prep.inverse_scale
+        return np.where(spec.center, stats.mean, 0.0), d
+
+    def missing(row: int, column: int) -> None:
+        sample = src.sample_ids[active_index[row]]
+        raise InputError(f"{src.path}: sample {sample!r}, feature {src.feature_ids[column]!r} is NaN or "
+                         "infinite (after the transforms); fix the input (a one-pass fit imputes nothing)")
+
+    result = one_pass_factorization(
+        reader.array("read"), n_components=job.k, oversample=job.engine.oversample, rng=rng,
+        finish=finish, omit=exclude, on_missing=missing, runner=runner, source="input",
+    )
+    fac = result.factorization
+    fac.sketch = {"relative_error": result.relative_error, "widths": list(result.widths),
+                  "distances_estimated": result.distances_estimated}
+    return found["stats"], found["prep"], fac
 
 
 def _choose_method(method: str, n: int, p: int, spec: PreprocessSpec, budget: int) -> str:
@@ -494,6 +537,7 @@ def _manifest(src, job: _Job, n, prep, stats, fac, plan, runner) -> dict:
             ],
         },
         "accuracy": _accuracy_record(fac, job.engine.tol),
+        **({"one_pass": _one_pass_record(fac)} if fac.sketch is not None else {}),
         "seconds": round(time.perf_counter() - job.t_start, 3),
         "versions": _versions(),
     }
@@ -513,6 +557,20 @@ def _accuracy_record(fac: Factorization, tol: float) -> dict:
         "power_iterations_run": fac.power_iterations,
         "converged": fac.converged,
         "last_relative_change": fac.ritz_change if fac.method == "randomized" else None,
+    }
+
+
+def _one_pass_record(fac: Factorization) -> dict:
+    """What a one-pass fit gave up, in numbers and words."""
+    s, t, q = fac.sketch["widths"]
+    return {
+        "sketch_widths": {"sample_side": s, "feature_side": t, "error_rows": q},
+        "estimated_relative_error": fac.sketch["relative_error"],
+        "sample_distances": "estimated" if fac.sketch["distances_estimated"] else "exact",
+        "note": ("read once: statistics and two random sketches in the same pass, no power "
+                 "iterations; the singular values and loadings are less accurate than the default "
+                 "passes give (estimated_relative_error is ‖X̃ − X̃ₖ‖_F / ‖X̃‖_F seen through a separate "
+                 "sketch), and each sample's squared distance to the centre is estimated"),
     }
 
 
