@@ -28,7 +28,7 @@ import numpy as np
 import scipy.sparse
 from sklearn.base import BaseEstimator, TransformerMixin
 from sklearn.utils import check_random_state
-from sklearn.utils._available_if import available_if
+from sklearn.utils.metaestimators import available_if
 from sklearn.utils.validation import (
     _check_feature_names_in,
     check_is_fitted,
