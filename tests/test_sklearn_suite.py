@@ -29,6 +29,8 @@ from axiscope.estimator import SPARSE_FORMATS
 SITE = Path(sklearn.__file__).parent.parent
 SUITE = Path(sklearn.__file__).parent / "decomposition" / "tests" / "test_pca.py"
 FULL = os.environ.get("AXISCOPE_SKLEARN_SUITE") == "full"
+#: The scikit-learn release whose suite the lists below describe.
+LISTED_FOR = "1.9.1"
 
 #: Tests of scikit-learn's private helpers only (``_assess_dimension``, ``_infer_dimension``
 #: on hand-made spectra): they exercise no estimator, so they are not run.
@@ -62,7 +64,7 @@ DIFFERENCES = [
      "error messages in axiscope's own words (same ValueError, same condition)"),
     (r"test_n_components_mle_error\[(arpack|randomized)\]", "DID NOT RAISE",
      "'mle' works with every method (the spectrum comes from one exact pass)"),
-    (r"test_pca_score\[", "assert ",
+    (r"test_pca_score\[(full|covariance_eigh|arpack|auto)\]", "assert ",
      "score_samples is the density of X whatever whiten is (whiten only rescales the scores)"),
     (r"test_pca_score3$", "n_components=0 is not a positive integer",
      "a model of zero axes is not fitted"),
@@ -70,6 +72,14 @@ DIFFERENCES = [
      "reads scikit-learn's private attribute _fit_svd_solver"),
     (r"test_feature_names_out$", "PC1",
      "output columns are named PC1, PC2, … as in axiscope's tables"),
+]
+
+#: Either outcome, decided by rounding: (pattern, fragment of the failure message, reason).
+#: Not counted among the passes.
+ROUNDING_TIES = [
+    (r"test_pca_score\[randomized\]", "assert ",
+     "the whitened and plain models have the same density; the two randomized fits (unseeded) "
+     "differ in the last bits, so 'll1 > ll2' holds or not by rounding"),
 ]
 
 #: Sparse input: refused until the readers take sparse matrices (``SPARSE_FORMATS``).
@@ -92,7 +102,7 @@ SKIPS = [
 #: (tests passed, tests run): quick selection, whole suite (606 collected, 3 deselected as
 #: private helpers; scikit-learn's own PCA passes all but the 196 array-API checks, skipped
 #: here for both).
-EXPECTED_PASSED = {"quick": (94, 134), "full": (130, 603)}
+EXPECTED_PASSED = {"quick": (94, 133), "full": (130, 602)}
 
 
 def _run_suite(tmp_path: Path) -> list[tuple[str, str, str]]:
@@ -127,11 +137,17 @@ def _match(name: str, message: str, table) -> tuple | None:
 
 @pytest.mark.filterwarnings("ignore::DeprecationWarning")
 def test_sklearn_pca_suite_passes_but_the_listed_differences(tmp_path):
+    if sklearn.__version__ != LISTED_FOR:
+        pytest.skip(f"the lists describe scikit-learn {LISTED_FOR}'s PCA suite, {sklearn.__version__} is installed: "
+                    "run with AXISCOPE_SKLEARN_SUITE=full and update the lists and DEVELOPERS.md")
     outcomes = _run_suite(tmp_path)
     expected_failures = DIFFERENCES + ([] if SPARSE_FORMATS else PENDING_SPARSE)
     unexpected, stale, unexplained_skips = [], [], []
     passed = 0
     for name, outcome, message in outcomes:
+        if any(re.match(p, name) for p, *_ in ROUNDING_TIES):
+            assert outcome == "passed" or _match(name, message, ROUNDING_TIES) is not None, name
+            continue
         listed = any(re.match(p, name) for p, *_ in expected_failures)
         if outcome == "passed":
             passed += 1
@@ -146,4 +162,5 @@ def test_sklearn_pca_suite_passes_but_the_listed_differences(tmp_path):
     assert unexpected == []
     assert stale == []  # a listed difference now passes: remove it from the list and DEVELOPERS.md
     assert unexplained_skips == []
-    assert (passed, len(outcomes)) == EXPECTED_PASSED["full" if FULL else "quick"]
+    counted = [name for name, _, _ in outcomes if not any(re.match(p, name) for p, *_ in ROUNDING_TIES)]
+    assert (passed, len(counted)) == EXPECTED_PASSED["full" if FULL else "quick"]
