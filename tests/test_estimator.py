@@ -37,10 +37,12 @@ def wine():
 
 
 @pytest.mark.filterwarnings("ignore::sklearn.exceptions.SkipTestWarning")
-def test_check_estimator_passes():
+@pytest.mark.parametrize("params", [{}, {"scale": "none", "whiten": True}], ids=["default", "covariance-whiten"])
+def test_check_estimator_passes(params):
     # reference: scikit-learn's estimator conventions; no check is skipped by us (the array-API
-    # checks skip themselves unless SCIPY_ARRAY_API is set, as for every estimator)
-    results = check_estimator(AxiscopePCA(), on_fail=None)
+    # checks skip themselves unless SCIPY_ARRAY_API is set, as for every estimator). With
+    # scale='none' partial_fit is available and checked too.
+    results = check_estimator(AxiscopePCA(**params), on_fail=None)
     failed = [(r["check_name"], repr(r["exception"])) for r in results if r["status"] == "failed"]
     assert failed == []
     assert len(results) > 40
@@ -56,8 +58,10 @@ def test_matches_standard_scaler_plus_pca_without_a_scaler(wine):
     np.testing.assert_allclose(_align(ours.fit_transform(X), T_ref), T_ref, atol=1e-8)
     pca = ref.named_steps["pca"]
     n = X.shape[0]
-    # variance convention: s²/n here, s²/(n−1) in scikit-learn
-    np.testing.assert_allclose(ours.explained_variance_, pca.explained_variance_ * (n - 1) / n, rtol=1e-10)
+    # variance convention: s²/(n−1) on the estimator, as in scikit-learn; s²/n in the model
+    # and the command line's tables
+    np.testing.assert_allclose(ours.explained_variance_, pca.explained_variance_, rtol=1e-10)
+    np.testing.assert_allclose(ours.model_.variance, pca.explained_variance_ * (n - 1) / n, rtol=1e-10)
     np.testing.assert_allclose(ours.explained_variance_ratio_, pca.explained_variance_ratio_, rtol=1e-10)
     np.testing.assert_allclose(ours.singular_values_, pca.singular_values_, rtol=1e-10)
     np.testing.assert_allclose(np.abs(ours.components_), np.abs(pca.components_), atol=1e-10)

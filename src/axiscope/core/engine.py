@@ -118,6 +118,10 @@ class Factorization:
         singular value.
     accuracy : AxisAccuracy or None
         Per-axis error estimates of the singular values and loadings.
+    spectrum : ndarray or None
+        Every singular value of ``X̃`` (``min(n, p)``, descending) when the exact path
+        computed them all; None otherwise. Used to choose the number of axes from the
+        whole spectrum (a share of variance, Minka's evidence).
     """
 
     singular_values: np.ndarray
@@ -132,6 +136,7 @@ class Factorization:
     residual_bound: float = float("nan")
     ritz_history: list = field(default_factory=list)
     accuracy: AxisAccuracy | None = None
+    spectrum: np.ndarray | None = None
     #: one-pass mode only: sketch widths, estimated relative error, estimated distances
     sketch: dict | None = None
 
@@ -641,6 +646,7 @@ def exact_factorization(
         method="exact",
         residual_bound=residual,
         accuracy=lapack_accuracy(s, k),
+        spectrum=s.copy(),
     )
 
 
