@@ -13,6 +13,7 @@ from collections import deque
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
+from functools import partial
 from typing import Any
 
 import dask
@@ -63,8 +64,12 @@ class PassRunner:
         task: Callable[..., Any],
         fold: Callable[[Any, int, int], None],
         *args: Any,
+        rows: np.ndarray | None = None,
     ) -> None:
         """Compute ``task(block, *args)`` for every row block and call ``fold(result, index, start)``.
+
+        With ``rows`` (one row per sample of ``X``, e.g. covariates), the task is called as
+        ``task(block, rows_of_the_block, *args)``.
 
         ``fold`` is called on the calling thread, in block order. On the threaded scheduler
         the whole pass is one Dask computation, and each result is folded as soon as the
@@ -74,6 +79,10 @@ class PassRunner:
         t0 = time.perf_counter()
         blocks = X.to_delayed().ravel()
         starts = [int(v) for v in np.concatenate([[0], np.cumsum(X.chunks[0])])[:-1]]
+        if rows is not None:  # each block travels with its rows of ``rows``
+            blocks = [dask.delayed(_with_rows, pure=True)(b, rows[s : s + c])
+                      for b, s, c in zip(blocks, starts, X.chunks[0])]
+            task = partial(_call_with_rows, task)
         n = len(blocks)
         if self.progress:
             self.progress(name, 0, n)
@@ -124,6 +133,14 @@ class PassRunner:
                 fold(result, lo + offset, starts[lo + offset])
             if self.progress:
                 self.progress(name, hi, n)
+
+
+def _with_rows(block: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    return block, rows
+
+
+def _call_with_rows(task: Callable[..., Any], pair: tuple[np.ndarray, np.ndarray], *args: Any) -> Any:
+    return task(pair[0], pair[1], *args)
 
 
 def _local_scheduler() -> bool:
