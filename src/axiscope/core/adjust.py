@@ -158,7 +158,7 @@ def _rows(table: pd.DataFrame, columns: Sequence[str], sample_ids: Sequence[str]
     ids = pd.Index(np.asarray(sample_ids, dtype=object))
     lacking = ids[~ids.isin(table.index)]
     if len(lacking):
-        raise InputError(f"{where}: {counted(len(lacking), 'sample')} of {len(ids)} have no row (first: "
+        raise InputError(f"{where}: {len(lacking)} of {counted(len(ids), 'sample')} have no row (first: "
                          f"{lacking[0]!r}); the covariates adjusted for are needed for every sample")
     frame = table.loc[ids, list(columns)]
     for column in columns:
