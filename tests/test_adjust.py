@@ -217,3 +217,24 @@ def test_planted_batch_axis_disappears_biology_remains():
     assert np.all(r2 < 1e-20)  # scores orthogonal to the batch indicator (P removes it exactly)
     assert np.all(weight < 2 * chance)  # no axis carries the batch genes
     assert eta2[0] > 0.9 and eta2[1] > 0.9  # the three planted states still span the first two axes
+
+
+def test_command_line_fit_and_score(tmp_path, capsys):
+    """``fit --adjust-for`` then ``score --annotations`` on training samples: the fit's scores back."""
+    from axiscope.cli._app import main
+
+    X, ids, table, _ = _planted(5, n=80, p=30)
+    np.save(tmp_path / "m.npy", X)
+    (tmp_path / "ids.txt").write_text("\n".join(ids) + "\n")
+    table.to_csv(tmp_path / "ann.tsv", sep="\t", index=False)
+    common = ["--sample-ids", str(tmp_path / "ids.txt"), "-q", "--threads", "1"]
+    assert main(["fit", str(tmp_path / "m.npy"), "--out", str(tmp_path / "fit"), "-k", "3", *common,
+                 "--annotations", str(tmp_path / "ann.tsv"), "--adjust-for", "batch", "--adjust-for", "depth"]) == 0
+    manifest = json.loads((tmp_path / "fit" / "manifest.json").read_text())
+    assert manifest["adjusted_for"]["columns"] == ["batch", "depth"]
+    assert main(["score", str(tmp_path / "fit"), str(tmp_path / "m.npy"), "--out", str(tmp_path / "score"),
+                 *common, "--annotations", str(tmp_path / "ann.tsv")]) == 0
+    fitted = pd.read_csv(tmp_path / "fit" / "sample_scores.tsv", sep="\t", comment="#")
+    scored = pd.read_csv(tmp_path / "score" / "scores.tsv", sep="\t", comment="#")
+    np.testing.assert_allclose(scored[["PC1", "PC2", "PC3"]].to_numpy(), fitted[["PC1", "PC2", "PC3"]].to_numpy(),
+                               rtol=1e-6, atol=1e-9)
