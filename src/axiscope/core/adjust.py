@@ -332,15 +332,16 @@ def _level_order(level: str):
     return (0, value, "") if np.isfinite(value) else (1, 0.0, level)
 
 
-def block_cross(block: np.ndarray, centred_rows: np.ndarray) -> np.ndarray:
+def block_cross(block: np.ndarray, centred_rows: np.ndarray, mean: np.ndarray | None = None) -> np.ndarray:
     """``X_bᵀ·C̄_b`` (float64) for one block, ``C̄`` the covariates centred over all samples.
 
-    The block is shifted by its own column means rounded to its dtype (exact subtraction of
-    nearby numbers) before the product in the block's dtype; the shift comes back in
-    float64 as ``m_b·(1ᵀC̄_b)``. Summed over blocks this is ``(X − 1μᵀ)ᵀ·C`` for every
-    column of ``C`` but the intercept (for which it is zero), since ``1ᵀC̄ = 0``.
+    The block is shifted by its own column means (``mean``, computed when not given)
+    rounded to its dtype (exact subtraction of nearby numbers) before the product in the
+    block's dtype; the shift comes back in float64 as ``m_b·(1ᵀC̄_b)``. Summed over blocks
+    this is ``(X − 1μᵀ)ᵀ·C`` for every column of ``C`` but the intercept (for which it is
+    zero), since ``1ᵀC̄ = 0``.
     """
-    m = block.mean(axis=0, dtype=np.float64).astype(block.dtype)
+    m = (block.mean(axis=0, dtype=np.float64) if mean is None else mean).astype(block.dtype)
     shifted = block - m
     cross = (shifted.T @ centred_rows.astype(block.dtype)).astype(np.float64)
     cross += np.outer(m.astype(np.float64), centred_rows.sum(axis=0))

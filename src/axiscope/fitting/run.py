@@ -582,7 +582,7 @@ def _block_sketch(block: np.ndarray, omega32: np.ndarray, mean: np.ndarray | Non
 def _stats_task_with_rows(block, covariate_rows, omega32, centre):
     """:func:`_stats_task` plus the block's cross product with the centred covariates."""
     stats, sketch, bad = _stats_task(block, omega32, centre)
-    return stats, sketch, bad, (block_cross(block, covariate_rows) if bad is None else None)
+    return stats, sketch, bad, (block_cross(block, covariate_rows, stats.mean) if bad is None else None)
 
 
 def _statistics_pass(X, spec, omega, runner, src, active, *, centre: bool = True,
