@@ -139,7 +139,7 @@ def fit_command(
                              samples_in=samples_in.value, allow_external_data=allow_external_data,
                              allow_missing_chunks=allow_missing_chunks)
         covariates = _covariates(adjust_for, annotations, id_column, categorical, numeric,
-                                 supplementary_samples_column)
+                                 supplementary_samples_column, supplementary_features)
         with open_matrix(input, **layout.open_options(), scratch=resources.scratch) as src:
             prepared = plan_explanation(
                 src, annotations=annotations, id_column=id_column, categorical=categorical, numeric=numeric,
@@ -169,7 +169,8 @@ def fit_command(
         say(f"  figures in {out / 'figures'}; report in {out / 'report.html'}", quiet)
 
 
-def _covariates(adjust_for, annotations, id_column, categorical, numeric, supplementary_samples_column):
+def _covariates(adjust_for, annotations, id_column, categorical, numeric, supplementary_samples_column,
+                supplementary_features):
     """The ``Covariates`` of ``--adjust-for`` (None without it), checked against the other options."""
     if not adjust_for:
         return None
@@ -178,9 +179,10 @@ def _covariates(adjust_for, annotations, id_column, categorical, numeric, supple
 
     if annotations is None:
         raise OptionError("adjust_for names annotation columns; give the table with annotations=FILE")
-    if supplementary_samples_column:
-        raise OptionError("adjust_for does not yet combine with supplementary_samples_column; "
-                          "leave one of them out")
+    for name, value in (("supplementary_samples_column", supplementary_samples_column),
+                        ("supplementary_features", supplementary_features)):
+        if value:  # supplementary elements would be placed unadjusted: refused until they are adjusted too
+            raise OptionError(f"adjust_for does not yet combine with {name}; leave one of them out")
     return Covariates(annotations, adjust_for, id_column=id_column, categorical=categorical or (),
                       numeric=numeric or ())
 
