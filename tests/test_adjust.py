@@ -238,3 +238,18 @@ def test_command_line_fit_and_score(tmp_path, capsys):
     scored = pd.read_csv(tmp_path / "score" / "scores.tsv", sep="\t", comment="#")
     np.testing.assert_allclose(scored[["PC1", "PC2", "PC3"]].to_numpy(), fitted[["PC1", "PC2", "PC3"]].to_numpy(),
                                rtol=1e-6, atol=1e-9)
+
+
+def test_float32_far_from_zero():
+    """float32 data whose means lie 10⁵ SDs from zero: the cross products are taken about each
+    block's mean, so nothing cancels. Reference: float64 lstsq + LAPACK SVD of the same values;
+    tolerance 1e-5 relative (float32 unit roundoff 6e-8 times the block length; observed 2e-7)."""
+    X, ids, table, C = _planted(0, n=400, p=120)
+    X32 = (X + 1e5).astype(np.float32)
+    A, U, s, Vt = _explicit(X32.astype(np.float64), C)
+    result = fit(array_source(X32, sample_ids=ids), n_components=5,
+                 engine=EngineSettings(method="randomized", power_iterations=10), resources=Resources(threads=2),
+                 covariates=Covariates(table, ["batch", "depth"]))
+    np.testing.assert_allclose(result.model.singular_values, s[:5], rtol=1e-5)
+    np.testing.assert_allclose(result.sample_sq_dist, np.sum(A**2, axis=1), rtol=1e-5)
+    np.testing.assert_allclose(result.model.total_inertia, np.sum(A**2) / A.shape[0], rtol=1e-5)
