@@ -580,9 +580,32 @@ def _block_sketch(block: np.ndarray, omega32: np.ndarray, mean: np.ndarray | Non
 
 
 def _stats_task_with_rows(block, covariate_rows, omega32, centre):
-    """:func:`_stats_task` plus the block's cross product with the centred covariates."""
-    stats, sketch, bad = _stats_task(block, omega32, centre)
-    return stats, sketch, bad, (block_cross(block, covariate_rows, stats.mean) if bad is None else None)
+    """:func:`_stats_task` plus the block's cross product ``X_bᵀ·C̄_b`` with the centred covariates
+    (covariate adjustment, which always centres). With a sketch, both products share the block
+    shifted to its mean: one product with ``[shifted·Ω, C̄_b]``."""
+    stats = block_statistics(block)
+    bad = first_nonfinite(block) if stats.n_nonfinite else None
+    sketch = cross = None
+    if bad is None and omega32 is not None:
+        sketch, cross = _block_sketch_and_cross(block, omega32, stats.mean, covariate_rows)
+    elif bad is None:
+        cross = block_cross(block, covariate_rows, stats.mean)
+    return stats, sketch, bad, cross
+
+
+def _block_sketch_and_cross(block, omega32, mean, covariate_rows) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_block_sketch` about the block's mean, and :func:`axiscope.core.adjust.block_cross`,
+    from one shifted copy of the block and one product."""
+    c = mean.astype(block.dtype)
+    shifted = block - c
+    l = omega32.shape[1]
+    right = np.hstack([shifted @ omega32, covariate_rows.astype(block.dtype)])
+    product = (shifted.T @ right).astype(np.float64)
+    sketch = product[:, :l]
+    e = mean - c.astype(np.float64)
+    sketch -= block.shape[0] * np.outer(e, e @ omega32.astype(np.float64))
+    cross = product[:, l:] + np.outer(c.astype(np.float64), covariate_rows.sum(axis=0))
+    return np.ascontiguousarray(sketch), cross
 
 
 def _statistics_pass(X, spec, omega, runner, src, active, *, centre: bool = True,
