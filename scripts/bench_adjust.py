@@ -38,7 +38,9 @@ t0 = time.perf_counter()
 result = fit(path, n_components=k, engine=EngineSettings(method="randomized"), resources=Resources(threads=threads),
              covariates=Covariates(table, ["batch", "depth"]) if adjusted else None)
 m = result.manifest
+detail = m["passes"]["detail"]
 print(json.dumps({"seconds": m["seconds"], "outside": time.perf_counter() - t0, "passes": m["passes"]["count"],
+                  "statistics": detail[0]["seconds"], "later": sum(d["seconds"] for d in detail[1:]),
                   "iterations": m["accuracy"]["power_iterations_run"],
                   "s1": float(result.model.singular_values[0]), "ratio1": float(result.model.variance_ratio[0])}))
 """
@@ -94,25 +96,28 @@ def main() -> None:
         for name, flag in (("unadjusted", "0"), ("adjusted", "1")):
             out = run([CHILD, str(path), str(table), str(args.components), str(args.threads), flag])
             results[name].append(json.loads(out.strip().splitlines()[-1]))
-    med = {name: {key: statistics.median(r[key] for r in runs) for key in ("seconds", "passes", "iterations")}
-           for name, runs in results.items()}
+    keys = ("seconds", "passes", "iterations", "statistics", "later")
+    med = {name: {key: statistics.median(r[key] for r in runs) for key in keys} for name, runs in results.items()}
     mem = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / 2**30
     lines = [
         f"Command: `python scripts/bench_adjust.py --size {args.size} --components {args.components} "
         f"--repeats {args.repeats} --threads {args.threads}`; {_dt.date.today().isoformat()}; "
         f"{platform.machine()}, {os.cpu_count()} cores, {mem:.0f} GB memory (shared with other jobs).",
         "",
-        "| fit | median wall (s) | passes | power iterations | all walls (s) |",
-        "|---|---|---|---|---|",
+        "| fit | median wall (s) | statistics pass (s) | later passes (s) | passes | power iterations | all walls (s) |",
+        "|---|---|---|---|---|---|---|",
     ]
     for name, runs in results.items():
         walls = ", ".join(f"{r['seconds']:.1f}" for r in runs)
-        lines.append(f"| {name} | {med[name]['seconds']:.1f} | {med[name]['passes']:g} | "
-                     f"{med[name]['iterations']:g} | {walls} |")
+        lines.append(f"| {name} | {med[name]['seconds']:.1f} | {med[name]['statistics']:.1f} | "
+                     f"{med[name]['later']:.1f} | {med[name]['passes']:g} | {med[name]['iterations']:g} | {walls} |")
     wall = med["adjusted"]["seconds"] / med["unadjusted"]["seconds"]
     passes = med["adjusted"]["passes"] / med["unadjusted"]["passes"]
     per_pass = wall / passes
-    lines += ["", f"Adjusted / unadjusted: wall {wall:.2f}×, passes {passes:.2f}×, wall per pass {per_pass:.2f}×."]
+    stats_ratio = med["adjusted"]["statistics"] / med["unadjusted"]["statistics"]
+    later_ratio = med["adjusted"]["later"] / med["unadjusted"]["later"]
+    lines += ["", f"Adjusted / unadjusted (medians): wall {wall:.2f}×, passes {passes:.2f}×, wall per pass "
+                  f"{per_pass:.2f}×; statistics pass {stats_ratio:.2f}×, later passes {later_ratio:.2f}×."]
     report = "\n".join(lines)
     print(report)
     if args.out:

@@ -253,3 +253,21 @@ def test_float32_far_from_zero():
     np.testing.assert_allclose(result.model.singular_values, s[:5], rtol=1e-5)
     np.testing.assert_allclose(result.sample_sq_dist, np.sum(A**2, axis=1), rtol=1e-5)
     np.testing.assert_allclose(result.model.total_inertia, np.sum(A**2) / A.shape[0], rtol=1e-5)
+
+
+def test_absent_feature_adds_nothing(tmp_path):
+    """With fill_missing, a feature absent from the new file is taken at its fitted value: the
+    sample lands where its adjusted row with that feature set to 0 lands (explicit reference)."""
+    X, ids, table, C = _planted(6, n=90, p=25)
+    feature_ids = [f"f{j}" for j in range(X.shape[1])]
+    result = fit(array_source(X, sample_ids=ids, feature_ids=feature_ids), n_components=3,
+                 engine=EngineSettings(method="exact"), resources=Resources(threads=1),
+                 covariates=Covariates(table, ["batch", "depth"]))
+    A, *_ = _explicit(X, C)
+    keep = np.arange(X.shape[1]) != 4
+    new = array_source(X[:10][:, keep], sample_ids=ids[:10], feature_ids=list(np.asarray(feature_ids)[keep]))
+    scored = score(result.model, new, threads=1, fill_missing="mean", covariates=Covariates(table))
+    A0 = A[:10].copy()
+    A0[:, 4] = 0.0
+    np.testing.assert_allclose(scored.scores[result.model.axis_names].to_numpy(), A0 @ result.model.components,
+                               atol=1e-9 * result.model.singular_values[0])

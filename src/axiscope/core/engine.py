@@ -28,7 +28,6 @@ from __future__ import annotations
 
 import logging
 from dataclasses import dataclass, field
-
 from typing import TYPE_CHECKING
 
 import dask.array as da

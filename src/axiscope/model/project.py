@@ -107,7 +107,7 @@ class _Adjusted:
         if rows.shape != (m, coef.shape[1]):
             raise OptionError(f"covariates has shape {rows.shape}, not ({m}, {coef.shape[1]}): one row of "
                               "covariate terms per sample placed")
-        return cls(rows, np.asarray(coef, dtype=np.float64))
+        return cls(rows, np.array(coef, dtype=np.float64))  # a copy: absent features are zeroed
 
     def apply(self, scores: np.ndarray, sq: np.ndarray, model: Model) -> tuple[np.ndarray, np.ndarray]:
         """Scores and squared norms of ``x̃ − Γ·c`` from those of ``x̃`` (and ``x̃·Γ``)."""
@@ -199,6 +199,8 @@ def project(
     inv = (1.0 / model.scale)[present]
     V = model.components[present]
     if adjusted is not None:  # X̃·Γ as well, for the adjusted squared distances
+        # an absent feature (fill_missing) is taken at its fitted value, so it still adds nothing
+        adjusted.coef[~present] = 0.0
         V = np.hstack([V, adjusted.coef[present]])
     fill = model.extras.get("feature_mean", model.mean)[present]
 
