@@ -155,12 +155,15 @@ def _rows(table: pd.DataFrame, columns: Sequence[str], sample_ids: Sequence[str]
         fix = ("the model was fitted after adjusting for it; give its values for these samples" if fitted
                else "check the names given as adjust_for")
         raise InputError(f"{where}: no column {absent[0]!r} to adjust for (columns: {shown}); {fix}")
-    ids = pd.Index(np.asarray(sample_ids, dtype=object))
-    lacking = ids[~ids.isin(table.index)]
-    if len(lacking):
-        raise InputError(f"{where}: {len(lacking)} of {counted(len(ids), 'sample')} have no row (first: "
-                         f"{lacking[0]!r}); the covariates adjusted for are needed for every sample")
-    frame = table.loc[ids, list(columns)]
+    ids = [str(i) for i in sample_ids]
+    row_of = {sid: i for i, sid in enumerate(table.index.tolist())}
+    position = np.array([row_of.get(sid, -1) for sid in ids], dtype=np.int64)
+    lacking = np.flatnonzero(position < 0)
+    if lacking.size:
+        raise InputError(f"{where}: {lacking.size} of {counted(len(ids), 'sample')} have no row (first: "
+                         f"{ids[lacking[0]]!r}); the covariates adjusted for are needed for every sample")
+    frame = table[list(columns)].iloc[position]
+    frame.index = pd.Index(ids, dtype=object)
     for column in columns:
         empty = np.flatnonzero(pd.isna(frame[column]).to_numpy())
         if empty.size:
@@ -175,6 +178,17 @@ def _as_number(text: str) -> float:
     except (TypeError, ValueError):
         return float("nan")
     return value
+
+
+def _numbers(cells: np.ndarray) -> np.ndarray:
+    """float64 of each text cell, NaN where it is not a number."""
+    return pd.to_numeric(pd.Series(cells, dtype=object), errors="coerce").to_numpy(dtype=np.float64)
+
+
+def _labels(cells: np.ndarray) -> np.ndarray:
+    """:func:`_level` of every cell, computed once per distinct value."""
+    distinct, inverse = np.unique(np.asarray(cells, dtype=str), return_inverse=True)
+    return np.asarray([_level(v) for v in distinct], dtype=object)[inverse]
 
 
 def _level(text: str) -> str:
@@ -222,7 +236,7 @@ class CovariateDesign:
         kinds, levels = [], {}
         for column in frame.columns:
             cells = frame[column].to_numpy(dtype=object)
-            numbers = np.array([_as_number(v) for v in cells])
+            numbers = _numbers(cells)
             finite = np.isfinite(numbers)
             distinct = np.unique(numbers[finite])
             if column in spec.numeric or (column not in spec.categorical and finite.mean() >= _MOSTLY_NUMERIC):
@@ -242,7 +256,7 @@ class CovariateDesign:
                                          "from adjust_for")
                     kinds.append("numeric")
                     continue
-            found = sorted({_level(v) for v in cells}, key=_level_order)
+            found = sorted(set(_labels(cells)), key=_level_order)
             if len(found) < 2:
                 raise InputError(f"{where}: column {column!r} has a single level ({found[0]!r}) over the "
                                  f"{counted(cells.size, 'sample')}; nothing to adjust for, drop it from adjust_for")
@@ -263,7 +277,7 @@ class CovariateDesign:
         for column, kind in zip(self.columns, self.kinds):
             cells = frame[column].to_numpy(dtype=object)
             if kind == "numeric":
-                x = np.array([_as_number(v) for v in cells])
+                x = _numbers(cells)
                 bad = np.flatnonzero(~np.isfinite(x))
                 if bad.size:
                     raise InputError(f"{where}: sample {frame.index[bad[0]]!r} has {cells[bad[0]]!r} in numeric "
@@ -271,7 +285,7 @@ class CovariateDesign:
                 parts.append(x[:, None])
                 continue
             known = self.levels[column]
-            labels = np.array([_level(v) for v in cells], dtype=object)
+            labels = _labels(cells)
             unseen = np.flatnonzero(~np.isin(labels, np.asarray(known, dtype=object)))
             if unseen.size:
                 raise InputError(
