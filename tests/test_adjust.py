@@ -271,3 +271,29 @@ def test_absent_feature_adds_nothing(tmp_path):
     A0[:, 4] = 0.0
     np.testing.assert_allclose(scored.scores[result.model.axis_names].to_numpy(), A0 @ result.model.components,
                                atol=1e-9 * result.model.singular_values[0])
+
+
+@pytest.mark.parametrize("scheduler", [None, "single-threaded"])
+def test_each_block_gets_its_own_rows(scheduler):
+    """PassRunner.run(rows=...): each task sees exactly the rows of its block, on the pipelined
+    path and on the windowed one (any scheduler other than the local threads)."""
+    import dask
+    import dask.array as da
+
+    from axiscope.core.passes import PassRunner
+
+    X = da.from_array(np.arange(40.0).reshape(20, 2), chunks=(6, 2))
+    rows = np.arange(20.0)[:, None] * 2
+    seen = {}
+
+    def task(block, block_rows, scale):
+        return block[:, 0] / 2, block_rows[:, 0] * scale
+
+    def fold(result, index, start):
+        seen[start] = result
+
+    with dask.config.set(scheduler=scheduler):
+        PassRunner(threads=2).run("rows", "memory", X, task, fold, 0.5, rows=rows)
+    assert sorted(seen) == [0, 6, 12, 18]
+    for start, (first_column_half, own_rows) in seen.items():
+        np.testing.assert_array_equal(first_column_half, own_rows)  # row i holds 2i, and its row of rows 2i·0.5 = i
