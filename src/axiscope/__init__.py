@@ -24,6 +24,7 @@ _EXPORTS = {
     "EngineSettings": "axiscope.core.options",
     "Resources": "axiscope.core.options",
     "InputLayout": "axiscope.core.options",
+    "Covariates": "axiscope.core.adjust",
     "MatrixSource": "axiscope.io",
     "open_matrix": "axiscope.io",
 }
@@ -31,6 +32,7 @@ _EXPORTS = {
 __all__ = ["__version__", *_EXPORTS]
 
 if TYPE_CHECKING:  # pragma: no cover
+    from .core.adjust import Covariates  # noqa: F401
     from .core.options import EngineSettings, InputLayout, Resources  # noqa: F401
     from .core.preprocess import PreprocessSpec  # noqa: F401
     from .errors import AxiscopeError, InputError, ModelError, OptionError  # noqa: F401

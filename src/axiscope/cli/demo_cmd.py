@@ -30,8 +30,10 @@ def demo_command(
     """Simulate a synthetic RNA-sequencing cohort, fit it, explain the axes, score a new batch, draw it all."""
     import pandas as pd
 
+    from ..core.adjust import Covariates
     from ..core.options import Resources
     from ..core.preprocess import PreprocessSpec
+    from ..demo.adjusted import check_adjustment
     from ..demo.layout import DEMO_FIT_OPTIONS, DEMO_TECHNICAL, make_demo_data
     from ..explain.cards import explain_axes
     from ..fitting.run import fit
@@ -53,6 +55,10 @@ def demo_command(
                              resources=Resources(threads=threads), progress=progress)
                 cards = explain_axes(result, annotations=data["reference_annotations"],
                                      technical=DEMO_TECHNICAL, ignore=["corrupted"], top=5)
+                # the same fit after removing the invented processing batch: its axis goes
+                adjusted = fit(data["reference"], n_components=3, preprocess=PreprocessSpec(**DEMO_FIT_OPTIONS),
+                               resources=Resources(threads=threads), progress=progress,
+                               covariates=Covariates(data["reference_annotations"], ["batch"]))
                 # the records say where things are once the folder has its final name
                 result.manifest = relocated(result.manifest, tmp, out)
                 cards.settings = relocated(cards.settings, tmp, Path(out).resolve())
@@ -69,6 +75,8 @@ def demo_command(
                 build_report(tmp / "fit", annotations=annotations, scores_dir=tmp / "score",
                              out=tmp / "report.html")
             corrupted = pd.read_csv(data["new_annotations"], sep="\t")["corrupted"].to_numpy(dtype=bool)
+            batch_check = check_adjustment(result, adjusted, pd.read_csv(
+                data["reference_annotations"], sep="\t", dtype={"sample_id": str}), covariate="batch", biology="state")
     print_fit_summary(result, out / "fit", quiet)
     for axis in cards.axis_names[:3]:
         say(f"  {cards.reading(axis)}", quiet)
@@ -76,6 +84,7 @@ def demo_command(
         up = ", ".join(genes[genes["side"] == "positive"]["feature_id"].head(5))
         down = ", ".join(genes[genes["side"] == "negative"]["feature_id"].head(5))
         say(f"    genes with the largest loadings: + {up}; − {down}", quiet)
+    say(batch_check.line(), quiet)
     flags = scored.diagnostics["flag"]
     flagged = (flags != "within").to_numpy()
     say(

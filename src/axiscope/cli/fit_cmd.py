@@ -121,6 +121,11 @@ def fit_command(
     supplementary_features: Annotated[Path | None, typer.Option(help="Text file with one feature id per line: left out of the axes and reported as supplementary.")] = None,
     supplementary_samples_column: Annotated[str | None, typer.Option(help="true/false annotation column: true rows are left out of the fit and projected afterwards.")] = None,
     allow_missing: AllowMissing = False,
+    adjust_for: Annotated[list[str] | None, typer.Option(
+        "--adjust-for", metavar="COL[,COL…]",
+        help="Annotation columns (from --annotations) regressed out of every feature before the axes are "
+             "fitted: numeric columns as they are, categorical ones as indicators of their levels; "
+             "an intercept is included. Repeatable or comma-separated.")] = None,
     report: Annotated[bool, typer.Option(
         "--report", help="Also draw the figures (figures/) and write report.html into --out: one "
                          "self-contained page with the maps, the axis cards and the warnings (see 'axiscope "
@@ -150,6 +155,8 @@ def fit_command(
         layout = InputLayout(dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
                              samples_in=samples_in.value, allow_external_data=allow_external_data,
                              allow_missing_chunks=allow_missing_chunks)
+        covariates = _covariates(adjust_for, annotations, id_column, categorical, numeric,
+                                 supplementary_samples_column, supplementary_features)
         with open_matrix(input, **layout.open_options(), scratch=resources.scratch) as src:
             prepared = plan_explanation(
                 src, annotations=annotations, id_column=id_column, categorical=categorical, numeric=numeric,
@@ -161,7 +168,7 @@ def fit_command(
             with progress_display(quiet) as progress:
                 result = fit(src, n_components=n_components, preprocess=spec, engine=engine,
                              resources=resources, active=prepared.active,
-                             exclude_features=prepared.exclude, progress=progress)
+                             exclude_features=prepared.exclude, progress=progress, covariates=covariates)
                 cards = explain_fit(prepared, result, src, top=top, memory_limit=memory_limit,
                                     threads=threads, progress=progress)
         with atomic_directory(out, overwrite=overwrite) as tmp:
@@ -179,6 +186,24 @@ def fit_command(
         say(f"  figures in {out / 'figures'}; report in {out / 'report.html'}", quiet)
 
 
+def _covariates(adjust_for, annotations, id_column, categorical, numeric, supplementary_samples_column,
+                supplementary_features):
+    """The ``Covariates`` of ``--adjust-for`` (None without it), checked against the other options."""
+    if not adjust_for:
+        return None
+    from ..core.adjust import Covariates
+    from ..errors import OptionError
+
+    if annotations is None:
+        raise OptionError("adjust_for names annotation columns; give the table with annotations=FILE")
+    for name, value in (("supplementary_samples_column", supplementary_samples_column),
+                        ("supplementary_features", supplementary_features)):
+        if value:  # supplementary elements would be placed unadjusted: refused until they are adjusted too
+            raise OptionError(f"adjust_for does not yet combine with {name}; leave one of them out")
+    return Covariates(annotations, adjust_for, id_column=id_column, categorical=categorical or (),
+                      numeric=numeric or ())
+
+
 def print_fit_summary(result, out: Path, quiet: bool) -> None:
     """A few lines: shape, passes, accuracy, variance of the first axes, where files are."""
     m = result.manifest
@@ -190,6 +215,10 @@ def print_fit_summary(result, out: Path, quiet: bool) -> None:
     )
     for line in accuracy_lines(m["accuracy"]):
         say(f"  {line}", quiet)
+    if m.get("adjusted_for"):
+        terms = m["adjusted_for"]["terms"]
+        say(f"  adjusted for {', '.join(m['adjusted_for']['columns'])} ({len(terms)} terms with the intercept, "
+            "regressed out of every feature)", quiet)
     if m["n_missing_imputed"]:
         say(f"  {m['n_missing_imputed']} missing cells imputed with the feature mean", quiet)
     table = result.components_table().head(5)

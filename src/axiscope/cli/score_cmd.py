@@ -79,6 +79,11 @@ def score_command(
     samples_in: SamplesInOpt = SamplesIn.rows,
     allow_external_data: AllowExternalData = False,
     allow_missing_chunks: AllowMissingChunks = False,
+    covariates: Annotated[Path | None, typer.Option(
+        "--annotations",
+        help="Tab-separated annotations of the new samples (matched by --id-column); required when the "
+             "model was fitted with --adjust-for: each sample is adjusted with its own values.")] = None,
+    id_column: Annotated[str, typer.Option("--id-column", help="Annotation column holding the sample ids.")] = "sample_id",
     memory_limit: MemoryLimit = None,
     threads: Threads = None,
     overwrite: Overwrite = False,
@@ -90,6 +95,7 @@ def score_command(
     Writes scores.tsv (the samples' scores), diagnostics.tsv (T², Q, their limits and a
     flag per sample) and manifest.json to --out.
     """
+    from ..core.adjust import Covariates
     from ..io.output import atomic_directory, check_target
     from ..scoring.score import score
 
@@ -104,6 +110,7 @@ def score_command(
                 memory_limit=memory_limit, threads=threads, progress=progress, dataset=dataset,
                 sample_ids=sample_ids, feature_ids=feature_ids, samples_in=samples_in.value,
                 allow_external_data=allow_external_data, allow_missing_chunks=allow_missing_chunks,
+                covariates=None if covariates is None else Covariates(covariates, id_column=id_column),
             )
         with atomic_directory(out, overwrite=overwrite) as tmp:
             result.write(tmp, parquet=format is TableFormat.parquet, command_line=sys.argv)

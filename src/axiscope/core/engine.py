@@ -28,12 +28,16 @@ from __future__ import annotations
 
 import logging
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 import dask.array as da
 import numpy as np
 import scipy.linalg
 
 from .passes import PassRunner
+
+if TYPE_CHECKING:
+    from .adjust import Residualizer
 
 __all__ = ["AxisAccuracy", "Factorization", "randomized_factorization", "exact_factorization",
            "orient_signs", "ritz_accuracy", "lapack_accuracy"]
@@ -201,6 +205,8 @@ class _Operator:
     fill: np.ndarray | None
     runner: PassRunner
     source: str
+    #: Covariate adjustment: the products are those of ``P·X̃`` (:mod:`axiscope.core.adjust`).
+    adjust: "Residualizer | None" = None
 
     @property
     def shape(self) -> tuple[int, int]:
@@ -214,6 +220,9 @@ class _Operator:
         """
         n, p = self.shape
         gram = W.shape[1] if gram is True else int(gram)
+        width = W.shape[1]
+        if self.adjust is not None and norms:  # X̃·M as well, for the adjusted row norms
+            W = np.hstack([W, self.adjust.extra_columns()])
         centre = self.mean.astype(self.X.dtype)
         residual = self.mean - centre.astype(np.float64)
         dw = self.d[:, None] * W
@@ -238,6 +247,8 @@ class _Operator:
         Z = None
         if gram:
             Z = self.d[:, None] * (acc["gram"] - np.outer(residual, Y[:, :gram].sum(axis=0)))
+        if self.adjust is not None:  # a separate step: P·Y, X̃ᵀ·P·Y and the rows of P·X̃
+            Y, Z, row_norms = self.adjust.finish(Y, Z, row_norms, width, gram)
         return Y, Z, row_norms
 
 
@@ -257,6 +268,7 @@ def randomized_factorization(
     source: str = "data",
     max_basis: int | None = None,
     sketch_from: da.Array | None = None,
+    adjust: "Residualizer | None" = None,
 ) -> Factorization:
     """Leading ``n_components`` singular triplets of ``X̃`` by randomized block Krylov iteration.
 
@@ -289,6 +301,9 @@ def randomized_factorization(
     sketch_from : dask.array.Array, optional
         The same matrix read another way (for example from the input while it fills the
         cache that ``X`` reads), used for the first sketch pass only.
+    adjust : Residualizer, optional
+        Factorise ``P·X̃`` instead, ``P`` the projection off known covariates
+        (:mod:`axiscope.core.adjust`); no extra pass. ``start`` must then be of ``P·X̃`` too.
 
     Returns
     -------
@@ -318,7 +333,7 @@ def randomized_factorization(
     n, p = X.shape
     k = n_components
     l = min(k + oversample, min(n, p))
-    op = _Operator(X, np.asarray(mean, float), np.asarray(inverse_scale, float), fill, runner, source)
+    op = _Operator(X, np.asarray(mean, float), np.asarray(inverse_scale, float), fill, runner, source, adjust)
     Q = _first_block(op, start, rng, l, sketch_from)
     probes = rng.standard_normal((p, N_PROBES))
     basis = _KrylovBasis.empty(n, p, max(2 * l, max_basis or 8 * l))
@@ -383,7 +398,7 @@ def _first_block(op: "_Operator", start: np.ndarray | None, rng: np.random.Gener
     """The first orthonormal block ``orth(X̃ᵀX̃·Ω)``: from ``start``, or one pass over the data."""
     if start is None:
         sketch_op = op if sketch_from is None else _Operator(
-            sketch_from, op.mean, op.d, op.fill, op.runner, "input")
+            sketch_from, op.mean, op.d, op.fill, op.runner, "input", op.adjust)
         omega = rng.standard_normal((op.shape[1], l))
         _, start, _ = sketch_op.apply(omega, gram=True, norms=False, name="sketch")
     return _orthonormal(start)
@@ -612,10 +627,12 @@ def exact_factorization(
     fill: np.ndarray | None = None,
     runner: PassRunner | None = None,
     source: str = "data",
+    adjust: "Residualizer | None" = None,
 ) -> Factorization:
     """Leading singular triplets of ``X̃`` by LAPACK (``gesdd``) on the whole matrix.
 
-    For small inputs only: holds ``X̃`` in float64 (``8·n·p`` bytes). One pass.
+    For small inputs only: holds ``X̃`` in float64 (``8·n·p`` bytes). One pass. With
+    ``adjust``, of ``P·X̃`` (residualised in place before the SVD).
     """
     runner = runner or PassRunner()
     n, p = X.shape
@@ -631,6 +648,8 @@ def exact_factorization(
         dense[start : start + result.shape[0]] = result
 
     runner.run("exact", source, X, task, fold)
+    if adjust is not None:
+        adjust.dense(dense)
     row_norms = np.einsum("ij,ij->i", dense, dense)
     U, s, Vt = scipy.linalg.svd(dense, full_matrices=False, lapack_driver="gesdd")
     k = n_components

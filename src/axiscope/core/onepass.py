@@ -74,13 +74,13 @@ class OnePassResult:
     distances_estimated: bool = True
 
 
-def _task(block, start, psi, omega):
+def _task(block, psi_rows, omega):
     """Statistics of a block, and its sketches about the block's own mean (float64).
 
     ``left = Ψ_b·(X_b − 1·m_bᵀ)``, ``right = (X_b − 1·m_bᵀ)·Ω``: the block is centred in its
     own dtype on ``m_b`` rounded to it, and the rounding ``e`` is taken out in float64.
     """
-    psi_b = psi[:, start : start + block.shape[0]]
+    psi_b = psi_rows.T  # this block's columns of Ψ
     stats = block_statistics(block)
     if stats.n_nonfinite:
         return stats, None, None, first_nonfinite(block)
@@ -159,8 +159,7 @@ def one_pass_factorization(
         shifts.append((start, rows, shift @ omega_used))
         acc["stats"] = stats if acc["stats"] is None else acc["stats"].merge(stats)
 
-    runner.run("one pass: statistics + sketches", source, X, _task, fold, psi, omega_used,
-               with_start=True)
+    runner.run("one pass: statistics + sketches", source, X, _task, fold, omega_used, rows=psi.T)
     stats: BlockStats = acc["stats"]
     mean, d = finish(stats)
     mean = np.asarray(mean, dtype=np.float64)

@@ -13,6 +13,7 @@ from collections import deque
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
+from functools import partial
 from typing import Any
 
 import dask
@@ -63,12 +64,12 @@ class PassRunner:
         task: Callable[..., Any],
         fold: Callable[[Any, int, int], None],
         *args: Any,
-        with_start: bool = False,
+        rows: np.ndarray | None = None,
     ) -> None:
         """Compute ``task(block, *args)`` for every row block and call ``fold(result, index, start)``.
 
-        With ``with_start`` the task is called as ``task(block, start, *args)``, ``start``
-        being the block's first row, for tasks whose work depends on where the block lies.
+        With ``rows`` (one row per sample of ``X``, e.g. covariates), the task is called as
+        ``task(block, rows_of_the_block, *args)``.
 
         ``fold`` is called on the calling thread, in block order. On the threaded scheduler
         the whole pass is one Dask computation, and each result is folded as soon as the
@@ -78,16 +79,20 @@ class PassRunner:
         t0 = time.perf_counter()
         blocks = X.to_delayed().ravel()
         starts = [int(v) for v in np.concatenate([[0], np.cumsum(X.chunks[0])])[:-1]]
+        if rows is not None:  # each block travels with its rows of ``rows``
+            blocks = [dask.delayed(_with_rows, pure=True)(b, rows[s : s + c])
+                      for b, s, c in zip(blocks, starts, X.chunks[0])]
+            task = partial(_call_with_rows, task)
         n = len(blocks)
         if self.progress:
             self.progress(name, 0, n)
         if _local_scheduler():
-            self._run_pipelined(name, blocks, starts, task, fold, args, with_start)
+            self._run_pipelined(name, blocks, starts, task, fold, args)
         else:
-            self._run_windowed(name, blocks, starts, task, fold, args, with_start)
+            self._run_windowed(name, blocks, starts, task, fold, args)
         self.records.append(PassRecord(name, source, time.perf_counter() - t0, n))
 
-    def _run_pipelined(self, name, blocks, starts, task, fold, args, with_start=False) -> None:
+    def _run_pipelined(self, name, blocks, starts, task, fold, args) -> None:
         """Blocks in order on a pool of threads, at most ``2·threads`` in flight, folded in order.
 
         Each block's Dask graph is computed with the synchronous scheduler inside a pool
@@ -98,7 +103,7 @@ class PassRunner:
 
         def work(i):
             (block,) = dask.compute(blocks[i], scheduler="synchronous")
-            return task(block, starts[i], *args) if with_start else task(block, *args)
+            return task(block, *args)
 
         with ThreadPoolExecutor(max_workers=self.threads, thread_name_prefix="axiscope") as pool:
             pending: deque = deque()
@@ -117,18 +122,25 @@ class PassRunner:
                 for future in pending:
                     future.cancel()
 
-    def _run_windowed(self, name, blocks, starts, task, fold, args, with_start=False) -> None:
+    def _run_windowed(self, name, blocks, starts, task, fold, args) -> None:
         n = len(blocks)
         window = max(1, 2 * self.threads)
         for lo in range(0, n, window):
             hi = min(n, lo + window)
-            work = [dask.delayed(task)(blocks[i], *((starts[i],) if with_start else ()), *args)
-                    for i in range(lo, hi)]
+            work = [dask.delayed(task)(blocks[i], *args) for i in range(lo, hi)]
             results = dask.compute(*work)
             for offset, result in enumerate(results):
                 fold(result, lo + offset, starts[lo + offset])
             if self.progress:
                 self.progress(name, hi, n)
+
+
+def _with_rows(block: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    return block, rows
+
+
+def _call_with_rows(task: Callable[..., Any], pair: tuple[np.ndarray, np.ndarray], *args: Any) -> Any:
+    return task(pair[0], pair[1], *args)
 
 
 def _local_scheduler() -> bool:

@@ -21,6 +21,7 @@ import numpy as np
 import pandas as pd
 
 from .. import __version__
+from ..core.adjust import Adjustment, Covariates, Residualizer, block_cross
 from ..core.cache import BlockCache, remove_scratch_leftovers
 from ..core.engine import Factorization, exact_factorization, randomized_factorization
 from ..core.onepass import one_pass_factorization
@@ -64,6 +65,7 @@ def fit(
     active: np.ndarray | None = None,
     exclude_features: np.ndarray | None = None,
     progress: Progress | None = None,
+    covariates: Covariates | None = None,
 ) -> FitResult:
     """Principal component analysis of a matrix on disk, out of core.
 
@@ -91,6 +93,12 @@ def fit(
         Features left out of the axes (supplementary features); they are still read.
     progress : callable, optional
         ``progress(pass_name, blocks_done, n_blocks)``.
+    covariates : Covariates, optional
+        Annotation columns regressed out of every feature of the preprocessed matrix before
+        the axes are fitted (intercept included; categorical columns as indicators of all
+        levels but the first). The scales are those before adjustment. No extra pass and no
+        corrected copy (:mod:`axiscope.core.adjust`); variances, variance ratios and sample
+        distances are those of the adjusted matrix, and the model keeps what scoring needs.
 
     Returns
     -------
@@ -127,7 +135,7 @@ def fit(
                           "file's path instead, or leave layout out")
     job = _Job(int(n_components), preprocess, engine, resources, progress, t_start)
     with opened(source, **layout.open_options()) as src, blas_threads(resources.n_threads):
-        return _fit(src, job, active, exclude_features)
+        return _fit(src, job, active, exclude_features, covariates)
 
 
 def _option(value, kind: type, name: str):
@@ -161,12 +169,15 @@ class _Job:
     t_start: float
 
 
-def _fit(src: MatrixSource, job: _Job, active, exclude) -> FitResult:
+def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None) -> FitResult:
     """The steps of a fit: check, plan, read statistics, preprocess, factorise, record."""
     active, exclude = _masks(src, active, exclude)
     n = int(active.sum())
     _check_components(job.k, n, src.shape[1], job.spec.center,
                       "the array" if src.format == "array" else src.path)
+    adjust = None if covariates is None else Adjustment.prepare(
+        covariates, np.asarray(src.sample_ids)[active], center=job.spec.center, missing=job.spec.missing,
+        n_components=job.k)
     remove_scratch_leftovers(job.resources.scratch)
     plan = plan_fit(src, n_components=job.k, preprocess=job.spec, engine=job.engine,
                     resources=job.resources)
@@ -175,6 +186,9 @@ def _fit(src: MatrixSource, job: _Job, active, exclude) -> FitResult:
     rng = job.engine.generator()
     reader = _Reader(src, job.spec, active, plan.block_rows)
     if method == "one-pass":
+        if adjust is not None:
+            raise OptionError("a one-pass fit cannot adjust for covariates; drop either the adjustment "
+                              "or the one-pass mode")
         stats, prep, fac = _one_pass(src, job, reader, exclude, n, rng, runner)
         return _result(src, job, active, n, prep, stats, fac, plan, runner, filtered=False)
     filtered = job.spec.has_filter or exclude is not None
@@ -187,18 +201,29 @@ def _fit(src: MatrixSource, job: _Job, active, exclude) -> FitResult:
         omega = rng.standard_normal((src.shape[1], l)).astype(np.result_type(src.dtype, np.float32)) \
             .astype(np.float64) if fuse else None
         stats, sketch = _statistics_pass(reader.array("read", cache=first_cache), job.spec, omega,
-                                         runner, src, active, centre=job.spec.center)
+                                         runner, src, active, centre=job.spec.center, adjust=adjust)
         prep = _preprocessing(job, stats, exclude, src, n)
         operand = _Operand.build(job.spec, stats, prep, reader, caches, filtered=filtered, filled=first_cache)
-        fac = _factorise(method, operand, job, n, rng, runner, plan, sketch)
-    return _result(src, job, active, n, prep, stats, fac, plan, runner, filtered=operand.columns is not None)
+        residualizer = None
+        if adjust is not None:  # the covariates, as the engine's products need them
+            residualizer = adjust.residualizer(operand.inverse_scale, operand.columns)
+            if sketch is not None:
+                sketch = adjust.adjusted_sketch(sketch, omega)
+        fac = _factorise(method, operand, job, n, rng, runner, plan, sketch, residualizer)
+    return _result(src, job, active, n, prep, stats, fac, plan, runner, filtered=operand.columns is not None,
+                   adjust=adjust, residualizer=residualizer)
 
 
-def _result(src, job, active, n, prep, stats, fac, plan, runner, *, filtered: bool) -> FitResult:
+def _result(src, job, active, n, prep, stats, fac, plan, runner, *, filtered: bool,
+            adjust: Adjustment | None = None, residualizer: Residualizer | None = None) -> FitResult:
     """The model, the manifest and the tables of a finished factorisation."""
     _check_numerical_rank(fac, job.k, src.dtype, n, int(prep.kept.shape[0]))
     model = _model(src, job.spec, prep, stats, fac, n, filtered)
+    if adjust is not None:
+        _record_adjustment(model, adjust, residualizer, prep, filtered, fac)
     manifest = _manifest(src, job, n, prep, stats, fac, plan, runner)
+    if adjust is not None:
+        manifest["adjusted_for"] = adjust.design.to_dict(adjust.rank)
     return FitResult(
         model=model,
         sample_ids=np.asarray(src.sample_ids)[active],
@@ -438,12 +463,12 @@ class _Operand:
 
 
 def _factorise(method: str, op: _Operand, job: _Job, n: int, rng, runner, plan: BlockPlan,
-               sketch) -> Factorization:
+               sketch, adjust: Residualizer | None = None) -> Factorization:
     """LAPACK on the dense matrix, or randomized block Krylov iterations on the blocks."""
     if method == "exact":
         return exact_factorization(op.first if op.first is not None else op.later, op.mean,
                                    op.inverse_scale, n_components=job.k, fill=op.fill, runner=runner,
-                                   source=op.later_source if op.first is None else "input")
+                                   source=op.later_source if op.first is None else "input", adjust=adjust)
     start = None
     if sketch is not None:  # the statistics pass took (X − 1μᵀ)ᵀ(X − 1μᵀ)·Ω (or XᵀX·Ω); scale it
         start = op.inverse_scale[:, None] * sketch
@@ -453,7 +478,7 @@ def _factorise(method: str, op: _Operand, job: _Job, n: int, rng, runner, plan: 
         op.later, op.mean, op.inverse_scale, n_components=job.k, oversample=eng.oversample,
         power_iterations=eng.power_iterations, tol=eng.tol, rng=rng, start=start,
         fill=op.fill, runner=runner, source=op.later_source, max_basis=plan.max_basis,
-        sketch_from=op.first,
+        sketch_from=op.first, adjust=adjust,
     )
 
 
@@ -498,6 +523,22 @@ def _model(src, spec, prep, stats, fac, n, filtered) -> Model:
                               total_inertia=prep.total_inertia, n_features=int(prep.kept.shape[0])),
         },
     )
+
+
+def _record_adjustment(model: Model, adjust: Adjustment, residualizer: Residualizer, prep: Preprocessing,
+                       filtered: bool, fac: Factorization) -> None:
+    """What an adjusted model changes and keeps: the inertia and feature spreads of ``P·X̃``
+    (so variance ratios and correlations are those of the adjusted features), the
+    coefficients ``Γ`` (kept features × terms) and the design, for scoring."""
+    M = residualizer.loadings if filtered else residualizer.loadings[prep.kept]
+    n = model.n_samples
+    removed = np.sum(M**2, axis=1) / n  # variance of each feature of X̃ the covariates explain
+    model.total_inertia = max(prep.total_inertia - float(removed.sum()), 0.0)
+    model.std = np.sqrt(np.maximum(prep.std**2 - prep.scale**2 * removed, 0.0))
+    model.extras.update(training_extras(fac.singular_values, fac.scores, fac.row_sq_norms,
+                                        total_inertia=model.total_inertia, n_features=int(prep.kept.shape[0])))
+    model.extras["covariate_coef"] = adjust.coefficients(M)
+    model.info["covariates"] = adjust.design.to_dict(adjust.rank)
 
 
 def _manifest(src, job: _Job, n, prep, stats, fac, plan, runner) -> dict:
@@ -601,7 +642,37 @@ def _block_sketch(block: np.ndarray, omega32: np.ndarray, mean: np.ndarray | Non
     return sketch
 
 
-def _statistics_pass(X, spec, omega, runner, src, active, *, centre: bool = True):
+def _stats_task_with_rows(block, covariate_rows, omega32, centre):
+    """:func:`_stats_task` plus the block's cross product ``X_bᵀ·C̄_b`` with the centred covariates
+    (covariate adjustment, which always centres). With a sketch, both products share the block
+    shifted to its mean: one product with ``[shifted·Ω, C̄_b]``."""
+    stats = block_statistics(block)
+    bad = first_nonfinite(block) if stats.n_nonfinite else None
+    sketch = cross = None
+    if bad is None and omega32 is not None:
+        sketch, cross = _block_sketch_and_cross(block, omega32, stats.mean, covariate_rows)
+    elif bad is None:
+        cross = block_cross(block, covariate_rows, stats.mean)
+    return stats, sketch, bad, cross
+
+
+def _block_sketch_and_cross(block, omega32, mean, covariate_rows) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_block_sketch` about the block's mean, and :func:`axiscope.core.adjust.block_cross`,
+    from one shifted copy of the block and one product."""
+    c = mean.astype(block.dtype)
+    shifted = block - c
+    l = omega32.shape[1]
+    right = np.hstack([shifted @ omega32, covariate_rows.astype(block.dtype)])
+    product = (shifted.T @ right).astype(np.float64)
+    sketch = product[:, :l]
+    e = mean - c.astype(np.float64)
+    sketch -= block.shape[0] * np.outer(e, e @ omega32.astype(np.float64))
+    cross = product[:, l:] + np.outer(c.astype(np.float64), covariate_rows.sum(axis=0))
+    return np.ascontiguousarray(sketch), cross
+
+
+def _statistics_pass(X, spec, omega, runner, src, active, *, centre: bool = True,
+                     adjust: Adjustment | None = None):
     """One pass: feature statistics, and the sketch ``X̃ᵀX̃·Ω`` (unscaled) when ``omega`` is given.
 
     The mean is not known before the pass, and an uncentred ``XᵀX·Ω`` centred afterwards
@@ -610,14 +681,17 @@ def _statistics_pass(X, spec, omega, runner, src, active, *, centre: bool = True
     block order like the variances (Chan, Golub & LeVeque 1983): merging ``A`` and ``B``
     adds ``(n_A·n_B/n)·δ(δᵀΩ)``, ``δ = m_B − m_A``, so the result is about the overall mean.
     Without centring (``centre=False``) the plain ``XᵀX·Ω`` is summed. ``omega`` must hold
-    values exact in the data's dtype.
+    values exact in the data's dtype. With ``adjust``, the same pass accumulates
+    ``(X − 1μᵀ)ᵀ·C`` into it (:meth:`axiscope.core.adjust.Adjustment.add_cross`).
     """
     omega32 = None if omega is None else omega.astype(X.dtype)
     state: dict = {"stats": None, "sketch": None}
     active_index = np.flatnonzero(active)
 
     def fold(result, index, start):
-        stats, sketch, bad = result
+        stats, sketch, bad = result[:3]
+        if adjust is not None and result[3] is not None:
+            adjust.add_cross(result[3])
         if bad is not None and spec.missing == "error":
             row, col = bad
             sample = src.sample_ids[active_index[start + row]]
@@ -638,8 +712,12 @@ def _statistics_pass(X, spec, omega, runner, src, active, *, centre: bool = True
                 state["sketch"] += sketch
         state["stats"] = stats if before is None else before.merge(stats)
 
-    runner.run("statistics" + (" + sketch" if omega is not None else ""), "input", X,
-               _stats_task, fold, omega32, centre)
+    if adjust is None:
+        runner.run("statistics" + (" + sketch" if omega is not None else ""), "input", X,
+                   _stats_task, fold, omega32, centre)
+    else:
+        runner.run("statistics + covariates" + (" + sketch" if omega is not None else ""), "input", X,
+                   _stats_task_with_rows, fold, omega32, centre, rows=adjust.centred)
     merged: BlockStats = state["stats"]
     return FeatureStatistics.from_block_stats(merged), state["sketch"]
 

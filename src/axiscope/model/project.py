@@ -18,7 +18,7 @@ from ..core.memory import default_memory_limit, parse_memory
 from ..core.passes import PassRunner, Progress, array_from_blocks, blas_threads
 from ..core.plan import plan_blocks
 from ..core.preprocess import first_nonfinite, row_totals, transform_block
-from ..errors import InputError, agree, counted
+from ..errors import InputError, OptionError, agree, counted
 from ..io import MatrixSource
 from ..io.source import value_limit
 from .store import Model
@@ -85,6 +85,41 @@ def match_features(model: Model, feature_ids: np.ndarray, *, where: str, fill_mi
 
 
 @dataclass
+class _Adjusted:
+    """The covariates of the projected samples and the model's coefficients ``Γ`` (p × c)."""
+
+    rows: np.ndarray
+    coef: np.ndarray
+
+    @classmethod
+    def check(cls, model: Model, covariates, m: int, where: str) -> "_Adjusted | None":
+        coef = model.extras.get("covariate_coef")
+        if coef is None:
+            if covariates is not None:
+                raise OptionError("covariates were given, but the model was fitted without adjusting for any; "
+                                  "leave covariates out")
+            return None
+        if covariates is None:
+            columns = ", ".join(repr(c) for c in model.info.get("covariates", {}).get("columns", []))
+            raise InputError(f"{where}: the model was fitted after adjusting for {columns}; pass covariates=FILE "
+                             "holding these columns for the samples placed on it")
+        rows = np.asarray(covariates, dtype=np.float64)
+        if rows.shape != (m, coef.shape[1]):
+            raise OptionError(f"covariates has shape {rows.shape}, not ({m}, {coef.shape[1]}): one row of "
+                              "covariate terms per sample placed")
+        return cls(rows, np.array(coef, dtype=np.float64))  # a copy: absent features are zeroed
+
+    def apply(self, scores: np.ndarray, sq: np.ndarray, model: Model) -> tuple[np.ndarray, np.ndarray]:
+        """Scores and squared norms of ``x̃ − Γ·c`` from those of ``x̃`` (and ``x̃·Γ``)."""
+        k, c, G = model.n_components, self.rows, self.coef
+        xg = scores[:, k:]
+        adjusted = scores[:, :k] - c @ (G.T @ np.asarray(model.components, dtype=np.float64))
+        with np.errstate(over="ignore", invalid="ignore"):
+            sq = sq - 2.0 * np.einsum("ij,ij->i", c, xg) + np.einsum("ij,ij->i", c @ (G.T @ G), c)
+        return adjusted, np.where(np.isinf(sq), sq, np.maximum(sq, 0.0))
+
+
+@dataclass
 class Projection:
     """Samples placed on a model's axes.
 
@@ -120,6 +155,7 @@ def project(
     memory_limit: int | str | None = None,
     threads: int | None = None,
     progress: Progress | None = None,
+    covariates: np.ndarray | None = None,
 ) -> Projection:
     """Scores of (some) samples of ``source`` on the model's axes, in one streaming pass.
 
@@ -134,6 +170,11 @@ def project(
         otherwise their absence is an error.
     memory_limit, threads, progress
         As for :func:`axiscope.fit`.
+    covariates : ndarray, shape (m, c), optional
+        The covariate terms of the projected samples (``CovariateDesign.encode``), required
+        when the model was fitted after adjusting for covariates: each sample is placed as
+        ``x̃ − Γ·c`` (:mod:`axiscope.core.adjust`), its scores and squared distances those
+        of the adjusted sample.
 
     Notes
     -----
@@ -144,6 +185,7 @@ def project(
     match = match_features(model, source.feature_ids, where=where, fill_missing=fill_missing)
     n_all, p_in = source.shape
     rows = np.ones(n_all, dtype=bool) if rows is None else np.asarray(rows, dtype=bool)
+    adjusted = _Adjusted.check(model, covariates, int(rows.sum()), where)
     budget = default_memory_limit() if memory_limit is None else parse_memory(memory_limit)
     threads = max(1, int(threads or os.cpu_count() or 1))
     plan = plan_blocks(n_all, p_in, source.dtype.itemsize, sketch_width=model.n_components,
@@ -156,6 +198,10 @@ def project(
     mean = model.mean[present]
     inv = (1.0 / model.scale)[present]
     V = model.components[present]
+    if adjusted is not None:  # X̃·Γ as well, for the adjusted squared distances
+        # an absent feature (fill_missing) is taken at its fitted value, so it still adds nothing
+        adjusted.coef[~present] = 0.0
+        V = np.hstack([V, adjusted.coef[present]])
     fill = model.extras.get("feature_mean", model.mean)[present]
 
     def load(i):
@@ -170,7 +216,8 @@ def project(
     # sample (zero when features are centred).
     absent = ~present
     absent_value = (model.extras.get("feature_mean", model.mean)[absent] - model.mean[absent]) / model.scale[absent]
-    absent_scores = absent_value @ model.components[absent]
+    absent_scores = absent_value @ (model.components[absent] if adjusted is None
+                                    else np.hstack([model.components[absent], adjusted.coef[absent]]))
     absent_sq = float(absent_value @ absent_value)
     all_total = match.total_columns.shape[0] == p_in
     # the common case of the same features in the same order needs no gathered copy
@@ -220,7 +267,7 @@ def project(
     counts = [int(rows[a:b].sum()) for a, b in spans]
     X = array_from_blocks(load, counts, p_in, source.dtype, f"project-{id(source)}-{os.getpid()}")
     m = int(sum(counts))
-    scores = np.empty((m, model.n_components))
+    scores = np.empty((m, V.shape[1]))
     sq = np.empty(m)
     n_bad = np.empty(m)
     ids = np.asarray(source.sample_ids)[rows]
@@ -244,6 +291,8 @@ def project(
     runner = PassRunner(threads=threads, progress=progress)
     with blas_threads(threads):
         runner.run("projection", "input", X, task, fold)
+    if adjusted is not None:
+        scores, sq = adjusted.apply(scores, sq, model)
     with np.errstate(over="ignore", invalid="ignore"):
         residual = np.maximum(sq - np.einsum("ij,ij->i", scores, scores), 0.0)
     overflow = np.isinf(sq)

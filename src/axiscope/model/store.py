@@ -21,15 +21,22 @@ from pathlib import Path
 
 import numpy as np
 
+from ..core.adjust import CovariateDesign
 from ..core.preprocess import PreprocessSpec
 from ..errors import AxiscopeError, ModelError, agree, counted, reason
 
-__all__ = ["Model", "MODEL_FORMAT", "MODEL_VERSION", "load_model", "check_numbers", "orthonormality_tolerance"]
+__all__ = ["Model", "MODEL_FORMAT", "MODEL_VERSION", "ADJUSTED_MODEL_VERSION", "load_model", "check_numbers", "orthonormality_tolerance"]
 
 MODEL_FORMAT = "axiscope-model"
 #: Version 2: preprocessing settings ``log_transform``, ``counts_per`` and
 #: ``scale="allele-frequency"``.
 MODEL_VERSION = 2
+#: Version 3: a model fitted after adjusting for covariates (``covariate_coef`` and the
+#: design in ``info["covariates"]``). Written only for such models, so that an axiscope
+#: that cannot adjust new samples refuses them instead of scoring them silently wrong.
+ADJUSTED_MODEL_VERSION = 3
+#: Versions this axiscope reads.
+READABLE_VERSIONS = (MODEL_VERSION, ADJUSTED_MODEL_VERSION)
 _ARRAYS = ("feature_ids", "mean", "scale", "std", "components", "singular_values")
 
 
@@ -93,6 +100,16 @@ class Model:
     def axis_names(self) -> list[str]:
         return [f"PC{j + 1}" for j in range(self.n_components)]
 
+    @property
+    def covariates(self) -> "CovariateDesign | None":
+        """The covariates the axes were fitted after adjusting for (None when not adjusted)."""
+        record = self.info.get("covariates")
+        return None if record is None else CovariateDesign.from_dict(record, "the model")
+
+    @property
+    def format_version(self) -> int:
+        return ADJUSTED_MODEL_VERSION if "covariate_coef" in self.extras else MODEL_VERSION
+
     def save(self, directory: Path) -> None:
         """Write the model into ``directory`` (created; must not hold another model)."""
         directory = Path(directory)
@@ -108,7 +125,7 @@ class Model:
             checksums[path.name] = _sha256(path)
         meta = {
             "format": MODEL_FORMAT,
-            "version": MODEL_VERSION,
+            "version": self.format_version,
             "preprocessing": self.spec.to_dict(),
             "n_samples": int(self.n_samples),
             "n_components": self.n_components,
@@ -156,10 +173,11 @@ def load_model(directory: Path) -> Model:
     if not isinstance(meta, dict) or meta.get("format") != MODEL_FORMAT:
         raise ModelError(f"{meta_path}: not an axiscope model description; pass the model/ folder written by 'axiscope fit'")
     version = meta.get("version")
-    if version != MODEL_VERSION:
+    if version not in READABLE_VERSIONS:
         raise ModelError(
             f"{meta_path}: model format version {version} is not supported by this axiscope "
-            f"(reads version {MODEL_VERSION}); use the axiscope version that wrote it or refit"
+            f"(reads versions {', '.join(map(str, READABLE_VERSIONS))}); use the axiscope version that "
+            "wrote it or refit"
         )
     if "description_checksum" not in meta:
         raise ModelError(f"{meta_path}: no checksum of the model description (written by an earlier "
@@ -189,8 +207,24 @@ def load_model(directory: Path) -> Model:
             or not model.n_input_features >= model.n_features:
         raise ModelError(f"{meta_path}: the counts of axes and features do not agree with the arrays; "
                          "refit or restore the model")
+    _check_covariates(model, version, meta_path)
     check_numbers(model, directory)
     return model
+
+
+def _check_covariates(model: Model, version: int, meta_path: Path) -> None:
+    """An adjusted model (version 3) has its design and coefficients (features × terms); others neither."""
+    coef = model.extras.get("covariate_coef")
+    record = model.info.get("covariates")
+    if (version == ADJUSTED_MODEL_VERSION) != (coef is not None) or (coef is None) != (record is None):
+        raise ModelError(f"{meta_path}: the covariates adjusted for and the format version do not agree; "
+                         "the model was modified or damaged, refit or restore it")
+    if coef is None:
+        return
+    design = CovariateDesign.from_dict(record, str(meta_path))
+    if np.shape(coef) != (model.n_features, len(design.terms)) or np.asarray(coef).dtype.kind != "f":
+        raise ModelError(f"{meta_path}: covariate coefficients are not one float per feature and term; "
+                         "the model was modified or damaged, refit or restore it")
 
 
 def _is_str_map(value) -> bool:

@@ -354,6 +354,10 @@ def _run_section(manifest: dict) -> dict:
         steps.append("missing cells filled with the feature mean")
     steps.append("centred on feature means" if prep.get("center", True) else "not centred")
     steps.append(_SCALES.get(str(prep.get("scale")), f"scale {prep.get('scale')}"))
+    adjusted = manifest.get("adjusted_for")
+    if adjusted:  # written by fit --adjust-for
+        steps.append(f"{', '.join(map(str, adjusted.get('columns', [])))} regressed out of every feature "
+                     f"({_fmt(len(adjusted.get('terms', [])))} terms with the intercept)")
     settings = [(_SETTING_NAMES.get(k, k.replace("_", " ")), _fmt(v) if not isinstance(v, str) else v)
                 for k, v in options.items() if k != "preprocessing" and not isinstance(v, dict)]
     passes = manifest.get("passes", {}).get("detail", [])

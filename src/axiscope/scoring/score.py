@@ -46,7 +46,8 @@ import pandas as pd
 from scipy import stats
 
 from .. import __version__
-from ..errors import ModelError, OptionError, agree, counted
+from ..core.adjust import Covariates
+from ..errors import InputError, ModelError, OptionError, agree, counted
 from ..io import MatrixSource, opened
 from ..model.project import project
 from ..model.store import MODEL_VERSION, Model, load_model
@@ -358,6 +359,7 @@ def score(
     samples_in: str = "rows",
     allow_external_data: bool = False,
     allow_missing_chunks: bool = False,
+    covariates: Covariates | None = None,
 ) -> ScoreResult:
     """Score new samples against a saved model and flag those the model does not describe.
 
@@ -396,6 +398,11 @@ def score(
         allow it (the manifest says which was used).
     memory_limit, threads, progress
         As for :func:`axiscope.fit`.
+    covariates : Covariates, optional
+        The new samples' annotations, required when the model was fitted after adjusting
+        for covariates (``Covariates(table)``; the columns are the model's): each sample is
+        adjusted with its own values. A sample without a row or a value, or with a level
+        never seen in training, is an error naming it.
 
     Returns
     -------
@@ -424,6 +431,13 @@ def score(
         model_dir = model_directory(model)
         model = load_model(model_dir)
         model_info.update(path=str(model_dir), checksum=model.checksum(model_dir))
+    model_info["format_version"] = model.format_version
+    design = model.covariates
+    if design is None and covariates is not None:
+        logger.warning("the annotations given are not used: the model was fitted without adjusting for covariates")
+    elif design is not None and covariates is None:
+        raise InputError(f"the model was fitted after adjusting for {', '.join(map(repr, design.columns))}; "
+                         "pass covariates=FILE holding these columns for the new samples")
     levels = sorted({float(confidence), SECONDARY_CONFIDENCE}, reverse=True)
     factor = np.ones(model.n_components)
     if correct_shrinkage:
@@ -438,8 +452,9 @@ def score(
     with opened(source, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
                 samples_in=samples_in, allow_external_data=allow_external_data,
                 allow_missing_chunks=allow_missing_chunks) as src:
+        rows = None if design is None else covariates.encode_for(design, src.sample_ids)
         proj = project(model, src, fill_missing=fill, memory_limit=memory_limit, threads=threads,
-                       progress=progress)
+                       progress=progress, covariates=rows)
         input_info = {
             "path": str(src.path),
             "format": src.format,
@@ -491,6 +506,7 @@ def score(
             "n_components": model.n_components,
             "n_features": model.n_features,
             "n_training_samples": model.n_samples,
+            **({"adjusted_for": design.to_dict()} if design is not None else {}),
         },
         "input": input_info,
         "options": {
