@@ -168,11 +168,12 @@ def _leading_run(passes: np.ndarray) -> int:
     return int(failed[0]) if failed.size else int(len(passes))
 
 
-def _spectrum(Z: np.ndarray) -> np.ndarray:
-    """All eigenvalues of ``ZᵀZ`` (equal to those of ``ZZᵀ``), largest first, float64.
+def _spectrum(Z: np.ndarray, k: int | None = None) -> np.ndarray:
+    """The ``k`` largest (default: all) eigenvalues of ``ZᵀZ`` (equal to those of ``ZZᵀ``),
+    largest first, float64.
 
     The smaller Gram matrix, formed by the BLAS rank-k update in ``Z``'s dtype; LAPACK
-    ``syevd`` for the eigenvalues.
+    ``syevd`` for all eigenvalues, ``syevr`` for the leading ``k``.
     """
     from scipy.linalg import blas, eigh
 
@@ -180,7 +181,12 @@ def _spectrum(Z: np.ndarray) -> np.ndarray:
     syrk = blas.dsyrk if Z.dtype == np.float64 else blas.ssyrk
     # Fortran view of a C-ordered array is its transpose, so no copy is made
     gram = syrk(1.0, Z.T, trans=1) if m <= p else syrk(1.0, Z, trans=1)
-    values = eigh(np.asarray(gram, dtype=np.float64), lower=False, eigvals_only=True, driver="evd")
+    gram = np.asarray(gram, dtype=np.float64)
+    size = gram.shape[0]
+    if k is None or k >= size:
+        values = eigh(gram, lower=False, eigvals_only=True, driver="evd")
+    else:
+        values = eigh(gram, lower=False, eigvals_only=True, driver="evr", subset_by_index=[size - k, size - 1])
     return np.maximum(values[::-1], 0.0)
 
 
@@ -209,7 +215,7 @@ def parallel_analysis(Z: np.ndarray, k: int, *, permutations: int, quantile: flo
     permuted = np.empty((permutations, k))
     for r in range(permutations):
         rng.permuted(Z, axis=0, out=buffer)
-        permuted[r] = _spectrum(buffer)[:k]
+        permuted[r] = _spectrum(buffer, k)[:k]
         if progress is not None:
             progress("signal: permutations", r + 1, permutations)
     return permuted, np.quantile(permuted, quantile, axis=0)
