@@ -556,6 +556,9 @@ def fit_with_signal(
     auto = n_components == "auto"
     if not auto and not (_whole(n_components) and n_components >= 1):
         raise OptionError(f"n_components={n_components!r} is not 'auto' or a whole number >= 1; pass one")
+    if max_components is not None and not auto:
+        raise OptionError(f"max_components={max_components} applies to n_components='auto' only; "
+                          "drop it or pass n_components='auto'")
     if max_components is not None and not (_whole(max_components) and max_components >= 1):
         raise OptionError(f"max_components={max_components!r} is not a whole number >= 1; pass one")
     _check_settings(permutations, quantile, max_samples)
