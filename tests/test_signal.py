@@ -194,6 +194,12 @@ def test_fit_components_auto_end_to_end(tmp_path):
     # the report reads the same record
     from axiscope.report.html import _signal_axes
     assert _signal_axes(manifest) == 3
+    # the variance figure draws every candidate, the three criteria and the axes kept
+    from axiscope.report.figures import write_figures
+    write_figures(out, formats=("svg",), pairs=((1, 2),))
+    svg = (out / "figures" / "variance.svg").read_text()
+    assert all(f'id="threshold-{i}"' in svg for i in range(3)) and 'id="chosen"' in svg
+    assert 'id="variance-bar-9"' in svg and 'id="variance-bar-10"' not in svg
 
 
 def test_assess_signal_keeps_the_requested_number(tmp_path):

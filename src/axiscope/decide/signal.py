@@ -258,8 +258,9 @@ def read_subsample(src: MatrixSource, rows: np.ndarray, spec: PreprocessSpec, ke
             filled += block.shape[0]
         if progress is not None:
             progress("signal: subsample", i + 1, len(starts))
-    if spec.center:
-        Z -= Z.mean(axis=0, dtype=np.float64).astype(dtype)
+    if spec.center:  # twice: the second takes out what rounding the mean to Z's dtype left
+        for _ in range(2):
+            Z -= Z.mean(axis=0, dtype=np.float64).astype(dtype)
     Z *= inverse_scale.astype(dtype)
     return Z
 
@@ -274,7 +275,12 @@ class SignalAxes:
     Attributes
     ----------
     table : DataFrame
-        One row per candidate axis (see :meth:`columns`), written as ``signal_axes.tsv``.
+        One row per candidate axis, written as ``signal_axes.tsv``: ``axis``, ``variance``,
+        ``variance_ratio``, ``cumulative_ratio``, ``broken_stick_ratio``, ``above_broken_stick``,
+        ``above_unit_variance``, ``noise_edge_variance``, ``above_noise_edge``,
+        ``optimal_threshold_variance``, ``above_optimal_threshold``, ``subsample_variance``,
+        ``permuted_mean_variance``, ``permuted_quantile_variance``, ``above_permuted``,
+        ``recommended``, ``kept``.
     recommended : int
         Recommended number of axes (may be 0).
     criterion : str
