@@ -8,3 +8,9 @@ without importing numpy or pandas.
 DEFAULT_TOP_FEATURES = 20
 #: Samples listed at each end of an axis and among those it represents poorly.
 SAMPLES_PER_LIST = 10
+#: Candidate axes of ``fit --components auto``.
+DEFAULT_MAX_COMPONENTS = 50
+#: Permuted copies of the subsample in the parallel analysis.
+DEFAULT_PERMUTATIONS = 20
+#: Largest random subsample of samples for the parallel analysis and the noise level.
+DEFAULT_SIGNAL_SAMPLES = 3000

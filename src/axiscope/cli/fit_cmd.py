@@ -56,6 +56,35 @@ Scratch = Annotated[Path | None, typer.Option(
     help="Folder for the scratch file when blocks do not fit in memory (made if missing; default: the temporary folder).")]
 
 
+FitComponents = Annotated[str, typer.Option(
+    "--components", "-k",
+    help="Number of principal components (axes), or 'auto': fit --max-components axes, then keep the number "
+         "the criteria in signal_axes.tsv recommend (parallel analysis; at least 1).")]
+MaxComponents = Annotated[int | None, typer.Option(
+    min=1, help="With --components auto: the candidate axes fitted before deciding.",
+    show_default="50, or the rank of the matrix when smaller")]
+Permutations = Annotated[int, typer.Option(
+    min=1, help="Copies of a random subsample with each feature permuted across samples, for the parallel "
+                "analysis of --components auto and --assess-signal.")]
+AssessSignal = Annotated[bool, typer.Option(
+    "--assess-signal", show_default="off",
+    help="With a number of --components: also compute how many of them stand above the noise "
+         "(signal_axes.tsv; one more pass over the data).")]
+
+
+def parse_components(value: str) -> int | str:
+    """``'auto'`` or a whole number >= 1 (``--components``)."""
+    if value == "auto":
+        return value
+    try:
+        number = int(value)
+    except ValueError:
+        number = 0
+    if number < 1:
+        raise typer.BadParameter(f"{value!r} is not 'auto' or a whole number >= 1", param_hint="'--components'")
+    return number
+
+
 def parse_power_iterations(value: str) -> int | str:
     if value == "auto":
         return value
@@ -82,7 +111,10 @@ def _method(method: str, passes: str) -> str:
 def fit_command(
     input: InputPath,
     out: OutDir,
-    n_components: Components = 10,
+    n_components: FitComponents = "10",
+    max_components: MaxComponents = None,
+    permutations: Permutations = 20,
+    assess_signal: AssessSignal = False,
     scale: Annotated[Scale, typer.Option(
         help="unit: each feature divided by its population SD (standardized PCA); none: covariance PCA; "
              "allele-frequency: genotype dosages 0/1/2 divided by sqrt(2q(1-q)), q = mean/2.")] = Scale.unit,
@@ -137,14 +169,19 @@ def fit_command(
     """Fit principal axes to INPUT and write tables, the model, a manifest and the axis cards to --out."""
     from ..core.options import EngineSettings, InputLayout, Resources
     from ..core.preprocess import PreprocessSpec
+    from ..errors import OptionError
     from ..explain.plan import explain_fit, plan_explanation, read_feature_list
     from ..fitting.run import fit
     from ..io import open_matrix
     from ..io.output import atomic_directory, check_target
 
     setup_logging(quiet)
+    components = parse_components(n_components)
     with user_errors():
         check_target(out, overwrite, wait=wait)
+        if max_components is not None and components != "auto":
+            raise OptionError(f"max_components={max_components} applies to n_components='auto' only; "
+                              f"drop it or pass n_components='auto'")
         spec = PreprocessSpec(
             center=center, scale=scale.value, log_transform=log_transform, counts_per=counts_per,
             min_variance=min_variance, top_variable=top_variable, missing=missing.value,
@@ -166,14 +203,29 @@ def fit_command(
                 supplementary_samples_column=supplementary_samples_column, allow_missing=allow_missing,
             )
             with progress_display(quiet) as progress:
-                result = fit(src, n_components=n_components, preprocess=spec, engine=engine,
-                             resources=resources, active=prepared.active,
-                             exclude_features=prepared.exclude, progress=progress, covariates=covariates)
+                signal = None
+                if components == "auto" or assess_signal:
+                    from ..decide.signal import fit_with_signal
+
+                    if covariates is not None:
+                        raise OptionError("the number of axes is not assessed after a covariate adjustment yet "
+                                          "(its subsample would keep what the adjustment removes); give "
+                                          "n_components a number without assess_signal, or drop adjust_for")
+                    result, signal = fit_with_signal(
+                        src, n_components=components, max_components=max_components, permutations=permutations,
+                        preprocess=spec, engine=engine, resources=resources, active=prepared.active,
+                        exclude_features=prepared.exclude, progress=progress)
+                else:
+                    result = fit(src, n_components=components, preprocess=spec, engine=engine,
+                                 resources=resources, active=prepared.active,
+                                 exclude_features=prepared.exclude, progress=progress, covariates=covariates)
                 cards = explain_fit(prepared, result, src, top=top, memory_limit=memory_limit,
                                     threads=threads, progress=progress)
         with atomic_directory(out, overwrite=overwrite) as tmp:
             result.write(tmp, top=top, parquet=format is TableFormat.parquet, command_line=sys.argv)
             cards.write(tmp, parquet=format is TableFormat.parquet)
+            if signal is not None:
+                signal.write(tmp, parquet=format is TableFormat.parquet)
             if report:  # the static figures first, so that the page embeds them
                 from ..report.figures import write_figures
                 from ..report.html import build_report
@@ -224,6 +276,11 @@ def print_fit_summary(result, out: Path, quiet: bool) -> None:
     table = result.components_table().head(5)
     parts = [f"{a} {100 * r:.1f}%" for a, r in zip(table.axis, table.variance_ratio)]
     say("  variance ratio: " + ", ".join(parts), quiet)
+    signal = m.get("signal_axes")
+    if isinstance(signal, dict) and "recommended" in signal:
+        kept = f"; kept {signal['kept']}" if signal.get("mode") == "auto" else ""
+        say(f"  axes above the noise: {signal['recommended']}{kept} — {signal['reason']} "
+            f"(every criterion in {signal['table']})", quiet)
     say(f"  results in {out}", quiet)
 
 

@@ -3,7 +3,8 @@
 For every axis, one card answers five questions:
 
 1. **How much it carries**: variance, variance ratio and cumulative ratio, and a slot for
-   whether the axis stands above the noise level (``above_noise``, null until assessed).
+   whether the axis stands above the noise level (``above_noise``: from the fit's ``signal_axes``
+   decision, null when the fit did not assess it).
 2. **What it is built from**: the features with the largest positive and negative
    loadings, with their correlation with the scores, contribution (percent), squared
    cosine and Benjamini–Hochberg adjusted p-values (supplementary features too).
@@ -54,7 +55,7 @@ from .legend import (
     header_lines,
 )
 from .pages import render_page
-from .saved import SUPPLEMENTARY_SCORES_FILE, SupplementarySamples, read_saved_fit
+from .saved import SUPPLEMENTARY_SCORES_FILE, SupplementarySamples, _read_manifest, read_saved_fit
 
 if TYPE_CHECKING:
     from ..fitting.result import FitResult
@@ -88,7 +89,7 @@ class AxisCards:
     ----------
     carries : DataFrame
         One row per axis: ``variance``, ``variance_ratio``, ``cumulative_ratio`` and
-        ``above_noise`` (null: not assessed yet).
+        ``above_noise`` (from the manifest's ``signal_axes``; null: not assessed).
     readings : DataFrame
         One row per axis: ``reading`` (one line) and ``warning`` ("" when none).
     built_from : DataFrame
@@ -307,11 +308,13 @@ def explain_axes(
     if isinstance(source, (str, Path)):
         saved = read_saved_fit(Path(source))
         model, ids, scores, norms, feats = saved.model, saved.sample_ids, saved.scores, saved.squared_norms, saved.features
+        signal = signal_axes_recommended(_read_manifest(Path(source)))
         if supplementary_samples is None:
             supplementary_samples = saved.supplementary
     else:
         model, ids, scores, norms = source.model, source.sample_ids, source.scores, source.sample_sq_dist
         feats = feature_statistics(model)
+        signal = signal_axes_recommended(source.manifest)
     if supplementary_features is not None:
         feats = feats.concat(supplementary_features)
     ann = None
@@ -328,7 +331,7 @@ def explain_axes(
         axis_names=model.axis_names, singular_values=model.singular_values, variance=model.variance,
         variance_ratio=model.variance_ratio, sample_ids=np.asarray(ids, dtype=object), scores=scores,
         squared_norms=norms, features=feats, annotations=ann, supplementary_samples=supplementary_samples,
-        top=top, samples_per_list=samples_per_list, alpha=alpha, warn_share=warn_share,
+        signal_axes=signal, top=top, samples_per_list=samples_per_list, alpha=alpha, warn_share=warn_share,
     )
 
 
@@ -355,12 +358,17 @@ def build_cards(
     features: FeatureAxisStatistics,
     annotations: AnnotationSet | None = None,
     supplementary_samples: SupplementarySamples | None = None,
+    signal_axes: int | None = None,
     top: int = DEFAULT_TOP_FEATURES,
     samples_per_list: int = SAMPLES_PER_LIST,
     alpha: float = ALPHA,
     warn_share: float = WARN_SHARE,
 ) -> AxisCards:
-    """Build :class:`AxisCards` from arrays (``scores``: the samples that built the axes)."""
+    """Build :class:`AxisCards` from arrays (``scores``: the samples that built the axes).
+
+    ``signal_axes``: the number of leading axes above the noise level (the ``recommended``
+    member of the manifest's ``signal_axes`` record); None leaves ``above_noise`` null.
+    """
     axis_names = list(axis_names)
     F = np.asarray(scores, dtype=np.float64)
     samples = sample_statistics(sample_ids, F, squared_norms, axis_names, singular_values=singular_values)
@@ -379,7 +387,7 @@ def build_cards(
     ann = annotations if annotated else AnnotationSet.empty(sample_ids)
     shares, categories = annotation_shares(ann, F, axis_names)
     cards = AxisCards(
-        carries=_carries(axis_names, variance, variance_ratio),
+        carries=_carries(axis_names, variance, variance_ratio, signal_axes),
         readings=pd.DataFrame(),
         built_from=_built_from(features, top),
         lines_up=shares,
@@ -408,11 +416,21 @@ def build_cards(
 # --------------------------------------------------------------------------- sections
 
 
-def _carries(axis_names: list[str], variance: np.ndarray, variance_ratio: np.ndarray) -> pd.DataFrame:
+def signal_axes_recommended(manifest: dict | None) -> int | None:
+    """The ``recommended`` number of a manifest's ``signal_axes`` record (``axiscope.decide.signal``),
+    or None when the fit did not assess it."""
+    record = (manifest or {}).get("signal_axes")
+    value = record.get("recommended") if isinstance(record, dict) else None
+    return int(value) if isinstance(value, (int, np.integer)) and not isinstance(value, bool) else None
+
+
+def _carries(axis_names: list[str], variance: np.ndarray, variance_ratio: np.ndarray,
+             signal_axes: int | None = None) -> pd.DataFrame:
     ratio = np.asarray(variance_ratio, dtype=np.float64)
+    above = [None] * len(axis_names) if signal_axes is None else [j < signal_axes for j in range(len(axis_names))]
     return pd.DataFrame({"axis": axis_names, "variance": np.asarray(variance, dtype=np.float64),
                          "variance_ratio": ratio, "cumulative_ratio": np.cumsum(ratio),
-                         "above_noise": pd.array([None] * len(axis_names), dtype="boolean")})
+                         "above_noise": pd.array(above, dtype="boolean")})
 
 
 def _largest(values: np.ndarray, m: int, sign: float) -> np.ndarray:

@@ -57,8 +57,9 @@ COLUMNS = {
                       "of 1; the pages show it in percent)",
     "cumulative_ratio": "share of the total variance carried by this axis and all before it (a fraction of 1; "
                         "the pages show it in percent)",
-    "above_noise": "whether the axis stands above the noise level; left empty (null) until axiscope "
-                   "assesses it",
+    "above_noise": "whether the axis is among those the fit found above the noise level (the recommended "
+                   "number of signal_axes.tsv, from fit --components auto or --assess-signal); empty (null) "
+                   "when not assessed",
     "loading": "weight of the feature in the axis (unit-length direction; supplementary features in the "
                "same units)",
     "correlation": "Pearson correlation with the axis's scores: of the feature (built_from) or of a numeric "

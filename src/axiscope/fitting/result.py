@@ -146,6 +146,52 @@ class FitResult:
             manifest["command_line"] = command_line
         write_json(manifest, directory / "manifest.json")
 
+    def first_axes(self, r: int) -> "FitResult":
+        """The same fit with only its first ``r`` axes, every table consistent.
+
+        Scores, loadings, singular values and the per-axis accuracy are cut; what depends on
+        the number of axes is recomputed without the data: the training residual moments and
+        shrinkage factors kept for scoring (:func:`axiscope.model.training.training_extras`)
+        and the subspace error bound, ``min(1, √Σ sin²θ_j)`` over the kept axes (the sine of
+        the largest angle of a span is at most the Frobenius norm of the vectors' residuals).
+        The manifest records ``n_components`` = ``r`` and ``n_components_fitted``.
+        """
+        from dataclasses import replace
+
+        from ..model.training import training_extras
+
+        k = self.model.n_components
+        if not (1 <= int(r) <= k):
+            raise ValueError(f"r={r} is not between 1 and the {k} fitted axes")
+        r = int(r)
+        if r == k:
+            return self
+        m, fac = self.model, self.factorization
+        s = m.singular_values[:r]
+        scores = self.scores[:, :r]
+        extras = dict(m.extras)
+        extras.update(training_extras(s, scores, self.sample_sq_dist, total_inertia=m.total_inertia,
+                                      n_features=m.n_features))
+        model = replace(m, components=m.components[:, :r], singular_values=s, extras=extras)
+        accuracy = fac.accuracy
+        if accuracy is not None:
+            accuracy = replace(accuracy, singular_value=accuracy.singular_value[:r], vector=accuracy.vector[:r],
+                               relative_gap=accuracy.relative_gap[:r],
+                               subspace=float(min(1.0, np.sqrt(np.sum(accuracy.vector[:r] ** 2)))))
+        fac = replace(fac, singular_values=fac.singular_values[:r], components=fac.components[:, :r],
+                      scores=fac.scores[:, :r], accuracy=accuracy)
+        manifest = dict(self.manifest)
+        if "options" in manifest:
+            manifest["options"] = {**manifest["options"], "n_components": r}
+        manifest["n_components_fitted"] = k
+        record = manifest.get("accuracy")
+        if record and accuracy is not None:
+            axes = record["axes"][:r]
+            manifest["accuracy"] = {**record, "axes": axes, "all_below_tol": all(a["below_tol"] for a in axes),
+                                    "max_singular_value_error": float(np.max(accuracy.singular_value)),
+                                    "subspace_error": float(accuracy.subspace)}
+        return replace(self, model=model, scores=scores, factorization=fac, manifest=manifest)
+
     def dropped_features(self) -> pd.DataFrame:
         """Features left out of the axes, with the reason (``supplementary``, ``constant`` or
         ``filtered``) and their statistics."""

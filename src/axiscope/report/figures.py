@@ -519,6 +519,26 @@ def variance_figure(components: pd.DataFrame, *, thresholds: Mapping[str, float 
         return fig
 
 
+def _variance_with_signal(fit: FitRecords) -> tuple:
+    """``variance_figure``'s arguments: the fit's axes, or, when the fit assessed how many axes
+    carry signal (``signal_axes.tsv``), every candidate axis with the broken stick, the noise
+    edge and the parallel analysis's permuted quantile as shares, and the axes kept."""
+    path = fit.directory / "signal_axes.tsv"
+    if not path.is_file():
+        return fit.components, None, None
+    numeric = ["variance", "variance_ratio", "cumulative_ratio", "broken_stick_ratio", "noise_edge_variance",
+               "permuted_quantile_variance"]
+    table = read_result_table(path, required=["axis", *numeric, "kept"], numeric=numeric)
+    share = table["variance_ratio"] / table["variance"]  # 1 / total variance
+    thresholds = {"broken stick (expected share)": table["broken_stick_ratio"].to_numpy(),
+                  "noise edge (Marchenko–Pastur)": float((table["noise_edge_variance"] * share).iloc[0])}
+    permuted = (table["permuted_quantile_variance"] * share).to_numpy()
+    if np.isfinite(permuted).any():
+        thresholds["permuted copies, 95% quantile"] = permuted
+    kept = int(table["kept"].astype(str).str.lower().eq("true").sum())
+    return table[["axis", "variance", "variance_ratio", "cumulative_ratio"]], thresholds, kept
+
+
 def _number_gids(bars, prefix: str) -> None:
     for i, patch in enumerate(bars):
         patch.set_gid(f"{prefix}-{i}")
@@ -1030,7 +1050,8 @@ def write_figures(result_dir: str | Path, out_dir: str | Path | None = None, *,
 
     ratio = fit.variance_ratio
     flagged = scored.flagged_ids if scored is not None else ()
-    save(variance_figure(fit.components), "variance")
+    table, thresholds, kept = _variance_with_signal(fit)
+    save(variance_figure(table, thresholds=thresholds, chosen=kept), "variance")
     for a, b in names:
         save(sample_map(fit.scores, (a, b), variance_ratio=ratio, colour=colour,
                         supplementary=fit.supplementary_scores, new=scored.scores if scored else None,
