@@ -168,6 +168,9 @@ def _check_n_groups(n_groups: int | str, n: int) -> int | None:
 def _resolve_method(method: str, n: int) -> str:
     if method not in METHODS:
         raise OptionError(f"method={method!r} is not one of {', '.join(METHODS)}; choose one of them")
+    if method == "ward" and n > WARD_MAX_SAMPLES:
+        logger.warning("Ward's method on %d samples holds %.1f GB of pairwise distances; method='k-means' "
+                       "needs far less", n, 8 * n * (n - 1) / 2 / 1e9)
     if method != "auto":
         return method
     if n > WARD_MAX_SAMPLES:
