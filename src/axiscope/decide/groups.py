@@ -61,7 +61,7 @@ import json
 import logging
 import os
 import time
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -95,7 +95,10 @@ __all__ = [
     "FeatureGroupSums",
     "feature_profiles",
     "annotation_profiles",
+    "describe_group",
     "find_groups",
+    "PROFILE_COLUMNS",
+    "ANNOTATION_COLUMNS",
     "GROUPS_DIR",
 ]
 
@@ -796,8 +799,8 @@ def _active_rows(source: MatrixSource, sample_ids: np.ndarray) -> np.ndarray:
     return rows
 
 
-def _summary(scores: np.ndarray, labels: np.ndarray, axis_names: list[str],
-             per_list: int) -> tuple[pd.DataFrame, pd.DataFrame, np.ndarray]:
+def _summary(scores: np.ndarray, labels: np.ndarray,
+             axis_names: list[str]) -> tuple[pd.DataFrame, np.ndarray, np.ndarray]:
     """Per-group size, share, spread and centre; nearest and farthest samples; distances to own centre."""
     G = int(labels.max())
     n = scores.shape[0]
@@ -908,7 +911,7 @@ def find_groups(
     axes = fitted.axis_names[:n_axes]
     scores = fitted.scores[:, :n_axes]
     n = scores.shape[0]
-    _check_n_groups(n_groups, n)
+    requested = _check_n_groups(n_groups, n)
     _resolve_method(method, n)
     ann = _annotations(annotations, fitted.sample_ids, id_column=id_column, categorical=categorical,
                        numeric=numeric, ignore=ignore, allow_missing=allow_missing)
@@ -932,7 +935,7 @@ def find_groups(
     finally:
         if src is not None and src is not matrix:
             src.close()
-    summary, _, distance = _summary(scores, labels, axes, samples_per_list)
+    summary, _, distance = _summary(scores, labels, axes)
     members = _members(fitted.sample_ids, labels, distance, samples_per_list)
     annotation_table = annotation_profiles(ann, labels) if ann is not None else None
     from .. import __version__
@@ -946,7 +949,7 @@ def find_groups(
         "n_samples": n,
         "method": grouping.method,
         "n_groups": grouping.n_groups,
-        "n_groups_requested": n_groups if isinstance(n_groups, str) else int(n_groups),
+        "n_groups_requested": "auto" if requested is None else requested,
         "chosen_by": grouping.chosen_by,
         "max_groups": int(max_groups),
         "seed": int(seed),
