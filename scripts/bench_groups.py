@@ -73,6 +73,12 @@ def main() -> None:
     wall, peak = timed([*exe, "groups", str(folder / "fit"), "--out", str(folder / "plain"), "--no-features",
                         *common])
     rows.append(("groups --no-features", wall, peak))
+    wall, peak = timed([*exe, "groups", str(folder / "fit"), "--out", str(folder / "limited"), "--memory-limit",
+                        "1GB", *common])
+    rows.append(("groups --memory-limit 1GB", wall, peak))
+    wall, peak = timed([*exe, "groups", str(folder / "fit"), "--out", str(folder / "kmeans"), "--memory-limit",
+                        "1GB", "--method", "k-means", *common])
+    rows.append(("groups --memory-limit 1GB --method k-means", wall, peak))
     import pandas as pd
     from sklearn.metrics import adjusted_rand_score
 
