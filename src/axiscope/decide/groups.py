@@ -784,7 +784,8 @@ def _open_fitted_matrix(fitted: _Fit, matrix, layout: dict) -> MatrixSource:
     if not path or not Path(path).exists():
         raise InputError(f"{path or 'the fit'}: the fitted matrix is not there; pass its path as matrix=... "
                          "(or features=False to group without feature profiles)")
-    return open_matrix(path, dataset=recorded.get("dataset"), samples_in=recorded.get("samples_in", "rows"),
+    return open_matrix(path, dataset=layout.get("dataset") or recorded.get("dataset"),
+                       samples_in=layout.get("samples_in") or recorded.get("samples_in", "rows"),
                        **{k: v for k, v in layout.items() if k not in ("dataset", "samples_in") and v is not None})
 
 
