@@ -60,6 +60,32 @@ def test_demo_describes_the_planted_structure_and_flags_corrupted_samples(tmp_pa
     recorded = json.loads((out / "fit" / "axis_cards.json").read_text())["settings"]["annotations"]
     assert Path(recorded).is_absolute() and Path(recorded).is_file()
     assert (out / "report.html").is_file() and (out / "fit" / "figures" / "samples_PC1_PC2.png").is_file()
+    _check_groups(out, result.output)
+
+
+def _check_groups(out: Path, output: str) -> None:
+    """The demo's groups are the three planted tissue states, each led by its own marker genes."""
+    from sklearn.metrics import adjusted_rand_score
+
+    from axiscope.demo.cohort import STATES, simulate_cohort
+
+    groups = pd.read_csv(out / "fit" / "groups" / "assignments.tsv", sep="\t", dtype={"sample_id": str})
+    truth = pd.read_csv(out / "data" / "reference_annotations.tsv", sep="\t", dtype={"sample_id": str})
+    merged = groups.merge(truth[["sample_id", "state"]], on="sample_id", validate="one_to_one")
+    assert len(merged) == len(truth)
+    # planted truth: three states; sklearn.metrics.adjusted_rand_score against them
+    assert adjusted_rand_score(merged["state"], merged["group"]) >= 0.95
+    # the same cohort as make_demo_data (1200 reference + 200 new samples, 6 corrupted, seed 7)
+    cohort = simulate_cohort(1400, 6000, seed=7, n_corrupted=6)
+    features = pd.read_csv(out / "fit" / "groups" / "group_features.tsv", sep="\t")
+    for group, part in merged.groupby("group"):
+        state = part["state"].mode().iloc[0]
+        markers = set(cohort.gene_ids[cohort.truth["state_genes"][state]])
+        assert state in STATES
+        for side in ("above", "below"):  # the planted marker genes lead each side of the group's profile
+            top = features[(features["group"] == group) & (features["side"] == side)]["feature_id"].head(10)
+            assert len(top) == 10 and set(top) <= markers, (group, side)
+    assert output.count("  Group ") == 3 and "mostly state = " in output
 
 
 def _strings(record):

@@ -14,3 +14,8 @@ DEFAULT_MAX_COMPONENTS = 50
 DEFAULT_PERMUTATIONS = 20
 #: Largest random subsample of samples for the parallel analysis and the noise level.
 DEFAULT_SIGNAL_SAMPLES = 3000
+#: Largest number of groups tried when the number of groups is chosen from the data.
+DEFAULT_MAX_GROUPS = 10
+#: Above this many samples groups are made by k-means rather than Ward's method (the
+#: agglomerative tree holds n(n−1)/2 distances: 1.6 GB at 20,000 samples).
+WARD_MAX_SAMPLES = 20_000

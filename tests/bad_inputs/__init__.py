@@ -12,7 +12,7 @@ A case whose fault is known and not fixed yet carries ``known_fault`` (why); it 
 expected to fail (``xfail(strict=True)``), so that fixing it shows up at once.
 
 Modules: :mod:`.text`, :mod:`.hdf5`, :mod:`.zarr_cases`, :mod:`.npy`, :mod:`.models`,
-:mod:`.options`, :mod:`.covariates`. The matrices are invented (random numbers); none encodes a truth a test
+:mod:`.options`, :mod:`.covariates`, :mod:`.groups_cases`. The matrices are invented (random numbers); none encodes a truth a test
 relies on beyond "this input is damaged in this one way".
 """
 
@@ -99,10 +99,10 @@ def fit_model(folder: Path, *, n: int = 60, p: int = 15, k: int = 3, seed: int =
 
 
 def _collect() -> list[Case]:
-    from . import covariates, hdf5, models, npy, options, text, zarr_cases
+    from . import covariates, groups_cases, hdf5, models, npy, options, text, zarr_cases
 
     cases = [*text.CASES, *hdf5.CASES, *zarr_cases.CASES, *npy.CASES, *models.CASES, *options.CASES,
-             *covariates.CASES]
+             *covariates.CASES, *groups_cases.CASES]
     names = [c.name for c in cases]
     assert len(names) == len(set(names)), "case names must be unique"
     return cases

@@ -14,6 +14,7 @@ from . import (  # noqa: E402,F401
     explain_cmd,
     figures_cmd,
     fit_cmd,
+    groups_cmd,
     inspect_cmd,
     report_cmd,
     score_cmd,

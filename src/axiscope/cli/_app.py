@@ -26,7 +26,7 @@ __all__ = ["app", "main", "fail", "Terminated", "signal_handlers", "RESOURCE_EXI
 #: in the order of :data:`_AFTER_FIT`, then in the order they were registered.
 COMMAND_ORDER = ("inspect", "fit", "score", "demo", "simulate")
 _UNLISTED_AFTER = "fit"
-_AFTER_FIT = ("explain", "figures", "report")
+_AFTER_FIT = ("explain", "groups", "figures", "report")
 
 _HELP = "Principal component analysis of large, wide numeric tables, out of core."
 

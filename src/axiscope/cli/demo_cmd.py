@@ -27,13 +27,14 @@ def demo_command(
     wait: Wait = False,
     quiet: Quiet = False,
 ) -> None:
-    """Simulate a synthetic RNA-sequencing cohort, fit it, explain the axes, score a new batch, draw it all."""
+    """Simulate a synthetic RNA-sequencing cohort, fit it, explain the axes, group the samples, score a new batch, draw it all."""
     import pandas as pd
 
     from ..core.adjust import Covariates
     from ..core.options import Resources
     from ..core.preprocess import PreprocessSpec
     from ..demo.adjusted import check_adjustment
+    from ..decide.groups import find_groups
     from ..demo.layout import DEMO_FIT_OPTIONS, DEMO_TECHNICAL, make_demo_data
     from ..explain.cards import explain_axes
     from ..fitting.run import fit
@@ -65,6 +66,10 @@ def demo_command(
                 parquet = format is TableFormat.parquet
                 result.write(tmp / "fit", parquet=parquet, command_line=sys.argv)
                 cards.write(tmp / "fit", parquet=parquet)
+                groups = find_groups(tmp / "fit", matrix=data["reference"], annotations=data["reference_annotations"],
+                                     ignore=["corrupted"], threads=threads, progress=progress)
+                groups.manifest = relocated(groups.manifest, tmp, out)
+                groups.write(tmp / "fit" / "groups", parquet=parquet)
                 scored = score(tmp / "fit" / "model", data["new"], threads=threads, progress=progress)
                 scored.manifest = relocated(scored.manifest, tmp, out)
                 scored.write(tmp / "score", parquet=parquet, command_line=sys.argv)
@@ -85,6 +90,10 @@ def demo_command(
         down = ", ".join(genes[genes["side"] == "negative"]["feature_id"].head(5))
         say(f"    genes with the largest loadings: + {up}; − {down}", quiet)
     say(batch_check.line(), quiet)
+    say(f"{groups.n_groups} groups of the reference samples ({groups.grouping.method} on "
+        f"{len(groups.axis_names)} axes); results in {out / 'fit' / 'groups'}", quiet)
+    for line in groups.lines():
+        say(f"  {line}", quiet)
     flags = scored.diagnostics["flag"]
     flagged = (flags != "within").to_numpy()
     say(

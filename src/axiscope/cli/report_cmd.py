@@ -23,6 +23,10 @@ def report_command(
     scores_dir: Annotated[Path | None, typer.Option(
         "--scores-dir", help="Output directory of 'axiscope score' against this fit: adds the scoring "
                              "diagnostics and the new samples on the map.")] = None,
+    groups_dir: Annotated[Path | None, typer.Option(
+        "--groups", help="Output directory of 'axiscope groups' for this fit: adds the groups and their "
+                         "profiles, and colours the map by group.",
+        show_default="RESULT_DIR/groups, when it holds groups")] = None,
     out: Annotated[Path | None, typer.Option(
         "--out", "-o", help="Where to write the page (default: RESULT_DIR/report.html).")] = None,
     overwrite: Overwrite = False,
@@ -34,5 +38,5 @@ def report_command(
         from ..report.html import build_report
 
         path = build_report(result_dir, annotations=annotations, id_column=id_column, scores_dir=scores_dir,
-                            out=out, overwrite=overwrite)
+                            groups_dir=groups_dir, out=out, overwrite=overwrite)
     say(f"report in {path}", quiet)

@@ -68,6 +68,7 @@ _SCALES = {"unit": "each feature divided by its standard deviation (standardised
 
 def build_report(result_dir: str | os.PathLike, *, annotations: str | os.PathLike | pd.DataFrame | None = None,
                  id_column: str = "sample_id", scores_dir: str | os.PathLike | None = None,
+                 groups_dir: str | os.PathLike | None = None,
                  out: str | os.PathLike | None = None, overwrite: bool = False) -> Path:
     """Write ``report.html``: one self-contained, interactive page about a fit.
 
@@ -83,6 +84,10 @@ def build_report(result_dir: str | os.PathLike, *, annotations: str | os.PathLik
     scores_dir : path, optional
         Output directory of ``axiscope score`` against this fit: adds the scoring
         diagnostics and the newly scored samples on the map.
+    groups_dir : path, optional
+        Output directory of ``axiscope groups`` for this fit (default: ``result_dir/groups``
+        when it holds groups): adds the groups, their profiles, and the group as a colour of
+        the sample map.
     out : path, optional
         Where to write (default: ``result_dir/report.html``); written to a temporary file
         beside it and renamed, so a reader never sees half a report.
@@ -109,7 +114,8 @@ def build_report(result_dir: str | os.PathLike, *, annotations: str | os.PathLik
         raise OptionError(f"out={str(target)!r} is a folder; give the path of the page to write")
     if target.exists() and not overwrite:
         raise OptionError(f"{target}: already exists; pass overwrite=True to replace it, or another path as out=...")
-    files = _ResultFiles.read(result_dir, scores_dir=Path(scores_dir) if scores_dir is not None else None)
+    files = _ResultFiles.read(result_dir, scores_dir=Path(scores_dir) if scores_dir is not None else None,
+                              groups_dir=Path(groups_dir) if groups_dir is not None else None)
     if annotations is not None and not isinstance(annotations, pd.DataFrame):
         annotations = Path(annotations)
     context = _context(files, annotations=annotations, id_column=id_column)
@@ -161,13 +167,14 @@ class _ResultFiles:
         self.feature_statistics: pd.DataFrame | None = None
         self.dropped_features: pd.DataFrame | None = None
         self.groups: pd.DataFrame | None = None
+        self.group_files: GroupFiles | None = None
         self.scoring_manifest: dict | None = None
         self.diagnostics: pd.DataFrame | None = None
         self.scores: pd.DataFrame | None = None
         self.scores_dir: Path | None = None
 
     @classmethod
-    def read(cls, directory: Path, *, scores_dir: Path | None) -> "_ResultFiles":
+    def read(cls, directory: Path, *, scores_dir: Path | None, groups_dir: Path | None = None) -> "_ResultFiles":
         if not directory.is_dir():
             raise InputError(f"{directory}: no such result directory; give the --out folder of 'axiscope fit'")
         files = cls(directory)
@@ -185,6 +192,10 @@ class _ResultFiles:
         files.feature_statistics = _tsv(cards / "feature_statistics.tsv")
         files.dropped_features = _tsv(directory / "dropped_features.tsv")
         files.groups = _tsv(directory / "groups.tsv")
+        files.group_files = GroupFiles.read(directory, groups_dir)
+        if files.group_files is not None:
+            files.group_files.check_samples(
+                files.sample_scores["sample_id"] if files.sample_scores is not None else None, directory)
         if scores_dir is not None:
             if not (scores_dir / "diagnostics.tsv").is_file():
                 raise InputError(f"{scores_dir}: no diagnostics.tsv; give the --out folder of 'axiscope score'")
@@ -198,6 +209,45 @@ class _ResultFiles:
                 raise InputError(f"{scores_dir}: these samples were scored against another model than the one "
                                  f"in {directory / 'model'}; pass the scoring run of this fit as scores_dir")
         return files
+
+
+class GroupFiles:
+    """The records ``axiscope groups`` wrote (None where a file is absent).
+
+    Found in ``groups_dir`` when given, else in ``RESULT_DIR/groups`` when that folder
+    holds groups.
+    """
+
+    def __init__(self, folder: Path) -> None:
+        self.folder = folder
+        self.manifest: dict = _json(folder / "manifest.json") or {}
+        self.summary = _tsv(folder / "groups.tsv", numeric=("n_samples", "share"))
+        self.assignments = _tsv(folder / "assignments.tsv")
+        self.counts = _tsv(folder / "group_counts.tsv")
+        self.features = _tsv(folder / "group_features.tsv")
+        self.annotations = _tsv(folder / "group_annotations.tsv")
+
+    @classmethod
+    def read(cls, directory: Path, groups_dir: Path | None) -> "GroupFiles | None":
+        folder = groups_dir if groups_dir is not None else directory / "groups"
+        holds = (folder / "assignments.tsv").is_file() and (folder / "groups.tsv").is_file()
+        if groups_dir is None and not holds:
+            return None
+        if not holds:
+            raise InputError(f"{folder}: no assignments.tsv and groups.tsv; give the --out folder of "
+                             "'axiscope groups'")
+        found = cls(folder)
+        if found.assignments is None or not {"sample_id", "group"} <= set(found.assignments.columns):
+            raise InputError(f"{folder / 'assignments.tsv'}: no sample_id and group columns; rerun 'axiscope groups'")
+        return found
+
+    def check_samples(self, sample_ids: pd.Series | None, directory: Path) -> None:
+        """Refuse groups made on the samples of another fit."""
+        if sample_ids is None:
+            return
+        if set(self.assignments["sample_id"].astype(str)) != set(sample_ids.astype(str)):
+            raise InputError(f"{self.folder}: these groups were made on other samples than the fit in {directory}; "
+                             "pass the groups of this fit as groups_dir, or rerun 'axiscope groups'")
 
 
 def _json(path: Path) -> dict | None:
@@ -261,7 +311,7 @@ def _context(files: _ResultFiles, *, annotations: Path | pd.DataFrame | None, id
         "axes": _axes_section(files.cards),
         "annotation_notes": _annotation_notes(files.cards),
         "maps": _maps_section(files, charts, annotations=annotations, id_column=id_column),
-        "groups": _groups_section(files.groups),
+        "groups": _groups_section(files),
         "scoring": _scoring_section(files, charts),
         "warnings": _warnings_section(files),
         "cautions": [{"title": t, "text": x} for t, x in CAUTIONS],
@@ -541,6 +591,7 @@ def _maps_section(files: _ResultFiles, charts, *, annotations: Path | pd.DataFra
                 scores = pd.concat([scores[["sample_id", *axes]], extra[["sample_id", *axes]]], ignore_index=True)
                 supplementary = np.r_[supplementary, np.ones(len(extra), dtype=bool)]
             table, treatments, default, note = _annotation_table(files, scores["sample_id"], annotations, id_column)
+            table, treatments, default = _with_groups(files, scores["sample_id"], table, treatments, default)
             scored = None
             if files.scores is not None and files.diagnostics is not None and all(a in files.scores for a in axes):
                 flags = files.diagnostics.set_index("sample_id")["flag"]
@@ -565,6 +616,26 @@ def _maps_section(files: _ResultFiles, charts, *, annotations: Path | pd.DataFra
             section["features"] = True
             section["feature_kind"] = kind
     return section if section["samples"] or section["features"] else None
+
+
+#: The colour of the sample map that shows the groups of ``axiscope groups``.
+GROUP_COLOUR = "group (axiscope groups)"
+
+
+def _with_groups(files: _ResultFiles, sample_ids: pd.Series, table: pd.DataFrame | None, treatments: dict,
+                 default: str | None):
+    """The map's annotation table with each sample's group added as a category, coloured first."""
+    found = files.group_files
+    if found is None:
+        return table, treatments, default
+    ids = pd.Index(sample_ids.astype(str).to_numpy(dtype=object))
+    if table is None:
+        table = pd.DataFrame(index=ids)
+    groups = found.assignments.set_index(found.assignments["sample_id"].astype(str))["group"]
+    labels = groups.reindex(ids)
+    table = table.copy()
+    table[GROUP_COLOUR] = [None if pd.isna(v) else f"group {v}" for v in labels]
+    return table, {**treatments, GROUP_COLOUR: "categorical"}, GROUP_COLOUR
 
 
 def _annotation_table(files: _ResultFiles, sample_ids: pd.Series, annotations: Path | pd.DataFrame | None, id_column: str):
@@ -610,12 +681,70 @@ def _annotation_table(files: _ResultFiles, sample_ids: pd.Series, annotations: P
 # ------------------------------------------------------------------------------ groups
 
 
-def _groups_section(groups: pd.DataFrame | None) -> dict | None:
+def _groups_section(files: _ResultFiles) -> dict | None:
+    found = files.group_files
+    if found is None:
+        return _plain_groups(files.groups)
+    manifest = found.manifest
+    summary = found.summary if found.summary is not None else pd.DataFrame()
+    centres = [c for c in summary.columns if str(c).startswith("centre_")][:4]
+    rows = [[str(r["group"]), r["n_samples"], _pct(r["share"]), r.get("spread"), *[r[c] for c in centres]]
+            for r in summary.to_dict("records")]
+    section: dict[str, Any] = {
+        "how": (f"{_fmt(manifest.get('n_groups'))} groups made by "
+                f"{'k-means' if manifest.get('method') == 'k-means' else 'Ward'} on the scores of "
+                f"{', '.join(str(a) for a in manifest.get('axes', []))}; number of groups: "
+                f"{manifest.get('chosen_by', '—')}."),
+        "lines": [str(line) for line in manifest.get("lines", [])],
+        "table": _table(["group", "samples", "share", "spread", *[f"centre on {c[len('centre_'):]}" for c in centres]],
+                        rows, numeric=[False, True, True, True, *[True] * len(centres)]),
+        "counts": None,
+        "profiles": [],
+    }
+    if found.counts is not None and len(found.counts) > 1:
+        section["counts"] = _table(
+            ["groups", "mean silhouette width", "Caliński–Harabasz", "between-group share", "chosen"],
+            [[r["n_groups"], r["silhouette"], r["calinski_harabasz"], _pct(r["between_share"]), _yes(r["chosen"])]
+             for r in found.counts.to_dict("records")], numeric=[True, True, True, True, False])
+    for group in summary["group"].tolist() if len(summary) else []:
+        section["profiles"].append(_group_profile(found, group))
+    return section
+
+
+def _group_profile(found: GroupFiles, group) -> dict:
+    """The leading features on each side and the over-represented categories of one group."""
+    shown = 10
+    profile: dict[str, Any] = {"group": str(group), "features": None, "categories": None}
+    features = found.features
+    if features is not None and len(features):
+        mine = features[features["group"].astype(str) == str(group)]
+        header = ["rank", "feature", "group mean", "overall mean", "z", "adjusted p"]
+        profile["features"] = {side: _table(header, [
+            [r["rank"], str(r["feature_id"]), r["group_mean"], r["overall_mean"], r["z"],
+             format_p_value(r["p_adjusted"])] for r in mine[mine["side"] == side].head(shown).to_dict("records")],
+            numeric=[True, False, True, True, True, True]) for side in ("above", "below")}
+    annotations = found.annotations
+    if annotations is not None and len(annotations):
+        mine = annotations[(annotations["group"].astype(str) == str(group))
+                           & (annotations["treated_as"] == "categorical")
+                           & (annotations["group_value"] > annotations["overall_value"])]
+        mine = mine.sort_values("p_value", kind="stable").head(shown)
+        profile["categories"] = _table(
+            ["annotation", "category", "in the group", "share in the group", "share overall", "adjusted p"],
+            [[str(r["annotation"]), str(r["category"]), r["n_group"], _pct(r["group_value"]),
+              _pct(r["overall_value"]), format_p_value(r["p_adjusted"])] for r in mine.to_dict("records")],
+            numeric=[False, False, True, True, True, True])
+    return profile
+
+
+def _plain_groups(groups: pd.DataFrame | None) -> dict | None:
+    """A table of groups found beside the fit's own tables (``groups.tsv``), shown as it is."""
     if groups is None or not len(groups):
         return None
     shown = groups.head(MAX_LISTED)
     numeric = [pd.api.types.is_numeric_dtype(groups[c]) for c in groups.columns]
-    return {"table": _table([str(c) for c in groups.columns],
+    return {"how": None, "lines": [], "counts": None, "profiles": [],
+            "table": _table([str(c) for c in groups.columns],
                             [[("" if pd.isna(v) else v) if not isinstance(v, str) else v for v in row]
                              for row in shown.itertuples(index=False)], numeric=numeric,
                             more=len(groups) - len(shown))}
