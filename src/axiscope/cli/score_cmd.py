@@ -79,6 +79,10 @@ def score_command(
     samples_in: SamplesInOpt = SamplesIn.rows,
     allow_external_data: AllowExternalData = False,
     allow_missing_chunks: AllowMissingChunks = False,
+    reference: Annotated[Path | None, typer.Option(
+        metavar="FILE",
+        help="The matrix the model is expected to have been fitted on: a warning when the model's recorded "
+             "training input (size and hash) is another file.")] = None,
     memory_limit: MemoryLimit = None,
     threads: Threads = None,
     overwrite: Overwrite = False,
@@ -104,6 +108,7 @@ def score_command(
                 memory_limit=memory_limit, threads=threads, progress=progress, dataset=dataset,
                 sample_ids=sample_ids, feature_ids=feature_ids, samples_in=samples_in.value,
                 allow_external_data=allow_external_data, allow_missing_chunks=allow_missing_chunks,
+                reference=reference,
             )
         with atomic_directory(out, overwrite=overwrite) as tmp:
             result.write(tmp, parquet=format is TableFormat.parquet, command_line=sys.argv)

@@ -63,6 +63,9 @@ def fit(
     active: np.ndarray | None = None,
     exclude_features: np.ndarray | None = None,
     progress: Progress | None = None,
+    checksum: str = "sampled",
+    checkpoint: str | os.PathLike | None = None,
+    resume: bool = False,
 ) -> FitResult:
     """Principal component analysis of a matrix on disk, out of core.
 
@@ -90,6 +93,16 @@ def fit(
         Features left out of the axes (supplementary features); they are still read.
     progress : callable, optional
         ``progress(pass_name, blocks_done, n_blocks)``.
+    checksum : {"sampled", "full"}, default="sampled"
+        How the input's identity, recorded in the manifest and the model, is hashed
+        (:func:`axiscope.io.identity.file_identity`).
+    checkpoint : path, optional
+        Folder where the randomized iteration's state is kept after each completed pass
+        (:class:`axiscope.core.checkpoint.Checkpoint`).
+    resume : bool, default=False
+        Continue from the state in ``checkpoint``, when there is one of the same inputs
+        and options (another is refused); the result is byte for byte that of an
+        uninterrupted fit.
 
     Returns
     -------
@@ -124,7 +137,10 @@ def fit(
     if isinstance(source, MatrixSource) and not layout.is_default:
         raise OptionError("layout describes a file, but source is an opened MatrixSource; pass the "
                           "file's path instead, or leave layout out")
-    job = _Job(int(n_components), preprocess, engine, resources, progress, t_start)
+    if resume and checkpoint is None:
+        raise OptionError("resume=True needs the folder of the saved state; pass checkpoint=...")
+    job = _Job(int(n_components), preprocess, engine, resources, progress, t_start, checksum,
+               None if checkpoint is None else Path(checkpoint), bool(resume))
     with opened(source, **layout.open_options()) as src, blas_threads(resources.n_threads):
         return _fit(src, job, active, exclude_features)
 
@@ -158,6 +174,9 @@ class _Job:
     resources: Resources
     progress: Progress | None
     t_start: float
+    checksum: str = "sampled"
+    checkpoint: Path | None = None
+    resume: bool = False
 
 
 def _fit(src: MatrixSource, job: _Job, active, exclude) -> FitResult:
@@ -171,6 +190,8 @@ def _fit(src: MatrixSource, job: _Job, active, exclude) -> FitResult:
                     resources=job.resources)
     method = _choose_method(job.engine.method, n, src.shape[1], job.spec, plan.budget - plan.baseline)
     runner = PassRunner(threads=plan.threads, progress=job.progress)
+    identity = _input_identity(src, job.checksum)
+    checkpoint = _checkpoint(job, identity, plan, active, exclude, method)
     rng = job.engine.generator()
     reader = _Reader(src, job.spec, active, plan.block_rows)
     filtered = job.spec.has_filter or exclude is not None
@@ -186,10 +207,13 @@ def _fit(src: MatrixSource, job: _Job, active, exclude) -> FitResult:
                                          runner, src, active, centre=job.spec.center)
         prep = _preprocessing(job, stats, exclude, src, n)
         operand = _Operand.build(job.spec, stats, prep, reader, caches, filtered=filtered, filled=first_cache)
-        fac = _factorise(method, operand, job, n, rng, runner, plan, sketch)
+        fac = _factorise(method, operand, job, n, rng, runner, plan, sketch, checkpoint)
     _check_numerical_rank(fac, job.k, src.dtype, n, int(prep.kept.shape[0]))
     model = _model(src, job.spec, prep, stats, fac, n, operand.columns is not None)
     manifest = _manifest(src, job, n, prep, stats, fac, plan, runner)
+    model.info["training_input"] = manifest["input"]["identity"] = identity
+    if checkpoint is not None:
+        manifest["checkpoint"] = checkpoint.record()
     return FitResult(
         model=model,
         sample_ids=np.asarray(src.sample_ids)[active],
@@ -394,8 +418,35 @@ class _Operand:
         return cls(columns, mean, d, fill, first, later, source)
 
 
+def _input_identity(src: MatrixSource, checksum: str) -> dict | None:
+    """Size, modification time and hash of the input file (None for an in-memory array)."""
+    from ..io.identity import file_identity
+
+    if src.format == "array" or src.path is None or not Path(src.path).exists():
+        return None
+    return file_identity(src.path, checksum=checksum)
+
+
+def _checkpoint(job: _Job, identity, plan: BlockPlan, active, exclude, method: str):
+    """The fit's checkpoint (None without ``checkpoint``), keyed by what determines the result."""
+    if job.checkpoint is None:
+        return None
+    from ..core.checkpoint import Checkpoint, fingerprint_of
+
+    fingerprint = fingerprint_of(
+        input={"size": None if identity is None else identity["size"],
+               "hash": None if identity is None else identity["hash"]},
+        n_components=job.k, preprocessing=job.spec.to_dict(), engine=job.engine.to_dict(), method=method,
+        block_rows=plan.block_rows, max_basis=plan.max_basis, active_samples=active,
+        excluded_features=exclude,
+    )
+    checkpoint = Checkpoint(job.checkpoint, fingerprint, resume=job.resume)
+    checkpoint.state = checkpoint.load()  # refused now, before any pass, when it is another fit's
+    return checkpoint
+
+
 def _factorise(method: str, op: _Operand, job: _Job, n: int, rng, runner, plan: BlockPlan,
-               sketch) -> Factorization:
+               sketch, checkpoint=None) -> Factorization:
     """LAPACK on the dense matrix, or randomized block Krylov iterations on the blocks."""
     if method == "exact":
         return exact_factorization(op.first if op.first is not None else op.later, op.mean,
@@ -410,7 +461,8 @@ def _factorise(method: str, op: _Operand, job: _Job, n: int, rng, runner, plan: 
         op.later, op.mean, op.inverse_scale, n_components=job.k, oversample=eng.oversample,
         power_iterations=eng.power_iterations, tol=eng.tol, rng=rng, start=start,
         fill=op.fill, runner=runner, source=op.later_source, max_basis=plan.max_basis,
-        sketch_from=op.first,
+        sketch_from=op.first, on_pass=None if checkpoint is None else checkpoint.save,
+        resume_from=None if checkpoint is None else checkpoint.state,
     )
 
 

@@ -339,6 +339,24 @@ def _fill_option(fill_missing) -> bool:
     raise OptionError(f"fill_missing={fill_missing!r} is not supported; use 'mean' or leave it out")
 
 
+def _check_reference(model: Model, reference) -> dict | None:
+    """Whether ``reference`` is the model's recorded training input; a warning when it is not."""
+    if reference is None:
+        return None
+    from ..io.identity import compare_identity
+
+    recorded = model.info.get("training_input")
+    if not recorded:
+        logger.warning("the model records no training input (fitted from memory or by an older axiscope); "
+                       "cannot check that it was fitted on %s", reference)
+        return {"reference": str(reference), "same_file": None, "difference": "no training input recorded"}
+    difference = compare_identity(recorded, reference)
+    if difference is not None:
+        logger.warning("the model was fitted on %s, but reference=%s is another file (%s); the axes may "
+                       "not be those of that data", recorded["path"], reference, difference)
+    return {"reference": str(reference), "same_file": difference is None, "difference": difference}
+
+
 def score(
     model: Model | str | os.PathLike,
     source: MatrixSource | str | os.PathLike,
@@ -358,6 +376,7 @@ def score(
     samples_in: str = "rows",
     allow_external_data: bool = False,
     allow_missing_chunks: bool = False,
+    reference: str | os.PathLike | None = None,
 ) -> ScoreResult:
     """Score new samples against a saved model and flag those the model does not describe.
 
@@ -396,6 +415,10 @@ def score(
         allow it (the manifest says which was used).
     memory_limit, threads, progress
         As for :func:`axiscope.fit`.
+    reference : path, optional
+        The matrix the model should have been fitted on. A warning is logged when the
+        model's recorded training input (:func:`axiscope.io.identity.file_identity`) is
+        another file, or when the model records none; the manifest keeps the outcome.
 
     Returns
     -------
@@ -424,6 +447,7 @@ def score(
         model_dir = model_directory(model)
         model = load_model(model_dir)
         model_info.update(path=str(model_dir), checksum=model.checksum(model_dir))
+    reference_check = _check_reference(model, reference)
     levels = sorted({float(confidence), SECONDARY_CONFIDENCE}, reverse=True)
     factor = np.ones(model.n_components)
     if correct_shrinkage:
@@ -491,7 +515,9 @@ def score(
             "n_components": model.n_components,
             "n_features": model.n_features,
             "n_training_samples": model.n_samples,
+            "training_input": model.info.get("training_input"),
         },
+        "reference_check": reference_check,
         "input": input_info,
         "options": {
             "fill_missing": "mean" if fill else None,
