@@ -1,9 +1,12 @@
-"""The example Snakemake workflow in ``workflows/`` runs end to end.
+"""The example Snakemake workflow in ``workflows/snakemake/`` runs end to end.
 
 Run with ``snakemake --cores 1`` in a temporary copy (skipped when Snakemake is not
 installed or the Snakefile is missing). The fitted axes are checked against a dense
 reference computed here from the simulated counts with numpy/LAPACK (eigenvalues of the
 sample Gram matrix of the standardized log counts-per-million, scipy.linalg.eigvalsh).
+The fit is killed once with SIGKILL in the middle of a pass (an ``axiscope`` placed first
+on PATH kills itself the first time): Snakemake's retry resumes it from the checkpoint.
+A second run with nothing changed does no work.
 """
 
 from __future__ import annotations
@@ -21,7 +24,27 @@ import pandas as pd
 import pytest
 
 WORKFLOWS = pathlib.Path(__file__).resolve().parents[1] / "workflows"
-SNAKEFILE = WORKFLOWS / "Snakefile"
+SNAKEFILE = WORKFLOWS / "snakemake" / "Snakefile"
+
+#: ``axiscope`` that kills itself (SIGKILL) while folding the second block of "iteration 2"
+#: of the first fit it runs (FLAG marks that it did), and otherwise is the real command.
+_KILLING_ONCE = """#!{python}
+import os, signal, sys
+flag = os.environ["KILL_ONCE_FLAG"]
+if sys.argv[1:2] == ["fit"] and not os.path.exists(flag):
+    from axiscope.core import passes
+    original = passes.PassRunner._run_pipelined
+    def run(self, name, blocks, starts, task, fold, args):
+        def fold_then_die(result, index, start):
+            fold(result, index, start)
+            if name == "iteration 2" and index == 1:
+                open(flag, "w").close()
+                os.kill(os.getpid(), signal.SIGKILL)
+        return original(self, name, blocks, starts, task, fold_then_die, args)
+    passes.PassRunner._run_pipelined = run
+from axiscope.cli._app import main
+sys.exit(main(sys.argv[1:]))
+"""
 
 
 @pytest.mark.filterwarnings("ignore:Object at .snakemake_timestamp")
@@ -32,18 +55,36 @@ def test_snakemake_workflow_runs(tmp_path):
     import zarr
 
     work = tmp_path / "workflow"
-    shutil.copytree(WORKFLOWS, work, ignore=shutil.ignore_patterns(".snakemake", "results"))
-    env = dict(os.environ)
+    shutil.copytree(SNAKEFILE.parent, work, ignore=shutil.ignore_patterns(".snakemake", "results"))
+    shim = tmp_path / "bin"
+    shim.mkdir()
+    (shim / "axiscope").write_text(_KILLING_ONCE.format(python=sys.executable), encoding="utf-8")
+    (shim / "axiscope").chmod(0o755)
+    flag = tmp_path / "killed-once"
+    env = dict(os.environ, KILL_ONCE_FLAG=str(flag))
     # the workflow's shell commands call `axiscope` from the environment running the tests
-    env["PATH"] = os.path.dirname(sys.executable) + os.pathsep + env.get("PATH", "")
+    env["PATH"] = os.pathsep.join([str(shim), os.path.dirname(sys.executable), env.get("PATH", "")])
     env.setdefault("OPENBLAS_NUM_THREADS", "1")
     k = 4
     cmd = [sys.executable, "-m", "snakemake", "--cores", "1", "--config", f"components={k}", "out=results"]
-    run = subprocess.run(cmd, cwd=work, env=env, capture_output=True, text=True, timeout=300, check=False)
+    run = subprocess.run(cmd, cwd=work, env=env, capture_output=True, text=True, timeout=600, check=False)
     assert run.returncode == 0, run.stderr[-3000:]
+    assert flag.exists(), "the fit was never killed"
 
     fit_dir = work / "results" / "fit"
     manifest = json.loads((fit_dir / "manifest.json").read_text())
+    # the retry continued after iteration 1, the last pass completed before the kill
+    assert manifest["checkpoint"]["resumed_after_pass"] == 1
+    assert manifest["configuration"]["sources"]["components"] == "command line"
+    assert manifest["configuration"]["sources"]["counts-per"] == "config file"
+    score_manifest = json.loads((work / "results" / "score" / "manifest.json").read_text())
+    assert score_manifest["reference_check"]["same_file"] is True
+    assert (work / "results" / "explanation" / "axis_cards.tsv").is_file()
+    assert (work / "results" / "report.html").is_file()
+
+    again = subprocess.run(cmd, cwd=work, env=env, capture_output=True, text=True, timeout=300, check=False)
+    assert again.returncode == 0, again.stderr[-3000:]
+    assert "Nothing to be done" in again.stdout + again.stderr
     components = pd.read_csv(fit_dir / "components.tsv", sep="\t")
     scores = pd.read_csv(fit_dir / "sample_scores.tsv", sep="\t")
     assert len(components) == k
