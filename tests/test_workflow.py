@@ -15,6 +15,7 @@ import importlib.util
 import json
 import os
 import pathlib
+from pathlib import Path
 import shutil
 import subprocess
 import sys
@@ -110,3 +111,45 @@ def test_snakemake_workflow_runs(tmp_path):
     eig = scipy.linalg.eigvalsh(Z @ Z.T)[::-1][:k]  # reference: LAPACK syevr via scipy
     np.testing.assert_allclose(components.variance, eig / n, rtol=1e-4)
     np.testing.assert_allclose(components.variance_ratio, eig / n / Z.shape[1], rtol=1e-4)
+
+
+# --------------------------------------------------------------------------------- CWL
+
+CWL = WORKFLOWS / "cwl"
+
+
+@pytest.mark.skipif(importlib.util.find_spec("cwltool") is None, reason="cwltool is not installed")
+def test_cwl_descriptions_are_valid_and_the_pipeline_runs(tmp_path):
+    """``cwltool --validate`` accepts every description; the pipeline run on the demo data
+    gives the same tables as the same options typed on the command line (byte for byte), and
+    scores the new batch against the reference it was fitted on."""
+    env = dict(os.environ, OPENBLAS_NUM_THREADS="1")
+    env["PATH"] = os.path.dirname(sys.executable) + os.pathsep + env.get("PATH", "")
+    cwltool = [sys.executable, "-m", "cwltool"]
+    for name in ("fit.cwl", "score.cwl", "pipeline.cwl"):
+        done = subprocess.run([*cwltool, "--validate", str(CWL / name)], env=env, capture_output=True, text=True,
+                              timeout=300, check=False)
+        assert done.returncode == 0 and f"{name} is valid CWL" in done.stdout + done.stderr, done.stderr[-2000:]
+
+    work = tmp_path / "cwl"
+    shutil.copytree(CWL, work)
+    data = subprocess.run(["axiscope", "simulate", "--out", str(work / "data"), "--quiet"], env=env,
+                          capture_output=True, text=True, timeout=300, check=False)
+    assert data.returncode == 0, data.stderr
+    run = subprocess.run([*cwltool, "--outdir", str(work / "out"), "pipeline.cwl", "job.yml"], cwd=work, env=env,
+                         capture_output=True, text=True, timeout=600, check=False)
+    assert run.returncode == 0, run.stderr[-3000:]
+    outputs = json.loads(run.stdout)
+    fit_dir = Path(outputs["fit_result"]["path"])
+    score_dir = Path(outputs["score_result"]["path"])
+
+    typed = tmp_path / "typed"
+    direct = subprocess.run(["axiscope", "fit", str(work / "data" / "reference.zarr"), "--out", str(typed), "--quiet",
+                             "--components", "5", "--counts-per", "1e6", "--log"], env=env, capture_output=True,
+                            text=True, timeout=300, check=False)
+    assert direct.returncode == 0, direct.stderr
+    for name in ("components.tsv", "sample_scores.tsv", "feature_loadings.tsv"):
+        assert (fit_dir / name).read_bytes() == (typed / name).read_bytes(), name
+    manifest = json.loads((score_dir / "manifest.json").read_text())
+    assert manifest["reference_check"]["same_file"] is True
+    assert manifest["counts"]["samples"] == len(pd.read_csv(score_dir / "diagnostics.tsv", sep="\t"))
