@@ -153,3 +153,62 @@ def test_cwl_descriptions_are_valid_and_the_pipeline_runs(tmp_path):
     manifest = json.loads((score_dir / "manifest.json").read_text())
     assert manifest["reference_check"]["same_file"] is True
     assert manifest["counts"]["samples"] == len(pd.read_csv(score_dir / "diagnostics.tsv", sep="\t"))
+
+
+# ---------------------------------------------------------------------------- Nextflow
+
+NEXTFLOW = WORKFLOWS / "nextflow"
+
+
+def _options_used(script: str, command: str) -> set[str]:
+    import re
+
+    found = set()
+    for match in re.finditer(rf"axiscope {command}\b(.*?)(?:\"\"\"|\n\s*\n)", script, flags=re.S):
+        found |= set(re.findall(r"(?<![\w-])(--[a-z][a-z-]*)", match[1]))
+    return found
+
+
+@pytest.mark.parametrize("command", ["fit", "score"])
+def test_nextflow_module_passes_only_options_that_exist(command):
+    """Where Nextflow cannot run, the module's command lines are checked against the parser."""
+    from typer.main import get_command
+
+    from axiscope.cli import app
+
+    script = (NEXTFLOW / "modules" / "axiscope.nf").read_text(encoding="utf-8")
+    used = _options_used(script, command)
+    assert "--config" in used and "--out" in used
+    parser = get_command(app).get_command(None, command)
+    known = {opt for p in parser.params for opt in (*p.opts, *getattr(p, "secondary_opts", ()))}
+    assert used <= known, used - known
+
+
+@pytest.mark.parametrize("folder", ["snakemake", "cwl", "nextflow"])
+def test_every_workflow_settings_file_is_valid_for_its_commands(folder):
+    from typer.main import get_command
+
+    from axiscope.cli import app
+    from axiscope.cli._config import defaults_from_config, read_config_file
+
+    group = get_command(app)
+    path = WORKFLOWS / folder / "axiscope.toml"
+    loaded = read_config_file(path)
+    assert set(loaded) <= set(group.commands)
+    for name in loaded:
+        defaults = defaults_from_config(loaded, group.get_command(None, name), name, set(group.commands), path)
+        assert defaults, name
+
+
+@pytest.mark.skipif(shutil.which("nextflow") is None, reason="nextflow (and Java) are not installed here")
+def test_nextflow_example_runs(tmp_path):
+    env = dict(os.environ, OPENBLAS_NUM_THREADS="1")
+    env["PATH"] = os.path.dirname(sys.executable) + os.pathsep + env.get("PATH", "")
+    work = tmp_path / "nextflow"
+    shutil.copytree(NEXTFLOW, work)
+    assert subprocess.run(["axiscope", "simulate", "--out", str(work / "data"), "--quiet"], env=env,
+                          timeout=300).returncode == 0
+    run = subprocess.run(["nextflow", "run", "main.nf"], cwd=work, env=env, capture_output=True, text=True,
+                         timeout=900, check=False)
+    assert run.returncode == 0, run.stdout[-3000:] + run.stderr[-3000:]
+    assert (work / "results" / "axiscope_score" / "score" / "diagnostics.tsv").is_file()
