@@ -109,12 +109,17 @@ def with_shared_options(command: Any, command_name: str) -> Any:
     """Add the shared options to ``command`` (once) and wrap its callback to take them out."""
     if command is None or getattr(command, "_axiscope_shared", False) or command.callback is None:
         return command
-    own = {p.name for p in command.params}
-    command.params.extend(p for p in _shared_params() if p.name not in own)
+    own_names = {p.name for p in command.params}
+    own_opts = {opt for p in command.params for opt in (*p.opts, *getattr(p, "secondary_opts", ()))}
+    # a command that declares an option of the same name or spelling keeps its own
+    added = [p for p in _shared_params()
+             if p.name not in own_names and not own_opts & {*p.opts, *getattr(p, "secondary_opts", ())}]
+    command.params.extend(added)
+    taken = {p.name for p in added}
     original: Callable[..., Any] = command.callback
 
     def callback(**kwargs: Any) -> Any:
-        settings = {name: kwargs.pop(name) for name in SHARED if name in kwargs}
+        settings = {name: kwargs.pop(name) for name in SHARED if name in taken}
         return _run(command_name, settings, original, kwargs)
 
     command.callback = callback
