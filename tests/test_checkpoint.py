@@ -116,6 +116,28 @@ def test_a_checkpoint_of_other_options_or_input_is_refused(blocked_zarr, tmp_pat
     assert not out.exists() and (ckpt / "fit-state.npz").is_file()  # the saved state is kept
 
 
+def test_a_changed_input_is_refused_by_its_statistics(tmp_path, capsys, monkeypatch):
+    """Even when the identity of the input looks the same (here: the hash of the identity is
+    made blind), statistics computed again that differ from the saved ones refuse the state."""
+    import axiscope
+    from axiscope.fitting import run
+    from conftest import make_planted
+
+    path, ckpt = tmp_path / "x.npy", tmp_path / "ckpt"
+    X = make_planted(200, 60, rank=3, seed=2).X
+    np.save(path, X)
+    settings = axiscope.EngineSettings(method="randomized", power_iterations=3)
+    axiscope.fit(path, n_components=2, engine=settings, checkpoint=ckpt)
+    np.save(path, X * 1.5)
+    monkeypatch.setattr(run, "_input_identity", lambda src, checksum: None)  # identity blind on both sides
+    state = np.load(ckpt / "fit-state.npz")
+    meta = json.loads(str(state["_meta"]))
+    meta["fingerprint"]["input"] = {"size": None, "hash": None}
+    np.savez(ckpt / "fit-state.npz", **{**{k: state[k] for k in state.files}, "_meta": np.asarray(json.dumps(meta))})
+    with pytest.raises(axiscope.InputError, match=r"feature statistics \(feature centre\) differ"):
+        axiscope.fit(path, n_components=2, engine=settings, checkpoint=ckpt, resume=True)
+
+
 def test_resume_without_a_checkpoint_folder_is_a_usage_error(blocked_zarr, tmp_path, capsys):
     assert main(["fit", str(blocked_zarr), "--out", str(tmp_path / "o"), "--resume", "-q"]) == 2
     assert "--resume needs the folder of the saved state; pass --checkpoint" in capsys.readouterr().err

@@ -14,9 +14,11 @@ import os
 import subprocess
 import sys
 from pathlib import Path
+from typing import Annotated
 
 import numpy as np
 import pytest
+import typer
 from typer.testing import CliRunner
 
 from axiscope.cli import app
@@ -120,6 +122,7 @@ def test_config_file_gives_the_same_fit_as_the_command_line(small_npy, tmp_path)
                     '[score]\nconfidence = 0.9\n', encoding="utf-8")
     from_toml = tmp_path / "toml"
     assert main(["fit", "--config", str(toml), "--out", str(from_toml), "-q", "--threads", "1"]) == 0
+    pytest.importorskip("yaml")  # YAML files need PyYAML (installed with the test extra's Snakemake)
     yaml_file = tmp_path / "run.yaml"
     yaml_file.write_text("fit:\n  components: 3\n  scale: none\n  seed: 4\n  oversample: 5\n"
                          "  power-iterations: '2'\n  method: randomized\n  threads: 1\n", encoding="utf-8")
@@ -175,6 +178,26 @@ def test_every_command_takes_the_shared_options():
         text = runner.invoke(app, [name, "--help"], terminal_width=200).output
         for option in ("--config", "--log-format", "--verbose", "--debug"):
             assert option in text, (name, option)
+
+
+def test_a_command_s_own_option_of_a_shared_name_is_kept():
+    """A command that declares ``--verbose`` itself keeps it: the shared one is not added, and
+    its value reaches the command's function."""
+    from typer.main import get_command
+
+    from axiscope.cli._session import with_shared_options
+
+    seen = {}
+    local = typer.Typer(add_completion=False)
+
+    @local.command()
+    def count(verbose: Annotated[int, typer.Option("--verbose", help="How much.")] = 0) -> None:
+        seen["verbose"] = verbose
+
+    command = with_shared_options(get_command(local), "count")
+    assert [p.name for p in command.params] == ["verbose", "config", "log_format", "debug"]
+    command.main(["--verbose", "3"], standalone_mode=False)
+    assert seen == {"verbose": 3}
 
 
 # ----------------------------------------------------------------------------------- logging

@@ -9,12 +9,14 @@ features used. The state file is replaced atomically (written beside it, flushed
 then renamed), so a fit killed at any moment, even with SIGKILL, leaves the state of its last
 completed pass or none.
 
-A fit given the same folder with ``resume=True`` checks the fingerprint (another input or
+The feature statistics (centre and inverse scale) are saved with it. A fit given the same
+folder with ``resume=True`` checks the fingerprint (another input or
 other options are refused, naming what differs) and continues after that pass; since the
 state is kept exactly (``.npy`` arrays, float64) and the passes are deterministic, the result
 is the same, byte for byte, as that of an uninterrupted fit. Before continuing, a resumed fit
 reads the input once to compute the feature statistics again and to refill its block cache
-(the cache lives in memory or in a scratch file that dies with the process).
+(the cache lives in memory or in a scratch file that dies with the process); statistics that
+differ from the saved ones, bit for bit, mean the input changed, and the state is refused.
 """
 
 from __future__ import annotations
@@ -108,6 +110,15 @@ class Checkpoint:
         state["scalars"] = meta["scalars"]
         self.resumed_after = int(meta["pass"])
         return state
+
+    def check_statistics(self, statistics: dict) -> None:
+        """The feature statistics computed again must equal the saved ones, bit for bit."""
+        for name, value in statistics.items():
+            saved = self.state.get(name) if self.state is not None else None
+            if saved is not None and not np.array_equal(saved, np.asarray(value)):
+                raise InputError(
+                    f"{self.path}: the input's feature statistics ({name.replace('_', ' ')}) differ from those "
+                    "saved with the checkpoint: the input changed since; leave out resume=True to start afresh")
 
     def save(self, state: dict) -> None:
         """Replace the saved state by ``state`` (arrays, plus JSON-able ``scalars``), atomically."""

@@ -461,9 +461,19 @@ def _factorise(method: str, op: _Operand, job: _Job, n: int, rng, runner, plan: 
         op.later, op.mean, op.inverse_scale, n_components=job.k, oversample=eng.oversample,
         power_iterations=eng.power_iterations, tol=eng.tol, rng=rng, start=start,
         fill=op.fill, runner=runner, source=op.later_source, max_basis=plan.max_basis,
-        sketch_from=op.first, on_pass=None if checkpoint is None else checkpoint.save,
-        resume_from=None if checkpoint is None else checkpoint.state,
+        sketch_from=op.first, **_checkpoint_hooks(checkpoint, op),
     )
+
+
+def _checkpoint_hooks(checkpoint, op: _Operand) -> dict:
+    """The engine's ``on_pass`` / ``resume_from``: the state saved with the feature statistics,
+    which a resumed fit (having computed them again) checks before it continues."""
+    if checkpoint is None:
+        return {}
+    statistics = {"feature_centre": op.mean, "feature_inverse_scale": op.inverse_scale}
+    if checkpoint.state is not None:
+        checkpoint.check_statistics(statistics)
+    return {"on_pass": lambda state: checkpoint.save({**state, **statistics}), "resume_from": checkpoint.state}
 
 
 def _check_numerical_rank(fac: Factorization, k: int, dtype, n: int, p: int) -> None:
