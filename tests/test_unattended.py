@@ -220,6 +220,7 @@ def test_json_log_has_one_object_per_pass(small_npy, tmp_path):
     assert [r["stage"] for r in passes] == [d["name"] for d in detail]
     assert [r["pass"] for r in passes] == list(range(1, len(detail) + 1))
     assert all(r["command"] == "fit" and r["seconds"] >= 0 and r["level"] == "info" for r in passes)
+    assert records[-1]["stage"] == "done" and records[-1]["seconds"] >= sum(r["seconds"] for r in passes)
     assert done.stdout.startswith("fitted 2 components")
 
 
@@ -227,7 +228,8 @@ def test_verbose_adds_pass_lines_and_quiet_keeps_only_warnings(small_npy, tmp_pa
     assert main(_fit(small_npy, tmp_path / "a", "-k", "2", "--method", "randomized", "--verbose")) == 0
     captured = capsys.readouterr()
     lines = captured.err.strip().splitlines()
-    assert lines and all(line.startswith("info: pass ") for line in lines), lines
+    assert lines[-1].startswith("info: fit done in ") and len(lines) > 1, lines
+    assert all(line.startswith("info: pass ") for line in lines[:-1]), lines
     assert main(_fit(small_npy, tmp_path / "b", "-k", "2", "--method", "randomized", "-q")) == 0
     captured = capsys.readouterr()
     assert captured.err == "" and captured.out == ""

@@ -136,7 +136,11 @@ def _run(command_name: str, settings: dict, original: Callable[..., Any], kwargs
     session.started = time.perf_counter()
     configuration = resolved_configuration(session.ctx, session.config) if session.ctx is not None else None
     with _manifest_record(configuration):
-        return original(**kwargs)
+        result = original(**kwargs)
+    seconds = time.perf_counter() - session.started
+    logging.getLogger("axiscope.cli").info("%s done in %.2f s", command_name, seconds,
+                                           extra={"stage": "done", "seconds": round(seconds, 3)})
+    return result
 
 
 @contextlib.contextmanager
