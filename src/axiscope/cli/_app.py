@@ -17,6 +17,7 @@ import typer
 from typer.core import TyperGroup
 
 from ..errors import AxiscopeError
+from ._session import EXIT_CODES, configure_logging, session, with_shared_options
 
 __all__ = ["app", "main", "fail", "Terminated", "signal_handlers", "RESOURCE_EXIT", "say", "setup_logging", "progress_display", "user_errors",
            "to_option_spellings", "COMMAND_ORDER"]
@@ -45,6 +46,10 @@ class _CommandList(TyperGroup):
 
         return sorted(names, key=position)
 
+    def get_command(self, ctx: Any, cmd_name: str) -> Any:
+        # every command gets the shared options (--config, --log-format, --verbose, --debug)
+        return with_shared_options(super().get_command(ctx, cmd_name), cmd_name)
+
     def format_commands(self, ctx: Any, formatter: Any) -> None:
         # A command's short_help, or its help up to the end of the first sentence; never
         # cut to the terminal width with "...": long lines are wrapped instead.
@@ -58,10 +63,14 @@ class _CommandList(TyperGroup):
                 formatter.write_dl(rows)
 
 
+#: The exit codes, at the end of ``axiscope --help`` (``\b``: lines kept as written).
+EPILOG = "\b\nExit codes:\n" + "\n".join(f"  {code:>3}  {meaning}" for code, meaning in EXIT_CODES)
+
 app = typer.Typer(
     name="axiscope",
     cls=_CommandList,
     help=_HELP,
+    epilog=EPILOG,
     no_args_is_help=True,
     add_completion=False,
     pretty_exceptions_enable=False,
@@ -239,14 +248,12 @@ class _OneLine(logging.Formatter):
 
 
 def setup_logging(quiet: bool) -> None:
-    """Send the library's warnings to standard error, one line each, in option spellings."""
-    logger = logging.getLogger("axiscope")
-    logger.handlers.clear()
-    handler = logging.StreamHandler(sys.stderr)
-    handler.setFormatter(_OneLine())
-    logger.addHandler(handler)
-    logger.setLevel(logging.WARNING)
-    logger.propagate = False
+    """Send the library's warnings to standard error, one line each, in option spellings.
+
+    ``--verbose`` adds the progress notes (each pass over the data); ``--log-format json``
+    writes one JSON object per line instead (see :mod:`axiscope.cli._session`).
+    """
+    configure_logging(quiet, _OneLine(), lambda message: to_option_spellings(message, dict(_running)))
 
 
 def say(message: str, quiet: bool) -> None:
@@ -323,5 +330,24 @@ def main(argv: list[str] | None = None) -> int:
             message = " ".join(exc.format_message().split())
             typer.echo(f"error: {message} (see '{where} --help')", err=True)
             return int(exc.exit_code)
-        raise
+        return internal_error(exc, debug=session.debug or "--debug" in (sys.argv[1:] if argv is None else argv))
+    finally:
+        session.reset()
     return result if isinstance(result, int) else 0
+
+
+#: Exit code of an internal error (a bug of axiscope, not of the input).
+INTERNAL_EXIT = 1
+
+
+def internal_error(exc: BaseException, *, debug: bool) -> int:
+    """One line naming the error and the way to see more (``--debug``: the whole traceback)."""
+    if debug:
+        import traceback
+
+        traceback.print_exception(exc, file=sys.stderr)
+    what = " ".join(f"{type(exc).__name__}: {exc}".split())
+    hint = "the traceback is above; please report it" if debug else \
+        "rerun with --debug for a traceback, and please report it"
+    typer.echo(f"error: internal error ({what}); {hint}", err=True)
+    return INTERNAL_EXIT

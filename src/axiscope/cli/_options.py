@@ -31,6 +31,11 @@ class Method(str, Enum):
     exact = "exact"
 
 
+class Checksum(str, Enum):
+    sampled = "sampled"
+    full = "full"
+
+
 class TableFormat(str, Enum):
     tsv = "tsv"
     parquet = "parquet"
@@ -69,3 +74,6 @@ AllowMissingChunks = Annotated[bool, typer.Option(
     "--allow-missing-chunks", show_default="off",
     help="Zarr and HDF5: read chunks that were never written as the array's fill value (their number is "
          "reported); otherwise a missing chunk is an error.")]
+ChecksumOpt = Annotated[Checksum, typer.Option(
+    help="How the input's identity (size, modification time, hash) is recorded in the manifest and the model: "
+         "sampled (a fast hash of sampled pieces) or full (a hash of every byte).")]

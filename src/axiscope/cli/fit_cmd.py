@@ -14,6 +14,8 @@ from ._app import app, progress_display, say, setup_logging, user_errors
 from ._options import (
     AllowExternalData,
     AllowMissingChunks,
+    Checksum,
+    ChecksumOpt,
     Dataset,
     FeatureIds,
     FormatOpt,
@@ -162,6 +164,15 @@ def fit_command(
         "--report", help="Also draw the figures (figures/) and write report.html into --out: one "
                          "self-contained page with the maps, the axis cards and the warnings (see 'axiscope "
                          "figures' and 'axiscope report').")] = False,
+    checksum: ChecksumOpt = Checksum.sampled,
+    checkpoint: Annotated[Path | None, typer.Option(
+        metavar="DIR",
+        help="Keep the iteration's state in DIR after each completed pass over the data (written atomically), "
+             "so that --resume can continue a killed fit; removed once the results are written.")] = None,
+    resume: Annotated[bool, typer.Option(
+        "--resume", show_default="off",
+        help="Continue from the state in --checkpoint when there is one (a state of other inputs or options "
+             "is refused); the results are byte for byte those of an uninterrupted fit.")] = False,
     overwrite: Overwrite = False,
     wait: Wait = False,
     quiet: Quiet = False,
@@ -204,6 +215,7 @@ def fit_command(
             )
             with progress_display(quiet) as progress:
                 signal = None
+                unattended = dict(checksum=checksum.value, checkpoint=checkpoint, resume=resume)
                 if components == "auto" or assess_signal:
                     from ..decide.signal import fit_with_signal
 
@@ -214,11 +226,12 @@ def fit_command(
                     result, signal = fit_with_signal(
                         src, n_components=components, max_components=max_components, permutations=permutations,
                         preprocess=spec, engine=engine, resources=resources, active=prepared.active,
-                        exclude_features=prepared.exclude, progress=progress)
+                        exclude_features=prepared.exclude, progress=progress, **unattended)
                 else:
                     result = fit(src, n_components=components, preprocess=spec, engine=engine,
                                  resources=resources, active=prepared.active,
-                                 exclude_features=prepared.exclude, progress=progress, covariates=covariates)
+                                 exclude_features=prepared.exclude, progress=progress, covariates=covariates,
+                                 **unattended)
                 cards = explain_fit(prepared, result, src, top=top, memory_limit=memory_limit,
                                     threads=threads, progress=progress)
         with atomic_directory(out, overwrite=overwrite) as tmp:
@@ -232,6 +245,10 @@ def fit_command(
 
                 write_figures(tmp, annotations=annotations, id_column=id_column)
                 build_report(tmp, annotations=annotations, id_column=id_column)
+        if checkpoint is not None:  # the results are in place: the saved state is no longer needed
+            from ..core.checkpoint import Checkpoint
+
+            Checkpoint(checkpoint, {}).clear()
     print_fit_summary(result, out, quiet)
     print_axis_readings(cards, quiet)
     if report:

@@ -84,6 +84,10 @@ def score_command(
         help="Tab-separated annotations of the new samples (matched by --id-column); required when the "
              "model was fitted with --adjust-for: each sample is adjusted with its own values.")] = None,
     id_column: Annotated[str, typer.Option("--id-column", help="Annotation column holding the sample ids.")] = "sample_id",
+    reference: Annotated[Path | None, typer.Option(
+        metavar="FILE",
+        help="The matrix the model is expected to have been fitted on: a warning when the model's recorded "
+             "training input (size and hash) is another file.")] = None,
     memory_limit: MemoryLimit = None,
     threads: Threads = None,
     overwrite: Overwrite = False,
@@ -111,6 +115,7 @@ def score_command(
                 sample_ids=sample_ids, feature_ids=feature_ids, samples_in=samples_in.value,
                 allow_external_data=allow_external_data, allow_missing_chunks=allow_missing_chunks,
                 covariates=None if covariates is None else Covariates(covariates, id_column=id_column),
+                reference=reference,
             )
         with atomic_directory(out, overwrite=overwrite) as tmp:
             result.write(tmp, parquet=format is TableFormat.parquet, command_line=sys.argv)

@@ -269,6 +269,8 @@ def randomized_factorization(
     max_basis: int | None = None,
     sketch_from: da.Array | None = None,
     adjust: "Residualizer | None" = None,
+    on_pass=None,
+    resume_from: dict | None = None,
 ) -> Factorization:
     """Leading ``n_components`` singular triplets of ``X̃`` by randomized block Krylov iteration.
 
@@ -304,6 +306,13 @@ def randomized_factorization(
     adjust : Residualizer, optional
         Factorise ``P·X̃`` instead, ``P`` the projection off known covariates
         (:mod:`axiscope.core.adjust`); no extra pass. ``start`` must then be of ``P·X̃`` too.
+    on_pass : callable, optional
+        Called as ``on_pass(state)`` after each completed iteration that is not the last,
+        with everything needed to continue (:func:`_iteration_state`): the checkpoint hook.
+    resume_from : dict, optional
+        A state given to ``on_pass`` by an earlier run of the same inputs and options: the
+        iterations continue after it (the first pass then reads ``sketch_from`` when given,
+        which refills its cache) and give the same result as an uninterrupted run.
 
     Returns
     -------
@@ -334,17 +343,22 @@ def randomized_factorization(
     k = n_components
     l = min(k + oversample, min(n, p))
     op = _Operator(X, np.asarray(mean, float), np.asarray(inverse_scale, float), fill, runner, source, adjust)
-    Q = _first_block(op, start, rng, l, sketch_from)
-    probes = rng.standard_normal((p, N_PROBES))
-    basis = _KrylovBasis.empty(n, p, max(2 * l, max_basis or 8 * l))
     watch = _Convergence(k, tol, auto=power_iterations == "auto")
     n_pass = MAX_AUTO_ITERATIONS + 1 if watch.auto else int(power_iterations) + 1
-    row_norms = Yp = None
-    done = 0
-    for i in range(n_pass):
+    if resume_from is None:
+        Q = _first_block(op, start, rng, l, sketch_from)
+        probes = rng.standard_normal((p, N_PROBES))
+        basis = _KrylovBasis.empty(n, p, max(2 * l, max_basis or 8 * l))
+        row_norms = Yp = None
+        done = first_i = 0
+    else:
+        Q, probes, basis, row_norms, Yp, done, first_i = _restore_state(resume_from, watch, rng)
+    for i in range(first_i, n_pass):
         first = i == 0
-        Y, Z, norms = op.apply(np.hstack([Q, probes]) if first else Q, gram=Q.shape[1], norms=first,
-                               name=f"iteration {i + 1}")
+        reader = op if i > first_i or resume_from is None or sketch_from is None else _Operator(
+            sketch_from, op.mean, op.d, op.fill, op.runner, "input", op.adjust)  # refills the cache on resume
+        Y, Z, norms = reader.apply(np.hstack([Q, probes]) if first else Q, gram=Q.shape[1], norms=first,
+                                   name=f"iteration {i + 1}")
         done += 1
         if first:
             row_norms, Yp, Y = norms, Y[:, l:], Y[:, :l]
@@ -363,6 +377,8 @@ def randomized_factorization(
             watch.converged = True
             break
         basis.restart_if_full(W, l)
+        if on_pass is not None:
+            on_pass(_iteration_state(i + 1, done, Q, probes, basis, row_norms, Yp, watch, rng))
 
     components = basis.K @ W[:, :k]
     scores = basis.B @ W[:, :k]
@@ -391,6 +407,30 @@ def randomized_factorization(
         ritz_history=[h.tolist() for h in watch.history],
         accuracy=accuracy,
     )
+
+
+def _iteration_state(next_i, done, Q, probes, basis, row_norms, Yp, watch, rng) -> dict:
+    """Everything the iteration needs to continue at iteration ``next_i`` (arrays kept exactly)."""
+    return {
+        "Q": Q, "probes": probes, "K": basis.K, "B": basis.B, "AK": basis.AK,
+        "row_norms": row_norms, "Yp": Yp,
+        "history": np.array(watch.history, dtype=float),
+        "convergence": np.array([watch.change, watch.estimate, watch.worst_residual], dtype=float),
+        "scalars": {"next_iteration": next_i, "passes_done": done, "max_width": basis.max_width,
+                    "converged": bool(watch.converged), "rng_state": rng.bit_generator.state},
+    }
+
+
+def _restore_state(state: dict, watch: "_Convergence", rng: np.random.Generator):
+    """The inverse of :func:`_iteration_state`: set ``watch`` and ``rng``, return the rest."""
+    scalars = state["scalars"]
+    basis = _KrylovBasis(state["K"], state["B"], state["AK"], int(scalars["max_width"]))
+    watch.history = [row.copy() for row in state["history"]]
+    watch.change, watch.estimate, watch.worst_residual = (float(v) for v in state["convergence"])
+    watch.converged = bool(scalars["converged"])
+    rng.bit_generator.state = scalars["rng_state"]
+    return (state["Q"], state["probes"], basis, state["row_norms"], state["Yp"], int(scalars["passes_done"]),
+            int(scalars["next_iteration"]))
 
 
 def _first_block(op: "_Operator", start: np.ndarray | None, rng: np.random.Generator, l: int,

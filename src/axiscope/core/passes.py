@@ -8,6 +8,7 @@ the number of threads.
 
 from __future__ import annotations
 
+import logging
 import time
 from collections import deque
 from collections.abc import Callable
@@ -22,6 +23,8 @@ import numpy as np
 
 __all__ = ["PassRecord", "PassRunner", "array_from_blocks", "blas_threads"]
 
+logger = logging.getLogger(__name__)
+
 Progress = Callable[[str, int, int], None]
 
 
@@ -33,6 +36,14 @@ class PassRecord:
     source: str
     seconds: float
     n_blocks: int
+
+
+def _log_pass(number: int, record: PassRecord) -> None:
+    """A progress note per pass (shown with ``--verbose``; a JSON line with ``--log-format json``)."""
+    logger.info("pass %d (%s) read from %s: %d blocks in %.2f s", number, record.name, record.source,
+                record.n_blocks, record.seconds,
+                extra={"stage": record.name, "pass_number": number, "seconds": round(record.seconds, 3),
+                       "read_from": record.source, "blocks": record.n_blocks})
 
 
 @dataclass
@@ -91,6 +102,7 @@ class PassRunner:
         else:
             self._run_windowed(name, blocks, starts, task, fold, args)
         self.records.append(PassRecord(name, source, time.perf_counter() - t0, n))
+        _log_pass(self.n_passes, self.records[-1])
 
     def _run_pipelined(self, name, blocks, starts, task, fold, args) -> None:
         """Blocks in order on a pool of threads, at most ``2·threads`` in flight, folded in order.

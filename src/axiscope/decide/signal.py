@@ -533,6 +533,7 @@ def fit_with_signal(
     active: np.ndarray | None = None,
     exclude_features: np.ndarray | None = None,
     progress=None,
+    **fit_options,
 ) -> tuple[FitResult, SignalAxes]:
     """Fit, assess the number of axes, and with ``n_components="auto"`` keep the recommended number.
 
@@ -549,6 +550,8 @@ def fit_with_signal(
         See :func:`assess_signal`.
     preprocess, engine, resources, layout, active, exclude_features, progress
         As for :func:`axiscope.fitting.run.fit`.
+    **fit_options
+        Passed on to :func:`axiscope.fitting.run.fit` (``checksum``, ``checkpoint``, ``resume``).
 
     Returns
     -------
@@ -591,7 +594,7 @@ def fit_with_signal(
         else:
             k = int(n_components)
         result = fit(src, n_components=k, preprocess=preprocess, engine=engine, resources=resources,
-                     active=active, exclude_features=exclude_features, progress=progress)
+                     active=active, exclude_features=exclude_features, progress=progress, **fit_options)
         signal = assess_signal(result, src, active=active, permutations=permutations, quantile=quantile,
                                max_samples=max_samples, memory_limit=resources.memory_limit, seed=engine.seed,
                                progress=progress)

@@ -66,6 +66,9 @@ def fit(
     exclude_features: np.ndarray | None = None,
     progress: Progress | None = None,
     covariates: Covariates | None = None,
+    checksum: str = "sampled",
+    checkpoint: str | os.PathLike | None = None,
+    resume: bool = False,
 ) -> FitResult:
     """Principal component analysis of a matrix on disk, out of core.
 
@@ -99,6 +102,16 @@ def fit(
         levels but the first). The scales are those before adjustment. No extra pass and no
         corrected copy (:mod:`axiscope.core.adjust`); variances, variance ratios and sample
         distances are those of the adjusted matrix, and the model keeps what scoring needs.
+    checksum : {"sampled", "full"}, default="sampled"
+        How the input's identity, recorded in the manifest and the model, is hashed
+        (:func:`axiscope.io.identity.file_identity`).
+    checkpoint : path, optional
+        Folder where the randomized iteration's state is kept after each completed pass
+        (:class:`axiscope.core.checkpoint.Checkpoint`).
+    resume : bool, default=False
+        Continue from the state in ``checkpoint``, when there is one of the same inputs
+        and options (another is refused); the result is byte for byte that of an
+        uninterrupted fit.
 
     Returns
     -------
@@ -133,7 +146,10 @@ def fit(
     if isinstance(source, MatrixSource) and not layout.is_default:
         raise OptionError("layout describes a file, but source is an opened MatrixSource; pass the "
                           "file's path instead, or leave layout out")
-    job = _Job(int(n_components), preprocess, engine, resources, progress, t_start)
+    if resume and checkpoint is None:
+        raise OptionError("resume=True needs the folder of the saved state; pass checkpoint=...")
+    job = _Job(int(n_components), preprocess, engine, resources, progress, t_start, checksum,
+               None if checkpoint is None else Path(checkpoint), bool(resume))
     with opened(source, **layout.open_options()) as src, blas_threads(resources.n_threads):
         return _fit(src, job, active, exclude_features, covariates)
 
@@ -167,6 +183,9 @@ class _Job:
     resources: Resources
     progress: Progress | None
     t_start: float
+    checksum: str = "sampled"
+    checkpoint: Path | None = None
+    resume: bool = False
 
 
 def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None) -> FitResult:
@@ -183,6 +202,8 @@ def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None) -> FitR
                     resources=job.resources)
     method = _choose_method(job.engine.method, n, src.shape[1], job.spec, plan.budget - plan.baseline)
     runner = PassRunner(threads=plan.threads, progress=job.progress)
+    identity = _input_identity(src, job.checksum)
+    checkpoint = _checkpoint(job, identity, plan, active, exclude, method, adjust)
     rng = job.engine.generator()
     reader = _Reader(src, job.spec, active, plan.block_rows)
     if method == "one-pass":
@@ -190,7 +211,8 @@ def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None) -> FitR
             raise OptionError("a one-pass fit cannot adjust for covariates; drop either the adjustment "
                               "or the one-pass mode")
         stats, prep, fac = _one_pass(src, job, reader, exclude, n, rng, runner)
-        return _result(src, job, active, n, prep, stats, fac, plan, runner, filtered=False)
+        return _result(src, job, active, n, prep, stats, fac, plan, runner, filtered=False, identity=identity,
+                       checkpoint=checkpoint)
     filtered = job.spec.has_filter or exclude is not None
     with _Caches(plan, job.resources) as caches:
         first_cache = None if filtered else caches.new(n, src.shape[1], src.dtype)
@@ -209,13 +231,13 @@ def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None) -> FitR
             residualizer = adjust.residualizer(operand.inverse_scale, operand.columns)
             if sketch is not None:
                 sketch = adjust.adjusted_sketch(sketch, omega)
-        fac = _factorise(method, operand, job, n, rng, runner, plan, sketch, residualizer)
+        fac = _factorise(method, operand, job, n, rng, runner, plan, sketch, residualizer, checkpoint)
     return _result(src, job, active, n, prep, stats, fac, plan, runner, filtered=operand.columns is not None,
-                   adjust=adjust, residualizer=residualizer)
+                   identity=identity, checkpoint=checkpoint, adjust=adjust, residualizer=residualizer)
 
 
-def _result(src, job, active, n, prep, stats, fac, plan, runner, *, filtered: bool,
-            adjust: Adjustment | None = None, residualizer: Residualizer | None = None) -> FitResult:
+def _result(src, job, active, n, prep, stats, fac, plan, runner, *, filtered: bool, identity: dict,
+            checkpoint=None, adjust: Adjustment | None = None, residualizer: Residualizer | None = None) -> FitResult:
     """The model, the manifest and the tables of a finished factorisation."""
     _check_numerical_rank(fac, job.k, src.dtype, n, int(prep.kept.shape[0]))
     model = _model(src, job.spec, prep, stats, fac, n, filtered)
@@ -224,6 +246,9 @@ def _result(src, job, active, n, prep, stats, fac, plan, runner, *, filtered: bo
     manifest = _manifest(src, job, n, prep, stats, fac, plan, runner)
     if adjust is not None:
         manifest["adjusted_for"] = adjust.design.to_dict(adjust.rank)
+    model.info["training_input"] = manifest["input"]["identity"] = identity
+    if checkpoint is not None:
+        manifest["checkpoint"] = checkpoint.record()
     return FitResult(
         model=model,
         sample_ids=np.asarray(src.sample_ids)[active],
@@ -462,8 +487,36 @@ class _Operand:
         return cls(columns, mean, d, fill, first, later, source)
 
 
+def _input_identity(src: MatrixSource, checksum: str) -> dict | None:
+    """Size, modification time and hash of the input file (None for an in-memory array)."""
+    from ..io.identity import file_identity
+
+    if src.format == "array" or src.path is None or not Path(src.path).exists():
+        return None
+    return file_identity(src.path, checksum=checksum)
+
+
+def _checkpoint(job: _Job, identity, plan: BlockPlan, active, exclude, method: str, adjust=None):
+    """The fit's checkpoint (None without ``checkpoint``), keyed by what determines the result."""
+    if job.checkpoint is None:
+        return None
+    from ..core.checkpoint import Checkpoint, fingerprint_of
+
+    fingerprint = fingerprint_of(
+        input={"size": None if identity is None else identity["size"],
+               "hash": None if identity is None else identity["hash"]},
+        n_components=job.k, preprocessing=job.spec.to_dict(), engine=job.engine.to_dict(), method=method,
+        block_rows=plan.block_rows, max_basis=plan.max_basis, active_samples=active,
+        excluded_features=exclude,
+        covariates=None if adjust is None else adjust.basis,
+    )
+    checkpoint = Checkpoint(job.checkpoint, fingerprint, resume=job.resume)
+    checkpoint.state = checkpoint.load()  # refused now, before any pass, when it is another fit's
+    return checkpoint
+
+
 def _factorise(method: str, op: _Operand, job: _Job, n: int, rng, runner, plan: BlockPlan,
-               sketch, adjust: Residualizer | None = None) -> Factorization:
+               sketch, adjust: Residualizer | None = None, checkpoint=None) -> Factorization:
     """LAPACK on the dense matrix, or randomized block Krylov iterations on the blocks."""
     if method == "exact":
         return exact_factorization(op.first if op.first is not None else op.later, op.mean,
@@ -478,8 +531,19 @@ def _factorise(method: str, op: _Operand, job: _Job, n: int, rng, runner, plan: 
         op.later, op.mean, op.inverse_scale, n_components=job.k, oversample=eng.oversample,
         power_iterations=eng.power_iterations, tol=eng.tol, rng=rng, start=start,
         fill=op.fill, runner=runner, source=op.later_source, max_basis=plan.max_basis,
-        sketch_from=op.first, adjust=adjust,
+        sketch_from=op.first, adjust=adjust, **_checkpoint_hooks(checkpoint, op),
     )
+
+
+def _checkpoint_hooks(checkpoint, op: _Operand) -> dict:
+    """The engine's ``on_pass`` / ``resume_from``: the state saved with the feature statistics,
+    which a resumed fit (having computed them again) checks before it continues."""
+    if checkpoint is None:
+        return {}
+    statistics = {"feature_centre": op.mean, "feature_inverse_scale": op.inverse_scale}
+    if checkpoint.state is not None:
+        checkpoint.check_statistics(statistics)
+    return {"on_pass": lambda state: checkpoint.save({**state, **statistics}), "resume_from": checkpoint.state}
 
 
 def _check_numerical_rank(fac: Factorization, k: int, dtype, n: int, p: int) -> None:

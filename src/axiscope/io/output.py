@@ -337,6 +337,7 @@ def atomic_directory(out: Path, *, overwrite: bool = False, wait: bool = False) 
         tmp = owned_temporary_folder(Path(os.path.abspath(out)).parent, f".{out.name}.tmp-")
         try:
             yield tmp
+            _add_to_manifest(tmp)
             with _signals_held():
                 if out.exists():
                     old = out.with_name(f".{out.name}.old-{owner_tag()}-x")
@@ -357,6 +358,35 @@ def atomic_directory(out: Path, *, overwrite: bool = False, wait: bool = False) 
             raise
     finally:
         release_target(out)
+
+
+#: Records added to the manifest of every output folder written while they are set
+#: (:func:`manifest_additions`): the command line records its resolved configuration here.
+_MANIFEST_ADDITIONS: dict = {}
+
+
+@contextlib.contextmanager
+def manifest_additions(**records) -> Iterator[None]:
+    """Within this context, ``manifest.json`` of each folder written by :func:`atomic_directory`
+    gets ``records`` as top-level keys (added just before the folder is moved into place)."""
+    saved = dict(_MANIFEST_ADDITIONS)
+    _MANIFEST_ADDITIONS.update(records)
+    try:
+        yield
+    finally:
+        _MANIFEST_ADDITIONS.clear()
+        _MANIFEST_ADDITIONS.update(saved)
+
+
+def _add_to_manifest(folder: Path) -> None:
+    import json
+
+    path = Path(folder) / "manifest.json"
+    if not _MANIFEST_ADDITIONS or not path.is_file():
+        return
+    manifest = json.loads(path.read_text(encoding="utf-8"))
+    manifest.update(_MANIFEST_ADDITIONS)
+    write_json(manifest, path)
 
 
 def write_table(df: pd.DataFrame, path: Path, *, parquet: bool = False, header: Sequence[str] = ()) -> None:

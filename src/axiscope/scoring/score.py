@@ -340,6 +340,24 @@ def _fill_option(fill_missing) -> bool:
     raise OptionError(f"fill_missing={fill_missing!r} is not supported; use 'mean' or leave it out")
 
 
+def _check_reference(model: Model, reference) -> dict | None:
+    """Whether ``reference`` is the model's recorded training input; a warning when it is not."""
+    if reference is None:
+        return None
+    from ..io.identity import compare_identity
+
+    recorded = model.info.get("training_input")
+    if not recorded:
+        logger.warning("the model records no training input (fitted from memory or by an older axiscope); "
+                       "cannot check that it was fitted on %s", reference)
+        return {"reference": str(reference), "same_file": None, "difference": "no training input recorded"}
+    difference = compare_identity(recorded, reference)
+    if difference is not None:
+        logger.warning("the model was fitted on %s, but reference=%s is another file (%s); the axes may "
+                       "not be those of that data", recorded["path"], reference, difference)
+    return {"reference": str(reference), "same_file": difference is None, "difference": difference}
+
+
 def score(
     model: Model | str | os.PathLike,
     source: MatrixSource | str | os.PathLike,
@@ -360,6 +378,7 @@ def score(
     allow_external_data: bool = False,
     allow_missing_chunks: bool = False,
     covariates: Covariates | None = None,
+    reference: str | os.PathLike | None = None,
 ) -> ScoreResult:
     """Score new samples against a saved model and flag those the model does not describe.
 
@@ -403,6 +422,10 @@ def score(
         for covariates (``Covariates(table)``; the columns are the model's): each sample is
         adjusted with its own values. A sample without a row or a value, or with a level
         never seen in training, is an error naming it.
+    reference : path, optional
+        The matrix the model should have been fitted on. A warning is logged when the
+        model's recorded training input (:func:`axiscope.io.identity.file_identity`) is
+        another file, or when the model records none; the manifest keeps the outcome.
 
     Returns
     -------
@@ -438,6 +461,7 @@ def score(
     elif design is not None and covariates is None:
         raise InputError(f"the model was fitted after adjusting for {', '.join(map(repr, design.columns))}; "
                          "pass covariates=FILE holding these columns for the new samples")
+    reference_check = _check_reference(model, reference)
     levels = sorted({float(confidence), SECONDARY_CONFIDENCE}, reverse=True)
     factor = np.ones(model.n_components)
     if correct_shrinkage:
@@ -507,7 +531,9 @@ def score(
             "n_features": model.n_features,
             "n_training_samples": model.n_samples,
             **({"adjusted_for": design.to_dict()} if design is not None else {}),
+            "training_input": model.info.get("training_input"),
         },
+        "reference_check": reference_check,
         "input": input_info,
         "options": {
             "fill_missing": "mean" if fill else None,
