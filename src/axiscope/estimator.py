@@ -149,11 +149,12 @@ class AxiscopePCA(TransformerMixin, BaseEstimator):
         tags = super().__sklearn_tags__()
         tags.input_tags.allow_nan = self.missing == "mean"
         tags.transformer_tags.preserves_dtype = ["float64"]
+        tags.input_tags.sparse = True  # scipy.sparse: never densified by the fit (io/sparse.py)
         return tags
 
     def _validate(self, X, *, reset: bool) -> np.ndarray:
         return validate_data(
-            self, X, reset=reset, dtype=[np.float64, np.float32],
+            self, X, reset=reset, dtype=[np.float64, np.float32], accept_sparse=["csr", "csc"],
             ensure_all_finite="allow-nan" if self.missing == "mean" else True,
             ensure_min_samples=2, ensure_min_features=2,
         )
@@ -243,11 +244,11 @@ class AxiscopePCA(TransformerMixin, BaseEstimator):
         from .model.project import project
 
         check_is_fitted(self)
-        X = validate_data(self, X, reset=False, dtype=[np.float64, np.float32],
+        X = validate_data(self, X, reset=False, dtype=[np.float64, np.float32], accept_sparse=["csr", "csc"],
                           ensure_all_finite="allow-nan" if self.model_.spec.missing == "mean" else True)
         m = X.shape[0]
         if m == 1:  # readers need two samples; project the sample twice
-            X = np.repeat(X, 2, axis=0)
+            X = X[[0, 0]]
         source = array_source(X, feature_ids=self.feature_ids_, name="<array>")
         try:
             projection = project(self.model_, source, memory_limit=self.memory_limit, threads=self.threads)

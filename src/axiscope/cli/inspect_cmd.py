@@ -17,6 +17,9 @@ from ._options import (
     MemoryLimit,
     SampleIds,
     SamplesIn,
+    CompressedAxis,
+    CompressedAxisOpt,
+    SparseNames,
     SamplesInOpt,
     Threads,
 )
@@ -48,6 +51,8 @@ def inspect_command(
     samples_in: SamplesInOpt = SamplesIn.rows,
     allow_external_data: AllowExternalData = False,
     allow_missing_chunks: AllowMissingChunks = False,
+    sparse_names: SparseNames = "data,indices,indptr,shape",
+    compressed_axis: CompressedAxisOpt = CompressedAxis.auto,
 ) -> None:
     """Show shape, dtype, on-disk chunking, size, ids and the block plan 'axiscope fit' would use.
 
@@ -68,7 +73,8 @@ def inspect_command(
         resources = Resources(memory_limit=memory_limit, threads=threads, scratch=scratch)
         layout = InputLayout(dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
                              samples_in=samples_in.value, allow_external_data=allow_external_data,
-                             allow_missing_chunks=allow_missing_chunks)
+                             allow_missing_chunks=allow_missing_chunks, sparse_names=sparse_names,
+                             compressed_axis=compressed_axis.value)
         with open_matrix(input, **layout.open_options(), scratch=resources.scratch) as src:
             info = describe_source(src)
             plan = plan_fit(src, n_components=n_components, preprocess=spec, engine=engine,

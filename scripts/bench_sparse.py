@@ -1,0 +1,143 @@
+"""Sparse input: axiscope against scikit-learn's sparse PCA paths, side by side in one run.
+
+Writes a planted sparse count matrix (``--samples`` × ``--features`` at ``--density``;
+values 1 + Poisson around a rank-5 rate, float32 values, int32 indices) as CSR in HDF5,
+then runs, each in a child process of its own with its peak resident memory (``VmHWM``):
+
+* ``axiscope fit`` on the HDF5 file (command line, ``--scale none``: covariance PCA, the
+  problem scikit-learn solves; ``--memory-limit``);
+* scikit-learn ``PCA(svd_solver="arpack")`` on the same matrix loaded into memory as a
+  ``scipy.sparse.csr_matrix`` (its implicitly centred path; load time and memory included);
+* scikit-learn ``TruncatedSVD`` on the same matrix in memory, which does NOT centre: it
+  solves a different problem, shown for time and memory only.
+
+Accuracy: the singular values of each against scikit-learn's ARPACK run (tol=0, machine
+precision), the relative difference of the k-th and the largest one.
+
+    python scripts/bench_sparse.py                                     # 100,000 × 30,000 at 2%
+    python scripts/bench_sparse.py --samples 20000 --features 10000    # quick
+
+Prints one JSON line per method and a Markdown table.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+CHILD = r"""
+import json, sys, time
+t0 = time.perf_counter()
+method, path, k, out, limit = sys.argv[1], sys.argv[2], int(sys.argv[3]), sys.argv[4], sys.argv[5]
+result = {}
+if method == "axiscope":
+    from axiscope.cli._app import main
+    code = main(["fit", path, "--out", out, "-k", str(k), "--scale", "none", "--memory-limit", limit,
+                 "--threads", "2", "--quiet", "--overwrite"])
+    assert code == 0, code
+    import pandas as pd
+    result["s"] = pd.read_csv(out + "/components.tsv", sep="\t").singular_value.tolist()
+    manifest = json.load(open(out + "/manifest.json"))
+    result["passes"] = manifest["passes"]["count"]
+    result["plan_cache"] = manifest["plan"]["cache"]
+    result["estimated_max_sv_error"] = manifest["accuracy"]["max_singular_value_error"]
+else:
+    import h5py, numpy as np, scipy.sparse as sp
+    with h5py.File(path, "r") as h:
+        g = h["counts"]
+        X = sp.csr_matrix((g["data"][:], g["indices"][:], g["indptr"][:]), shape=tuple(g.attrs["shape"]))
+    result["load_seconds"] = time.perf_counter() - t0
+    if method == "sklearn-pca-arpack":
+        from sklearn.decomposition import PCA
+        est = PCA(n_components=k, svd_solver="arpack", random_state=0).fit(X)
+    else:
+        from sklearn.decomposition import TruncatedSVD
+        est = TruncatedSVD(n_components=k, random_state=0).fit(X)
+    result["s"] = sorted(est.singular_values_.tolist(), reverse=True)
+result["seconds"] = time.perf_counter() - t0
+with open("/proc/self/status") as handle:
+    result["peak"] = next(int(l.split()[1]) * 1024 for l in handle if l.startswith("VmHWM:"))
+print(json.dumps(result))
+"""
+
+
+def write_matrix(path: Path, n: int, p: int, density: float, seed: int = 0) -> int:
+    """Planted sparse counts as CSR in HDF5, written a band of rows at a time; returns nnz."""
+    import h5py
+    import numpy as np
+
+    rng = np.random.default_rng(seed)
+    per_row = max(1, int(round(density * p)))
+    U = rng.gamma(1.0, 1.0, (n, 5)).astype(np.float32)
+    V = (rng.gamma(0.5, 1.0, (5, p)) * np.linspace(3, 0.5, 5)[:, None]).astype(np.float32)
+    nnz = n * per_row
+    with h5py.File(path, "w") as handle:
+        g = handle.create_group("counts")
+        data = g.create_dataset("data", shape=(nnz,), dtype="float32")
+        indices = g.create_dataset("indices", shape=(nnz,), dtype="int32")
+        g.create_dataset("indptr", data=np.arange(0, nnz + 1, per_row, dtype=np.int64))
+        g.attrs["shape"] = [n, p]
+        g.attrs["format"] = "csr"
+        band = 5000
+        for r0 in range(0, n, band):
+            r1 = min(n, r0 + band)
+            cols = np.sort(rng.integers(0, p - per_row + 1, (r1 - r0, per_row)), axis=1) + np.arange(per_row)
+            rates = np.einsum("ir,rij->ij", U[r0:r1], V[:, cols]) if False else \
+                (U[r0:r1, :, None] * V[:, cols].transpose(1, 0, 2)).sum(axis=1)
+            values = 1.0 + rng.poisson(rates).astype(np.float32)
+            data[r0 * per_row:r1 * per_row] = values.reshape(-1)
+            indices[r0 * per_row:r1 * per_row] = cols.reshape(-1).astype(np.int32)
+    return nnz
+
+
+def run(method: str, path: Path, k: int, out: Path, limit: str) -> dict:
+    env = dict(os.environ, OPENBLAS_NUM_THREADS="2", OMP_NUM_THREADS="2")
+    done = subprocess.run([sys.executable, "-c", CHILD, method, str(path), str(k), str(out), limit],
+                          capture_output=True, text=True, env=env, check=False)
+    if done.returncode != 0:
+        raise SystemExit(f"{method} failed:\n{done.stderr[-2000:]}")
+    return json.loads(done.stdout.strip().splitlines()[-1])
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--samples", type=int, default=100_000)
+    parser.add_argument("--features", type=int, default=30_000)
+    parser.add_argument("--density", type=float, default=0.02)
+    parser.add_argument("-k", type=int, default=10)
+    parser.add_argument("--memory-limit", default="1GB")
+    parser.add_argument("--folder", type=Path, default=None)
+    args = parser.parse_args()
+    import numpy as np
+
+    folder = Path(args.folder or tempfile.mkdtemp(prefix="bench-sparse-"))
+    folder.mkdir(parents=True, exist_ok=True)
+    path = folder / "sparse.h5"
+    t0 = time.perf_counter()
+    nnz = write_matrix(path, args.samples, args.features, args.density)
+    print(json.dumps({"written": str(path), "nnz": nnz, "seconds": round(time.perf_counter() - t0, 1),
+                      "dense_float64_bytes": args.samples * args.features * 8}), flush=True)
+    results = {}
+    for method in ("axiscope", "sklearn-pca-arpack", "sklearn-truncated-svd"):
+        results[method] = run(method, path, args.k, folder / "axiscope-out", args.memory_limit)
+        print(json.dumps({"method": method, **results[method]}), flush=True)
+    ref = np.array(results["sklearn-pca-arpack"]["s"])
+    base = results["sklearn-pca-arpack"]
+    print(f"\n{args.samples:,} × {args.features:,}, density {args.density}, {nnz:,} stored values, k = {args.k}\n")
+    print("| method | wall (s) | peak RSS (MB) | wall / sklearn PCA | RSS / sklearn PCA | max rel. diff. of s to sklearn PCA |")
+    print("|---|---|---|---|---|---|")
+    for method, r in results.items():
+        s = np.array(r["s"])
+        diff = float(np.max(np.abs(s - ref) / ref))
+        print(f"| {method} | {r['seconds']:.1f} | {r['peak'] / 1e6:.0f} | {r['seconds'] / base['seconds']:.2f} | "
+              f"{r['peak'] / base['peak']:.2f} | {diff:.1e} |")
+
+
+if __name__ == "__main__":
+    main()
