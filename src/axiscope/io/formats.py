@@ -15,13 +15,14 @@ from typing import Any
 
 from ..errors import InputError, OptionError
 from .hdf5 import SUFFIXES as HDF5_SUFFIXES
-from .hdf5 import open_hdf5
+from .hdf5 import check_storage as hdf5_check_storage
+from .hdf5 import check_written, open_hdf5
 from .npy import open_npy
 from .source import SAMPLES_IN, MatrixSource
 from .sparse import COMPRESSED_AXES, find_sparse_group, open_npz, open_sparse_container, parse_sparse_names
 from .text import open_text, text_suffix
 from .zarr_store import MARKERS as ZARR_MARKERS
-from .zarr_store import is_zarr_dir, open_zarr
+from .zarr_store import check_chunks, is_zarr_dir, open_zarr, refuse_pickle
 
 __all__ = ["OPENERS", "SUPPORTED", "detect_format", "open_matrix", "opened"]
 
@@ -136,7 +137,8 @@ def open_matrix(path: str | os.PathLike[str], *, dataset: str | None = None,
                          samples_in=samples_in, **extra)
 
 
-def _open_if_sparse(path: pathlib.Path, kind: str, *, dataset: str | None, names, **options: Any):
+def _open_if_sparse(path: pathlib.Path, kind: str, *, dataset: str | None, names, allow_external_data: bool,
+                    allow_missing_chunks: bool, **options: Any):
     """The sparse matrix of an HDF5 file or Zarr store, or None when it holds a dense one."""
     handle = None
     try:
@@ -146,8 +148,6 @@ def _open_if_sparse(path: pathlib.Path, kind: str, *, dataset: str | None, names
             handle = h5py.File(path, "r")
         else:
             import zarr
-
-            from .zarr_store import refuse_pickle
 
             refuse_pickle(path)
             handle = zarr.open(store=str(path), mode="r")
@@ -162,8 +162,15 @@ def _open_if_sparse(path: pathlib.Path, kind: str, *, dataset: str | None, names
         if kind == "hdf5":
             handle.close()
         return None
+    def check_storage(obj: Any, name: str) -> dict[str, Any]:
+        if kind == "hdf5":
+            hdf5_check_storage(obj, path, name, allow_external_data)
+            return check_written(obj, path, name, allow_missing_chunks)
+        return check_chunks(path, name, obj, allow_missing_chunks)
+
     try:
-        return open_sparse_container(path, kind, handle, group, **options, names=names)
+        return open_sparse_container(path, kind, handle, group, **options, names=names,
+                                     check_storage=check_storage)
     except BaseException:
         if kind == "hdf5":
             handle.close()

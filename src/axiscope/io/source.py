@@ -430,13 +430,9 @@ def array_source(data: Any, *, sample_ids: Sequence[str] | None = None,
     """Wrap an in-memory 2-D array (samples × features) as a :class:`MatrixSource`.
 
     The array is not copied; blocks are copied as they are read. Used by the Python API
-    and the scikit-learn estimator, and for small data in tests. A SciPy sparse matrix or
-    array becomes a sparse source (:func:`axiscope.io.sparse.sparse_array_source`).
+    and the scikit-learn estimator, and for small data in tests. ``axiscope.io.array_source``
+    also takes SciPy sparse matrices and arrays (:func:`axiscope.io.sparse.array_source`).
     """
-    if type(data).__module__.startswith("scipy.sparse"):
-        from .sparse import sparse_array_source
-
-        return sparse_array_source(data, sample_ids=sample_ids, feature_ids=feature_ids, name=name)
     array = np.asarray(data)
     if array.ndim != 2:
         raise InputError(f"{name}: expected a 2-D array, got {counted(array.ndim, 'dimension')}")

@@ -47,8 +47,9 @@ import numpy as np
 from ..errors import InputError, OptionError, counted, reason
 from .ids import container_ids, to_str_ids
 from .source import Backend, MatrixSource, build_source, is_numeric
+from .source import array_source as dense_array_source
 
-__all__ = ["SPARSE_NAMES", "COMPRESSED_AXES", "SparseMatrixSource", "SparseBackend", "parse_sparse_names",
+__all__ = ["array_source", "SPARSE_NAMES", "COMPRESSED_AXES", "SparseMatrixSource", "SparseBackend", "parse_sparse_names",
            "find_sparse_group", "open_sparse_container", "open_npz", "sparse_array_source", "is_scipy_sparse"]
 
 logger = logging.getLogger(__name__)
@@ -460,24 +461,19 @@ def _get(kind: str, handle: Any, name: str) -> Any:
 
 def open_sparse_container(path: pathlib.Path, kind: str, handle: Any, group: str, *, samples_in: str,
                           sample_ids: str | None, feature_ids: str | None, names: tuple[str, str, str, str],
-                          compressed_axis: str, allow_external_data: bool = False,
-                          allow_missing_chunks: bool = False) -> SparseMatrixSource:
-    """Open the sparse matrix in ``group`` of an opened HDF5 file or Zarr group (closing it on error)."""
+                          compressed_axis: str, check_storage: Any) -> SparseMatrixSource:
+    """Open the sparse matrix in ``group`` of an opened HDF5 file or Zarr group.
+
+    ``check_storage(obj, name) -> dict`` applies the container's own storage checks
+    (external data, chunks never written) to each array and returns notes for the record.
+    """
     where = _where(path, group)
     base = group.rstrip("/")
     node = handle[group] if kind == "hdf5" else (handle if group == "/" else handle[group.strip("/")])
     arrays = [_get(kind, handle, f"{base}/{n}") for n in names[:3]]
     notes: dict[str, Any] = {}
     for obj, name in zip(arrays, names[:3]):
-        if kind == "hdf5":
-            from .hdf5 import check_storage, check_written
-
-            check_storage(obj, path, f"{base}/{name}", allow_external_data)
-            notes.update(check_written(obj, path, f"{base}/{name}", allow_missing_chunks))
-        else:
-            from .zarr_store import check_chunks
-
-            notes.update(check_chunks(path, f"{base}/{name}", obj, allow_missing_chunks))
+        notes.update(check_storage(obj, f"{base}/{name}"))
     shape_obj = _get(kind, handle, f"{base}/{names[3]}")
     if shape_obj is not None:
         shape_value = np.asarray(shape_obj[...])
@@ -566,3 +562,16 @@ def sparse_array_source(matrix: Any, *, sample_ids: Any = None, feature_ids: Any
         return (None, "generated") if values is None else (to_str_ids(values), "given")
 
     return assemble(pathlib.Path(name), "array", None, "rows", backend, resolve, None, None)
+
+
+def array_source(data: Any, *, sample_ids: Any = None, feature_ids: Any = None,
+                 name: str = "<array>") -> MatrixSource:
+    """Wrap an in-memory matrix (samples × features) as a :class:`MatrixSource`.
+
+    A SciPy sparse matrix or array gives a :class:`SparseMatrixSource`
+    (:func:`sparse_array_source`), fitted without densifying; anything else is a dense
+    array (:func:`axiscope.io.source.array_source`). Exported as ``axiscope.io.array_source``.
+    """
+    if is_scipy_sparse(data):
+        return sparse_array_source(data, sample_ids=sample_ids, feature_ids=feature_ids, name=name)
+    return dense_array_source(data, sample_ids=sample_ids, feature_ids=feature_ids, name=name)
