@@ -96,8 +96,13 @@ def inspect_command(
                    f"{notes['fill_value']!r} (--allow-missing-chunks)")
     typer.echo(f"  sample ids: {info['ids_source']['samples']}, e.g. {', '.join(info['first_sample_ids'][:3])}")
     typer.echo(f"  feature ids: {info['ids_source']['features']}, e.g. {', '.join(info['first_feature_ids'][:3])}")
+    if "stored_values" in notes:  # sparse input (io/sparse.py)
+        typer.echo(f"  {notes['storage']}: {notes['stored_values']:,} stored values (density "
+                   f"{notes['density']:.4g})")
+    per_block = (f"up to {plan.block_rows} samples and about {plan.block_nonzeros:,} stored values"
+                 if plan.block_nonzeros else f"{plan.block_rows} samples")
     typer.echo(
         f"  fit with a {format_bytes(plan.budget)} budget and {resources.n_threads} threads: blocks of "
-        f"{plan.block_rows} samples, transformed blocks kept in {plan.cache} "
+        f"{per_block}, transformed blocks kept in {plan.cache} "
         f"({format_bytes(plan.cache_bytes)}), fixed memory about {format_bytes(plan.fixed_bytes)}"
     )

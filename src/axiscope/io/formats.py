@@ -10,6 +10,7 @@ from __future__ import annotations
 import contextlib
 import os
 import pathlib
+import warnings
 from collections.abc import Iterator
 from typing import Any
 
@@ -151,7 +152,9 @@ def _open_if_sparse(path: pathlib.Path, kind: str, *, dataset: str | None, names
 
             refuse_pickle(path)
             handle = zarr.open(store=str(path), mode="r")
-        group = find_sparse_group(kind, handle, dataset, names)
+        with warnings.catch_warnings():  # the dense opener reports what Zarr warns about
+            warnings.simplefilter("ignore")
+            group = find_sparse_group(kind, handle, dataset, names)
     except (InputError, OptionError):
         raise
     except Exception:  # not readable here: the dense opener reports it in its own words
