@@ -53,7 +53,7 @@ if method == "axiscope-cli":
     result["fit_seconds"] = manifest["seconds"]
     result["plan"] = manifest["plan"]
     result["estimated_max_sv_error"] = manifest["accuracy"]["max_singular_value_error"]
-elif method == "axiscope-api":
+elif method.startswith("axiscope-api"):
     from axiscope import EngineSettings, PreprocessSpec, Resources, fit
     from axiscope.core.memory import count_whole_process
     with count_whole_process():
@@ -61,6 +61,8 @@ elif method == "axiscope-api":
                   resources=Resources(memory_limit=limit, threads=2))
     result["s"] = res.factorization.singular_values.tolist()
     result["passes"] = res.manifest["passes"]["count"]
+    result["plan_cache"] = res.manifest["plan"]["cache"]
+    result["pass_seconds"] = [p["seconds"] for p in res.manifest["passes"]["detail"]]
     result["estimated_max_sv_error"] = res.manifest["accuracy"]["max_singular_value_error"]
 else:
     with h5py.File(path, "r") as h:
@@ -121,7 +123,11 @@ def main() -> None:
     parser.add_argument("--features", type=int, default=30_000)
     parser.add_argument("--density", type=float, default=0.02)
     parser.add_argument("-k", type=int, default=10)
-    parser.add_argument("--memory-limit", default="800MB")
+    parser.add_argument("--memory-limit", nargs="+", default=["800MB", "1.6GB"],
+                        help="axiscope runs, one per limit (the whole process; the smaller re-reads the file "
+                             "each pass, the larger keeps the transformed blocks in memory)")
+    parser.add_argument("--reuse", action="store_true", help="use the matrix already in --folder")
+    parser.add_argument("--cli", action="store_true", help="also time the command line (tables, cards)")
     parser.add_argument("--folder", type=Path, default=None)
     args = parser.parse_args()
     import numpy as np
@@ -130,12 +136,22 @@ def main() -> None:
     folder.mkdir(parents=True, exist_ok=True)
     path = folder / "sparse.h5"
     t0 = time.perf_counter()
-    nnz = write_matrix(path, args.samples, args.features, args.density)
+    if args.reuse and path.exists():  # written by an earlier run with the same sizes
+        import h5py
+
+        with h5py.File(path, "r") as handle:
+            nnz = int(handle["counts/data"].shape[0])
+    else:
+        nnz = write_matrix(path, args.samples, args.features, args.density)
     print(json.dumps({"written": str(path), "nnz": nnz, "seconds": round(time.perf_counter() - t0, 1),
                       "dense_float64_bytes": args.samples * args.features * 8}), flush=True)
     results = {}
-    for method in ("axiscope-api", "axiscope-cli", "sklearn-pca-arpack", "sklearn-truncated-svd"):
-        results[method] = run(method, path, args.k, folder / "axiscope-out", args.memory_limit)
+    runs = [(f"axiscope-api {limit}", limit) for limit in args.memory_limit]
+    if args.cli:
+        runs.append(("axiscope-cli", args.memory_limit[0]))
+    runs += [("sklearn-pca-arpack", ""), ("sklearn-truncated-svd", "")]
+    for method, limit in runs:
+        results[method] = run(method, path, args.k, folder / "axiscope-out", limit)
         print(json.dumps({"method": method, **results[method]}), flush=True)
     ref = np.array(results["sklearn-pca-arpack"]["s"])
     base = results["sklearn-pca-arpack"]

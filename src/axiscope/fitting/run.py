@@ -26,7 +26,7 @@ from ..core.engine import Factorization, exact_factorization, randomized_factori
 from ..core.options import METHODS, EngineSettings, InputLayout, Resources
 from ..core.passes import PassRunner, Progress, array_from_blocks, blas_threads
 from ..core.plan import BlockPlan, plan_fit
-from ..core.sparse_ops import SparseBlockCache, is_sparse, sparse_stats_task, transform_sparse
+from ..core.sparse_ops import SparseBlockCache, as_columns, is_sparse, sparse_stats_task, transform_sparse
 from ..core.preprocess import (
     BlockStats,
     FeatureStatistics,
@@ -296,8 +296,10 @@ class _Reader:
             sample = self.src.sample_ids[a + np.flatnonzero(self.active[a:b])[exc.row]]
             feature = self.src.feature_ids[exc.column]
             raise InputError(exc.located(f"{self.src.path.name}: sample {sample!r}, feature {feature!r}")) from None
-        if columns is not None:
-            block = block[:, columns].tocsr() if self.sparse else np.ascontiguousarray(block[:, columns])
+        if self.sparse:  # the products' layout (core/sparse_ops.py), made once per read
+            block = as_columns(block if columns is None else block[:, columns])
+        elif columns is not None:
+            block = np.ascontiguousarray(block[:, columns])
         if cache is not None:
             cache.put(int(self.starts[i]), block)
         return block
