@@ -275,8 +275,9 @@ def plan_sparse_blocks(
     values, half to rows; at least 8 blocks when there are 512 samples or more. A single
     sample may exceed the block's stored values (it is a block alone) if the budget holds
     a whole dense row of work. Transformed blocks stay in memory (12 bytes per stored
-    value plus 8 per sample) when that fits; otherwise, and when the source is already in
-    memory, later passes read the source again (no scratch file for sparse input).
+    value plus 8 per sample) when that leaves room for one thread's smallest blocks, and
+    the blocks share what is left; otherwise, and when the source is already in memory,
+    later passes read the source again (no scratch file for sparse input).
 
     Raises
     ------
@@ -294,32 +295,32 @@ def plan_sparse_blocks(
     fixed = per_column * (max_basis + 2 * width) + 8 * 12 * n_features
     partial = 8 * n_features * (width + 6)
     row_bytes = 3 * 8 * width
+    smallest = 2 * (partial + BYTES_PER_STORED * n_features + row_bytes)  # one thread, one-sample blocks
     free = data_budget - fixed
+    cache_bytes = 12 * nonzeros + 8 * (n_samples + 1)
+    # the cache first, when it leaves room for one thread's smallest blocks; blocks share the rest
+    cache = "memory" if not source_in_memory and free - cache_bytes >= 2 * smallest else "source"
+    if cache == "memory":
+        free -= cache_bytes
     window = _REFERENCE_WINDOW
     share = free // window - partial
     if share < BYTES_PER_STORED * n_features + row_bytes:
         window = 2
         share = free // window - partial
     if share < BYTES_PER_STORED * n_features + row_bytes:
-        need = fixed + 2 * (partial + BYTES_PER_STORED * n_features + row_bytes)
+        need = fixed + smallest
         held = f"the process already holds {format_bytes(baseline + held_bytes)} and " if baseline + held_bytes else ""
         raise ResourceError(
             f"memory_limit={format_bytes(budget).replace(' ', '')} is too small for the sparse {n_samples} samples × "
             f"{n_features} features with {l} sketch columns: {held}the work needs at least {format_bytes(need)}"
             f"{' more' if held else ''}; raise memory_limit to at least "
             f"{format_bytes(baseline + held_bytes + need).replace(' ', '')}, or lower n_components")
-    block_nonzeros = int(max(n_features, min(share // 2 // BYTES_PER_STORED, _MAX_BLOCK_BYTES // 12)))
+    block_nonzeros = int(max(n_features, min(share // 2 // BYTES_PER_STORED, _MAX_BLOCK_BYTES // BYTES_PER_STORED)))
     rows = int(max(1, min(n_samples, share // 2 // row_bytes)))
     if n_samples >= 512:  # enough blocks to keep threads busy
         block_nonzeros = min(block_nonzeros, max(n_features, -(-nonzeros // _MIN_BLOCKS)))
         rows = min(rows, -(-n_samples // _MIN_BLOCKS))
     per_thread = 2 * (partial + BYTES_PER_STORED * block_nonzeros + rows * row_bytes)
-    cache_bytes = 12 * nonzeros + 8 * (n_samples + 1)
-    if not source_in_memory and fixed + threads * per_thread + cache_bytes <= data_budget:
-        cache = "memory"
-    else:
-        cache = "source"
-    held = cache_bytes if cache == "memory" else 0
-    fitting = max(1, int((data_budget - fixed - held) // per_thread))
+    fitting = max(1, int(free // per_thread))
     return BlockPlan(rows, cache, budget, fixed, BYTES_PER_STORED * block_nonzeros + rows * row_bytes,
                      cache_bytes, max_basis, min(threads, fitting), baseline, 0, block_nonzeros)
