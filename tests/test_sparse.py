@@ -227,11 +227,12 @@ def _bad(tmp_path, mutate):
     (lambda g: g["indices"].__setitem__(3, 10), "'indices' entry 3 is 10, outside the 10 columns"),
     (lambda g: g.attrs.__delitem__("shape"), "no shape (attribute or dataset 'shape')"),
     (lambda g: g["data"].__setitem__(0, np.nan), "sparse input cannot mark values as missing"),
+    (lambda g: g.__delitem__("indptr"), "group '/counts' holds part of a sparse matrix but no 'indptr'"),
 ])
 def test_bad_sparse_files_give_one_line_and_exit_2(tmp_path, capsys, mutate, fragment):
     path = _bad(tmp_path, mutate)
     out = tmp_path / "out"
-    code = main(["fit", str(path), "--out", str(out), "-k", "2", "--quiet"])
+    code = main(["fit", str(path), "--out", str(out), "-k", "2", "--quiet", "--dataset", "counts"])
     err = capsys.readouterr().err.strip().splitlines()
     assert code == 2
     assert len(err) == 1 and err[0].startswith("error:") and "bad.h5" in err[0] and fragment in err[0], err

@@ -154,8 +154,10 @@ def _open_if_sparse(path: pathlib.Path, kind: str, *, dataset: str | None, names
             handle = zarr.open(store=str(path), mode="r")
         with warnings.catch_warnings():  # the dense opener reports what Zarr warns about
             warnings.simplefilter("ignore")
-            group = find_sparse_group(kind, handle, dataset, names)
+            group = find_sparse_group(kind, handle, dataset, names, path.name)
     except (InputError, OptionError):
+        if kind == "hdf5" and handle is not None:
+            handle.close()
         raise
     except Exception:  # not readable here: the dense opener reports it in its own words
         if kind == "hdf5" and handle is not None:
@@ -165,6 +167,7 @@ def _open_if_sparse(path: pathlib.Path, kind: str, *, dataset: str | None, names
         if kind == "hdf5":
             handle.close()
         return None
+
     def check_storage(obj: Any, name: str) -> dict[str, Any]:
         if kind == "hdf5":
             hdf5_check_storage(obj, path, name, allow_external_data)

@@ -429,11 +429,13 @@ def _members(kind: str, handle: Any) -> tuple[list[str], list[str]]:
     return groups, arrays
 
 
-def find_sparse_group(kind: str, handle: Any, dataset: str | None, names: tuple[str, str, str, str]) -> str | None:
+def find_sparse_group(kind: str, handle: Any, dataset: str | None, names: tuple[str, str, str, str],
+                      where: str = "the file") -> str | None:
     """The group holding a sparse matrix, or None when the container holds a dense one.
 
-    With ``dataset``: that group if it holds the three arrays. Without: the only group
-    holding them, when the container has no 2-D numeric array.
+    With ``dataset``: that group if it holds the three arrays (a group holding only some
+    of them is an error naming the missing ones). Without: the only group holding them,
+    when the container has no 2-D numeric array.
     """
     groups, arrays = _members(kind, handle)
     present = set(arrays)
@@ -444,7 +446,15 @@ def find_sparse_group(kind: str, handle: Any, dataset: str | None, names: tuple[
 
     if dataset is not None:
         group = "/" + dataset.strip("/")
-        return group if group in groups and holds(group) else None
+        if group not in groups:
+            return None
+        base = group.rstrip("/")
+        missing = [n for n in names[:3] if f"{base}/{n}" not in present]
+        if missing and len(missing) < 3:
+            raise InputError(f"{where}: group {group!r} holds part of a sparse matrix but no "
+                             f"{', '.join(repr(m) for m in missing)}; store data, indices and indptr together, "
+                             "or name them with sparse_names=...")
+        return None if missing else group
     found = [g for g in groups if holds(g)]
     if len(found) != 1:
         return None
