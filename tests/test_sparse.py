@@ -297,3 +297,24 @@ def test_peak_rss_of_a_large_sparse_fit_stays_under_the_budget(tmp_path):
     peak = json.loads(report.read_text())["peak"]
     assert peak <= limit, f"peak {peak / 1e6:.0f} MB over the 450 MB limit"
     assert peak < n * p * 8 / 3
+
+
+def test_features_by_samples_csr_is_read_with_samples_in_columns(tmp_path):
+    """A features × samples CSR file is compressed by features: converted once to sample order."""
+    X = planted_counts(seed=8)
+    path = tmp_path / "t.npz"
+    sp.save_npz(path, X.T.tocsr())
+    with open_matrix(path, samples_in="columns") as src:
+        assert src.held_bytes >= 12 * X.nnz  # the sample-order copy is counted by the plan
+        res = fit(src, n_components=K, engine=EngineSettings(method="randomized", seed=2))
+    s_ref, _ = standardised_svd(X.toarray())  # reference: LAPACK on the dense standardised matrix
+    np.testing.assert_allclose(res.factorization.singular_values, s_ref[:K], rtol=1e-6)
+
+
+def test_npz_of_another_sparse_format_is_refused(tmp_path):
+    from axiscope.errors import InputError
+
+    path = tmp_path / "coo.npz"
+    sp.save_npz(path, planted_counts(n=10, p=5).tocoo())
+    with pytest.raises(InputError, match="in 'coo' format; save it as CSR or CSC"):
+        open_matrix(path)
