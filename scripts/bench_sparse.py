@@ -4,15 +4,18 @@ Writes a planted sparse count matrix (``--samples`` × ``--features`` at ``--den
 values 1 + Poisson around a rank-5 rate, float32 values, int32 indices) as CSR in HDF5,
 then runs, each in a child process of its own with its peak resident memory (``VmHWM``):
 
-* ``axiscope fit`` on the HDF5 file (command line, ``--scale none``: covariance PCA, the
-  problem scikit-learn solves; ``--memory-limit``);
+* ``axiscope.fit`` on the HDF5 file (``scale="none"``: covariance PCA, the problem
+  scikit-learn solves), once per ``--memory-limit`` (the limit counts the whole process;
+  by default 800MB, where later passes re-read the file, and 1.6GB, where the transformed
+  blocks stay in memory), and with ``--cli`` the command line too (tables and cards);
 * scikit-learn ``PCA(svd_solver="arpack")`` on the same matrix loaded into memory as a
   ``scipy.sparse.csr_matrix`` (its implicitly centred path; load time and memory included);
 * scikit-learn ``TruncatedSVD`` on the same matrix in memory, which does NOT centre: it
   solves a different problem, shown for time and memory only.
 
-Accuracy: the singular values of each against scikit-learn's ARPACK run (tol=0, machine
-precision), the relative difference of the k-th and the largest one.
+Accuracy: the largest relative difference of the k singular values of each method to those
+of scikit-learn's ARPACK run (tol=0; it works in the file's float32, so agreement is limited
+to float32 rounding, about 1e-7).
 
     python scripts/bench_sparse.py                                     # 100,000 × 30,000 at 2%
     python scripts/bench_sparse.py --samples 20000 --features 10000    # quick
