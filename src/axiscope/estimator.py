@@ -50,9 +50,9 @@ __all__ = ["AxiscopePCA", "SPARSE_FORMATS"]
 _IDS_INFO_KEY = "feature_names"
 
 #: scipy.sparse formats handed to :func:`axiscope.io.array_source` unchanged (never
-#: densified). Empty until ``array_source`` reads sparse matrices: sparse input is then
-#: refused with a ``TypeError`` that says so.
-SPARSE_FORMATS: tuple[str, ...] = ()
+#: densified; :mod:`axiscope.io.sparse`). Other sparse formats are refused with a
+#: ``TypeError`` that says which to convert to.
+SPARSE_FORMATS: tuple[str, ...] = ("csr", "csc")
 
 #: Parameters of the preprocessing that ``partial_fit`` cannot apply batch by batch.
 _WHOLE_DATA_OPTIONS = ("min_variance", "top_variable")
@@ -152,9 +152,8 @@ class AxiscopePCA(TransformerMixin, BaseEstimator):
     holds the preprocessed matrix in float64. ``partial_fit`` holds a
     ``(n_components + batch + 1) × n_features`` matrix per batch.
 
-    Sparse input (scipy.sparse) is passed to :func:`axiscope.io.array_source` unchanged,
-    never densified, for the formats in :data:`SPARSE_FORMATS`; until the readers take
-    sparse matrices that tuple is empty and sparse input is refused with a ``TypeError``.
+    Sparse input (scipy.sparse CSR or CSC, :data:`SPARSE_FORMATS`) is passed to
+    :func:`axiscope.io.array_source` unchanged and never densified by the fit.
 
     References
     ----------
@@ -218,8 +217,8 @@ class AxiscopePCA(TransformerMixin, BaseEstimator):
     def _validate(self, X, *, reset: bool, missing: str):
         if scipy.sparse.issparse(X) and X.format not in SPARSE_FORMATS:
             raise TypeError(
-                f"{type(self).__name__} does not take sparse input ({X.format} matrix) yet: the "
-                "readers do not stream sparse blocks; it is never densified here"
+                f"{type(self).__name__} takes sparse input as CSR or CSC, not {X.format}; convert it "
+                "with .tocsr() (it is never densified here)"
             )
         return validate_data(
             self, X, reset=reset, dtype=[np.float64, np.float32], accept_sparse=list(SPARSE_FORMATS) or False,

@@ -36,13 +36,19 @@ class Checksum(str, Enum):
     full = "full"
 
 
+class CompressedAxis(str, Enum):
+    auto = "auto"
+    rows = "rows"
+    columns = "columns"
+
+
 class TableFormat(str, Enum):
     tsv = "tsv"
     parquet = "parquet"
 
 
 InputPath = Annotated[Path, typer.Argument(
-    help="Matrix file: .h5/.hdf5, Zarr directory, .npy, .csv/.tsv/.txt (optionally .gz).")]
+    help="Matrix file: .h5/.hdf5, Zarr directory (dense, or sparse as data/indices/indptr/shape), .npy, .npz (SciPy sparse), .csv/.tsv/.txt (optionally .gz).")]
 OutDir = Annotated[Path, typer.Option("--out", "-o", help="Output directory (written atomically).")]
 Dataset = Annotated[str | None, typer.Option(
     help="2-D dataset inside an HDF5 file or Zarr store.", show_default="the only 2-D numeric one")]
@@ -70,6 +76,12 @@ AllowExternalData = Annotated[bool, typer.Option(
     "--allow-external-data", show_default="off",
     help="HDF5: accept a dataset whose values are kept in other files (external link, external raw "
          "storage, virtual dataset); refused otherwise, since such a file can make a run read other files.")]
+SparseNames = Annotated[str, typer.Option(
+    help="Sparse matrix in HDF5/Zarr: names of the values, indices and pointer arrays and of the shape "
+         "(attribute or dataset) inside the group given by --dataset, comma-separated.")]
+CompressedAxisOpt = Annotated[CompressedAxis, typer.Option(
+    help="Sparse matrix: whether the pointers run over the stored rows (CSR) or columns (CSC); auto reads "
+         "the group's 'format' attribute, else the length of the pointers.")]
 AllowMissingChunks = Annotated[bool, typer.Option(
     "--allow-missing-chunks", show_default="off",
     help="Zarr and HDF5: read chunks that were never written as the array's fill value (their number is "

@@ -28,6 +28,9 @@ from ._options import (
     Quiet,
     SampleIds,
     SamplesIn,
+    CompressedAxis,
+    CompressedAxisOpt,
+    SparseNames,
     SamplesInOpt,
     Scale,
     TableFormat,
@@ -146,6 +149,8 @@ def fit_command(
     samples_in: SamplesInOpt = SamplesIn.rows,
     allow_external_data: AllowExternalData = False,
     allow_missing_chunks: AllowMissingChunks = False,
+    sparse_names: SparseNames = "data,indices,indptr,shape",
+    compressed_axis: CompressedAxisOpt = CompressedAxis.auto,
     annotations: AnnotationsFile = None,
     id_column: IdColumn = "sample_id",
     categorical: Categorical = None,
@@ -202,7 +207,8 @@ def fit_command(
         resources = Resources(memory_limit=memory_limit, threads=threads, scratch=scratch)
         layout = InputLayout(dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
                              samples_in=samples_in.value, allow_external_data=allow_external_data,
-                             allow_missing_chunks=allow_missing_chunks)
+                             allow_missing_chunks=allow_missing_chunks, sparse_names=sparse_names,
+                             compressed_axis=compressed_axis.value)
         covariates = _covariates(adjust_for, annotations, id_column, categorical, numeric,
                                  supplementary_samples_column, supplementary_features)
         with open_matrix(input, **layout.open_options(), scratch=resources.scratch) as src:

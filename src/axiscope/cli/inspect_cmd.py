@@ -17,6 +17,9 @@ from ._options import (
     MemoryLimit,
     SampleIds,
     SamplesIn,
+    CompressedAxis,
+    CompressedAxisOpt,
+    SparseNames,
     SamplesInOpt,
     Threads,
 )
@@ -48,6 +51,8 @@ def inspect_command(
     samples_in: SamplesInOpt = SamplesIn.rows,
     allow_external_data: AllowExternalData = False,
     allow_missing_chunks: AllowMissingChunks = False,
+    sparse_names: SparseNames = "data,indices,indptr,shape",
+    compressed_axis: CompressedAxisOpt = CompressedAxis.auto,
 ) -> None:
     """Show shape, dtype, on-disk chunking, size, ids and the block plan 'axiscope fit' would use.
 
@@ -68,7 +73,8 @@ def inspect_command(
         resources = Resources(memory_limit=memory_limit, threads=threads, scratch=scratch)
         layout = InputLayout(dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
                              samples_in=samples_in.value, allow_external_data=allow_external_data,
-                             allow_missing_chunks=allow_missing_chunks)
+                             allow_missing_chunks=allow_missing_chunks, sparse_names=sparse_names,
+                             compressed_axis=compressed_axis.value)
         with open_matrix(input, **layout.open_options(), scratch=resources.scratch) as src:
             info = describe_source(src)
             plan = plan_fit(src, n_components=n_components, preprocess=spec, engine=engine,
@@ -90,8 +96,13 @@ def inspect_command(
                    f"{notes['fill_value']!r} (--allow-missing-chunks)")
     typer.echo(f"  sample ids: {info['ids_source']['samples']}, e.g. {', '.join(info['first_sample_ids'][:3])}")
     typer.echo(f"  feature ids: {info['ids_source']['features']}, e.g. {', '.join(info['first_feature_ids'][:3])}")
+    if "stored_values" in notes:  # sparse input (io/sparse.py)
+        typer.echo(f"  {notes['storage']}: {notes['stored_values']:,} stored values (density "
+                   f"{notes['density']:.4g})")
+    per_block = (f"up to {plan.block_rows} samples and about {plan.block_nonzeros:,} stored values"
+                 if plan.block_nonzeros else f"{plan.block_rows} samples")
     typer.echo(
         f"  fit with a {format_bytes(plan.budget)} budget and {resources.n_threads} threads: blocks of "
-        f"{plan.block_rows} samples, transformed blocks kept in {plan.cache} "
+        f"{per_block}, transformed blocks kept in {plan.cache} "
         f"({format_bytes(plan.cache_bytes)}), fixed memory about {format_bytes(plan.fixed_bytes)}"
     )

@@ -35,6 +35,7 @@ import numpy as np
 import scipy.linalg
 
 from .passes import PassRunner
+from .sparse_ops import is_sparse, sparse_products
 
 if TYPE_CHECKING:
     from .adjust import Residualizer
@@ -176,6 +177,8 @@ def _products(block, W, offset, centre, residual, d, fill, gram_width, want_norm
     mean left over (``residual = μ − centre``, zero for float64 data) is a small rank-one
     correction taken in float64 by the caller (``offset = residualᵀ·W'``).
     """
+    if is_sparse(block):  # implicit centring over the stored values, float64 (core/sparse_ops.py)
+        return sparse_products(block, W, offset, centre, residual, d, fill, gram_width, want_norms)
     block = _filled(block, fill)
     centred = block - centre
     y = (centred @ W).astype(np.float64)
@@ -681,6 +684,8 @@ def exact_factorization(
     dense = np.empty((n, p))
 
     def task(block):
+        if is_sparse(block):  # small inputs only: the whole matrix is held dense here anyway
+            block = block.toarray()
         block = _filled(block, fill)
         return (block.astype(np.float64) - mean) * d
 

@@ -191,6 +191,11 @@ class InputLayout:
     allow_missing_chunks : bool, default=False
         Zarr and HDF5: read chunks that were never written as the fill value (their
         number is logged); by default a missing chunk is an error.
+    sparse_names : str, optional
+        Sparse input in HDF5 or Zarr: the names of the values, indices and pointer arrays
+        and of the shape, comma-separated (default ``"data,indices,indptr,shape"``).
+    compressed_axis : {"auto", "rows", "columns"}, default="auto"
+        Sparse input: whether the pointers run over the stored rows (CSR) or columns (CSC).
     """
 
     dataset: str | None = None
@@ -199,6 +204,8 @@ class InputLayout:
     samples_in: str = "rows"
     allow_external_data: bool = False
     allow_missing_chunks: bool = False
+    sparse_names: str | None = None
+    compressed_axis: str = "auto"
 
     def __post_init__(self) -> None:
         if self.samples_in not in SAMPLES_IN:
@@ -224,4 +231,5 @@ class InputLayout:
         """Keyword arguments of :func:`axiscope.io.open_matrix`."""
         return {"dataset": self.dataset, "sample_ids": self.sample_ids, "feature_ids": self.feature_ids,
                 "samples_in": self.samples_in, "allow_external_data": self.allow_external_data,
-                "allow_missing_chunks": self.allow_missing_chunks}
+                "allow_missing_chunks": self.allow_missing_chunks, "sparse_names": self.sparse_names,
+                "compressed_axis": self.compressed_axis}

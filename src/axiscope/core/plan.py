@@ -20,7 +20,7 @@ from .preprocess import PreprocessSpec
 if TYPE_CHECKING:  # pragma: no cover
     from ..io import MatrixSource
 
-__all__ = ["BlockPlan", "plan_blocks", "plan_fit", "check_scratch_writable", "decoded_chunk_bytes"]
+__all__ = ["BlockPlan", "plan_blocks", "plan_sparse_blocks", "plan_fit", "check_scratch_writable", "decoded_chunk_bytes"]
 
 logger = logging.getLogger(__name__)
 
@@ -57,9 +57,12 @@ class BlockPlan:
     threads: int = 1
     baseline: int = 0
     chunk_bytes: int = 0
+    #: Sparse input: stored values per block (blocks are cut by these, ``block_rows`` at most).
+    block_nonzeros: int | None = None
 
     def to_dict(self) -> dict:
-        return {
+        extra = {} if self.block_nonzeros is None else {"block_nonzeros": self.block_nonzeros}
+        return {**extra,
             "block_rows": self.block_rows,
             "threads": self.threads,
             "cache": self.cache,
@@ -227,6 +230,14 @@ def plan_fit(
     re-reading the input dearer than a scratch copy).
     """
     n, p = source.shape
+    if getattr(source, "sparse", False):
+        from .sparse_ops import check_sparse_spec
+
+        check_sparse_spec(preprocess)
+        return plan_sparse_blocks(
+            n, p, int(source.nnz), sketch_width=min(n_components + engine.oversample, n, p),
+            threads=resources.n_threads, budget=resources.budget, held_bytes=int(source.held_bytes),
+            source_in_memory=source.held_bytes > 0 or source.format == "array")
     cache_features = min(preprocess.top_variable or p, p)
     transforms = preprocess.log_transform or preprocess.counts_per is not None
     return plan_blocks(
@@ -240,3 +251,76 @@ def plan_fit(
         reread_cheap=bool(source.plain_reads) and not transforms,
         chunk_bytes=decoded_chunk_bytes(source),
     )
+
+
+def plan_sparse_blocks(
+    n_samples: int,
+    n_features: int,
+    nonzeros: int,
+    *,
+    sketch_width: int,
+    threads: int,
+    budget: int,
+    held_bytes: int = 0,
+    source_in_memory: bool = False,
+    baseline: int | None = None,
+) -> BlockPlan:
+    """Blocks of a sparse matrix cut by stored values, within ``budget``.
+
+    Held: the baseline, what the source holds (``held_bytes``: a sample-order copy of a
+    matrix compressed by features, or the arrays of an ``.npz`` file), the Krylov basis and
+    per-feature vectors as for dense input, and per block in flight
+    ``BYTES_PER_STORED`` bytes per stored value, three float64 work rows of the sketch width
+    per sample and a ``p × l`` partial product. Half of a block's share goes to stored
+    values, half to rows; at least 8 blocks when there are 512 samples or more. A single
+    sample may exceed the block's stored values (it is a block alone) if the budget holds
+    a whole dense row of work. Transformed blocks stay in memory (12 bytes per stored
+    value plus 8 per sample) when that leaves room for one thread's smallest blocks, and
+    the blocks share what is left; otherwise, and when the source is already in memory,
+    later passes read the source again (no scratch file for sparse input).
+
+    Raises
+    ------
+    ResourceError
+        The budget cannot hold one block of one sample.
+    """
+    from .sparse_ops import BYTES_PER_STORED
+
+    baseline = process_baseline() if baseline is None else int(baseline)
+    data_budget = budget - baseline - held_bytes
+    l = sketch_width
+    width = l + N_PROBES
+    per_column = 8 * (n_samples + 2 * n_features)
+    max_basis = int(min(8 * l, max(2 * l, (max(data_budget, 0) // 4) // per_column)))
+    fixed = per_column * (max_basis + 2 * width) + 8 * 12 * n_features
+    partial = 8 * n_features * (width + 6)
+    row_bytes = 3 * 8 * width
+    smallest = 2 * (partial + BYTES_PER_STORED * n_features + row_bytes)  # one thread, one-sample blocks
+    free = data_budget - fixed
+    cache_bytes = 12 * nonzeros + 8 * (n_samples + 1)
+    # the cache first, when it leaves room for one thread's smallest blocks; blocks share the rest
+    cache = "memory" if not source_in_memory and free - cache_bytes >= 2 * smallest else "source"
+    if cache == "memory":
+        free -= cache_bytes
+    window = _REFERENCE_WINDOW
+    share = free // window - partial
+    if share < BYTES_PER_STORED * n_features + row_bytes:
+        window = 2
+        share = free // window - partial
+    if share < BYTES_PER_STORED * n_features + row_bytes:
+        need = fixed + smallest
+        held = f"the process already holds {format_bytes(baseline + held_bytes)} and " if baseline + held_bytes else ""
+        raise ResourceError(
+            f"memory_limit={format_bytes(budget).replace(' ', '')} is too small for the sparse {n_samples} samples × "
+            f"{n_features} features with {l} sketch columns: {held}the work needs at least {format_bytes(need)}"
+            f"{' more' if held else ''}; raise memory_limit to at least "
+            f"{format_bytes(baseline + held_bytes + need).replace(' ', '')}, or lower n_components")
+    block_nonzeros = int(max(n_features, min(share // 2 // BYTES_PER_STORED, _MAX_BLOCK_BYTES // BYTES_PER_STORED)))
+    rows = int(max(1, min(n_samples, share // 2 // row_bytes)))
+    if n_samples >= 512:  # enough blocks to keep threads busy
+        block_nonzeros = min(block_nonzeros, max(n_features, -(-nonzeros // _MIN_BLOCKS)))
+        rows = min(rows, -(-n_samples // _MIN_BLOCKS))
+    per_thread = 2 * (partial + BYTES_PER_STORED * block_nonzeros + rows * row_bytes)
+    fitting = max(1, int(free // per_thread))
+    return BlockPlan(rows, cache, budget, fixed, BYTES_PER_STORED * block_nonzeros + rows * row_bytes,
+                     cache_bytes, max_basis, min(threads, fitting), baseline, 0, block_nonzeros)

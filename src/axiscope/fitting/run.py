@@ -28,6 +28,7 @@ from ..core.onepass import one_pass_factorization
 from ..core.options import METHODS, EngineSettings, InputLayout, Resources
 from ..core.passes import PassRunner, Progress, array_from_blocks, blas_threads
 from ..core.plan import BlockPlan, plan_fit
+from ..core.sparse_ops import SparseBlockCache, as_columns, is_sparse, sparse_stats_task, transform_sparse
 from ..core.preprocess import (
     BlockStats,
     FeatureStatistics,
@@ -205,7 +206,11 @@ def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None) -> FitR
     identity = _input_identity(src, job.checksum)
     checkpoint = _checkpoint(job, identity, plan, active, exclude, method, adjust)
     rng = job.engine.generator()
-    reader = _Reader(src, job.spec, active, plan.block_rows)
+    reader = _Reader(src, job.spec, active, plan.block_rows, plan.block_nonzeros)
+    if reader.sparse and (adjust is not None or method == "one-pass"):
+        raise OptionError(f"{src.path}: a sparse matrix is not yet fitted "
+                          f"{'after a covariate adjustment' if adjust is not None else 'in one pass'}; "
+                          "drop that option, or store the matrix dense")
     if method == "one-pass":
         if adjust is not None:
             raise OptionError("a one-pass fit cannot adjust for covariates; drop either the adjustment "
@@ -214,7 +219,7 @@ def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None) -> FitR
         return _result(src, job, active, n, prep, stats, fac, plan, runner, filtered=False, identity=identity,
                        checkpoint=checkpoint)
     filtered = job.spec.has_filter or exclude is not None
-    with _Caches(plan, job.resources) as caches:
+    with _Caches(plan, job.resources, sparse=reader.sparse) as caches:
         first_cache = None if filtered else caches.new(n, src.shape[1], src.dtype)
         fuse = not filtered and job.spec.missing == "error" and method == "randomized"
         l = min(job.k + job.engine.oversample, min(n, src.shape[1]))
@@ -361,10 +366,16 @@ def block_spans(n: int, block_rows: int, sample_chunk: int | None) -> list[tuple
 class _Reader:
     """Blocks of active samples, read and transformed, as Dask arrays for the passes."""
 
-    def __init__(self, src: MatrixSource, spec: PreprocessSpec, active: np.ndarray, block_rows: int):
+    def __init__(self, src: MatrixSource, spec: PreprocessSpec, active: np.ndarray, block_rows: int,
+                 block_nonzeros: int | None = None):
         self.src, self.spec, self.active = src, spec, active
         self.all_active = bool(active.all())
-        spans = block_spans(src.shape[0], block_rows, src.sample_chunk)
+        #: sparse input: CSR blocks cut by stored values (core/sparse_ops.py)
+        self.sparse = bool(getattr(src, "sparse", False))
+        if self.sparse:
+            spans = src.sample_spans(block_rows, block_nonzeros or src.shape[1])
+        else:
+            spans = block_spans(src.shape[0], block_rows, src.sample_chunk)
         counts = [int(active[a:b].sum()) for a, b in spans]
         self.spans = [(a, b) for (a, b), c in zip(spans, counts) if c > 0]
         self.rows = [c for c in counts if c > 0]
@@ -373,16 +384,18 @@ class _Reader:
 
     def block(self, i: int, columns=None, cache: BlockCache | None = None) -> np.ndarray:
         a, b = self.spans[i]
-        block = self.src.read_samples(a, b)
+        block = self.src.read_sparse(a, b) if self.sparse else self.src.read_samples(a, b)
         if not self.all_active:
             block = block[self.active[a:b]]
         try:
-            block = transform_block(block, self.spec)
+            block = transform_sparse(block, self.spec) if self.sparse else transform_block(block, self.spec)
         except NotADosage as exc:
             sample = self.src.sample_ids[a + np.flatnonzero(self.active[a:b])[exc.row]]
             feature = self.src.feature_ids[exc.column]
             raise InputError(exc.located(f"{self.src.path.name}: sample {sample!r}, feature {feature!r}")) from None
-        if columns is not None:
+        if self.sparse:  # the products' layout (core/sparse_ops.py), made once per read
+            block = as_columns(block if columns is None else block[:, columns])
+        elif columns is not None:
             block = np.ascontiguousarray(block[:, columns])
         if cache is not None:
             cache.put(int(self.starts[i]), block)
@@ -405,14 +418,19 @@ class _Reader:
 class _Caches:
     """Block caches of a fit (none when the plan re-reads the input), closed at the end."""
 
-    def __init__(self, plan: BlockPlan, resources: Resources):
+    def __init__(self, plan: BlockPlan, resources: Resources, *, sparse: bool = False):
         self.mode = plan.cache
         self.resources = resources
+        self.sparse = sparse
         self.opened: list[BlockCache] = []
 
     def new(self, n_rows: int, n_cols: int, dtype) -> BlockCache | None:
         if self.mode == "source":
             return None
+        if self.sparse:  # the plan keeps sparse blocks in memory or re-reads the source
+            cache = SparseBlockCache()
+            self.opened.append(cache)
+            return cache
         scratch = self.resources.scratch_folder() if self.mode == "scratch" else None
         cache = BlockCache(self.mode, n_rows, n_cols, dtype, scratch)
         self.opened.append(cache)
@@ -680,6 +698,8 @@ def _one_pass_record(fac: Factorization) -> dict:
 
 
 def _stats_task(block, omega32, centre):
+    if is_sparse(block):
+        return sparse_stats_task(block, omega32, centre)
     stats = block_statistics(block)
     bad = first_nonfinite(block) if stats.n_nonfinite else None
     sketch = None

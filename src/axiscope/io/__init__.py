@@ -11,6 +11,7 @@ module             holds
 ``hdf5``           HDF5 files (h5py; positioned reads of contiguous datasets)
 ``zarr_store``     Zarr directory stores, format 2 and 3
 ``npy``            ``.npy`` files (positioned reads or a memory map)
+``sparse``         CSR/CSC in HDF5 or Zarr groups, SciPy ``.npz``, scipy.sparse in memory
 ``text``           delimited text, optionally gzipped, streamed into an anonymous scratch file
 ``ids``            sample and feature ids: generated, from id files or 1-D datasets, checked
 ``output``         atomic output directories, TSV/Parquet/JSON writers, result-table readers
@@ -18,6 +19,7 @@ module             holds
 """
 
 from .formats import open_matrix, opened
-from .source import SAMPLES_IN, MatrixSource, array_source, describe_source
+from .source import SAMPLES_IN, MatrixSource, describe_source
+from .sparse import array_source  # dense arrays, and scipy.sparse matrices and arrays
 
 __all__ = ["SAMPLES_IN", "MatrixSource", "array_source", "describe_source", "open_matrix", "opened"]

@@ -10,24 +10,28 @@ from __future__ import annotations
 import contextlib
 import os
 import pathlib
+import warnings
 from collections.abc import Iterator
 from typing import Any
 
 from ..errors import InputError, OptionError
 from .hdf5 import SUFFIXES as HDF5_SUFFIXES
-from .hdf5 import open_hdf5
+from .hdf5 import check_storage as hdf5_check_storage
+from .hdf5 import check_written, open_hdf5
 from .npy import open_npy
 from .source import SAMPLES_IN, MatrixSource
+from .sparse import COMPRESSED_AXES, find_sparse_group, open_npz, open_sparse_container, parse_sparse_names
 from .text import open_text, text_suffix
 from .zarr_store import MARKERS as ZARR_MARKERS
-from .zarr_store import is_zarr_dir, open_zarr
+from .zarr_store import check_chunks, is_zarr_dir, open_zarr, refuse_pickle
 
 __all__ = ["OPENERS", "SUPPORTED", "detect_format", "open_matrix", "opened"]
 
 #: The reader of each format.
 OPENERS = {"hdf5": open_hdf5, "zarr": open_zarr, "npy": open_npy, "text": open_text}
 #: What the readers accept, for messages.
-SUPPORTED = ".h5, .hdf5, .npy, .csv, .tsv, .txt (optionally .gz) or a Zarr directory"
+SUPPORTED = (".h5, .hdf5, .npy, .npz (SciPy sparse), .csv, .tsv, .txt (optionally .gz) or a Zarr directory; "
+             "HDF5 and Zarr may hold a sparse matrix as data, indices, indptr and shape")
 
 
 def detect_format(path: pathlib.Path) -> str:
@@ -42,6 +46,8 @@ def detect_format(path: pathlib.Path) -> str:
         return "hdf5"
     if suffix == ".npy":
         return "npy"
+    if suffix == ".npz":
+        return "npz"
     if text_suffix(path) is not None:
         return "text"
     raise InputError(f"{path.name}: unknown file type {suffix or '(no extension)'!r}; supported: {SUPPORTED}")
@@ -51,7 +57,8 @@ def open_matrix(path: str | os.PathLike[str], *, dataset: str | None = None,
                 sample_ids: str | None = None, feature_ids: str | None = None,
                 samples_in: str = "rows", allow_external_data: bool = False,
                 allow_missing_chunks: bool = False,
-                scratch: str | os.PathLike[str] | None = None) -> MatrixSource:
+                scratch: str | os.PathLike[str] | None = None,
+                sparse_names: str | None = None, compressed_axis: str = "auto") -> MatrixSource:
     """Open a 2-D numeric matrix for block-wise reading.
 
     Parameters
@@ -77,6 +84,14 @@ def open_matrix(path: str | os.PathLike[str], *, dataset: str | None = None,
     scratch : path, optional
         Text: folder of the anonymous scratch file the parsed values are streamed to
         (8 bytes per cell; default: the temporary folder).
+    sparse_names : str, optional
+        Sparse input in HDF5 or Zarr: names of the values, indices and pointer arrays and
+        of the shape (attribute or dataset) in the group, comma-separated (default
+        ``"data,indices,indptr,shape"``). A group holding the three arrays is read as a
+        sparse matrix (see :mod:`axiscope.io.sparse`); ``dataset`` names the group.
+    compressed_axis : {"auto", "rows", "columns"}, default="auto"
+        Sparse input: whether ``indptr`` runs over the stored rows (CSR) or columns (CSC);
+        ``auto`` reads the group's ``format`` attribute, else the length of ``indptr``.
 
     Returns
     -------
@@ -95,6 +110,20 @@ def open_matrix(path: str | os.PathLike[str], *, dataset: str | None = None,
     if not path.exists():
         raise InputError(f"{path}: no such file; check the path")
     kind = detect_format(path)
+    names = parse_sparse_names(sparse_names)
+    if compressed_axis not in COMPRESSED_AXES:
+        raise OptionError(f"compressed_axis={compressed_axis!r} is not one of "
+                          f"{', '.join(map(repr, COMPRESSED_AXES))}; choose one of them")
+    if kind == "npz":
+        return open_npz(path, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
+                        samples_in=samples_in, compressed_axis=compressed_axis)
+    if kind in ("hdf5", "zarr"):
+        sparse = _open_if_sparse(path, kind, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
+                                 samples_in=samples_in, names=names, compressed_axis=compressed_axis,
+                                 allow_external_data=allow_external_data,
+                                 allow_missing_chunks=allow_missing_chunks)
+        if sparse is not None:
+            return sparse
     if kind in ("npy", "text") and dataset is not None:
         raise OptionError(f"{path.name}: dataset={dataset!r} only applies to HDF5 and Zarr input; leave it out")
     extra: dict[str, Any] = {}
@@ -107,6 +136,51 @@ def open_matrix(path: str | os.PathLike[str], *, dataset: str | None = None,
         extra["scratch"] = scratch
     return OPENERS[kind](path, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
                          samples_in=samples_in, **extra)
+
+
+def _open_if_sparse(path: pathlib.Path, kind: str, *, dataset: str | None, names, allow_external_data: bool,
+                    allow_missing_chunks: bool, **options: Any):
+    """The sparse matrix of an HDF5 file or Zarr store, or None when it holds a dense one."""
+    handle = None
+    try:
+        if kind == "hdf5":
+            import h5py
+
+            handle = h5py.File(path, "r")
+        else:
+            import zarr
+
+            refuse_pickle(path)
+            handle = zarr.open(store=str(path), mode="r")
+        with warnings.catch_warnings():  # the dense opener reports what Zarr warns about
+            warnings.simplefilter("ignore")
+            group = find_sparse_group(kind, handle, dataset, names, path.name)
+    except (InputError, OptionError):
+        if kind == "hdf5" and handle is not None:
+            handle.close()
+        raise
+    except Exception:  # not readable here: the dense opener reports it in its own words
+        if kind == "hdf5" and handle is not None:
+            handle.close()
+        return None
+    if group is None:
+        if kind == "hdf5":
+            handle.close()
+        return None
+
+    def check_storage(obj: Any, name: str) -> dict[str, Any]:
+        if kind == "hdf5":
+            hdf5_check_storage(obj, path, name, allow_external_data)
+            return check_written(obj, path, name, allow_missing_chunks)
+        return check_chunks(path, name, obj, allow_missing_chunks)
+
+    try:
+        return open_sparse_container(path, kind, handle, group, **options, names=names,
+                                     check_storage=check_storage)
+    except BaseException:
+        if kind == "hdf5":
+            handle.close()
+        raise
 
 
 @contextlib.contextmanager

@@ -430,7 +430,8 @@ def array_source(data: Any, *, sample_ids: Sequence[str] | None = None,
     """Wrap an in-memory 2-D array (samples × features) as a :class:`MatrixSource`.
 
     The array is not copied; blocks are copied as they are read. Used by the Python API
-    and the scikit-learn estimator, and for small data in tests.
+    and the scikit-learn estimator, and for small data in tests. ``axiscope.io.array_source``
+    also takes SciPy sparse matrices and arrays (:func:`axiscope.io.sparse.array_source`).
     """
     array = np.asarray(data)
     if array.ndim != 2:
