@@ -104,6 +104,13 @@ def fit_command(
     supplementary_features: Annotated[Path | None, typer.Option(help="Text file with one feature id per line: left out of the axes and reported as supplementary.")] = None,
     supplementary_samples_column: Annotated[str | None, typer.Option(help="true/false annotation column: true rows are left out of the fit and projected afterwards.")] = None,
     allow_missing: AllowMissing = False,
+    stability_repeats: Annotated[int, typer.Option(
+        min=0, help="Split the samples this many times into two random halves, fit each half and compare "
+                    "its axes with the other half's: a stability from 0 to 1 per axis in axis_stability.tsv, "
+                    "the manifest and the axis cards (0: not assessed). Every pass over the data serves all "
+                    "halves.")] = 0,
+    stability_threshold: Annotated[float, typer.Option(
+        help="Axes whose split-half stability is below this are flagged unstable.")] = 0.8,
     report: Annotated[bool, typer.Option(
         "--report", help="Also draw the figures (figures/) and write report.html into --out: one "
                          "self-contained page with the maps, the axis cards and the warnings (see 'axiscope "
@@ -123,6 +130,10 @@ def fit_command(
     setup_logging(quiet)
     with user_errors():
         check_target(out, overwrite, wait=wait)
+        if stability_repeats:
+            from ..decide.stability import check_stability_options
+
+            check_stability_options(stability_repeats, stability_threshold)
         spec = PreprocessSpec(
             center=center, scale=scale.value, log_transform=log_transform, counts_per=counts_per,
             min_variance=min_variance, top_variable=top_variable, missing=missing.value,
@@ -145,10 +156,14 @@ def fit_command(
                 result = fit(src, n_components=n_components, preprocess=spec, engine=engine,
                              resources=resources, active=prepared.active,
                              exclude_features=prepared.exclude, progress=progress)
+                stability = fit_stability(src, result, stability_repeats, stability_threshold, engine,
+                                          active=prepared.active, threads=threads, progress=progress)
                 cards = explain_fit(prepared, result, src, top=top, memory_limit=memory_limit,
                                     threads=threads, progress=progress)
         with atomic_directory(out, overwrite=overwrite) as tmp:
             result.write(tmp, top=top, parquet=format is TableFormat.parquet, command_line=sys.argv)
+            if stability is not None:
+                stability.write(tmp, parquet=format is TableFormat.parquet)
             cards.write(tmp, parquet=format is TableFormat.parquet)
             if report:  # the static figures first, so that the page embeds them
                 from ..report.figures import write_figures
@@ -162,6 +177,19 @@ def fit_command(
         say(f"  figures in {out / 'figures'}; report in {out / 'report.html'}", quiet)
 
 
+def fit_stability(src, result, repeats: int, threshold: float, engine, *, active, threads, progress):
+    """Split-half stability of the fit's axes (None when ``repeats`` is 0), recorded in its manifest."""
+    if not repeats:
+        return None
+    from ..decide.stability import axis_stability
+
+    stability = axis_stability(src, result, repeats=repeats, threshold=threshold, oversample=engine.oversample,
+                               seed=engine.seed if isinstance(engine.seed, int) else 0, active=active,
+                               threads=threads, progress=progress)
+    result.manifest["stability"] = stability.record()
+    return stability
+
+
 def print_fit_summary(result, out: Path, quiet: bool) -> None:
     """A few lines: shape, passes, accuracy, variance of the first axes, where files are."""
     m = result.manifest
@@ -173,6 +201,8 @@ def print_fit_summary(result, out: Path, quiet: bool) -> None:
     )
     for line in accuracy_lines(m["accuracy"]):
         say(f"  {line}", quiet)
+    if "stability" in m:
+        say(f"  {stability_line(m['stability'])}", quiet)
     if m["n_missing_imputed"]:
         say(f"  {m['n_missing_imputed']} missing cells imputed with the feature mean", quiet)
     table = result.components_table().head(5)
@@ -229,6 +259,18 @@ def accuracy_lines(accuracy: dict) -> list[str]:
         loadings += (f" (—: {_span(loose)} {verb} not separated from a neighbour of nearly equal variance; "
                      "only the space such axes span together is determined)")
     return [values, loadings]
+
+
+def stability_line(record: dict) -> str:
+    """One line from the manifest's ``"stability"`` record: the values, and the unstable axes."""
+    axes = record["axes"]
+    values = ", ".join(f"{a['axis']} {a['stability']:.2f}" for a in axes[:MAX_AXES_LISTED])
+    unstable = [a for a in axes if not a["stable"]]
+    line = (f"split-half stability ({record['repeats']} splits, {record['passes']} passes): {values}"
+            + (", …" if len(axes) > MAX_AXES_LISTED else ""))
+    if unstable:
+        line += f"; unstable (below {record['threshold']:g}): {_span(unstable)}"
+    return line
 
 
 def _worst(axes: list[dict], key: str) -> str:

@@ -54,7 +54,7 @@ from .legend import (
     header_lines,
 )
 from .pages import render_page
-from .saved import SUPPLEMENTARY_SCORES_FILE, SupplementarySamples, read_saved_fit
+from .saved import SUPPLEMENTARY_SCORES_FILE, SupplementarySamples, read_manifest, read_saved_fit
 
 if TYPE_CHECKING:
     from ..fitting.result import FitResult
@@ -226,9 +226,9 @@ def _tidy(table: pd.DataFrame) -> pd.DataFrame:
     table = table.copy()
     for column in ("rank", "n", "n_missing", "n_categories", "df_between", "df_within"):
         table[column] = pd.to_numeric(table[column], errors="coerce").round().astype("Int64")
-    for column in ("supplementary", "technical", "used", "above_noise"):
+    for column in ("supplementary", "technical", "used", "above_noise", "stable"):
         table[column] = table[column].astype("boolean")
-    for column in ("variance", "variance_ratio", "cumulative_ratio", "loading", "correlation",
+    for column in ("variance", "variance_ratio", "cumulative_ratio", "stability", "loading", "correlation",
                    "contribution_pct", "sq_cosine", "score", "r_squared", "f_statistic", "category_mean",
                    "overall_mean", "z", "p_value", "p_adjusted"):
         table[column] = pd.to_numeric(table[column], errors="coerce").astype(np.float64)
@@ -306,12 +306,14 @@ def explain_axes(
     _check_settings(top, samples_per_list, alpha, warn_share)
     if isinstance(source, (str, Path)):
         saved = read_saved_fit(Path(source))
+        stability = read_manifest(Path(source)).get("stability")
         model, ids, scores, norms, feats = saved.model, saved.sample_ids, saved.scores, saved.squared_norms, saved.features
         if supplementary_samples is None:
             supplementary_samples = saved.supplementary
     else:
         model, ids, scores, norms = source.model, source.sample_ids, source.scores, source.sample_sq_dist
         feats = feature_statistics(model)
+        stability = source.manifest.get("stability")
     if supplementary_features is not None:
         feats = feats.concat(supplementary_features)
     ann = None
@@ -328,7 +330,7 @@ def explain_axes(
         axis_names=model.axis_names, singular_values=model.singular_values, variance=model.variance,
         variance_ratio=model.variance_ratio, sample_ids=np.asarray(ids, dtype=object), scores=scores,
         squared_norms=norms, features=feats, annotations=ann, supplementary_samples=supplementary_samples,
-        top=top, samples_per_list=samples_per_list, alpha=alpha, warn_share=warn_share,
+        top=top, samples_per_list=samples_per_list, alpha=alpha, warn_share=warn_share, stability=stability,
     )
 
 
@@ -359,8 +361,13 @@ def build_cards(
     samples_per_list: int = SAMPLES_PER_LIST,
     alpha: float = ALPHA,
     warn_share: float = WARN_SHARE,
+    stability: dict | None = None,
 ) -> AxisCards:
-    """Build :class:`AxisCards` from arrays (``scores``: the samples that built the axes)."""
+    """Build :class:`AxisCards` from arrays (``scores``: the samples that built the axes).
+
+    ``stability`` is the fit manifest's ``"stability"`` record (split-half stability of each
+    axis, :mod:`axiscope.decide.stability`), shown in the ``carries`` section when given.
+    """
     axis_names = list(axis_names)
     F = np.asarray(scores, dtype=np.float64)
     samples = sample_statistics(sample_ids, F, squared_norms, axis_names, singular_values=singular_values)
@@ -379,7 +386,7 @@ def build_cards(
     ann = annotations if annotated else AnnotationSet.empty(sample_ids)
     shares, categories = annotation_shares(ann, F, axis_names)
     cards = AxisCards(
-        carries=_carries(axis_names, variance, variance_ratio),
+        carries=_carries(axis_names, variance, variance_ratio, stability),
         readings=pd.DataFrame(),
         built_from=_built_from(features, top),
         lines_up=shares,
@@ -408,11 +415,16 @@ def build_cards(
 # --------------------------------------------------------------------------- sections
 
 
-def _carries(axis_names: list[str], variance: np.ndarray, variance_ratio: np.ndarray) -> pd.DataFrame:
+def _carries(axis_names: list[str], variance: np.ndarray, variance_ratio: np.ndarray,
+             stability: dict | None = None) -> pd.DataFrame:
     ratio = np.asarray(variance_ratio, dtype=np.float64)
+    known = {a["axis"]: a for a in (stability or {}).get("axes", [])}
     return pd.DataFrame({"axis": axis_names, "variance": np.asarray(variance, dtype=np.float64),
                          "variance_ratio": ratio, "cumulative_ratio": np.cumsum(ratio),
-                         "above_noise": pd.array([None] * len(axis_names), dtype="boolean")})
+                         "above_noise": pd.array([None] * len(axis_names), dtype="boolean"),
+                         "stability": [known[a]["stability"] if a in known else np.nan for a in axis_names],
+                         "stable": pd.array([known[a]["stable"] if a in known else None for a in axis_names],
+                                            dtype="boolean")})
 
 
 def _largest(values: np.ndarray, m: int, sign: float) -> np.ndarray:
@@ -528,6 +540,15 @@ def _loadings_phrase(built_from: pd.DataFrame, n: int = 3) -> str:
     return "largest loadings " + "; ".join(parts) if parts else "no feature loads on it"
 
 
+def _stability_phrase(carries: pd.DataFrame) -> str:
+    """`` Unstable: …`` when the split-half stability of the axis is known and below its threshold."""
+    if not len(carries) or "stable" not in carries or pd.isna(carries["stable"].iloc[0]) \
+            or bool(carries["stable"].iloc[0]):
+        return ""
+    return (f" Unstable: two random halves of the samples give different versions of it (split-half "
+            f"stability {float(carries['stability'].iloc[0]):.2f}); do not read it on its own.")
+
+
 def _readings(cards: AxisCards, alpha: float, warn_share: float, annotated: bool) -> pd.DataFrame:
     rows = []
     for axis, ratio in zip(cards.carries["axis"], cards.carries["variance_ratio"]):
@@ -540,6 +561,7 @@ def _readings(cards: AxisCards, alpha: float, warn_share: float, annotated: bool
                                          warn_share, bool(warning))
             text += f" and {phrase}"
         text += f"; {_loadings_phrase(cards.built_from[cards.built_from['axis'] == axis])}."
+        text += _stability_phrase(cards.carries[cards.carries["axis"] == axis])
         rows.append({"axis": axis, "reading": text, "warning": warning,
                      "warning_annotation": strongest["annotation"] if warning else None,
                      "warning_r_squared": float(strongest["r_squared"]) if warning else np.nan})

@@ -59,6 +59,11 @@ COLUMNS = {
                         "the pages show it in percent)",
     "above_noise": "whether the axis stands above the noise level; left empty (null) until axiscope "
                    "assesses it",
+    "stability": "split-half stability of the axis: median, over random splits of the samples into two halves, "
+                 "of the absolute cosine between the two halves' loading vectors matched to this axis (0–1); "
+                 "empty when not assessed (fit --stability-repeats)",
+    "stable": "whether the stability reaches the threshold in the fit's manifest (0.8 by default); empty "
+              "when not assessed",
     "loading": "weight of the feature in the axis (unit-length direction; supplementary features in the "
                "same units)",
     "correlation": "Pearson correlation with the axis's scores: of the feature (built_from) or of a numeric "

@@ -44,7 +44,7 @@ from ..model.training import (
 )
 from .result import FitResult
 
-__all__ = ["fit", "METHODS", "max_components"]
+__all__ = ["fit", "METHODS", "max_components", "FittedBlocks", "fitted_blocks"]
 
 logger = logging.getLogger(__name__)
 
@@ -307,6 +307,54 @@ class _Reader:
             lambda i: cache.get(int(self.starts[i]), int(self.starts[i]) + self.rows[i]),
             self.rows, width, self.src.dtype, f"cache-{self.token}",
         )
+
+
+@dataclass(frozen=True)
+class FittedBlocks:
+    """The fit's matrix read again for further passes: blocks of transformed values, and the
+    centre, inverse scale and fill of their columns (the kept features, in model order).
+
+    ``X̃ = (X − 1·meanᵀ)·diag(inverse_scale)`` over the active samples is the matrix the fit
+    factorised; ``X`` is a row-chunked Dask array whose blocks are those of the fit.
+    """
+
+    X: object  # dask.array.Array, active samples × kept features
+    mean: np.ndarray
+    inverse_scale: np.ndarray
+    fill: np.ndarray | None
+    load: object  # load(i): the i-th block (what X's i-th chunk computes)
+    rows: list  # rows of each block
+
+
+def fitted_blocks(src: MatrixSource, result: FitResult, *, active: np.ndarray | None = None,
+                  name: str = "again") -> FittedBlocks:
+    """The matrix ``result`` was fitted on, as the same blocks of the same active samples.
+
+    Each pass over the returned array reads the input once more (no cache is kept), with the
+    fit's per-sample transforms and block rows; features other than the kept ones are
+    dropped from each block (no copy when all are kept).
+
+    Parameters
+    ----------
+    src : MatrixSource
+        The input the fit read.
+    result : FitResult
+    active : ndarray of bool, shape (n_samples,), optional
+        The fit's active samples (default: all).
+    name : str
+        Name of the Dask array (a prefix; a unique token is added).
+    """
+    active = np.ones(src.shape[0], dtype=bool) if active is None else np.asarray(active, dtype=bool)
+    if active.shape != (src.shape[0],) or int(active.sum()) != result.model.n_samples:
+        raise OptionError(f"active selects {int(active.sum())} samples, but the fit used "
+                          f"{result.model.n_samples}; pass the fit's active mask")
+    prep, spec = result.preprocessing, result.model.spec
+    reader = _Reader(src, spec, active, int(result.manifest["plan"]["block_rows"]))
+    columns = None if prep.kept.shape[0] == src.shape[1] else np.asarray(prep.kept)
+    fill = np.asarray(prep.mean_raw, dtype=np.float64) if spec.missing == "mean" else None
+    return FittedBlocks(reader.array(name, columns), np.asarray(prep.mean, dtype=np.float64),
+                        np.asarray(prep.inverse_scale, dtype=np.float64), fill,
+                        lambda i: reader.block(i, columns), list(reader.rows))
 
 
 class _Caches:
