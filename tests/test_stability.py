@@ -121,18 +121,17 @@ def test_same_seed_same_values_whatever_the_threads():
     assert np.array_equal(one.subspace_per_repeat, two.subspace_per_repeat)
 
 
-class _CountingSource:
-    """Wraps a MatrixSource and counts the rows read."""
+def _counting(src):
+    """``src`` (a MatrixSource) counting the rows it reads in ``src.rows_read``."""
+    read = src.read_samples
+    src.rows_read = 0
 
-    def __init__(self, src):
-        self._src, self.rows_read = src, 0
+    def read_samples(start, stop):
+        src.rows_read += stop - start
+        return read(start, stop)
 
-    def __getattr__(self, name):
-        return getattr(self._src, name)
-
-    def read_samples(self, start, stop):
-        self.rows_read += stop - start
-        return self._src.read_samples(start, stop)
+    src.read_samples = read_samples
+    return src
 
 
 def test_one_read_per_pass_whatever_the_repeats():
@@ -141,7 +140,7 @@ def test_one_read_per_pass_whatever_the_repeats():
     X = planted(200, 60, [3.0], seed=8)
     result = _fit(X, 3)
     for repeats, max_passes in ((1, 2), (4, 3)):
-        src = _CountingSource(array_source(X))
+        src = _counting(array_source(X))
         stab = axis_stability(src, result, repeats=repeats, seed=0, max_passes=max_passes)
         assert stab.passes == max_passes
         assert src.rows_read == max_passes * 200
@@ -184,3 +183,29 @@ def test_bad_options_one_line_exit_2_no_output(tmp_path, args, fragment):
     assert fragment in res.stderr, res.stderr
     assert "Traceback" not in res.stderr
     assert not out.exists() and not list(tmp_path.glob(".res.tmp-*"))
+
+
+@pytest.mark.parametrize("options", [{}, {"preprocess": "top_variable"}])
+def test_on_the_fit_s_cached_blocks_same_values_and_no_new_read(options):
+    """``fit(..., then=...)`` hands over the cached blocks: the stability read from them equals the
+    one decoding the input again (float64: to 1e-10) and the input is not read again. One
+    feature is constant (dropped by the fit), so the cached blocks carry a column the model lacks."""
+    from axiscope.core.preprocess import PreprocessSpec
+
+    X = planted(180, 40, [3.0, 2.0], seed=11)
+    X[:, 7] = 2.5
+    spec = PreprocessSpec(top_variable=30) if options else PreprocessSpec()
+    src = _counting(array_source(X))
+    seen = {}
+
+    def then(result, blocks):
+        before = src.rows_read
+        seen["stability"] = axis_stability(blocks, result, repeats=2, seed=4)
+        seen["rows"] = src.rows_read - before
+
+    result = fit(src, n_components=3, preprocess=spec, then=then)
+    again = axis_stability(array_source(X), result, repeats=2, seed=4)
+    assert seen["rows"] == 0 and seen["stability"].read_from == "memory"
+    np.testing.assert_allclose(seen["stability"].per_repeat, again.per_repeat, atol=1e-10)
+    np.testing.assert_allclose(seen["stability"].subspace_per_repeat, again.subspace_per_repeat, atol=1e-10)
+    assert again.read_from == "input"

@@ -153,11 +153,17 @@ def fit_command(
                 supplementary_samples_column=supplementary_samples_column, allow_missing=allow_missing,
             )
             with progress_display(quiet) as progress:
+                assessed = []  # the stability, assessed on the fit's blocks while its cache is open
+
+                def then(result, blocks):
+                    assessed.append(fit_stability(blocks, result, stability_repeats, stability_threshold, engine,
+                                                  threads=threads, progress=progress))
+
                 result = fit(src, n_components=n_components, preprocess=spec, engine=engine,
                              resources=resources, active=prepared.active,
-                             exclude_features=prepared.exclude, progress=progress)
-                stability = fit_stability(src, result, stability_repeats, stability_threshold, engine,
-                                          active=prepared.active, threads=threads, progress=progress)
+                             exclude_features=prepared.exclude, progress=progress,
+                             then=then if stability_repeats else None)
+                stability = assessed[0] if assessed else None
                 cards = explain_fit(prepared, result, src, top=top, memory_limit=memory_limit,
                                     threads=threads, progress=progress)
         with atomic_directory(out, overwrite=overwrite) as tmp:
@@ -177,15 +183,13 @@ def fit_command(
         say(f"  figures in {out / 'figures'}; report in {out / 'report.html'}", quiet)
 
 
-def fit_stability(src, result, repeats: int, threshold: float, engine, *, active, threads, progress):
-    """Split-half stability of the fit's axes (None when ``repeats`` is 0), recorded in its manifest."""
-    if not repeats:
-        return None
+def fit_stability(blocks, result, repeats: int, threshold: float, engine, *, threads, progress):
+    """Split-half stability of the fit's axes on its blocks, recorded in its manifest."""
     from ..decide.stability import axis_stability
 
-    stability = axis_stability(src, result, repeats=repeats, threshold=threshold, oversample=engine.oversample,
-                               seed=engine.seed if isinstance(engine.seed, int) else 0, active=active,
-                               threads=threads, progress=progress)
+    stability = axis_stability(blocks, result, repeats=repeats, threshold=threshold, oversample=engine.oversample,
+                               seed=engine.seed if isinstance(engine.seed, int) else 0, threads=threads,
+                               progress=progress)
     result.manifest["stability"] = stability.record()
     return stability
 

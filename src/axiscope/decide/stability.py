@@ -67,7 +67,7 @@ from ..core.engine import ritz_accuracy
 from ..core.passes import PassRunner, Progress, array_from_blocks, blas_threads
 from ..errors import OptionError
 from ..fitting.result import FitResult
-from ..fitting.run import fitted_blocks
+from ..fitting.run import FittedBlocks, fitted_blocks
 from ..io import MatrixSource
 
 __all__ = ["AxisStability", "axis_stability", "DEFAULT_THRESHOLD", "DEFAULT_MAX_PASSES", "SETTLED_SINE",
@@ -101,6 +101,9 @@ class AxisStability:
     threshold : float
     passes : int
         Passes over the data (each read advances every half).
+    read_from : str
+        Where the passes read the blocks: ``input`` (decoded again), or the fit's cache
+        (``memory``, ``scratch``) or ``source`` (an uncompressed input read again).
     seconds : float
     angle_bound : ndarray, shape (k,)
         Largest bound, over halves and repeats, on the sine of the angle between a half's
@@ -117,6 +120,7 @@ class AxisStability:
     subspace_per_repeat: np.ndarray
     threshold: float
     passes: int
+    read_from: str
     seconds: float
     angle_bound: np.ndarray
     loadings: list = field(default_factory=list, repr=False)
@@ -162,6 +166,7 @@ class AxisStability:
             "threshold": float(self.threshold),
             "repeats": self.repeats,
             "passes": int(self.passes),
+            "read_from": self.read_from,
             "seconds": round(float(self.seconds), 3),
             "seed": self.seed,
             "file": STABILITY_FILE,
@@ -179,7 +184,7 @@ class AxisStability:
 
 
 def axis_stability(
-    source: MatrixSource,
+    source: MatrixSource | FittedBlocks,
     result: FitResult,
     *,
     repeats: int = 3,
@@ -195,8 +200,10 @@ def axis_stability(
 
     Parameters
     ----------
-    source : MatrixSource
-        The opened input of the fit (read again ``passes`` times).
+    source : MatrixSource or FittedBlocks
+        The opened input of the fit (decoded again on every pass), or the fit's blocks as
+        :func:`axiscope.fitting.fit` hands them to its ``then`` callback (read from the fit's
+        cache, in memory or on scratch, while it is open).
     result : FitResult
         The fit; its preprocessing, block rows and loadings are used.
     repeats : int, default=3
@@ -238,7 +245,8 @@ def axis_stability(
         raise OptionError(f"stability_repeats: halves of {half} samples have rank at most {half - 1}, fewer "
                           f"than the fit's {k} axes; fit fewer axes or leave stability out")
     t0 = time.perf_counter()
-    blocks = fitted_blocks(source, result, active=active, name="stability")
+    blocks = source if isinstance(source, FittedBlocks) else \
+        fitted_blocks(source, result, active=active, name="stability")
     threads = threads or int(result.manifest.get("plan", {}).get("threads", 1))
     runner = PassRunner(threads=threads, progress=progress)
     rng = np.random.default_rng(seed)
@@ -250,7 +258,7 @@ def axis_stability(
                                                    for r in range(repeats)])
     out = AxisStability(
         axis_names=list(result.axis_names), per_repeat=per_repeat, subspace_per_repeat=subspace,
-        threshold=threshold, passes=passes, seconds=time.perf_counter() - t0,
+        threshold=threshold, passes=passes, read_from=blocks.source, seconds=time.perf_counter() - t0,
         angle_bound=np.max(np.stack([h.bound for h in halves]), axis=0),
         loadings=[(halves[2 * r].vectors, halves[2 * r + 1].vectors) for r in range(repeats)],
         halves=labels, seed=int(seed),
@@ -326,6 +334,7 @@ class _Half:
     """One half's block Krylov basis ``K`` and its image ``AK = X̃_hcᵀX̃_hc·K`` (re-centred)."""
 
     n_rows: int
+    rank_limit: int  # number of the model's features
     K: np.ndarray
     AK: np.ndarray
     Q: np.ndarray  # the block the next pass multiplies
@@ -337,11 +346,14 @@ class _Half:
 def _iterate(blocks, labels: np.ndarray, k: int, oversample: int, max_passes: int, rng, runner: PassRunner):
     """Block Krylov iterations of all halves, one shared read per pass; returns the halves and passes."""
     p = blocks.mean.shape[0]
+    kept = np.arange(p) if blocks.kept is None else np.asarray(blocks.kept)
     n_rows = [int(np.sum(labels[r] == h)) for r in range(labels.shape[0]) for h in (0, 1)]
     halves = []
     for n_h in n_rows:
-        l = min(k + oversample, p, n_h - 1)
-        halves.append(_Half(n_h, np.empty((p, 0)), np.empty((p, 0)), _orthonormal(rng.standard_normal((p, l)))))
+        l = min(k + oversample, kept.shape[0], n_h - 1)
+        start = np.zeros((p, l))  # drawn over the model's features only: the same start whatever the columns
+        start[kept] = rng.standard_normal((kept.shape[0], l))
+        halves.append(_Half(n_h, kept.shape[0], np.empty((p, 0)), np.empty((p, 0)), _orthonormal(start)))
     X = blocks.X
     centre = blocks.mean.astype(X.dtype)
     residual = blocks.mean - centre.astype(np.float64)
@@ -363,6 +375,8 @@ def _iterate(blocks, labels: np.ndarray, k: int, oversample: int, max_passes: in
             break
         if all(h.done for h in halves):
             break
+    for h in halves:  # in the model's features (the other columns are zero)
+        h.vectors = h.vectors[kept]
     return halves, passes
 
 
@@ -378,7 +392,7 @@ def _advance(h: _Half, Z: np.ndarray, k: int) -> None:
     residuals = np.linalg.norm(h.AK @ W[:, :m] - (h.K @ W[:, :m]) * theta[:m], axis=0)
     h.vectors = h.K @ W[:, :k]
     h.bound = ritz_accuracy(np.sqrt(theta), residuals, k, unit_roundoff=np.finfo(np.float32).eps / 2).vector
-    room = min(h.n_rows - 1, h.K.shape[0]) - h.K.shape[1]
+    room = min(h.n_rows - 1, h.rank_limit) - h.K.shape[1]
     h.Q = _new_directions(Z[:, : max(0, min(Z.shape[1], room))], h.K) if room > 0 else h.K[:, :0]
     h.done = h.Q.shape[1] == 0  # the basis spans every direction the half has: its pairs are exact
 
@@ -429,7 +443,7 @@ def _shared_pass(runner: PassRunner, blocks, labels, Ws, offsets, centre, fill, 
     # each chunk computes (first row, block), so that the task knows which half each row is in
     tagged = array_from_blocks(lambda i: (int(starts[i]), blocks.load(i)), blocks.rows,
                                blocks.mean.shape[0], blocks.X.dtype, f"{blocks.X.name}-rows")
-    runner.run(name, "input", tagged, task, fold)
+    runner.run(name, blocks.source, tagged, task, fold)
     return acc["g"], acc["y"], acc["c"] if first else [None] * n_halves
 
 

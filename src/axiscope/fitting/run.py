@@ -14,6 +14,7 @@ import platform
 import sys
 import time
 import uuid
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -63,6 +64,7 @@ def fit(
     active: np.ndarray | None = None,
     exclude_features: np.ndarray | None = None,
     progress: Progress | None = None,
+    then: "Callable[[FitResult, FittedBlocks], None] | None" = None,
 ) -> FitResult:
     """Principal component analysis of a matrix on disk, out of core.
 
@@ -90,6 +92,11 @@ def fit(
         Features left out of the axes (supplementary features); they are still read.
     progress : callable, optional
         ``progress(pass_name, blocks_done, n_blocks)``.
+    then : callable, optional
+        ``then(result, blocks)``, called once the fit is done while its block cache is still
+        open: further passes over ``blocks`` (:class:`FittedBlocks`) read the transformed
+        blocks from memory or scratch rather than decoding the input again (for example the
+        split-half stability, :func:`axiscope.decide.stability.axis_stability`).
 
     Returns
     -------
@@ -126,7 +133,7 @@ def fit(
                           "file's path instead, or leave layout out")
     job = _Job(int(n_components), preprocess, engine, resources, progress, t_start)
     with opened(source, **layout.open_options()) as src, blas_threads(resources.n_threads):
-        return _fit(src, job, active, exclude_features)
+        return _fit(src, job, active, exclude_features, then)
 
 
 def _option(value, kind: type, name: str):
@@ -160,7 +167,7 @@ class _Job:
     t_start: float
 
 
-def _fit(src: MatrixSource, job: _Job, active, exclude) -> FitResult:
+def _fit(src: MatrixSource, job: _Job, active, exclude, then=None) -> FitResult:
     """The steps of a fit: check, plan, read statistics, preprocess, factorise, record."""
     active, exclude = _masks(src, active, exclude)
     n = int(active.sum())
@@ -187,20 +194,23 @@ def _fit(src: MatrixSource, job: _Job, active, exclude) -> FitResult:
         prep = _preprocessing(job, stats, exclude, src, n)
         operand = _Operand.build(job.spec, stats, prep, reader, caches, filtered=filtered, filled=first_cache)
         fac = _factorise(method, operand, job, n, rng, runner, plan, sketch)
-    _check_numerical_rank(fac, job.k, src.dtype, n, int(prep.kept.shape[0]))
-    model = _model(src, job.spec, prep, stats, fac, n, operand.columns is not None)
-    manifest = _manifest(src, job, n, prep, stats, fac, plan, runner)
-    return FitResult(
-        model=model,
-        sample_ids=np.asarray(src.sample_ids)[active],
-        scores=fac.scores,
-        sample_sq_dist=fac.row_sq_norms,
-        factorization=fac,
-        preprocessing=prep,
-        statistics=stats,
-        input_feature_ids=np.asarray(src.feature_ids),
-        manifest=manifest,
-    )
+        _check_numerical_rank(fac, job.k, src.dtype, n, int(prep.kept.shape[0]))
+        model = _model(src, job.spec, prep, stats, fac, n, operand.columns is not None)
+        manifest = _manifest(src, job, n, prep, stats, fac, plan, runner)
+        result = FitResult(
+            model=model,
+            sample_ids=np.asarray(src.sample_ids)[active],
+            scores=fac.scores,
+            sample_sq_dist=fac.row_sq_norms,
+            factorization=fac,
+            preprocessing=prep,
+            statistics=stats,
+            input_feature_ids=np.asarray(src.feature_ids),
+            manifest=manifest,
+        )
+        if then is not None:
+            then(result, operand.blocks(reader, prep))
+    return result
 
 
 # ------------------------------------------------------------------------ the steps
@@ -301,6 +311,10 @@ class _Reader:
         return array_from_blocks(lambda i: self.block(i, columns, cache), self.rows, width,
                                  self.src.dtype, f"{name}-{self.token}")
 
+    def load_cached(self, cache: BlockCache):
+        """``load(i)``: the ``i``-th block from ``cache``."""
+        return lambda i: cache.get(int(self.starts[i]), int(self.starts[i]) + self.rows[i])
+
     def cached(self, cache: BlockCache, width: int):
         """The blocks stored in ``cache``, as a Dask array."""
         return array_from_blocks(
@@ -311,19 +325,25 @@ class _Reader:
 
 @dataclass(frozen=True)
 class FittedBlocks:
-    """The fit's matrix read again for further passes: blocks of transformed values, and the
-    centre, inverse scale and fill of their columns (the kept features, in model order).
+    """The fit's matrix for further passes: blocks of transformed values, and the centre,
+    inverse scale and fill of their columns (the kept features in model order, or every input
+    feature with inverse scale 0 for those not kept, see ``kept``).
 
     ``X̃ = (X − 1·meanᵀ)·diag(inverse_scale)`` over the active samples is the matrix the fit
     factorised; ``X`` is a row-chunked Dask array whose blocks are those of the fit.
     """
 
-    X: object  # dask.array.Array, active samples × kept features
+    X: object  # dask.array.Array, active samples × columns
     mean: np.ndarray
     inverse_scale: np.ndarray
     fill: np.ndarray | None
     load: object  # load(i): the i-th block (what X's i-th chunk computes)
     rows: list  # rows of each block
+    #: Position of each of the model's features among the blocks' columns (None: the same
+    #: columns); the other columns have inverse scale 0.
+    kept: np.ndarray | None = None
+    #: Where the blocks are read from: "input", "memory", "scratch" or "source".
+    source: str = "input"
 
 
 def fitted_blocks(src: MatrixSource, result: FitResult, *, active: np.ndarray | None = None,
@@ -354,7 +374,7 @@ def fitted_blocks(src: MatrixSource, result: FitResult, *, active: np.ndarray | 
     fill = np.asarray(prep.mean_raw, dtype=np.float64) if spec.missing == "mean" else None
     return FittedBlocks(reader.array(name, columns), np.asarray(prep.mean, dtype=np.float64),
                         np.asarray(prep.inverse_scale, dtype=np.float64), fill,
-                        lambda i: reader.block(i, columns), list(reader.rows))
+                        lambda i: reader.block(i, columns), list(reader.rows), None, "input")
 
 
 class _Caches:
@@ -415,6 +435,7 @@ class _Operand:
     first: object | None  # Dask array read from the input, filling the cache
     later: object  # Dask array of the passes after it
     later_source: str
+    cache: BlockCache | None = None
 
     @classmethod
     def build(cls, spec, stats, prep, reader: _Reader, caches: _Caches, *, filtered: bool,
@@ -439,7 +460,15 @@ class _Operand:
             later, source = reader.cached(cache, width), caches.mode
         else:
             later, source = reader.array("reread", columns), "source"
-        return cls(columns, mean, d, fill, first, later, source)
+        return cls(columns, mean, d, fill, first, later, source, cache)
+
+    def blocks(self, reader: _Reader, prep: Preprocessing) -> FittedBlocks:
+        """The blocks the later passes read (cache or input), for passes after the fit."""
+        load = reader.load_cached(self.cache) if self.cache is not None else \
+            (lambda i: reader.block(i, self.columns))
+        kept = None if self.columns is not None or prep.kept.shape[0] == reader.src.shape[1] else prep.kept
+        return FittedBlocks(self.later, self.mean, self.inverse_scale, self.fill, load, list(reader.rows),
+                            kept, self.later_source)
 
 
 def _factorise(method: str, op: _Operand, job: _Job, n: int, rng, runner, plan: BlockPlan,
