@@ -74,7 +74,7 @@ def run(path: Path, k: int, repeats: int, threads: int | None, halves: bool) -> 
     held = {}
 
     def then(result, blocks):
-        held["stability"] = axis_stability(blocks, result, repeats=repeats, threads=threads)
+        held["stability"] = axis_stability(blocks, result, stability_repeats=repeats, threads=threads)
 
     t0 = time.perf_counter()
     with_stability = fit(path, n_components=k, resources=resources, then=then)
@@ -88,7 +88,7 @@ def run(path: Path, k: int, repeats: int, threads: int | None, halves: bool) -> 
                  "passes": stab.passes, "notes": f"per axis: {values}"})
 
     with open_matrix(path) as src:
-        again = axis_stability(src, plain, repeats=repeats, threads=threads)
+        again = axis_stability(src, plain, stability_repeats=repeats, threads=threads)
     rows.append({"run": "stability, input read again", "wall": again.seconds, "passes": again.passes,
                  "notes": f"read from {again.read_from}; same values: "
                           f"{np.allclose(again.per_repeat, stab.per_repeat, atol=1e-4)}"})

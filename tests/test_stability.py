@@ -50,7 +50,7 @@ def _fit(X, k, threads=1):
 def test_planted_axes_are_stable_and_axes_beyond_the_rank_are_not():
     X = planted(400, 150, [5.0, 3.5, 2.2], seed=1)
     result = _fit(X, 6)
-    stab = axis_stability(array_source(X), result, repeats=3, seed=0)
+    stab = axis_stability(array_source(X), result, stability_repeats=3, seed=0)
     values = stab.value
     assert np.all(values[:3] >= 0.9), values
     assert np.all(values[3:] < 0.8), values  # pure noise: halves' directions unrelated
@@ -64,7 +64,7 @@ def test_values_against_lapack_on_each_half_when_the_basis_spans_the_half():
     read must give LAPACK's answer up to rounding (1e-9 on the cosines, float64)."""
     X = planted(120, 24, [3.0, 2.0], seed=2)
     result = _fit(X, 4)
-    stab = axis_stability(array_source(X), result, repeats=2, seed=5, oversample=10, max_passes=3)
+    stab = axis_stability(array_source(X), result, stability_repeats=2, seed=5, oversample=10, max_passes=3)
     pairs = []
     for r in range(stab.repeats):
         a, b = (half_loadings(X, np.flatnonzero(stab.halves[r] == h), 4) for h in (0, 1))
@@ -82,7 +82,7 @@ def test_values_against_lapack_on_each_half_after_few_passes():
     (tolerances from the stopping rule, SETTLED_SINE = 0.01, which bounds the sine)."""
     X = planted(300, 400, [4.0, 3.0, 2.5], seed=3, dtype=np.float32)
     result = _fit(X, 3)
-    stab = axis_stability(array_source(X), result, repeats=2, seed=1, max_passes=6)
+    stab = axis_stability(array_source(X), result, stability_repeats=2, seed=1, max_passes=6)
     X64 = X.astype(np.float64)
     pairs = [tuple(half_loadings(X64, np.flatnonzero(stab.halves[r] == h), 3) for h in (0, 1))
              for r in range(stab.repeats)]
@@ -115,8 +115,8 @@ def test_matching_follows_axes_that_swap_between_halves():
 def test_same_seed_same_values_whatever_the_threads():
     X = planted(256, 80, [3.0, 2.0], seed=7, dtype=np.float32)
     result = _fit(X, 3)
-    one = axis_stability(array_source(X), result, repeats=2, seed=3, threads=1)
-    two = axis_stability(array_source(X), result, repeats=2, seed=3, threads=2)
+    one = axis_stability(array_source(X), result, stability_repeats=2, seed=3, threads=1)
+    two = axis_stability(array_source(X), result, stability_repeats=2, seed=3, threads=2)
     assert np.array_equal(one.per_repeat, two.per_repeat)
     assert np.array_equal(one.subspace_per_repeat, two.subspace_per_repeat)
 
@@ -141,7 +141,7 @@ def test_one_read_per_pass_whatever_the_repeats():
     result = _fit(X, 3)
     for repeats, max_passes in ((1, 2), (4, 3)):
         src = _counting(array_source(X))
-        stab = axis_stability(src, result, repeats=repeats, seed=0, max_passes=max_passes)
+        stab = axis_stability(src, result, stability_repeats=repeats, seed=0, max_passes=max_passes)
         assert stab.passes == max_passes
         assert src.rows_read == max_passes * 200
         assert stab.record()["passes"] == max_passes
@@ -167,6 +167,10 @@ def test_fit_command_writes_the_table_manifest_and_cards(tmp_path):
     assert carries[0]["stability"] == pytest.approx(record["axes"][0]["stability"])
     page = (out / "axis_cards" / "PC4.md").read_text()
     assert "unstable" in page and "Unstable: two random halves" in page
+    # a later 'axiscope explain' reads the stability back from the manifest
+    assert runner.invoke(app, ["explain", str(out), "--quiet"]).exit_code == 0
+    later = json.loads((out / "explanation" / "axis_cards.json").read_text())["records"]
+    assert [r["stable"] for r in later if r["section"] == "carries"] == [True, True, False, False]
 
 
 @pytest.mark.parametrize("args, fragment", [
@@ -200,11 +204,11 @@ def test_on_the_fit_s_cached_blocks_same_values_and_no_new_read(options):
 
     def then(result, blocks):
         before = src.rows_read
-        seen["stability"] = axis_stability(blocks, result, repeats=2, seed=4)
+        seen["stability"] = axis_stability(blocks, result, stability_repeats=2, seed=4)
         seen["rows"] = src.rows_read - before
 
     result = fit(src, n_components=3, preprocess=spec, then=then)
-    again = axis_stability(array_source(X), result, repeats=2, seed=4)
+    again = axis_stability(array_source(X), result, stability_repeats=2, seed=4)
     assert seen["rows"] == 0 and seen["stability"].read_from == "memory"
     np.testing.assert_allclose(seen["stability"].per_repeat, again.per_repeat, atol=1e-10)
     np.testing.assert_allclose(seen["stability"].subspace_per_repeat, again.subspace_per_repeat, atol=1e-10)

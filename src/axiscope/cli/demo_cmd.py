@@ -103,7 +103,7 @@ def demo_stability(blocks, result, threads, progress):
     """Split-half stability of the demo fit's axes, recorded in its manifest (the cards show it)."""
     from ..decide.stability import axis_stability
 
-    stability = axis_stability(blocks, result, repeats=DEMO_STABILITY_REPEATS, threads=threads,
+    stability = axis_stability(blocks, result, stability_repeats=DEMO_STABILITY_REPEATS, threads=threads,
                                progress=progress)
     result.manifest["stability"] = stability.record()
     return stability

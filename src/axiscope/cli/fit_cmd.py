@@ -187,7 +187,7 @@ def fit_stability(blocks, result, repeats: int, threshold: float, engine, *, thr
     """Split-half stability of the fit's axes on its blocks, recorded in its manifest."""
     from ..decide.stability import axis_stability
 
-    stability = axis_stability(blocks, result, repeats=repeats, threshold=threshold,
+    stability = axis_stability(blocks, result, stability_repeats=repeats, stability_threshold=threshold,
                                seed=engine.seed if isinstance(engine.seed, int) else 0, threads=threads,
                                progress=progress)
     result.manifest["stability"] = stability.record()

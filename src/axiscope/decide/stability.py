@@ -192,8 +192,8 @@ def axis_stability(
     source: MatrixSource | FittedBlocks,
     result: FitResult,
     *,
-    repeats: int = 3,
-    threshold: float = DEFAULT_THRESHOLD,
+    stability_repeats: int = 3,
+    stability_threshold: float = DEFAULT_THRESHOLD,
     max_passes: int = DEFAULT_MAX_PASSES,
     oversample: int = DEFAULT_OVERSAMPLE,
     seed: int = 0,
@@ -211,10 +211,11 @@ def axis_stability(
         cache, in memory or on scratch, while it is open).
     result : FitResult
         The fit; its preprocessing, block rows and loadings are used.
-    repeats : int, default=3
+    stability_repeats : int, default=3
         Random splits of the active samples into two halves.
-    threshold : float, default=0.8
-        Axes with a stability below it are flagged unstable.
+    stability_threshold : float, default=0.8
+        Axes with a stability below it are flagged unstable (named like the options of
+        ``axiscope fit`` they come from).
     max_passes : int, default=4
         Largest number of passes over the data (at least 2).
     oversample : int, default=5
@@ -243,7 +244,8 @@ def axis_stability(
     -----
     Passes over the data: between 2 and ``max_passes`` (see the module's description).
     """
-    repeats, threshold, max_passes, oversample = _check(repeats, threshold, max_passes, oversample, seed)
+    repeats, threshold, max_passes, oversample = _check(stability_repeats, stability_threshold, max_passes,
+                                                        oversample, seed)
     k = result.model.n_components
     n = result.model.n_samples
     half = n // 2
