@@ -46,6 +46,8 @@ def test_demo_describes_the_planted_structure_and_flags_corrupted_samples(tmp_pa
     stability = json.loads((out / "fit" / "manifest.json").read_text())["stability"]
     assert [a["stable"] for a in stability["axes"][:3]] == [True, True, True]
     assert (out / "fit" / "axis_stability.tsv").is_file() and "split-half stability" in result.output
+    report = (out / "report.html").read_text()
+    assert f"<dt>split-half stability</dt><dd>{stability['axes'][0]['stability']:.2f} (stable)</dd>" in report
     # --format parquet covers the tables of every stage
     for table in ("fit/sample_scores", "fit/top_features", "fit/axis_cards", "fit/sample_statistics",
                   "score/diagnostics", "score/scores"):

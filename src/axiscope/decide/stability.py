@@ -22,7 +22,8 @@ flagged unstable.
 
 Each half is the fit's preprocessed matrix restricted to the half's samples (centre and
 scale of the whole active set, from the fit) and then **re-centred on the half's own
-mean**, so that each half is a PCA of its samples in the fit's units. The re-centring is
+mean** (unless the fit was not centred), so that each half is a PCA of its samples in the
+fit's units. The re-centring is
 exact and costs nothing extra: with ``m_h`` the half's mean row of ``X̃`` (accumulated in
 the first pass),
 ``(X̃_h − 1m_hᵀ)ᵀ(X̃_h − 1m_hᵀ)·Q = X̃_hᵀX̃_h·Q − n_h·m_h(m_hᵀQ)``; the half means of
@@ -260,7 +261,8 @@ def axis_stability(
     rng = np.random.default_rng(seed)
     labels = np.stack([_split(n, rng) for _ in range(repeats)])
     with blas_threads(threads):
-        halves, passes = _iterate(blocks, labels, k, oversample, max_passes, rng, runner)
+        halves, passes = _iterate(blocks, labels, k, oversample, max_passes, rng, runner,
+                                  recentre=bool(result.model.spec.center))
     full = np.asarray(result.model.components, dtype=np.float64)
     per_repeat, subspace = stability_values(full, [(halves[2 * r].vectors, halves[2 * r + 1].vectors)
                                                    for r in range(repeats)])
@@ -351,8 +353,12 @@ class _Half:
     done: bool = False
 
 
-def _iterate(blocks, labels: np.ndarray, k: int, oversample: int, max_passes: int, rng, runner: PassRunner):
-    """Block Krylov iterations of all halves, one shared read per pass; returns the halves and passes."""
+def _iterate(blocks, labels: np.ndarray, k: int, oversample: int, max_passes: int, rng, runner: PassRunner,
+             *, recentre: bool = True):
+    """Block Krylov iterations of all halves, one shared read per pass; returns the halves and passes.
+
+    ``recentre``: centre each half on its own mean (a fit without centring leaves them uncentred).
+    """
     p = blocks.mean.shape[0]
     kept = np.arange(p) if blocks.kept is None else np.asarray(blocks.kept)
     n_rows = [int(np.sum(labels[r] == h)) for r in range(labels.shape[0]) for h in (0, 1)]
@@ -377,7 +383,8 @@ def _iterate(blocks, labels: np.ndarray, k: int, oversample: int, max_passes: in
             sums = [blocks.inverse_scale * (c - h.n_rows * residual) for c, h in zip(colsums, halves)]
         for h, g, ysum, s in zip(halves, grams, ysums, sums):
             Z = blocks.inverse_scale[:, None] * (g - np.outer(residual, ysum))
-            Z -= np.outer(s, (s @ h.Q) / h.n_rows)  # re-centre the half on its own mean
+            if recentre:  # on the half's own mean
+                Z -= np.outer(s, (s @ h.Q) / h.n_rows)
             _advance(h, Z, k)
         if i >= 1 and all(h.done or float(np.max(h.bound)) <= SETTLED_SINE for h in halves):
             break
