@@ -70,6 +70,7 @@ def run(path: Path, k: int, repeats: int, threads: int | None, halves: bool) -> 
     fit_wall = time.perf_counter() - t0
     rows.append({"run": "fit", "wall": fit_wall, "passes": plain.manifest["passes"]["count"],
                  "notes": f"plan cache: {plain.manifest['plan']['cache']}"})
+    _done(rows[-1])
 
     held = {}
 
@@ -86,12 +87,15 @@ def run(path: Path, k: int, repeats: int, threads: int | None, halves: bool) -> 
                  "notes": f"of which stability {stab.seconds:.1f} s, {stab.passes} passes from {stab.read_from}"})
     rows.append({"run": f"stability alone ({repeats} splits, fit's cache)", "wall": stab.seconds,
                  "passes": stab.passes, "notes": f"per axis: {values}"})
+    _done(rows[-2])
+    _done(rows[-1])
 
     with open_matrix(path) as src:
         again = axis_stability(src, plain, stability_repeats=repeats, threads=threads)
     rows.append({"run": "stability, input read again", "wall": again.seconds, "passes": again.passes,
                  "notes": f"read from {again.read_from}; same values: "
                           f"{np.allclose(again.per_repeat, stab.per_repeat, atol=1e-4)}"})
+    _done(rows[-1])
 
     if halves:
         n = plain.model.n_samples
@@ -104,11 +108,17 @@ def run(path: Path, k: int, repeats: int, threads: int | None, halves: bool) -> 
             for mask in (labels, ~labels):
                 half = fit(path, n_components=k, resources=resources, active=mask)
                 passes += half.manifest["passes"]["count"]
+                print(f"half fitted: {half.manifest['seconds']:.1f} s", file=sys.stderr, flush=True)
         rows.append({"run": f"{2 * repeats} halves fitted one by one", "wall": time.perf_counter() - t0,
                      "passes": passes, "notes": "no shared reads; each half fit decodes and caches its own blocks"})
     for row in rows:
         row["ratio"] = row["wall"] / fit_wall
     return rows
+
+
+def _done(row: dict) -> None:
+    """Each measurement as soon as it is taken (standard error), so that a stopped run keeps them."""
+    print(f"{row['run']}: {row['wall']:.1f} s, {row['passes']} passes; {row['notes']}", file=sys.stderr, flush=True)
 
 
 def report(rows: list[dict], args, n: int, p: int) -> str:
