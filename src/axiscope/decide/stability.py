@@ -369,6 +369,7 @@ def _iterate(blocks, labels: np.ndarray, k: int, oversample: int, max_passes: in
         start[kept] = rng.standard_normal((kept.shape[0], l))
         halves.append(_Half(n_h, kept.shape[0], np.empty((p, 0)), np.empty((p, 0)), _orthonormal(start)))
     X = blocks.X
+    roundoff = float(np.finfo(np.result_type(X.dtype, np.float32)).eps / 2)  # of the block products
     centre = blocks.mean.astype(X.dtype)
     residual = blocks.mean - centre.astype(np.float64)
     sums = None
@@ -385,7 +386,7 @@ def _iterate(blocks, labels: np.ndarray, k: int, oversample: int, max_passes: in
             Z = blocks.inverse_scale[:, None] * (g - np.outer(residual, ysum))
             if recentre:  # on the half's own mean
                 Z -= np.outer(s, (s @ h.Q) / h.n_rows)
-            _advance(h, Z, k)
+            _advance(h, Z, k, roundoff)
         if i >= 1 and all(h.done or float(np.max(h.bound)) <= SETTLED_SINE for h in halves):
             break
         if all(h.done for h in halves):
@@ -395,7 +396,7 @@ def _iterate(blocks, labels: np.ndarray, k: int, oversample: int, max_passes: in
     return halves, passes
 
 
-def _advance(h: _Half, Z: np.ndarray, k: int) -> None:
+def _advance(h: _Half, Z: np.ndarray, k: int, roundoff: float) -> None:
     """Add the block and its image to the basis, take the Ritz pairs, prepare the next block."""
     h.K = np.hstack([h.K, h.Q])
     h.AK = np.hstack([h.AK, Z])
@@ -406,7 +407,7 @@ def _advance(h: _Half, Z: np.ndarray, k: int) -> None:
     m = min(k + 1, W.shape[1])
     residuals = np.linalg.norm(h.AK @ W[:, :m] - (h.K @ W[:, :m]) * theta[:m], axis=0)
     h.vectors = h.K @ W[:, :k]
-    h.bound = ritz_accuracy(np.sqrt(theta), residuals, k, unit_roundoff=np.finfo(np.float32).eps / 2).vector
+    h.bound = ritz_accuracy(np.sqrt(theta), residuals, k, unit_roundoff=roundoff).vector
     room = min(h.n_rows - 1, h.rank_limit) - h.K.shape[1]
     h.Q = _new_directions(Z[:, : max(0, min(Z.shape[1], room))], h.K) if room > 0 else h.K[:, :0]
     h.done = h.Q.shape[1] == 0  # the basis spans every direction the half has: its pairs are exact
