@@ -131,7 +131,7 @@ def report(rows: list[dict], args, n: int, p: int) -> str:
         "",
         f"Command: `python {' '.join(shlex.quote(a) for a in sys.argv)}`; date {_dt.date.today()}; machine: "
         f"{cmd('nproc')} cores, {memory} GB memory, {platform.platform()}, "
-        f"Python {platform.python_version()}; load average at the start {os.getloadavg()[0]:.1f} "
+        f"Python {platform.python_version()}; load average at the end {os.getloadavg()[0]:.1f} "
         "(the machine was shared with other jobs).",
         "",
         "| run | wall s | ratio to one fit | passes | notes |",
