@@ -41,6 +41,13 @@ def test_demo_describes_the_planted_structure_and_flags_corrupted_samples(tmp_pa
     assert flagged[merged["corrupted"]].all()
     assert flagged[~merged["corrupted"]].mean() < 0.05  # at 0.99 confidence; common practice, no source
     assert "6 of the 6 deliberately corrupted" in result.output
+    # planted truth: the two tissue-state axes and the batch axis are strong, so two halves of the
+    # reference cohort give the same axes (split-half stability at least 0.8, the default threshold)
+    stability = json.loads((out / "fit" / "manifest.json").read_text())["stability"]
+    assert [a["stable"] for a in stability["axes"][:3]] == [True, True, True]
+    assert (out / "fit" / "axis_stability.tsv").is_file() and "split-half stability" in result.output
+    report = (out / "report.html").read_text()
+    assert f"<dt>split-half stability</dt><dd>{stability['axes'][0]['stability']:.2f} (stable)</dd>" in report
     # --format parquet covers the tables of every stage
     for table in ("fit/sample_scores", "fit/top_features", "fit/axis_cards", "fit/sample_statistics",
                   "score/diagnostics", "score/scores"):

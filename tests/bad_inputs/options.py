@@ -109,7 +109,18 @@ def _out_exists(d: Path) -> list[str]:
     return [*FIT, str(path), "--out", str(d / "taken")]
 
 
+def _stability_halves_too_small(d: Path) -> list[str]:
+    """6 samples fit 3 axes, but halves of 3 samples have rank 2 at most."""
+    path = d / "m.npy"
+    np.save(path, good_matrix(6, 12))
+    return [*FIT, str(path), "-k", "3", "--stability-repeats", "2"]
+
+
 CASES = [
+    Case("option_stability_threshold_nan", "option",
+         _fit_with("--stability-repeats", "2", "--stability-threshold", "nan"), 2, "--stability-threshold nan"),
+    Case("option_stability_halves_too_small", "option", _stability_halves_too_small, 2,
+         "--stability-repeats: halves of 3 samples"),
     Case("option_seed_negative", "option", _fit_with("--seed", "-1"), 2, "--seed"),
     Case("option_min_variance_nan", "option", _fit_with("--min-variance", "nan"), 2, "--min-variance nan"),
     Case("option_min_variance_inf", "option", _fit_with("--min-variance", "inf"), 2, "--min-variance inf"),

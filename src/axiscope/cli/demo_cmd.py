@@ -51,9 +51,15 @@ def demo_command(
             data = make_demo_data(tmp / "data", seed=seed)
             say(f"simulated a reference cohort and a new batch in {time.perf_counter() - t0:.1f} s", quiet)
             with progress_display(quiet) as progress:
+                assessed = []  # split-half stability, on the fit's cached blocks
+
+                def then(fitted, blocks):
+                    assessed.append(demo_stability(blocks, fitted, threads, progress))
+
                 result = fit(data["reference"], n_components=n_components,
                              preprocess=PreprocessSpec(**DEMO_FIT_OPTIONS),
-                             resources=Resources(threads=threads), progress=progress)
+                             resources=Resources(threads=threads), progress=progress, then=then)
+                stability = assessed[0]
                 cards = explain_axes(result, annotations=data["reference_annotations"],
                                      technical=DEMO_TECHNICAL, ignore=["corrupted"], top=5)
                 # the same fit after removing the invented processing batch: its axis goes
@@ -65,6 +71,7 @@ def demo_command(
                 cards.settings = relocated(cards.settings, tmp, Path(out).resolve())
                 parquet = format is TableFormat.parquet
                 result.write(tmp / "fit", parquet=parquet, command_line=sys.argv)
+                stability.write(tmp / "fit", parquet=parquet)
                 cards.write(tmp / "fit", parquet=parquet)
                 groups = find_groups(tmp / "fit", matrix=data["reference"], annotations=data["reference_annotations"],
                                      ignore=["corrupted"], threads=threads, progress=progress)
@@ -104,6 +111,20 @@ def demo_command(
     )
     say(f"figures in {out / 'fit' / 'figures'}; report in {out / 'report.html'} (opens offline)", quiet)
     say(f"demo data in {out / 'data'}; {time.perf_counter() - t0:.1f} s in all", quiet)
+
+
+#: Random splits of the demo's samples into halves for the split-half stability of its axes.
+DEMO_STABILITY_REPEATS = 3
+
+
+def demo_stability(blocks, result, threads, progress):
+    """Split-half stability of the demo fit's axes, recorded in its manifest (the cards show it)."""
+    from ..decide.stability import axis_stability
+
+    stability = axis_stability(blocks, result, stability_repeats=DEMO_STABILITY_REPEATS, threads=threads,
+                               progress=progress)
+    result.manifest["stability"] = stability.record()
+    return stability
 
 
 def relocated(record, old: Path, new: Path):

@@ -165,6 +165,13 @@ def fit_command(
         help="Annotation columns (from --annotations) regressed out of every feature before the axes are "
              "fitted: numeric columns as they are, categorical ones as indicators of their levels; "
              "an intercept is included. Repeatable or comma-separated.")] = None,
+    stability_repeats: Annotated[int, typer.Option(
+        min=0, help="Split the samples this many times into two random halves, fit each half and compare "
+                    "its axes with the other half's: a stability from 0 to 1 per axis in axis_stability.tsv, "
+                    "the manifest and the axis cards (0: not assessed). Every pass over the data serves all "
+                    "halves.")] = 0,
+    stability_threshold: Annotated[float, typer.Option(
+        help="Axes whose split-half stability is below this are flagged unstable.")] = 0.8,
     report: Annotated[bool, typer.Option(
         "--report", help="Also draw the figures (figures/) and write report.html into --out: one "
                          "self-contained page with the maps, the axis cards and the warnings (see 'axiscope "
@@ -198,6 +205,10 @@ def fit_command(
         if max_components is not None and components != "auto":
             raise OptionError(f"max_components={max_components} applies to n_components='auto' only; "
                               f"drop it or pass n_components='auto'")
+        if stability_repeats:
+            from ..decide.stability import check_stability_options
+
+            check_stability_options(stability_repeats, stability_threshold)
         spec = PreprocessSpec(
             center=center, scale=scale.value, log_transform=log_transform, counts_per=counts_per,
             min_variance=min_variance, top_variable=top_variable, missing=missing.value,
@@ -222,8 +233,18 @@ def fit_command(
             with progress_display(quiet) as progress:
                 signal = None
                 unattended = dict(checksum=checksum.value, checkpoint=checkpoint, resume=resume)
+                assessed = []  # the stability, assessed on the fit's blocks while its cache is open
+
+                def then(result, blocks):
+                    assessed.append(fit_stability(blocks, result, stability_repeats, stability_threshold, engine,
+                                                  threads=threads, progress=progress))
+
+                if stability_repeats and covariates is not None:
+                    raise OptionError("stability_repeats does not yet combine with adjust_for (the halves would "
+                                      "be fitted unadjusted); leave one of them out")
                 if components == "auto" or assess_signal:
                     from ..decide.signal import fit_with_signal
+                    from ..fitting.run import fitted_blocks
 
                     if covariates is not None:
                         raise OptionError("the number of axes is not assessed after a covariate adjustment yet "
@@ -233,15 +254,20 @@ def fit_command(
                         src, n_components=components, max_components=max_components, permutations=permutations,
                         preprocess=spec, engine=engine, resources=resources, active=prepared.active,
                         exclude_features=prepared.exclude, progress=progress, **unattended)
+                    if stability_repeats:  # on the axes kept: one more read of the input per pass
+                        then(result, fitted_blocks(src, result, active=prepared.active))
                 else:
                     result = fit(src, n_components=components, preprocess=spec, engine=engine,
                                  resources=resources, active=prepared.active,
                                  exclude_features=prepared.exclude, progress=progress, covariates=covariates,
-                                 **unattended)
+                                 then=then if stability_repeats else None, **unattended)
+                stability = assessed[0] if assessed else None
                 cards = explain_fit(prepared, result, src, top=top, memory_limit=memory_limit,
                                     threads=threads, progress=progress)
         with atomic_directory(out, overwrite=overwrite) as tmp:
             result.write(tmp, top=top, parquet=format is TableFormat.parquet, command_line=sys.argv)
+            if stability is not None:
+                stability.write(tmp, parquet=format is TableFormat.parquet)
             cards.write(tmp, parquet=format is TableFormat.parquet)
             if signal is not None:
                 signal.write(tmp, parquet=format is TableFormat.parquet)
@@ -279,6 +305,17 @@ def _covariates(adjust_for, annotations, id_column, categorical, numeric, supple
                       numeric=numeric or ())
 
 
+def fit_stability(blocks, result, repeats: int, threshold: float, engine, *, threads, progress):
+    """Split-half stability of the fit's axes on its blocks, recorded in its manifest."""
+    from ..decide.stability import axis_stability
+
+    stability = axis_stability(blocks, result, stability_repeats=repeats, stability_threshold=threshold,
+                               seed=engine.seed if isinstance(engine.seed, int) else 0, threads=threads,
+                               progress=progress)
+    result.manifest["stability"] = stability.record()
+    return stability
+
+
 def print_fit_summary(result, out: Path, quiet: bool) -> None:
     """A few lines: shape, passes, accuracy, variance of the first axes, where files are."""
     m = result.manifest
@@ -294,6 +331,8 @@ def print_fit_summary(result, out: Path, quiet: bool) -> None:
         terms = m["adjusted_for"]["terms"]
         say(f"  adjusted for {', '.join(m['adjusted_for']['columns'])} ({len(terms)} terms with the intercept, "
             "regressed out of every feature)", quiet)
+    if "stability" in m:
+        say(f"  {stability_line(m['stability'])}", quiet)
     if m["n_missing_imputed"]:
         say(f"  {m['n_missing_imputed']} missing cells imputed with the feature mean", quiet)
     table = result.components_table().head(5)
@@ -360,6 +399,18 @@ def accuracy_lines(accuracy: dict) -> list[str]:
         loadings += (f" (—: {_span(loose)} {verb} not separated from a neighbour of nearly equal variance; "
                      "only the space such axes span together is determined)")
     return [values, loadings]
+
+
+def stability_line(record: dict) -> str:
+    """One line from the manifest's ``"stability"`` record: the values, and the unstable axes."""
+    axes = record["axes"]
+    values = ", ".join(f"{a['axis']} {a['stability']:.2f}" for a in axes[:MAX_AXES_LISTED])
+    unstable = [a for a in axes if not a["stable"]]
+    line = (f"split-half stability ({record['repeats']} splits, {record['passes']} passes): {values}"
+            + (", …" if len(axes) > MAX_AXES_LISTED else ""))
+    if unstable:
+        line += f"; unstable (below {record['threshold']:g}): {_span(unstable)}"
+    return line
 
 
 def _worst(axes: list[dict], key: str) -> str:

@@ -55,7 +55,7 @@ from .legend import (
     header_lines,
 )
 from .pages import render_page
-from .saved import SUPPLEMENTARY_SCORES_FILE, SupplementarySamples, _read_manifest, read_saved_fit
+from .saved import SUPPLEMENTARY_SCORES_FILE, SupplementarySamples, read_manifest, read_saved_fit
 
 if TYPE_CHECKING:
     from ..fitting.result import FitResult
@@ -227,9 +227,9 @@ def _tidy(table: pd.DataFrame) -> pd.DataFrame:
     table = table.copy()
     for column in ("rank", "n", "n_missing", "n_categories", "df_between", "df_within"):
         table[column] = pd.to_numeric(table[column], errors="coerce").round().astype("Int64")
-    for column in ("supplementary", "technical", "used", "above_noise"):
+    for column in ("supplementary", "technical", "used", "above_noise", "stable"):
         table[column] = table[column].astype("boolean")
-    for column in ("variance", "variance_ratio", "cumulative_ratio", "loading", "correlation",
+    for column in ("variance", "variance_ratio", "cumulative_ratio", "stability", "loading", "correlation",
                    "contribution_pct", "sq_cosine", "score", "r_squared", "f_statistic", "category_mean",
                    "overall_mean", "z", "p_value", "p_adjusted"):
         table[column] = pd.to_numeric(table[column], errors="coerce").astype(np.float64)
@@ -307,14 +307,17 @@ def explain_axes(
     _check_settings(top, samples_per_list, alpha, warn_share)
     if isinstance(source, (str, Path)):
         saved = read_saved_fit(Path(source))
+        manifest = read_manifest(Path(source))
+        stability = manifest.get("stability")
         model, ids, scores, norms, feats = saved.model, saved.sample_ids, saved.scores, saved.squared_norms, saved.features
-        signal = signal_axes_recommended(_read_manifest(Path(source)))
+        signal = signal_axes_recommended(manifest)
         if supplementary_samples is None:
             supplementary_samples = saved.supplementary
     else:
         model, ids, scores, norms = source.model, source.sample_ids, source.scores, source.sample_sq_dist
         feats = feature_statistics(model)
         signal = signal_axes_recommended(source.manifest)
+        stability = source.manifest.get("stability")
     if supplementary_features is not None:
         feats = feats.concat(supplementary_features)
     ann = None
@@ -331,7 +334,7 @@ def explain_axes(
         axis_names=model.axis_names, singular_values=model.singular_values, variance=model.variance,
         variance_ratio=model.variance_ratio, sample_ids=np.asarray(ids, dtype=object), scores=scores,
         squared_norms=norms, features=feats, annotations=ann, supplementary_samples=supplementary_samples,
-        signal_axes=signal, top=top, samples_per_list=samples_per_list, alpha=alpha, warn_share=warn_share,
+        signal_axes=signal, top=top, samples_per_list=samples_per_list, alpha=alpha, warn_share=warn_share, stability=stability,
     )
 
 
@@ -363,11 +366,14 @@ def build_cards(
     samples_per_list: int = SAMPLES_PER_LIST,
     alpha: float = ALPHA,
     warn_share: float = WARN_SHARE,
+    stability: dict | None = None,
 ) -> AxisCards:
     """Build :class:`AxisCards` from arrays (``scores``: the samples that built the axes).
 
     ``signal_axes``: the number of leading axes above the noise level (the ``recommended``
     member of the manifest's ``signal_axes`` record); None leaves ``above_noise`` null.
+    ``stability`` is the fit manifest's ``"stability"`` record (split-half stability of each
+    axis, :mod:`axiscope.decide.stability`), shown in the ``carries`` section when given.
     """
     axis_names = list(axis_names)
     F = np.asarray(scores, dtype=np.float64)
@@ -387,7 +393,7 @@ def build_cards(
     ann = annotations if annotated else AnnotationSet.empty(sample_ids)
     shares, categories = annotation_shares(ann, F, axis_names)
     cards = AxisCards(
-        carries=_carries(axis_names, variance, variance_ratio, signal_axes),
+        carries=_carries(axis_names, variance, variance_ratio, signal_axes, stability),
         readings=pd.DataFrame(),
         built_from=_built_from(features, top),
         lines_up=shares,
@@ -425,12 +431,16 @@ def signal_axes_recommended(manifest: dict | None) -> int | None:
 
 
 def _carries(axis_names: list[str], variance: np.ndarray, variance_ratio: np.ndarray,
-             signal_axes: int | None = None) -> pd.DataFrame:
+             signal_axes: int | None = None, stability: dict | None = None) -> pd.DataFrame:
     ratio = np.asarray(variance_ratio, dtype=np.float64)
     above = [None] * len(axis_names) if signal_axes is None else [j < signal_axes for j in range(len(axis_names))]
+    known = {a["axis"]: a for a in (stability or {}).get("axes", [])}
     return pd.DataFrame({"axis": axis_names, "variance": np.asarray(variance, dtype=np.float64),
                          "variance_ratio": ratio, "cumulative_ratio": np.cumsum(ratio),
-                         "above_noise": pd.array(above, dtype="boolean")})
+                         "above_noise": pd.array(above, dtype="boolean"),
+                         "stability": [known[a]["stability"] if a in known else np.nan for a in axis_names],
+                         "stable": pd.array([known[a]["stable"] if a in known else None for a in axis_names],
+                                            dtype="boolean")})
 
 
 def _largest(values: np.ndarray, m: int, sign: float) -> np.ndarray:
@@ -546,6 +556,15 @@ def _loadings_phrase(built_from: pd.DataFrame, n: int = 3) -> str:
     return "largest loadings " + "; ".join(parts) if parts else "no feature loads on it"
 
 
+def _stability_phrase(carries: pd.DataFrame) -> str:
+    """`` Unstable: …`` when the split-half stability of the axis is known and below its threshold."""
+    if not len(carries) or "stable" not in carries or pd.isna(carries["stable"].iloc[0]) \
+            or bool(carries["stable"].iloc[0]):
+        return ""
+    return (f" Unstable: two random halves of the samples give different versions of it (split-half "
+            f"stability {float(carries['stability'].iloc[0]):.2f}); do not read it on its own.")
+
+
 def _readings(cards: AxisCards, alpha: float, warn_share: float, annotated: bool) -> pd.DataFrame:
     rows = []
     for axis, ratio in zip(cards.carries["axis"], cards.carries["variance_ratio"]):
@@ -558,6 +577,7 @@ def _readings(cards: AxisCards, alpha: float, warn_share: float, annotated: bool
                                          warn_share, bool(warning))
             text += f" and {phrase}"
         text += f"; {_loadings_phrase(cards.built_from[cards.built_from['axis'] == axis])}."
+        text += _stability_phrase(cards.carries[cards.carries["axis"] == axis])
         rows.append({"axis": axis, "reading": text, "warning": warning,
                      "warning_annotation": strongest["annotation"] if warning else None,
                      "warning_r_squared": float(strongest["r_squared"]) if warning else np.nan})

@@ -60,6 +60,11 @@ COLUMNS = {
     "above_noise": "whether the axis is among those the fit found above the noise level (the recommended "
                    "number of signal_axes.tsv, from fit --components auto or --assess-signal); empty (null) "
                    "when not assessed",
+    "stability": "split-half stability of the axis: median, over random splits of the samples into two halves, "
+                 "of the absolute cosine between the two halves' loading vectors matched to this axis (0–1); "
+                 "empty when not assessed (fit --stability-repeats)",
+    "stable": "whether the stability reaches the threshold in the fit's manifest (0.8 by default); empty "
+              "when not assessed",
     "loading": "weight of the feature in the axis (unit-length direction; supplementary features in the "
                "same units)",
     "correlation": "Pearson correlation with the axis's scores: of the feature (built_from) or of a numeric "

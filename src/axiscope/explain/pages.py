@@ -121,7 +121,7 @@ def render_page(axis: str, records: pd.DataFrame, usage: pd.DataFrame, *, annota
         out.append(f"**Reading.** {markdown_text(reading['text'].iloc[0])}\n")
     for text in _section(records, "warning")["text"]:
         out.append(f"> **Possible batch effect.** {markdown_text(text)}.\n")
-    used = ["variance", "variance_ratio", "cumulative_ratio", "above_noise"]
+    used = ["variance", "variance_ratio", "cumulative_ratio", "above_noise", "stability", "stable"]
     out.append("## How much it carries\n")
     out.append(_carries(_section(records, "carries")))
     out.append("## What it is built from\n")
@@ -163,10 +163,13 @@ def _carries(rows: pd.DataFrame) -> str:
     r = rows.iloc[0]
     above = r["above_noise"]
     noise = "not assessed yet" if above is None or pd.isna(above) else ("yes" if bool(above) else "no")
+    stability = r.get("stability")
+    stable = "not assessed" if stability is None or pd.isna(stability) else (
+        f"{float(stability):.2f} ({'stable' if bool(r.get('stable')) else 'unstable'})")
     return markdown_table(
-        ["variance", "variance ratio (%)", "cumulative ratio (%)", "above the noise level"],
+        ["variance", "variance ratio (%)", "cumulative ratio (%)", "above the noise level", "split-half stability"],
         [[format_number(r["variance"]), f"{100 * float(r['variance_ratio']):.2f}",
-          f"{100 * float(r['cumulative_ratio']):.2f}", noise]],
+          f"{100 * float(r['cumulative_ratio']):.2f}", noise, stable]],
     )
 
 

@@ -96,6 +96,11 @@ def read_saved_fit(directory: Path) -> SavedFit:
                     _features(model, directory), _supplementary_samples(model, directory))
 
 
+def read_manifest(directory: Path) -> dict:
+    """The ``manifest.json`` of a result directory (an ``InputError`` when missing or unreadable)."""
+    return _read_manifest(Path(directory))
+
+
 def _read_manifest(directory: Path) -> dict:
     path = directory / "manifest.json"
     for required in (path, directory / "sample_scores.tsv"):

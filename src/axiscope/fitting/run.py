@@ -14,6 +14,7 @@ import platform
 import sys
 import time
 import uuid
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -47,7 +48,7 @@ from ..model.training import (
 )
 from .result import FitResult
 
-__all__ = ["fit", "METHODS", "max_components"]
+__all__ = ["fit", "METHODS", "max_components", "FittedBlocks", "fitted_blocks"]
 
 logger = logging.getLogger(__name__)
 
@@ -70,6 +71,7 @@ def fit(
     checksum: str = "sampled",
     checkpoint: str | os.PathLike | None = None,
     resume: bool = False,
+    then: "Callable[[FitResult, FittedBlocks], None] | None" = None,
 ) -> FitResult:
     """Principal component analysis of a matrix on disk, out of core.
 
@@ -113,6 +115,11 @@ def fit(
         Continue from the state in ``checkpoint``, when there is one of the same inputs
         and options (another is refused); the result is byte for byte that of an
         uninterrupted fit.
+    then : callable, optional
+        ``then(result, blocks)``, called once the fit is done while its block cache is still
+        open: further passes over ``blocks`` (:class:`FittedBlocks`) read the transformed
+        blocks from memory or scratch rather than decoding the input again (for example the
+        split-half stability, :func:`axiscope.decide.stability.axis_stability`).
 
     Returns
     -------
@@ -152,7 +159,7 @@ def fit(
     job = _Job(int(n_components), preprocess, engine, resources, progress, t_start, checksum,
                None if checkpoint is None else Path(checkpoint), bool(resume))
     with opened(source, **layout.open_options()) as src, blas_threads(resources.n_threads):
-        return _fit(src, job, active, exclude_features, covariates)
+        return _fit(src, job, active, exclude_features, covariates, then)
 
 
 def _option(value, kind: type, name: str):
@@ -189,7 +196,7 @@ class _Job:
     resume: bool = False
 
 
-def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None) -> FitResult:
+def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None, then=None) -> FitResult:
     """The steps of a fit: check, plan, read statistics, preprocess, factorise, record."""
     active, exclude = _masks(src, active, exclude)
     n = int(active.sum())
@@ -237,8 +244,11 @@ def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None) -> FitR
             if sketch is not None:
                 sketch = adjust.adjusted_sketch(sketch, omega)
         fac = _factorise(method, operand, job, n, rng, runner, plan, sketch, residualizer, checkpoint)
-    return _result(src, job, active, n, prep, stats, fac, plan, runner, filtered=operand.columns is not None,
-                   identity=identity, checkpoint=checkpoint, adjust=adjust, residualizer=residualizer)
+        result = _result(src, job, active, n, prep, stats, fac, plan, runner, filtered=operand.columns is not None,
+                         identity=identity, checkpoint=checkpoint, adjust=adjust, residualizer=residualizer)
+        if then is not None:
+            then(result, operand.blocks(reader, prep))
+    return result
 
 
 def _result(src, job, active, n, prep, stats, fac, plan, runner, *, filtered: bool, identity: dict,
@@ -407,12 +417,70 @@ class _Reader:
         return array_from_blocks(lambda i: self.block(i, columns, cache), self.rows, width,
                                  self.src.dtype, f"{name}-{self.token}")
 
+    def load_cached(self, cache: BlockCache):
+        """``load(i)``: the ``i``-th block from ``cache``."""
+        return lambda i: cache.get(int(self.starts[i]), int(self.starts[i]) + self.rows[i])
+
     def cached(self, cache: BlockCache, width: int):
         """The blocks stored in ``cache``, as a Dask array."""
         return array_from_blocks(
             lambda i: cache.get(int(self.starts[i]), int(self.starts[i]) + self.rows[i]),
             self.rows, width, self.src.dtype, f"cache-{self.token}",
         )
+
+
+@dataclass(frozen=True)
+class FittedBlocks:
+    """The fit's matrix for further passes: blocks of transformed values, and the centre,
+    inverse scale and fill of their columns (the kept features in model order, or every input
+    feature with inverse scale 0 for those not kept, see ``kept``).
+
+    ``X̃ = (X − 1·meanᵀ)·diag(inverse_scale)`` over the active samples is the matrix the fit
+    factorised; ``X`` is a row-chunked Dask array whose blocks are those of the fit.
+    """
+
+    X: object  # dask.array.Array, active samples × columns
+    mean: np.ndarray
+    inverse_scale: np.ndarray
+    fill: np.ndarray | None
+    load: object  # load(i): the i-th block (what X's i-th chunk computes)
+    rows: list  # rows of each block
+    #: Position of each of the model's features among the blocks' columns (None: the same
+    #: columns); the other columns have inverse scale 0.
+    kept: np.ndarray | None = None
+    #: Where the blocks are read from: "input", "memory", "scratch" or "source".
+    source: str = "input"
+
+
+def fitted_blocks(src: MatrixSource, result: FitResult, *, active: np.ndarray | None = None,
+                  name: str = "again") -> FittedBlocks:
+    """The matrix ``result`` was fitted on, as the same blocks of the same active samples.
+
+    Each pass over the returned array reads the input once more (no cache is kept), with the
+    fit's per-sample transforms and block rows; features other than the kept ones are
+    dropped from each block (no copy when all are kept).
+
+    Parameters
+    ----------
+    src : MatrixSource
+        The input the fit read.
+    result : FitResult
+    active : ndarray of bool, shape (n_samples,), optional
+        The fit's active samples (default: all).
+    name : str
+        Name of the Dask array (a prefix; a unique token is added).
+    """
+    active = np.ones(src.shape[0], dtype=bool) if active is None else np.asarray(active, dtype=bool)
+    if active.shape != (src.shape[0],) or int(active.sum()) != result.model.n_samples:
+        raise OptionError(f"active selects {int(active.sum())} samples, but the fit used "
+                          f"{result.model.n_samples}; pass the fit's active mask")
+    prep, spec = result.preprocessing, result.model.spec
+    reader = _Reader(src, spec, active, int(result.manifest["plan"]["block_rows"]))
+    columns = None if prep.kept.shape[0] == src.shape[1] else np.asarray(prep.kept)
+    fill = np.asarray(prep.mean_raw, dtype=np.float64) if spec.missing == "mean" else None
+    return FittedBlocks(reader.array(name, columns), np.asarray(prep.mean, dtype=np.float64),
+                        np.asarray(prep.inverse_scale, dtype=np.float64), fill,
+                        lambda i: reader.block(i, columns), list(reader.rows), None, "input")
 
 
 class _Caches:
@@ -478,6 +546,7 @@ class _Operand:
     first: object | None  # Dask array read from the input, filling the cache
     later: object  # Dask array of the passes after it
     later_source: str
+    cache: BlockCache | None = None
 
     @classmethod
     def build(cls, spec, stats, prep, reader: _Reader, caches: _Caches, *, filtered: bool,
@@ -502,7 +571,15 @@ class _Operand:
             later, source = reader.cached(cache, width), caches.mode
         else:
             later, source = reader.array("reread", columns), "source"
-        return cls(columns, mean, d, fill, first, later, source)
+        return cls(columns, mean, d, fill, first, later, source, cache)
+
+    def blocks(self, reader: _Reader, prep: Preprocessing) -> FittedBlocks:
+        """The blocks the later passes read (cache or input), for passes after the fit."""
+        load = reader.load_cached(self.cache) if self.cache is not None else \
+            (lambda i: reader.block(i, self.columns))
+        kept = None if self.columns is not None or prep.kept.shape[0] == reader.src.shape[1] else prep.kept
+        return FittedBlocks(self.later, self.mean, self.inverse_scale, self.fill, load, list(reader.rows),
+                            kept, self.later_source)
 
 
 def _input_identity(src: MatrixSource, checksum: str) -> dict | None:

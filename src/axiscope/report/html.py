@@ -510,6 +510,15 @@ def _yes(value) -> str:
     return "yes" if value is True or (isinstance(value, str) and value.lower() == "true") else ""
 
 
+def _stability(carries: pd.Series) -> str | None:
+    """``0.97 (stable)`` / ``0.41 (unstable)`` from the card's split-half stability; None when not assessed."""
+    value = carries.get("stability")
+    if value is None or pd.isna(value):
+        return None
+    stable = carries.get("stable")
+    return f"{float(value):.2f} ({'stable' if stable is True or _yes(stable) else 'unstable'})"
+
+
 def _card(axis: str, rows: pd.DataFrame, *, alpha: float, annotated: bool) -> dict:
     carries = _part(rows, "carries")
     card: dict[str, Any] = {
@@ -523,7 +532,8 @@ def _card(axis: str, rows: pd.DataFrame, *, alpha: float, annotated: bool) -> di
         noise = c.get("above_noise")
         card["carries"] = {"variance": _fmt(c["variance"]), "ratio": _pct(c["variance_ratio"]),
                            "cumulative": _pct(c["cumulative_ratio"]),
-                           "above_noise": None if noise is None or pd.isna(noise) else ("yes" if noise else "no")}
+                           "above_noise": None if noise is None or pd.isna(noise) else ("yes" if noise else "no"),
+                           "stability": _stability(c)}
     header = ["rank", "feature", "loading", "correlation", "contribution (%)", "squared cosine", "adjusted p",
               "supplementary"]
     card["drivers"] = {side: _table(header, [
