@@ -223,6 +223,9 @@ def fit_command(
         covariates = _covariates(adjust_for, annotations, id_column, categorical, numeric,
                                  supplementary_samples_column, supplementary_features)
         with open_matrix(input, **layout.open_options(), scratch=resources.scratch) as src:
+            if stability_repeats and getattr(src, "sparse", False):
+                raise OptionError(f"{input}: the split-half stability is not yet computed for sparse matrices; "
+                                  "leave stability_repeats out, or store the matrix dense")
             prepared = plan_explanation(
                 src, annotations=annotations, id_column=id_column, categorical=categorical, numeric=numeric,
                 technical=technical, ignore=ignore,
