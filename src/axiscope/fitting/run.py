@@ -14,13 +14,14 @@ import platform
 import sys
 import time
 import uuid
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from .. import __version__
+from ..core.backends import Reduction, SourceBlocks, open_backend, read_block
 from ..core.cache import BlockCache, remove_scratch_leftovers
 from ..core.engine import Factorization, exact_factorization, randomized_factorization
 from ..core.options import METHODS, EngineSettings, InputLayout, Resources
@@ -30,11 +31,9 @@ from ..core.preprocess import (
     BlockStats,
     FeatureStatistics,
     Preprocessing,
-    NotADosage,
     PreprocessSpec,
     block_statistics,
     first_nonfinite,
-    transform_block,
 )
 from ..errors import InputError, OptionError, counted
 from ..io import MatrixSource, opened
@@ -125,8 +124,9 @@ def fit(
         raise OptionError("layout describes a file, but source is an opened MatrixSource; pass the "
                           "file's path instead, or leave layout out")
     job = _Job(int(n_components), preprocess, engine, resources, progress, t_start)
-    with opened(source, **layout.open_options()) as src, blas_threads(resources.n_threads):
-        return _fit(src, job, active, exclude_features)
+    with opened(source, **layout.open_options()) as src, blas_threads(resources.n_threads), \
+            open_backend(resources) as backend:
+        return _fit(src, replace(job, backend=backend), active, exclude_features)
 
 
 def _option(value, kind: type, name: str):
@@ -158,6 +158,7 @@ class _Job:
     resources: Resources
     progress: Progress | None
     t_start: float
+    backend: object = None  # None: threads of this process; else a cluster (core/backends.py)
 
 
 def _fit(src: MatrixSource, job: _Job, active, exclude) -> FitResult:
@@ -170,11 +171,13 @@ def _fit(src: MatrixSource, job: _Job, active, exclude) -> FitResult:
     plan = plan_fit(src, n_components=job.k, preprocess=job.spec, engine=job.engine,
                     resources=job.resources)
     method = _choose_method(job.engine.method, n, src.shape[1], job.spec, plan.budget - plan.baseline)
-    runner = PassRunner(threads=plan.threads, progress=job.progress)
+    runner = PassRunner(threads=plan.threads, progress=job.progress, backend=job.backend)
     rng = job.engine.generator()
     reader = _Reader(src, job.spec, active, plan.block_rows)
     filtered = job.spec.has_filter or exclude is not None
     with _Caches(plan, job.resources) as caches:
+        if job.backend is not None and job.backend.reads_on_workers(src):
+            caches.mode = job.backend.cache = "source"  # every pass: workers read their blocks
         first_cache = None if filtered else caches.new(n, src.shape[1], src.dtype)
         fuse = not filtered and job.spec.missing == "error" and method == "randomized"
         l = min(job.k + job.engine.oversample, min(n, src.shape[1]))
@@ -276,29 +279,25 @@ class _Reader:
         self.spans = [(a, b) for (a, b), c in zip(spans, counts) if c > 0]
         self.rows = [c for c in counts if c > 0]
         self.starts = np.concatenate([[0], np.cumsum(self.rows)])[:-1]
-        self.token = uuid.uuid4().hex[:8]
+        self.token = uuid.uuid4().hex
 
     def block(self, i: int, columns=None, cache: BlockCache | None = None) -> np.ndarray:
         a, b = self.spans[i]
-        block = self.src.read_samples(a, b)
-        if not self.all_active:
-            block = block[self.active[a:b]]
-        try:
-            block = transform_block(block, self.spec)
-        except NotADosage as exc:
-            sample = self.src.sample_ids[a + np.flatnonzero(self.active[a:b])[exc.row]]
-            feature = self.src.feature_ids[exc.column]
-            raise InputError(exc.located(f"{self.src.path.name}: sample {sample!r}, feature {feature!r}")) from None
-        if columns is not None:
-            block = np.ascontiguousarray(block[:, columns])
+        block = read_block(self.src, (a, b), None if self.all_active else self.active[a:b], self.spec, columns)
         if cache is not None:
             cache.put(int(self.starts[i]), block)
         return block
 
+    def blocks(self, columns=None, cache: BlockCache | None = None) -> SourceBlocks:
+        """The blocks as a picklable description (a cluster's workers read them themselves)."""
+        masks = [None if self.all_active else self.active[a:b] for a, b in self.spans]
+        store = None if cache is None else (lambda i, block: cache.put(int(self.starts[i]), block))
+        return SourceBlocks(self.src, self.spans, masks, self.spec, columns, store, self.token)
+
     def array(self, name: str, columns=None, cache: BlockCache | None = None):
         """The input read once more (filling ``cache`` when given), as a Dask array."""
         width = self.src.shape[1] if columns is None else columns.shape[0]
-        return array_from_blocks(lambda i: self.block(i, columns, cache), self.rows, width,
+        return array_from_blocks(self.blocks(columns, cache), self.rows, width,
                                  self.src.dtype, f"{name}-{self.token}")
 
     def cached(self, cache: BlockCache, width: int):
@@ -486,10 +485,13 @@ def _manifest(src, job: _Job, n, prep, stats, fac, plan, runner) -> dict:
             "preprocessing": job.spec.to_dict(),
         },
         "plan": plan.to_dict(),
+        "execution": runner.describe(),
         "passes": {
             "count": runner.n_passes,
             "detail": [
-                {"name": r.name, "read_from": r.source, "seconds": round(r.seconds, 3), "blocks": r.n_blocks}
+                {"name": r.name, "read_from": r.source, "seconds": round(r.seconds, 3), "blocks": r.n_blocks,
+                 **({} if r.bytes_to_client is None else
+                    {"bytes_to_client": r.bytes_to_client, "bytes_from_client": r.bytes_from_client})}
                 for r in runner.records
             ],
         },
@@ -543,6 +545,25 @@ def _block_sketch(block: np.ndarray, omega32: np.ndarray, mean: np.ndarray | Non
     return sketch
 
 
+def _merge_stats(a, b, omega, centre):
+    """The statistics-pass results of two adjacent runs of blocks as one (a cluster's tree sum).
+
+    The same updates as the fold of :func:`_statistics_pass`: Chan's merge of the feature
+    statistics and of the sketches about their means; a bad cell's row counted from ``a``'s start.
+    """
+    stats_a, sketch_a, bad_a = a
+    stats_b, sketch_b, bad_b = b
+    bad = bad_a if bad_a is not None else None if bad_b is None else (bad_b[0] + stats_a.n_samples, bad_b[1])
+    sketch = None
+    if sketch_a is not None and sketch_b is not None:
+        if centre:
+            n_a, n_b = stats_a.n_samples, stats_b.n_samples
+            delta = stats_b.mean - stats_a.mean
+            sketch_b = sketch_b + (n_a * n_b / (n_a + n_b)) * np.outer(delta, delta @ omega)
+        sketch = sketch_a + sketch_b
+    return stats_a.merge(stats_b), sketch, bad
+
+
 def _statistics_pass(X, spec, omega, runner, src, active, *, centre: bool = True):
     """One pass: feature statistics, and the sketch ``X̃ᵀX̃·Ω`` (unscaled) when ``omega`` is given.
 
@@ -581,7 +602,7 @@ def _statistics_pass(X, spec, omega, runner, src, active, *, centre: bool = True
         state["stats"] = stats if before is None else before.merge(stats)
 
     runner.run("statistics" + (" + sketch" if omega is not None else ""), "input", X,
-               _stats_task, fold, omega32, centre)
+               _stats_task, fold, omega32, centre, reduce=Reduction(_merge_stats, (omega, centre)))
     merged: BlockStats = state["stats"]
     return FeatureStatistics.from_block_stats(merged), state["sketch"]
 

@@ -105,8 +105,12 @@ def open_matrix(path: str | os.PathLike[str], *, dataset: str | None = None,
         extra["allow_missing_chunks"] = bool(allow_missing_chunks)
     elif kind == "text":
         extra["scratch"] = scratch
-    return OPENERS[kind](path, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
-                         samples_in=samples_in, **extra)
+    source = OPENERS[kind](path, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
+                           samples_in=samples_in, **extra)
+    if kind in ("hdf5", "zarr", "npy"):  # how another process opens the same matrix (cluster workers)
+        source.reopen = {"path": str(path.resolve()), "dataset": source.dataset, "sample_ids": sample_ids,
+                         "feature_ids": feature_ids, "samples_in": samples_in, **extra}
+    return source
 
 
 @contextlib.contextmanager
