@@ -56,6 +56,8 @@ logger = logging.getLogger(__name__)
 #: Least memory counted for a worker's interpreter and libraries (numpy, dask, distributed):
 #: measured about 200 MB.
 WORKER_LIBRARIES = 256 << 20
+#: Times a pass is run when results are lost with workers (see :meth:`ClusterBackend.run`).
+PASS_ATTEMPTS = 3
 #: Seconds to wait for a scheduler address to answer.
 CONNECT_TIMEOUT = 20
 
@@ -236,6 +238,15 @@ def block_loader(X, i: int):
 # ----------------------------------------------------------------------------- the cluster
 
 
+def _lost_errors() -> tuple:
+    """Exceptions of a result lost with its worker (not of a failing task)."""
+    from concurrent.futures import CancelledError
+
+    from distributed.client import FutureCancelledError
+
+    return (FutureCancelledError, CancelledError)
+
+
 def _limit_blas() -> None:
     """BLAS single-threaded in this worker process (as the threaded back-end runs it)."""
     global _BLAS_LIMITED
@@ -303,12 +314,34 @@ class ClusterBackend:
         }
 
     def run(self, name: str, X, task, fold, args: tuple, reduce: Reduction | None, progress) -> PassTraffic:
-        """One pass on the cluster; ``fold`` is called here, in block order (see :class:`Reduction`)."""
+        """One pass on the cluster; ``fold`` is called here, in block order (see :class:`Reduction`).
+
+        A task lost with its worker is run again by Dask. When a result was lost that Dask can
+        no longer recompute (its inputs already released), the pass is run again from its
+        first block, at most :data:`PASS_ATTEMPTS` times; blocks already folded are not
+        folded twice, and the fixed tree gives the same sums, so the result is unchanged.
+        """
+        traffic = PassTraffic()
+        folded = [0]
+        if progress:
+            progress(name, 0, len(X.chunks[0]))
+        for attempt in range(1, PASS_ATTEMPTS + 1):
+            try:
+                self._attempt(name, X, task, fold, args, reduce, progress, traffic, folded)
+                break
+            except _lost_errors() as exc:
+                if attempt == PASS_ATTEMPTS:
+                    raise InputError(f"pass {name!r} lost its results on the cluster {attempt} times "
+                                     f"({reason(exc)}); check the workers' health and memory") from exc
+                logger.warning("pass %r lost results with a worker (%s); running it again", name, reason(exc))
+        self.traffic.append(traffic)
+        return traffic
+
+    def _attempt(self, name, X, task, fold, args, reduce, progress, traffic, folded) -> None:
         from dask.sizeof import sizeof
         from distributed import wait
 
         client = self.client
-        traffic = PassTraffic()
         n = len(X.chunks[0])
         blocks = X.to_delayed().ravel()
         starts = [int(v) for v in np.concatenate([[0], np.cumsum(X.chunks[0])])[:-1]]
@@ -321,15 +354,13 @@ class ClusterBackend:
         window = 2 * self.worker_threads
         pending: deque = deque()
         submitted = 0
-        if progress:
-            progress(name, 0, n)
         try:
             for i in range(n):
                 while submitted < n and len(pending) < window:
                     pending.append(self._submit(X, blocks, submitted, task, split, shared, tree, token, traffic, whole))
                     submitted += 1
                 piece = pending.popleft()
-                if whole:
+                if whole or i < folded[0]:  # nothing to fetch (or fetched by an earlier attempt)
                     with client.as_current():
                         wait(piece)
                 else:
@@ -341,6 +372,7 @@ class ClusterBackend:
                         total = tree.total().result()
                         traffic.received += sizeof(total)
                         fold(reduce.join(result, total), i, starts[i])
+                    folded[0] = i + 1
                     del result
                 del piece
                 if progress:
@@ -354,9 +386,6 @@ class ClusterBackend:
             if tree is not None:
                 tree.cancel()
             raise
-        del shared, combine_args  # the scattered arguments are released with their futures
-        self.traffic.append(traffic)
-        return traffic
 
     def _share(self, args: tuple, traffic: PassTraffic) -> list:
         """Arrays sent once to every worker (futures); other arguments as they are."""
