@@ -21,6 +21,7 @@ cloudpickle = pytest.importorskip("cloudpickle")
 
 from axiscope.core import backends  # noqa: E402
 from axiscope.core.options import EngineSettings, Resources  # noqa: E402
+from axiscope.core.preprocess import PreprocessSpec  # noqa: E402
 from axiscope.errors import OptionError  # noqa: E402
 from axiscope.fitting.run import fit  # noqa: E402
 
@@ -60,25 +61,33 @@ def _compare(threaded, clustered):
     _close(threaded.scores, clustered.scores)
 
 
-@pytest.mark.parametrize("fmt", ["h5", "zarr3"])
-def test_fit_on_the_cluster_equals_the_threaded_fit(client, write_matrix, fmt):
+@pytest.mark.parametrize("fmt, selected", [("h5", False), ("zarr3", True)])
+def test_fit_on_the_cluster_equals_the_threaded_fit(client, write_matrix, fmt, selected):
+    # selected: some samples left out and a feature filter (the workers read a subset of
+    # rows and columns, and the sketch takes its own pass)
     X = _planted()
     path = write_matrix(X, fmt, chunks=(100, P))
-    threaded = fit(path, n_components=K, engine=ENGINE, resources=Resources(memory_limit=BUDGET, threads=2))
-    clustered = fit(path, n_components=K, engine=ENGINE,
-                    resources=Resources(memory_limit=BUDGET, threads=2, scheduler=client))
+    active = np.ones(N, dtype=bool)
+    spec = None
+    if selected:
+        active[::7] = False
+        spec = PreprocessSpec(top_variable=P - 10)
+    options = dict(n_components=K, engine=ENGINE, preprocess=spec, active=active)
+    threaded = fit(path, **options, resources=Resources(memory_limit=BUDGET, threads=2))
+    clustered = fit(path, **options, resources=Resources(memory_limit=BUDGET, threads=2, scheduler=client))
     assert threaded.manifest["passes"]["detail"][0]["blocks"] >= 6
     _compare(threaded, clustered)
     # LAPACK reference on the standardized matrix (population SD, the documented convention)
-    Z = (X - X.mean(axis=0)) / X.std(axis=0)
+    kept = X[active][:, clustered.preprocessing.kept]
+    Z = (kept - kept.mean(axis=0)) / kept.std(axis=0)
     np.testing.assert_allclose(clustered.model.singular_values, np.linalg.svd(Z, compute_uv=False)[:K], rtol=1e-8)
     record = clustered.manifest["execution"]
     assert record["backend"] == "dask.distributed" and record["workers"] == 2
     # client traffic per Krylov pass: Y (n × m) and row norms per block, and one p × l total
     # (plus pickling overhead); never the blocks (n × p)
     for detail in clustered.manifest["passes"]["detail"]:
-        assert detail["read_from"] in ("input", "source")  # never a cache of this process
-        assert 0 < detail["bytes_to_client"] < 8 * (N * (2 * 8 + 10 + 1) + P * 16) + 20_000
+        assert detail["read_from"] in ("input", "workers")  # never a cache of this process
+        assert 0 < detail["bytes_to_client"] < 8 * (N * (K + 10 + 10 + 1) + P * (K + 10)) + 20_000
     assert threaded.manifest["execution"] == {"backend": "threaded", "threads": 2}
 
 
@@ -98,13 +107,13 @@ def test_in_memory_input_under_the_current_client(client):
 
 
 def _kill_once_installer(marker: str, after: int):
-    """Make this worker process exit (as if killed) on its ``after``-th block read, once per marker."""
+    """Make this worker process exit (as if killed) at its ``after``-th block task, once per marker."""
     import axiscope.core.backends as b
 
-    original = b.read_block
+    original = b._run_block
     count = {"n": 0}
 
-    def read_or_die(*args, **kwargs):
+    def run_or_die(*args, **kwargs):
         count["n"] += 1
         if count["n"] == after:
             try:
@@ -115,7 +124,7 @@ def _kill_once_installer(marker: str, after: int):
                 os._exit(1)
         return original(*args, **kwargs)
 
-    b.read_block = read_or_die
+    b._run_block = run_or_die
 
 
 def test_a_worker_killed_mid_pass_changes_nothing(client, write_matrix, tmp_path):
@@ -124,10 +133,11 @@ def test_a_worker_killed_mid_pass_changes_nothing(client, write_matrix, tmp_path
     resources = Resources(memory_limit=BUDGET, threads=2, scheduler=client)
     before = fit(path, n_components=K, engine=ENGINE, resources=resources)
     marker = tmp_path / "killed"
-    client.run(_kill_once_installer, str(marker), 12)  # mid-way through the second pass
+    client.run(_kill_once_installer, str(marker), 8)  # a worker dies in the second pass
     after = fit(path, n_components=K, engine=ENGINE, resources=resources)
     assert marker.exists()  # a worker did die
-    # the lost tasks ran again (Dask's retry) and the fixed tree summed the same numbers
+    # the lost tasks ran again (Dask's retry; the blocks the dead worker kept are read from
+    # the file again) and the fixed tree summed the same numbers
     np.testing.assert_array_equal(before.model.singular_values, after.model.singular_values)
     np.testing.assert_array_equal(before.scores, after.scores)
     client.run(lambda: None)  # the restarted worker is back

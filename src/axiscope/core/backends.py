@@ -49,7 +49,7 @@ import numpy as np
 
 from ..errors import InputError, OptionError, reason
 
-__all__ = ["ClusterBackend", "Reduction", "SourceBlocks", "open_backend", "parse_cluster"]
+__all__ = ["ClusterBackend", "Reduction", "SourceBlocks", "WorkerCache", "open_backend", "parse_cluster"]
 
 logger = logging.getLogger(__name__)
 
@@ -159,6 +159,7 @@ class SourceBlocks:
     columns: np.ndarray | None = None
     store: Callable[[int, np.ndarray], None] | None = None
     run: str = field(default_factory=lambda: uuid.uuid4().hex)
+    keep_on_worker: bool = False
 
     @property
     def on_worker(self) -> bool:
@@ -179,8 +180,10 @@ class SourceBlocks:
             mask = np.zeros(self.source.shape[1], dtype=bool)
             mask[columns] = True
             packed, columns = np.packbits(mask), None
+        keep = (self.run, i, None if self.columns is None else hash(self.columns.tobytes())) \
+            if self.keep_on_worker else None
         return _OneBlock(self.source.reopen, self.run, self.spans[i], self.masks[i], self.spec, columns,
-                         packed, self.source.shape[1])
+                         packed, self.source.shape[1], keep)
 
 
 @dataclass
@@ -195,12 +198,48 @@ class _OneBlock:
     columns: np.ndarray | None
     packed_columns: np.ndarray | None
     n_columns: int
+    keep: tuple | None = None
 
     def __call__(self) -> np.ndarray:
+        if self.keep is not None:
+            block = _KEPT.get(self.keep)
+            if block is not None:
+                return block
         columns = self.columns
         if self.packed_columns is not None:
             columns = np.flatnonzero(np.unpackbits(self.packed_columns, count=self.n_columns))
-        return read_block(_open_once(self.reopen, self.run), self.span, self.mask, self.spec, columns)
+        block = read_block(_open_once(self.reopen, self.run), self.span, self.mask, self.spec, columns)
+        if self.keep is not None:
+            block.flags.writeable = False  # shared by later passes: no task may change it
+            with _OPEN_LOCK:
+                for key in [k for k in _KEPT if k[0] != self.run]:  # blocks of earlier runs
+                    del _KEPT[key]
+                _KEPT[self.keep] = block
+        return block
+
+
+class WorkerCache:
+    """The decode-once cache kept by the workers: each keeps the blocks it read in memory.
+
+    Block ``i`` is sent to worker ``i mod W`` on every pass (another one if that worker is
+    gone: it then reads the block from the file again). Blocks of a run stay until the
+    worker reads for another run, or the run ends (:meth:`ClusterBackend.forget`).
+    """
+
+    columns: np.ndarray | None = None
+
+
+#: Blocks kept by this worker process: (run, block, columns) -> read-only array.
+_KEPT: dict[tuple, np.ndarray] = {}
+
+
+def _forget(run: str) -> int:
+    """Drop the blocks this process keeps for ``run``; returns how many."""
+    with _OPEN_LOCK:
+        keys = [k for k in _KEPT if k[0] == run]
+        for key in keys:
+            del _KEPT[key]
+    return len(keys)
 
 
 def read_block(source, span, mask, spec, columns) -> np.ndarray:
@@ -286,8 +325,25 @@ class ClusterBackend:
     address: str
     kind: str
     traffic: list = field(default_factory=list)
+    cache: str | None = None
+    runs: set = field(default_factory=set)
 
     local = False
+
+    def _addresses(self) -> list[str]:
+        """The workers, in a fixed order (where block ``i`` is kept: the ``i mod W``-th)."""
+        if not getattr(self, "_workers", None):
+            self._workers = sorted(self.client.scheduler_info(n_workers=-1)["workers"])
+        return self._workers
+
+    def forget(self) -> None:
+        """Drop the blocks the workers keep for this back-end's runs."""
+        for run in self.runs:
+            try:
+                self.client.run(_forget, run)
+            except Exception as exc:  # a worker gone: its blocks went with it
+                logger.debug("could not clear kept blocks: %s", exc)
+        self.runs.clear()
 
     @property
     def workers(self) -> int:
@@ -311,6 +367,9 @@ class ClusterBackend:
             "workers": len(info),
             "worker_threads": sum(int(w.get("nthreads", 1)) for w in info.values()),
             "sums_over_blocks": "pairwise tree on the workers (fixed by the number of blocks)",
+            **({} if self.cache is None else {"blocks_kept": {
+                "workers": "in the workers' memory, block i on worker i mod W",
+                "source": "none: the workers read the file on every pass"}[self.cache]}),
         }
 
     def run(self, name: str, X, task, fold, args: tuple, reduce: Reduction | None, progress) -> PassTraffic:
@@ -403,13 +462,19 @@ class ClusterBackend:
         """Block ``i``'s task; returns the future of what comes back for it."""
         client = self.client
         loader = block_loader(X, i)
+        placement = {}
         if isinstance(loader, SourceBlocks) and loader.on_worker:
             piece = loader.for_block(i)
+            if loader.keep_on_worker:
+                self.runs.add(loader.run)
+                addresses = self._addresses()
+                placement = {"workers": [addresses[i % len(addresses)]], "allow_other_workers": True}
         else:  # read here (memory, text, a cache of this process) and sent to a worker
             (block,) = dask.compute(blocks[i], scheduler="synchronous")
             traffic.sent += block.nbytes
             piece = client.scatter(block, hash=False)
-        future = client.submit(_run_block, piece, task, split, *shared, key=f"{token}-block-{i}", pure=False)
+        future = client.submit(_run_block, piece, task, split, *shared, key=f"{token}-block-{i}", pure=False,
+                               **placement)
         if tree is None:
             return future
         if whole:
@@ -513,10 +578,15 @@ def open_backend(resources) -> Iterator[ClusterBackend | None]:
         return
     if scheduler is None:
         client = _current_client()
-        yield None if client is None else ClusterBackend(client, _address(client), "client")
+        if client is None:
+            yield None
+            return
+        with _forgetting(ClusterBackend(client, _address(client), "client")) as backend:
+            yield backend
         return
     if not isinstance(scheduler, str):
-        yield ClusterBackend(scheduler, _address(scheduler), "client")
+        with _forgetting(ClusterBackend(scheduler, _address(scheduler), "client")) as backend:
+            yield backend
         return
     distributed = _distributed()
     t0 = time.perf_counter()
@@ -527,7 +597,8 @@ def open_backend(resources) -> Iterator[ClusterBackend | None]:
                           "or start a scheduler with: dask scheduler") from None
     logger.info("connected to the scheduler at %s in %.1f s", scheduler, time.perf_counter() - t0)
     try:
-        yield ClusterBackend(client, scheduler, "scheduler")
+        with _forgetting(ClusterBackend(client, scheduler, "scheduler")) as backend:
+            yield backend
     finally:
         client.close()
 
@@ -557,7 +628,16 @@ def _local_cluster(n_workers: int | None, resources) -> Iterator[ClusterBackend]
         except (OSError, TimeoutError) as exc:
             raise OptionError(f"cluster={'local:%d' % n!r} could not be started ({reason(exc)}); "
                               "run without cluster, or with fewer workers") from None
-        yield ClusterBackend(client, cluster.scheduler_address, "local cluster")
+        yield ClusterBackend(client, cluster.scheduler_address, "local cluster")  # workers end with it
+
+
+@contextlib.contextmanager
+def _forgetting(backend: ClusterBackend) -> Iterator[ClusterBackend]:
+    """``backend``, whose workers drop the blocks they kept for it at the end."""
+    try:
+        yield backend
+    finally:
+        backend.forget()
 
 
 def _address(client) -> str:

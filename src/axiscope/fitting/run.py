@@ -21,7 +21,7 @@ import numpy as np
 import pandas as pd
 
 from .. import __version__
-from ..core.backends import Reduction, SourceBlocks, open_backend, read_block
+from ..core.backends import Reduction, SourceBlocks, WorkerCache, open_backend, read_block
 from ..core.cache import BlockCache, remove_scratch_leftovers
 from ..core.engine import Factorization, exact_factorization, randomized_factorization
 from ..core.options import METHODS, EngineSettings, InputLayout, Resources
@@ -177,7 +177,9 @@ def _fit(src: MatrixSource, job: _Job, active, exclude) -> FitResult:
     filtered = job.spec.has_filter or exclude is not None
     with _Caches(plan, job.resources) as caches:
         if job.backend is not None and job.backend.reads_on_workers(src):
-            caches.mode = job.backend.cache = "source"  # every pass: workers read their blocks
+            # workers read their own blocks: kept in the workers' memory when the plan has room
+            # for the cache in memory, otherwise decoded from the file on every pass
+            caches.mode = job.backend.cache = "workers" if plan.cache == "memory" else "source"
         first_cache = None if filtered else caches.new(n, src.shape[1], src.dtype)
         fuse = not filtered and job.spec.missing == "error" and method == "randomized"
         l = min(job.k + job.engine.oversample, min(n, src.shape[1]))
@@ -288,9 +290,12 @@ class _Reader:
             cache.put(int(self.starts[i]), block)
         return block
 
-    def blocks(self, columns=None, cache: BlockCache | None = None) -> SourceBlocks:
+    def blocks(self, columns=None, cache: BlockCache | WorkerCache | None = None) -> SourceBlocks:
         """The blocks as a picklable description (a cluster's workers read them themselves)."""
         masks = [None if self.all_active else self.active[a:b] for a, b in self.spans]
+        if isinstance(cache, WorkerCache):  # the workers keep the blocks they read
+            cache.columns = columns
+            return SourceBlocks(self.src, self.spans, masks, self.spec, columns, None, self.token, True)
         store = None if cache is None else (lambda i, block: cache.put(int(self.starts[i]), block))
         return SourceBlocks(self.src, self.spans, masks, self.spec, columns, store, self.token)
 
@@ -300,8 +305,11 @@ class _Reader:
         return array_from_blocks(self.blocks(columns, cache), self.rows, width,
                                  self.src.dtype, f"{name}-{self.token}")
 
-    def cached(self, cache: BlockCache, width: int):
+    def cached(self, cache: BlockCache | WorkerCache, width: int):
         """The blocks stored in ``cache``, as a Dask array."""
+        if isinstance(cache, WorkerCache):
+            return array_from_blocks(self.blocks(cache.columns, cache), self.rows, width, self.src.dtype,
+                                     f"workers-{self.token}")
         return array_from_blocks(
             lambda i: cache.get(int(self.starts[i]), int(self.starts[i]) + self.rows[i]),
             self.rows, width, self.src.dtype, f"cache-{self.token}",
@@ -316,9 +324,11 @@ class _Caches:
         self.resources = resources
         self.opened: list[BlockCache] = []
 
-    def new(self, n_rows: int, n_cols: int, dtype) -> BlockCache | None:
+    def new(self, n_rows: int, n_cols: int, dtype) -> BlockCache | WorkerCache | None:
         if self.mode == "source":
             return None
+        if self.mode == "workers":
+            return WorkerCache()
         scratch = self.resources.scratch_folder() if self.mode == "scratch" else None
         cache = BlockCache(self.mode, n_rows, n_cols, dtype, scratch)
         self.opened.append(cache)
