@@ -347,12 +347,14 @@ class ClusterBackend:
 
     @property
     def workers(self) -> int:
-        return len(self.client.scheduler_info(n_workers=-1)["workers"]) if self.client else 0
+        return len(self._addresses())
 
     @property
     def worker_threads(self) -> int:
-        info = self.client.scheduler_info(n_workers=-1)["workers"]
-        return max(1, sum(int(w.get("nthreads", 1)) for w in info.values()))
+        if not getattr(self, "_threads", None):
+            info = self.client.scheduler_info(n_workers=-1)["workers"]
+            self._threads = max(1, sum(int(w.get("nthreads", 1)) for w in info.values()))
+        return self._threads
 
     def reads_on_workers(self, source) -> bool:
         """Whether the workers can open ``source`` themselves."""
@@ -447,15 +449,14 @@ class ClusterBackend:
             raise
 
     def _share(self, args: tuple, traffic: PassTraffic) -> list:
-        """Arrays sent once to every worker (futures); other arguments as they are."""
-        shared = []
-        n_workers = max(1, self.workers)
-        for value in args:
-            if isinstance(value, np.ndarray):
-                shared.append(self.client.scatter(value, broadcast=True, hash=False))
-                traffic.sent += value.nbytes * n_workers
-            else:
-                shared.append(value)
+        """Arrays sent once to every worker (futures, in one exchange); other arguments as they are."""
+        arrays = [i for i, value in enumerate(args) if isinstance(value, np.ndarray)]
+        shared = list(args)
+        if arrays:
+            futures = self.client.scatter([args[i] for i in arrays], broadcast=True, hash=False)
+            for i, future in zip(arrays, futures):
+                shared[i] = future
+                traffic.sent += args[i].nbytes * len(self._addresses())
         return shared
 
     def _submit(self, X, blocks, i, task, split, shared, tree, token, traffic, whole):
