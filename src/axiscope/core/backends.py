@@ -7,8 +7,11 @@ on the workers of a ``dask.distributed`` cluster:
 * a block is read on the worker that works on it, from a picklable description
   (:class:`SourceBlocks`: file, dataset, orientation, block bounds, preprocessing); the
   worker opens the file itself once per process and keeps it open. No open file handle,
-  lock or closure travels. Blocks with no such description (an in-memory array, parsed
-  text, a block cache of this process) are read here and sent to a worker;
+  lock or closure travels. When the memory plan has room for the cache, worker ``i mod W``
+  keeps block ``i`` in memory for the later passes (:class:`WorkerCache`; a block whose
+  worker is gone is read from the file again). Blocks with no such description (an
+  in-memory array, parsed text, a block cache of this process) are read here and sent to a
+  worker;
 * the arguments of the tasks (the basis ``W``) are sent once per pass to every worker
   (``scatter(broadcast=True)``);
 * the part of each block's result that is summed over blocks (the ``features × l`` Gram
