@@ -218,17 +218,3 @@ def test_on_the_fit_s_cached_blocks_same_values_and_no_new_read(options):
     np.testing.assert_allclose(seen["stability"].per_repeat, again.per_repeat, atol=1e-10)
     np.testing.assert_allclose(seen["stability"].subspace_per_repeat, again.subspace_per_repeat, atol=1e-10)
     assert again.read_from == "input"
-
-
-def test_windowed_path_for_a_cluster_gives_the_same_values(monkeypatch):
-    """The pass path taken with a distributed client (windows of blocks through dask.compute) folds
-    in block order like the local one: the values agree to the last bit."""
-    from axiscope.core import passes
-
-    X = planted(600, 60, [3.0], seed=12)
-    result = fit(array_source(X), n_components=2, resources=Resources(memory_limit="20MB", threads=2))
-    local = axis_stability(array_source(X), result, stability_repeats=2, seed=1)
-    monkeypatch.setattr(passes, "_local_scheduler", lambda: False)
-    windowed = axis_stability(array_source(X), result, stability_repeats=2, seed=1)
-    assert result.manifest["passes"]["detail"][0]["blocks"] > 2
-    assert np.array_equal(local.per_repeat, windowed.per_repeat)

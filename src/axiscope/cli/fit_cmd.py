@@ -59,6 +59,15 @@ LogTransform = Annotated[bool, typer.Option(
 TopVariable = Annotated[int | None, typer.Option(min=2, help="Keep the N features of largest variance.")]
 Scratch = Annotated[Path | None, typer.Option(
     help="Folder for the scratch file when blocks do not fit in memory (made if missing; default: the temporary folder).")]
+SchedulerOpt = Annotated[str | None, typer.Option(
+    "--scheduler", metavar="ADDRESS",
+    help="Run the passes on a running Dask cluster: its scheduler's address (tcp://host:8786). "
+         "Every worker must see INPUT at the same path. Needs pip install \"axiscope[cluster]\".")]
+ClusterOpt = Annotated[str | None, typer.Option(
+    "--cluster", metavar="local[:N]",
+    help="Run the passes on N worker processes of this machine started for the run (default N: the "
+         "number of cores), each with an equal share of --memory-limit. Needs "
+         "pip install \"axiscope[cluster]\".")]
 
 
 FitComponents = Annotated[str, typer.Option(
@@ -141,6 +150,8 @@ def fit_command(
     memory_limit: MemoryLimit = None,
     threads: Threads = None,
     scratch: Scratch = None,
+    scheduler: SchedulerOpt = None,
+    cluster: ClusterOpt = None,
     top: Annotated[int, typer.Option(min=1, help="Features listed per side of each axis in top_features.tsv.")] = DEFAULT_TOP_FEATURES,
     format: FormatOpt = TableFormat.tsv,
     dataset: Dataset = None,
@@ -215,7 +226,8 @@ def fit_command(
         )
         engine = EngineSettings(method=_method(method.value, passes), oversample=oversample, tol=tol, seed=seed,
                                 power_iterations=parse_power_iterations(power_iterations))
-        resources = Resources(memory_limit=memory_limit, threads=threads, scratch=scratch)
+        resources = Resources(memory_limit=memory_limit, threads=threads, scratch=scratch,
+                              scheduler=scheduler, cluster=cluster)
         layout = InputLayout(dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
                              samples_in=samples_in.value, allow_external_data=allow_external_data,
                              allow_missing_chunks=allow_missing_chunks, sparse_names=sparse_names,

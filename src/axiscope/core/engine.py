@@ -34,6 +34,7 @@ import dask.array as da
 import numpy as np
 import scipy.linalg
 
+from .backends import Reduction
 from .passes import PassRunner
 from .sparse_ops import is_sparse, sparse_products
 
@@ -194,6 +195,22 @@ def _products(block, W, offset, centre, residual, d, fill, gram_width, want_norm
     return y, gram, norms
 
 
+def _split_gram(result):
+    """A block's products as (what comes back per block, the Gram part summed over blocks)."""
+    y, gram, norms = result
+    return (y, None, norms), gram
+
+
+def _join_gram(piece, total):
+    y, _, norms = piece
+    return y, total, norms
+
+
+#: On a cluster, the ``features × l`` Gram parts are summed on the workers; only ``Y_b`` and
+#: the row norms come back per block (:class:`axiscope.core.backends.Reduction`).
+GRAM_SUM = Reduction(np.add, split=_split_gram, join=_join_gram)
+
+
 @dataclass
 class _Operator:
     """Implicit ``X̃ = (X − 1μᵀ)·diag(d)`` over a row-chunked Dask array.
@@ -246,6 +263,7 @@ class _Operator:
         self.runner.run(
             name, self.source, self.X, _products,
             fold, W_cast, offset, centre, residual, self.d, self.fill, gram, norms,
+            reduce=GRAM_SUM if gram else None,
         )
         Z = None
         if gram:

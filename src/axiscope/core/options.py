@@ -12,6 +12,7 @@ import numbers
 import os
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -118,11 +119,23 @@ class Resources:
         Folder for the scratch file when transformed blocks do not fit in memory; made
         when the fit needs it and it does not exist (default: the system's temporary
         folder).
+    scheduler : str or distributed.Client, optional
+        Run the passes on a ``dask.distributed`` cluster: the address of its scheduler
+        (``tcp://host:8786``) or a client connected to it. Workers read their own blocks
+        from the input file, so it must be reachable at the same path on every worker.
+        Default: the current client when the caller made one, otherwise threads of this
+        process. Needs ``pip install "axiscope[cluster]"``.
+    cluster : str, optional
+        ``"local"`` or ``"local:N"``: start a cluster of N worker processes on this machine
+        for the fit (default N: the number of cores), each with one thread and
+        ``memory_limit / N`` of memory. Not together with ``scheduler``.
     """
 
     memory_limit: int | str | None = None
     threads: int | None = None
     scratch: str | os.PathLike | None = None
+    scheduler: Any = None
+    cluster: str | None = None
 
     def __post_init__(self) -> None:
         if self.memory_limit is not None:
@@ -140,6 +153,7 @@ class Resources:
                                   "512MB, 4GB or 1.5GiB") from exc
         if self.threads is not None and not (_is_int(self.threads) and self.threads >= 1):
             raise OptionError(f"threads={self.threads!r} is not a whole number >= 1; pass one")
+        self._check_cluster()
         if self.scratch is not None:
             if not isinstance(self.scratch, (str, os.PathLike)):
                 raise OptionError(f"scratch={self.scratch!r} is not a path; pass a folder")
@@ -147,6 +161,20 @@ class Resources:
             if path.exists() and not path.is_dir():
                 raise OptionError(f"scratch={str(path)!r} is a file, not a folder; choose a folder")
             object.__setattr__(self, "scratch", path)
+
+    def _check_cluster(self) -> None:
+        if self.scheduler is not None and self.cluster is not None:
+            raise OptionError("pass either scheduler (a running cluster) or cluster (one started for the "
+                              "run), not both")
+        if self.cluster is not None:
+            from .backends import parse_cluster
+
+            parse_cluster(self.cluster)
+        if self.scheduler is not None and not (
+                (isinstance(self.scheduler, str) and self.scheduler.strip())
+                or hasattr(self.scheduler, "submit")):
+            raise OptionError(f"scheduler={self.scheduler!r} is neither a scheduler address nor a "
+                              "distributed.Client; pass one like tcp://host:8786")
 
     @property
     def budget(self) -> int:

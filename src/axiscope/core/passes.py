@@ -3,7 +3,8 @@
 A pass applies a task to every block of a row-chunked Dask array and folds the results,
 in block order, into an accumulator. Only the blocks being worked on and results waiting
 for an earlier block are held, and the fold order (hence the rounding) does not depend on
-the number of threads.
+the number of threads. Where the blocks are computed is the back-end's business: threads
+of this process (here), or a ``dask.distributed`` cluster (:mod:`axiscope.core.backends`).
 """
 
 from __future__ import annotations
@@ -21,6 +22,8 @@ import dask
 import dask.array as da
 import numpy as np
 
+from ..errors import OptionError
+
 __all__ = ["PassRecord", "PassRunner", "array_from_blocks", "blas_threads"]
 
 logger = logging.getLogger(__name__)
@@ -36,6 +39,9 @@ class PassRecord:
     source: str
     seconds: float
     n_blocks: int
+    #: Bytes received from / sent to a cluster's workers (None on the threaded back-end).
+    bytes_to_client: int | None = None
+    bytes_from_client: int | None = None
 
 
 def _log_pass(number: int, record: PassRecord) -> None:
@@ -53,15 +59,17 @@ class PassRunner:
     Parameters
     ----------
     threads : int
-        Blocks computed at once on the threaded scheduler (ignored when a distributed
-        client is the default scheduler).
+        Blocks computed at once on the threaded back-end.
     progress : callable or None
         Called as ``progress(pass_name, blocks_done, n_blocks)``.
+    backend : axiscope.core.backends.ClusterBackend, optional
+        Where the blocks are computed; None: ``threads`` threads of this process.
     """
 
     threads: int = 1
     progress: Progress | None = None
     records: list[PassRecord] = field(default_factory=list)
+    backend: Any = None
 
     @property
     def n_passes(self) -> int:
@@ -76,18 +84,30 @@ class PassRunner:
         fold: Callable[[Any, int, int], None],
         *args: Any,
         rows: np.ndarray | None = None,
+        reduce: Any = None,
     ) -> None:
         """Compute ``task(block, *args)`` for every row block and call ``fold(result, index, start)``.
 
         With ``rows`` (one row per sample of ``X``, e.g. covariates), the task is called as
-        ``task(block, rows_of_the_block, *args)``.
+        ``task(block, rows_of_the_block, *args)`` (threaded back-end only).
 
-        ``fold`` is called on the calling thread, in block order. On the threaded scheduler
-        the whole pass is one Dask computation, and each result is folded as soon as the
-        blocks before it are done (no barrier between groups of blocks); a block's result is
-        held only until then. On a distributed cluster blocks are computed a window at a time.
+        ``fold`` is called on the calling thread, in block order. On the threaded back-end
+        each result is folded as soon as the blocks before it are done (no barrier between
+        groups of blocks); a block's result is held only until then. ``reduce``
+        (:class:`axiscope.core.backends.Reduction`) says which part of the results a cluster
+        sums on its workers; the threaded back-end folds every result as it is.
         """
         t0 = time.perf_counter()
+        n = len(X.chunks[0])
+        if self.backend is not None:
+            if rows is not None:
+                raise OptionError(f"the pass {name!r} hands each block rows of its own, which the cluster "
+                                  "back-end does not do yet; run it without scheduler or cluster")
+            traffic = self.backend.run(name, X, task, fold, args, reduce, self.progress)
+            self.records.append(PassRecord(name, source, time.perf_counter() - t0, n,
+                                           traffic.received, traffic.sent))
+            _log_pass(self.n_passes, self.records[-1])
+            return
         blocks = X.to_delayed().ravel()
         starts = [int(v) for v in np.concatenate([[0], np.cumsum(X.chunks[0])])[:-1]]
         if rows is not None:  # each block travels with its rows of ``rows``
@@ -97,12 +117,15 @@ class PassRunner:
         n = len(blocks)
         if self.progress:
             self.progress(name, 0, n)
-        if _local_scheduler():
-            self._run_pipelined(name, blocks, starts, task, fold, args)
-        else:
-            self._run_windowed(name, blocks, starts, task, fold, args)
+        self._run_pipelined(name, blocks, starts, task, fold, args)
         self.records.append(PassRecord(name, source, time.perf_counter() - t0, n))
         _log_pass(self.n_passes, self.records[-1])
+
+    def describe(self) -> dict:
+        """Where the passes ran, for the manifest."""
+        if self.backend is None:
+            return {"backend": "threaded", "threads": self.threads}
+        return self.backend.describe()
 
     def _run_pipelined(self, name, blocks, starts, task, fold, args) -> None:
         """Blocks in order on a pool of threads, at most ``2·threads`` in flight, folded in order.
@@ -134,18 +157,6 @@ class PassRunner:
                 for future in pending:
                     future.cancel()
 
-    def _run_windowed(self, name, blocks, starts, task, fold, args) -> None:
-        n = len(blocks)
-        window = max(1, 2 * self.threads)
-        for lo in range(0, n, window):
-            hi = min(n, lo + window)
-            work = [dask.delayed(task)(blocks[i], *args) for i in range(lo, hi)]
-            results = dask.compute(*work)
-            for offset, result in enumerate(results):
-                fold(result, lo + offset, starts[lo + offset])
-            if self.progress:
-                self.progress(name, hi, n)
-
 
 def _with_rows(block: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return block, rows
@@ -153,19 +164,6 @@ def _with_rows(block: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, np.ndar
 
 def _call_with_rows(task: Callable[..., Any], pair: tuple[np.ndarray, np.ndarray], *args: Any) -> Any:
     return task(pair[0], pair[1], *args)
-
-
-def _local_scheduler() -> bool:
-    """True unless a distributed client (or another scheduler) has been made the default."""
-    if dask.config.get("scheduler", None) not in (None, "threads", "threading", "sync", "synchronous"):
-        return False
-    try:  # a distributed client registers itself as the default scheduler
-        from distributed import default_client  # type: ignore[import-not-found]
-
-        default_client()
-        return False
-    except (ImportError, ValueError):
-        return True
 
 
 def array_from_blocks(

@@ -15,7 +15,7 @@ import sys
 import time
 import uuid
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -23,6 +23,7 @@ import pandas as pd
 
 from .. import __version__
 from ..core.adjust import Adjustment, Covariates, Residualizer, block_cross
+from ..core.backends import Reduction, SourceBlocks, WorkerCache, open_backend, read_block
 from ..core.cache import BlockCache, remove_scratch_leftovers
 from ..core.engine import Factorization, exact_factorization, randomized_factorization
 from ..core.onepass import one_pass_factorization
@@ -34,11 +35,9 @@ from ..core.preprocess import (
     BlockStats,
     FeatureStatistics,
     Preprocessing,
-    NotADosage,
     PreprocessSpec,
     block_statistics,
     first_nonfinite,
-    transform_block,
 )
 from ..errors import InputError, OptionError, counted
 from ..io import MatrixSource, opened
@@ -158,8 +157,9 @@ def fit(
         raise OptionError("resume=True needs the folder of the saved state; pass checkpoint=...")
     job = _Job(int(n_components), preprocess, engine, resources, progress, t_start, checksum,
                None if checkpoint is None else Path(checkpoint), bool(resume))
-    with opened(source, **layout.open_options()) as src, blas_threads(resources.n_threads):
-        return _fit(src, job, active, exclude_features, covariates, then)
+    with opened(source, **layout.open_options()) as src, blas_threads(resources.n_threads), \
+            open_backend(resources) as backend:
+        return _fit(src, replace(job, backend=backend), active, exclude_features, covariates, then)
 
 
 def _option(value, kind: type, name: str):
@@ -194,6 +194,7 @@ class _Job:
     checksum: str = "sampled"
     checkpoint: Path | None = None
     resume: bool = False
+    backend: object = None  # None: threads of this process; else a cluster (core/backends.py)
 
 
 def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None, then=None) -> FitResult:
@@ -209,11 +210,14 @@ def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None, then=No
     plan = plan_fit(src, n_components=job.k, preprocess=job.spec, engine=job.engine,
                     resources=job.resources)
     method = _choose_method(job.engine.method, n, src.shape[1], job.spec, plan.budget - plan.baseline)
-    runner = PassRunner(threads=plan.threads, progress=job.progress)
+    runner = PassRunner(threads=plan.threads, progress=job.progress, backend=job.backend)
     identity = _input_identity(src, job.checksum)
     checkpoint = _checkpoint(job, identity, plan, active, exclude, method, adjust)
     rng = job.engine.generator()
     reader = _Reader(src, job.spec, active, plan.block_rows, plan.block_nonzeros)
+    if job.backend is not None and (reader.sparse or then is not None):
+        raise OptionError(f"{src.path}: {'a sparse matrix' if reader.sparse else 'the split-half stability'} "
+                          "is not yet computed on a cluster; run it without scheduler or cluster")
     if reader.sparse and (adjust is not None or method == "one-pass"):
         raise OptionError(f"{src.path}: a sparse matrix is not yet fitted "
                           f"{'after a covariate adjustment' if adjust is not None else 'in one pass'}; "
@@ -227,6 +231,10 @@ def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None, then=No
                        checkpoint=checkpoint)
     filtered = job.spec.has_filter or exclude is not None
     with _Caches(plan, job.resources, sparse=reader.sparse) as caches:
+        if job.backend is not None and job.backend.reads_on_workers(src):
+            # workers read their own blocks: kept in the workers' memory when the plan has room
+            # for the cache in memory, otherwise decoded from the file on every pass
+            caches.mode = job.backend.cache = "workers" if plan.cache == "memory" else "source"
         first_cache = None if filtered else caches.new(n, src.shape[1], src.dtype)
         fuse = not filtered and job.spec.missing == "error" and method == "randomized"
         l = min(job.k + job.engine.oversample, min(n, src.shape[1]))
@@ -390,39 +398,52 @@ class _Reader:
         self.spans = [(a, b) for (a, b), c in zip(spans, counts) if c > 0]
         self.rows = [c for c in counts if c > 0]
         self.starts = np.concatenate([[0], np.cumsum(self.rows)])[:-1]
-        self.token = uuid.uuid4().hex[:8]
+        self.token = uuid.uuid4().hex
 
     def block(self, i: int, columns=None, cache: BlockCache | None = None) -> np.ndarray:
         a, b = self.spans[i]
-        block = self.src.read_sparse(a, b) if self.sparse else self.src.read_samples(a, b)
-        if not self.all_active:
-            block = block[self.active[a:b]]
-        try:
-            block = transform_sparse(block, self.spec) if self.sparse else transform_block(block, self.spec)
-        except NotADosage as exc:
-            sample = self.src.sample_ids[a + np.flatnonzero(self.active[a:b])[exc.row]]
-            feature = self.src.feature_ids[exc.column]
-            raise InputError(exc.located(f"{self.src.path.name}: sample {sample!r}, feature {feature!r}")) from None
-        if self.sparse:  # the products' layout (core/sparse_ops.py), made once per read
+        if self.sparse:
+            block = self.src.read_sparse(a, b)
+            if not self.all_active:
+                block = block[self.active[a:b]]
+            try:
+                block = transform_sparse(block, self.spec)
+            except NotADosage as exc:
+                sample = self.src.sample_ids[a + np.flatnonzero(self.active[a:b])[exc.row]]
+                feature = self.src.feature_ids[exc.column]
+                raise InputError(exc.located(f"{self.src.path.name}: sample {sample!r}, feature {feature!r}")) from None
+            # the products' layout (core/sparse_ops.py), made once per read
             block = as_columns(block if columns is None else block[:, columns])
-        elif columns is not None:
-            block = np.ascontiguousarray(block[:, columns])
+        else:
+            block = read_block(self.src, (a, b), None if self.all_active else self.active[a:b], self.spec, columns)
         if cache is not None:
             cache.put(int(self.starts[i]), block)
         return block
 
+    def blocks(self, columns=None, cache: BlockCache | WorkerCache | None = None) -> SourceBlocks:
+        """The blocks as a picklable description (a cluster's workers read them themselves)."""
+        masks = [None if self.all_active else self.active[a:b] for a, b in self.spans]
+        if isinstance(cache, WorkerCache):  # the workers keep the blocks they read
+            cache.columns = columns
+            return SourceBlocks(self.src, self.spans, masks, self.spec, columns, None, self.token, True)
+        store = None if cache is None else (lambda i, block: cache.put(int(self.starts[i]), block))
+        return SourceBlocks(self.src, self.spans, masks, self.spec, columns, store, self.token)
+
     def array(self, name: str, columns=None, cache: BlockCache | None = None):
         """The input read once more (filling ``cache`` when given), as a Dask array."""
         width = self.src.shape[1] if columns is None else columns.shape[0]
-        return array_from_blocks(lambda i: self.block(i, columns, cache), self.rows, width,
-                                 self.src.dtype, f"{name}-{self.token}")
+        load = (lambda i: self.block(i, columns, cache)) if self.sparse else self.blocks(columns, cache)
+        return array_from_blocks(load, self.rows, width, self.src.dtype, f"{name}-{self.token}")
 
     def load_cached(self, cache: BlockCache):
         """``load(i)``: the ``i``-th block from ``cache``."""
         return lambda i: cache.get(int(self.starts[i]), int(self.starts[i]) + self.rows[i])
 
-    def cached(self, cache: BlockCache, width: int):
+    def cached(self, cache: BlockCache | WorkerCache, width: int):
         """The blocks stored in ``cache``, as a Dask array."""
+        if isinstance(cache, WorkerCache):
+            return array_from_blocks(self.blocks(cache.columns, cache), self.rows, width, self.src.dtype,
+                                     f"workers-{self.token}")
         return array_from_blocks(
             lambda i: cache.get(int(self.starts[i]), int(self.starts[i]) + self.rows[i]),
             self.rows, width, self.src.dtype, f"cache-{self.token}",
@@ -492,9 +513,11 @@ class _Caches:
         self.sparse = sparse
         self.opened: list[BlockCache] = []
 
-    def new(self, n_rows: int, n_cols: int, dtype) -> BlockCache | None:
+    def new(self, n_rows: int, n_cols: int, dtype) -> BlockCache | WorkerCache | None:
         if self.mode == "source":
             return None
+        if self.mode == "workers":
+            return WorkerCache()
         if self.sparse:  # the plan keeps sparse blocks in memory or re-reads the source
             cache = SparseBlockCache()
             self.opened.append(cache)
@@ -729,10 +752,13 @@ def _manifest(src, job: _Job, n, prep, stats, fac, plan, runner) -> dict:
             "preprocessing": job.spec.to_dict(),
         },
         "plan": plan.to_dict(),
+        "execution": runner.describe(),
         "passes": {
             "count": runner.n_passes,
             "detail": [
-                {"name": r.name, "read_from": r.source, "seconds": round(r.seconds, 3), "blocks": r.n_blocks}
+                {"name": r.name, "read_from": r.source, "seconds": round(r.seconds, 3), "blocks": r.n_blocks,
+                 **({} if r.bytes_to_client is None else
+                    {"bytes_to_client": r.bytes_to_client, "bytes_from_client": r.bytes_from_client})}
                 for r in runner.records
             ],
         },
@@ -832,6 +858,25 @@ def _block_sketch_and_cross(block, omega32, mean, covariate_rows) -> tuple[np.nd
     return np.ascontiguousarray(sketch), cross
 
 
+def _merge_stats(a, b, omega, centre):
+    """The statistics-pass results of two adjacent runs of blocks as one (a cluster's tree sum).
+
+    The same updates as the fold of :func:`_statistics_pass`: Chan's merge of the feature
+    statistics and of the sketches about their means; a bad cell's row counted from ``a``'s start.
+    """
+    stats_a, sketch_a, bad_a = a
+    stats_b, sketch_b, bad_b = b
+    bad = bad_a if bad_a is not None else None if bad_b is None else (bad_b[0] + stats_a.n_samples, bad_b[1])
+    sketch = None
+    if sketch_a is not None and sketch_b is not None:
+        if centre:
+            n_a, n_b = stats_a.n_samples, stats_b.n_samples
+            delta = stats_b.mean - stats_a.mean
+            sketch_b = sketch_b + (n_a * n_b / (n_a + n_b)) * np.outer(delta, delta @ omega)
+        sketch = sketch_a + sketch_b
+    return stats_a.merge(stats_b), sketch, bad
+
+
 def _statistics_pass(X, spec, omega, runner, src, active, *, centre: bool = True,
                      adjust: Adjustment | None = None):
     """One pass: feature statistics, and the sketch ``X̃ᵀX̃·Ω`` (unscaled) when ``omega`` is given.
@@ -875,7 +920,7 @@ def _statistics_pass(X, spec, omega, runner, src, active, *, centre: bool = True
 
     if adjust is None:
         runner.run("statistics" + (" + sketch" if omega is not None else ""), "input", X,
-                   _stats_task, fold, omega32, centre)
+                   _stats_task, fold, omega32, centre, reduce=Reduction(_merge_stats, (omega, centre)))
     else:
         runner.run("statistics + covariates" + (" + sketch" if omega is not None else ""), "input", X,
                    _stats_task_with_rows, fold, omega32, centre, rows=adjust.centred)

@@ -134,8 +134,20 @@ def open_matrix(path: str | os.PathLike[str], *, dataset: str | None = None,
         extra["allow_missing_chunks"] = bool(allow_missing_chunks)
     elif kind == "text":
         extra["scratch"] = scratch
-    return OPENERS[kind](path, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
-                         samples_in=samples_in, **extra)
+    source = OPENERS[kind](path, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
+                           samples_in=samples_in, **extra)
+    if kind in ("hdf5", "zarr", "npy"):  # how another process opens the same matrix (cluster workers)
+        source.reopen = {"path": str(path.resolve()), "dataset": source.dataset,
+                         "sample_ids": _absolute(sample_ids), "feature_ids": _absolute(feature_ids),
+                         "samples_in": samples_in, **extra}
+    return source
+
+
+def _absolute(ids: str | None) -> str | None:
+    """An id option that names a file, as an absolute path (another process may run elsewhere)."""
+    if ids is not None and pathlib.Path(ids).is_file():
+        return str(pathlib.Path(ids).resolve())
+    return ids
 
 
 def _open_if_sparse(path: pathlib.Path, kind: str, *, dataset: str | None, names, allow_external_data: bool,

@@ -198,6 +198,10 @@ class MatrixSource:
         were allowed (Zarr, HDF5), ``computed_in`` when integers are computed in float64.
     """
 
+    #: Keyword arguments of :func:`axiscope.io.open_matrix` that open this matrix again in
+    #: another process (set for HDF5, Zarr and ``.npy`` files; None for text and arrays).
+    reopen: dict[str, Any] | None = None
+
     def __init__(self, *, path: pathlib.Path, format: str, dataset: str | None, samples_in: str,
                  backend: Backend, sample_ids: np.ndarray, feature_ids: np.ndarray,
                  ids_source: dict[str, str]) -> None:

@@ -1,0 +1,210 @@
+"""The fit on a dask.distributed cluster: same numbers as the threaded fit, little traffic.
+
+A LocalCluster of two single-threaded worker processes is started inside the tests (on
+127.0.0.1, no dashboard). References: the threaded fit of the same file (the same block
+products; only the order of the sums over blocks differs, a pairwise tree instead of a
+running sum, so agreement to rounding, checked at 1e-10 relative in float64) and LAPACK
+through ``numpy.linalg.svd`` for the singular values. Data: a planted low-rank matrix plus
+noise, invented here.
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+
+import numpy as np
+import pytest
+
+distributed = pytest.importorskip("distributed")
+cloudpickle = pytest.importorskip("cloudpickle")
+
+from axiscope.core import backends  # noqa: E402
+from axiscope.core.options import EngineSettings, Resources  # noqa: E402
+from axiscope.core.preprocess import PreprocessSpec  # noqa: E402
+from axiscope.errors import OptionError  # noqa: E402
+from axiscope.fitting.run import fit  # noqa: E402
+
+# the worker-side helpers below are sent by value (the workers cannot import this module)
+cloudpickle.register_pickle_by_value(sys.modules[__name__])
+
+N, P, K = 900, 60, 4
+ENGINE = EngineSettings(method="randomized", seed=3)
+BUDGET = "16MB"  # small blocks: several per pass
+
+
+@pytest.fixture(scope="module")
+def client():
+    cluster = distributed.LocalCluster(processes=True, n_workers=2, threads_per_worker=1, host="127.0.0.1",
+                                       dashboard_address=None)
+    client = distributed.Client(cluster, set_as_default=False)
+    yield client
+    client.close()
+    cluster.close()
+
+
+def _planted(seed: int = 0) -> np.ndarray:
+    rng = np.random.default_rng(seed)
+    U = np.linalg.qr(rng.standard_normal((N, K)))[0]
+    V = np.linalg.qr(rng.standard_normal((P, K)))[0]
+    return 40.0 * (U * [8.0, 6.0, 4.0, 3.0]) @ V.T + rng.standard_normal((N, P)) + 5.0
+
+
+def _close(a, b, rtol=1e-10):
+    scale = np.max(np.abs(a))
+    assert np.max(np.abs(a - b)) <= rtol * scale, np.max(np.abs(a - b)) / scale
+
+
+def _compare(threaded, clustered):
+    _close(threaded.model.singular_values, clustered.model.singular_values)
+    _close(threaded.model.components, clustered.model.components)
+    _close(threaded.scores, clustered.scores)
+
+
+@pytest.mark.parametrize("fmt, selected", [("h5", False), ("zarr3", True)])
+def test_fit_on_the_cluster_equals_the_threaded_fit(client, write_matrix, fmt, selected):
+    # selected: some samples left out and a feature filter (the workers read a subset of
+    # rows and columns, and the sketch takes its own pass)
+    X = _planted()
+    path = write_matrix(X, fmt, chunks=(100, P))
+    active = np.ones(N, dtype=bool)
+    spec = None
+    if selected:
+        active[::7] = False
+        spec = PreprocessSpec(top_variable=P - 10)
+    options = dict(n_components=K, engine=ENGINE, preprocess=spec, active=active)
+    threaded = fit(path, **options, resources=Resources(memory_limit=BUDGET, threads=2))
+    clustered = fit(path, **options, resources=Resources(memory_limit=BUDGET, threads=2, scheduler=client))
+    assert threaded.manifest["passes"]["detail"][0]["blocks"] >= 6
+    _compare(threaded, clustered)
+    # LAPACK reference on the standardized matrix (population SD, the documented convention)
+    kept = X[active][:, clustered.preprocessing.kept]
+    Z = (kept - kept.mean(axis=0)) / kept.std(axis=0)
+    np.testing.assert_allclose(clustered.model.singular_values, np.linalg.svd(Z, compute_uv=False)[:K], rtol=1e-8)
+    record = clustered.manifest["execution"]
+    assert record["backend"] == "dask.distributed" and record["workers"] == 2
+    # client traffic per Krylov pass: Y (n × m) and row norms per block, and one p × l total
+    # (plus pickling overhead); never the blocks (n × p)
+    for detail in clustered.manifest["passes"]["detail"]:
+        assert detail["read_from"] in ("input", "workers")  # never a cache of this process
+        assert 0 < detail["bytes_to_client"] < 8 * (N * (K + 10 + 10 + 1) + P * (K + 10)) + 20_000
+    assert threaded.manifest["execution"] == {"backend": "threaded", "threads": 2}
+
+
+def test_in_memory_input_under_the_current_client(client):
+    # the estimator's in-memory array cannot be opened by a worker: its blocks are sent from
+    # here, and the fit uses the current client without being told
+    from axiscope.estimator import AxiscopePCA
+
+    X = _planted(1)
+    reference = AxiscopePCA(n_components=K, method="randomized", random_state=3, memory_limit=BUDGET).fit(X)
+    with client.as_current():
+        model = AxiscopePCA(n_components=K, method="randomized", random_state=3, memory_limit=BUDGET).fit(X)
+        scores = model.transform(X[:50])
+    _close(reference.singular_values_, model.singular_values_)
+    _close(reference.components_, model.components_)
+    _close(reference.transform(X[:50]), scores)
+
+
+def _kill_once_installer(marker: str, after: int):
+    """Make this worker process exit (as if killed) at its ``after``-th block task, once per marker."""
+    import axiscope.core.backends as b
+
+    original = b._run_block
+    count = {"n": 0}
+
+    def run_or_die(*args, **kwargs):
+        count["n"] += 1
+        if count["n"] == after:
+            try:
+                os.close(os.open(marker, os.O_CREAT | os.O_EXCL | os.O_WRONLY))
+            except FileExistsError:
+                pass
+            else:
+                os._exit(1)
+        return original(*args, **kwargs)
+
+    b._run_block = run_or_die
+
+
+def test_a_worker_killed_mid_pass_changes_nothing(client, write_matrix, tmp_path):
+    X = _planted(2)
+    path = write_matrix(X, "h5", chunks=(100, P))
+    resources = Resources(memory_limit=BUDGET, threads=2, scheduler=client)
+    before = fit(path, n_components=K, engine=ENGINE, resources=resources)
+    marker = tmp_path / "killed"
+    client.run(_kill_once_installer, str(marker), 8)  # a worker dies in the second pass
+    after = fit(path, n_components=K, engine=ENGINE, resources=resources)
+    assert marker.exists()  # a worker did die
+    # the lost tasks ran again (Dask's retry; the blocks the dead worker kept are read from
+    # the file again) and the fixed tree summed the same numbers
+    np.testing.assert_array_equal(before.model.singular_values, after.model.singular_values)
+    np.testing.assert_array_equal(before.scores, after.scores)
+    client.run(lambda: None)  # the restarted worker is back
+
+
+def test_cli_local_cluster_end_to_end(write_matrix, tmp_path):
+    from typer.testing import CliRunner
+
+    from axiscope.cli import app
+    import pandas as pd
+
+    X = _planted(3)
+    path = write_matrix(X, "h5", chunks=(100, P))
+    runner = CliRunner()
+    common = [str(path), "--components", str(K), "--method", "randomized", "--seed", "3", "--quiet"]
+    done = runner.invoke(app, ["fit", *common, "--out", str(tmp_path / "threaded")])
+    assert done.exit_code == 0, done.output
+    done = runner.invoke(app, ["fit", *common, "--out", str(tmp_path / "cluster"), "--cluster", "local:2"])
+    assert done.exit_code == 0, done.output
+    import json
+
+    manifest = json.loads((tmp_path / "cluster" / "manifest.json").read_text())
+    assert manifest["execution"]["connected_to"] == "local cluster" and manifest["execution"]["workers"] == 2
+    for name in ("components.npy", "extra_training_sq_dist.npy"):
+        _close(np.load(tmp_path / "threaded" / "model" / name), np.load(tmp_path / "cluster" / "model" / name))
+    a = pd.read_csv(tmp_path / "threaded" / "sample_scores.tsv", sep="\t", comment="#")
+    b = pd.read_csv(tmp_path / "cluster" / "sample_scores.tsv", sep="\t", comment="#")
+    assert list(a.columns) == list(b.columns) and list(a["sample_id"]) == list(b["sample_id"])
+    # the table holds 8 significant digits: equal to within one unit of the 8th
+    numeric = a.select_dtypes("number").columns
+    np.testing.assert_allclose(a[numeric].to_numpy(), b[numeric].to_numpy(), rtol=2e-7, atol=1e-12)
+
+
+def test_bad_cluster_options_are_one_line_errors(monkeypatch, write_matrix, tmp_path):
+    from typer.testing import CliRunner
+
+    from axiscope.cli import app
+
+    with pytest.raises(OptionError, match="local or local:N"):
+        Resources(cluster="remote:3")
+    with pytest.raises(OptionError, match="not both"):
+        Resources(cluster="local:2", scheduler="tcp://127.0.0.1:1")
+    path = write_matrix(_planted(4), "h5")
+    runner = CliRunner()
+    monkeypatch.setattr(backends, "CONNECT_TIMEOUT", 2)
+    done = runner.invoke(app, ["fit", str(path), "--out", str(tmp_path / "o"), "--scheduler", "tcp://127.0.0.1:9"])
+    assert done.exit_code == 2
+    assert "--scheduler 'tcp://127.0.0.1:9' cannot be reached" in done.output
+    assert not (tmp_path / "o").exists()
+    monkeypatch.setitem(sys.modules, "distributed", None)  # as if it were not installed
+    done = runner.invoke(app, ["fit", str(path), "--out", str(tmp_path / "o"), "--cluster", "local:2"])
+    assert done.exit_code == 2
+    assert 'pip install "axiscope[cluster]"' in done.output
+
+
+def test_a_bad_cell_is_named_as_on_the_threaded_fit(client, write_matrix):
+    # the statistics pass's tree carries the first bad cell's row from the start of its run
+    # of blocks; the message must name the same sample and feature as the threaded fit's
+    from axiscope.errors import InputError
+
+    X = _planted(5)
+    X[555, 7] = np.nan
+    path = write_matrix(X, "h5", chunks=(100, P))
+    messages = []
+    for extra in ({}, {"scheduler": client}):
+        with pytest.raises(InputError) as caught:
+            fit(path, n_components=K, engine=ENGINE, resources=Resources(memory_limit=BUDGET, threads=2, **extra))
+        messages.append(str(caught.value))
+    assert messages[0] == messages[1]
+    assert "sample_000556" in messages[1] and "is NaN or infinite" in messages[1]
