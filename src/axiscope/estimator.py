@@ -50,8 +50,8 @@ __all__ = ["AxiscopePCA", "SPARSE_FORMATS"]
 _IDS_INFO_KEY = "feature_names"
 
 #: scipy.sparse formats handed to :func:`axiscope.io.array_source` unchanged (never
-#: densified; :mod:`axiscope.io.sparse`). Other sparse formats are refused with a
-#: ``TypeError`` that says which to convert to.
+#: densified; :mod:`axiscope.io.sparse`); other sparse formats (COO, LIL, …) are converted to
+#: the first of them, still sparse, as scikit-learn's own validation does.
 SPARSE_FORMATS: tuple[str, ...] = ("csr", "csc")
 
 #: Parameters of the preprocessing that ``partial_fit`` cannot apply batch by batch.
@@ -152,8 +152,8 @@ class AxiscopePCA(TransformerMixin, BaseEstimator):
     holds the preprocessed matrix in float64. ``partial_fit`` holds a
     ``(n_components + batch + 1) × n_features`` matrix per batch.
 
-    Sparse input (scipy.sparse CSR or CSC, :data:`SPARSE_FORMATS`) is passed to
-    :func:`axiscope.io.array_source` unchanged and never densified by the fit.
+    Sparse input (scipy.sparse; CSR or CSC as given, other formats converted to CSR) is
+    passed to :func:`axiscope.io.array_source` and never densified by the fit.
 
     References
     ----------
@@ -215,11 +215,6 @@ class AxiscopePCA(TransformerMixin, BaseEstimator):
         return tags
 
     def _validate(self, X, *, reset: bool, missing: str):
-        if scipy.sparse.issparse(X) and X.format not in SPARSE_FORMATS:
-            raise TypeError(
-                f"{type(self).__name__} takes sparse input as CSR or CSC, not {X.format}; convert it "
-                "with .tocsr() (it is never densified here)"
-            )
         return validate_data(
             self, X, reset=reset, dtype=[np.float64, np.float32], accept_sparse=list(SPARSE_FORMATS) or False,
             ensure_all_finite="allow-nan" if missing == "mean" else True,
