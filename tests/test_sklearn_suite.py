@@ -24,7 +24,6 @@ from pathlib import Path
 import pytest
 import sklearn
 
-from axiscope.estimator import SPARSE_FORMATS
 
 SITE = Path(sklearn.__file__).parent.parent
 SUITE = Path(sklearn.__file__).parent / "decomposition" / "tests" / "test_pca.py"
@@ -36,7 +35,7 @@ LISTED_FOR = "1.9.1"
 #: on hand-made spectra): they exercise no estimator, so they are not run.
 PRIVATE_HELPERS = ("test_assess_dimension_bad_rank", "test_small_eigenvalues_mle", "test_assess_dimension_rank_one")
 
-#: Quick selection (pytest -k): leaves out the pending sparse tests, the array-API checks
+#: Quick selection (pytest -k): leaves out the sparse tests (the sparse suite covers them), the array-API checks
 #: (skipped here anyway) and the slowest tests, which repeat fits the others already make
 #: (twenty seeds; 1000-sample or digits matrices): about a third of the suite's time.
 QUICK = ("not sparse and not array_api and not deterministic_output and not svd_solver_auto "
@@ -82,15 +81,10 @@ ROUNDING_TIES = [
      "differ in the last bits, so 'll1 > ll2' holds or not by rounding"),
 ]
 
-#: Sparse input: refused until the readers take sparse matrices (``SPARSE_FORMATS``).
-PENDING_SPARSE = [
-    (r"test_pca_sparse\[", "does not take sparse input", "pending sparse input"),
-    (r"test_pca_sparse_fit_transform\[", "does not take sparse input", "pending sparse input"),
-    (r"test_sparse_pca_auto_arpack_singular_values_consistency\[", "does not take sparse input",
-     "pending sparse input"),
-    (r"test_sparse_pca_solver_error\[", "does not take sparse input",
-     "pending sparse input; then: only ARPACK/covariance_eigh take sparse input in scikit-learn, "
-     "every method does in axiscope"),
+#: Sparse input (scipy.sparse, never densified): every method takes it.
+SPARSE_DIFFERENCES = [
+    (r"test_sparse_pca_solver_error\[", "DID NOT RAISE",
+     "only ARPACK and covariance_eigh take sparse input in scikit-learn; every method does in axiscope"),
 ]
 
 #: Skipped by scikit-learn itself in this environment: (pattern, fragment of the skip reason).
@@ -102,7 +96,7 @@ SKIPS = [
 #: (tests passed, tests run): quick selection, whole suite (606 collected, 3 deselected as
 #: private helpers; scikit-learn's own PCA passes all but the 196 array-API checks, skipped
 #: here for both).
-EXPECTED_PASSED = {"quick": (94, 133), "full": (130, 602)}
+EXPECTED_PASSED = {"quick": (94, 133), "full": (354, 602)}
 
 
 def _run_suite(tmp_path: Path) -> list[tuple[str, str, str]]:
@@ -141,7 +135,7 @@ def test_sklearn_pca_suite_passes_but_the_listed_differences(tmp_path):
         pytest.skip(f"the lists describe scikit-learn {LISTED_FOR}'s PCA suite, {sklearn.__version__} is installed: "
                     "run with AXISCOPE_SKLEARN_SUITE=full and update the lists and DEVELOPERS.md")
     outcomes = _run_suite(tmp_path)
-    expected_failures = DIFFERENCES + ([] if SPARSE_FORMATS else PENDING_SPARSE)
+    expected_failures = DIFFERENCES + SPARSE_DIFFERENCES
     unexpected, stale, unexplained_skips = [], [], []
     passed = 0
     for name, outcome, message in outcomes:
