@@ -35,6 +35,7 @@ def demo_command(
     from ..core.preprocess import PreprocessSpec
     from ..demo.adjusted import check_adjustment
     from ..decide.groups import find_groups
+    from ..decide.signal import fit_with_signal
     from ..demo.layout import DEMO_FIT_OPTIONS, DEMO_TECHNICAL, make_demo_data
     from ..explain.cards import explain_axes
     from ..fitting.run import fit
@@ -56,9 +57,11 @@ def demo_command(
                 def then(fitted, blocks):
                     assessed.append(demo_stability(blocks, fitted, threads, progress))
 
-                result = fit(data["reference"], n_components=n_components,
-                             preprocess=PreprocessSpec(**DEMO_FIT_OPTIONS),
-                             resources=Resources(threads=threads), progress=progress, then=then)
+                # the criteria of how many axes carry signal, reported beside the fixed number kept
+                result, signal = fit_with_signal(data["reference"], n_components=n_components,
+                                                 preprocess=PreprocessSpec(**DEMO_FIT_OPTIONS),
+                                                 resources=Resources(threads=threads), progress=progress,
+                                                 then=then)
                 stability = assessed[0]
                 cards = explain_axes(result, annotations=data["reference_annotations"],
                                      technical=DEMO_TECHNICAL, ignore=["corrupted"], top=5)
@@ -72,6 +75,7 @@ def demo_command(
                 parquet = format is TableFormat.parquet
                 result.write(tmp / "fit", parquet=parquet, command_line=sys.argv)
                 stability.write(tmp / "fit", parquet=parquet)
+                signal.write(tmp / "fit", parquet=parquet)
                 cards.write(tmp / "fit", parquet=parquet)
                 groups = find_groups(tmp / "fit", matrix=data["reference"], annotations=data["reference_annotations"],
                                      ignore=["corrupted"], threads=threads, progress=progress)
