@@ -81,6 +81,35 @@ def test_planted_rank_is_recovered(n, p, strengths, scale):
         assert counts["noise_edge"] == r
 
 
+def test_after_adjusting_for_a_batch_its_axis_is_not_counted(tmp_path):
+    """Planted truth: rank-2 biology plus a strong two-level batch shift (a third axis). Unadjusted,
+    the batch is one more axis; adjusted for it, the criteria count the two planted ones, and the
+    kept axes equal those of numpy.linalg.svd (LAPACK) of the standardised matrix residualised on
+    [1, batch] with numpy.linalg.lstsq."""
+    from axiscope.core.adjust import Covariates
+
+    n, p = 240, 120
+    X = planted(n, p, [4.0, 3.0], seed=5)
+    rng = np.random.default_rng(6)
+    batch = np.where(rng.random(n) < 0.5, "A", "B")
+    X[batch == "B"] += 0.9 * rng.choice([-1.0, 1.0], size=p)  # every feature shifted in batch B
+    ids = [f"s{i:03d}" for i in range(n)]
+    table = tmp_path / "samples.tsv"
+    pd.DataFrame({"sample_id": ids, "batch": batch}).to_csv(table, sep="\t", index=False)
+    source = array_source(X, sample_ids=ids)
+    _, plain = fit_with_signal(source, max_components=10)
+    assert plain.recommended == 3
+    result, adjusted = fit_with_signal(array_source(X, sample_ids=ids), max_components=10,
+                                       covariates=Covariates(table, ["batch"]))
+    assert adjusted.recommended == 2 and result.model.n_components == 2
+    assert adjusted.summary["counts"]["noise_edge"] == 2
+    Z = (X - X.mean(axis=0)) / X.std(axis=0)
+    C = np.column_stack([np.ones(n), batch == "B"]).astype(float)
+    R = Z - C @ np.linalg.lstsq(C, Z, rcond=None)[0]
+    s = np.linalg.svd(R, compute_uv=False)
+    np.testing.assert_allclose(result.model.singular_values, s[:2], rtol=1e-6)
+
+
 # ---------------------------------------------------------------------- published laws
 
 

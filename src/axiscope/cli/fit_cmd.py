@@ -261,14 +261,10 @@ def fit_command(
                     from ..decide.signal import fit_with_signal
                     from ..fitting.run import fitted_blocks
 
-                    if covariates is not None:
-                        raise OptionError("the number of axes is not assessed after a covariate adjustment yet "
-                                          "(its subsample would keep what the adjustment removes); give "
-                                          "n_components a number without assess_signal, or drop adjust_for")
                     result, signal = fit_with_signal(
                         src, n_components=components, max_components=max_components, permutations=permutations,
                         preprocess=spec, engine=engine, resources=resources, active=prepared.active,
-                        exclude_features=prepared.exclude, progress=progress, **unattended)
+                        exclude_features=prepared.exclude, progress=progress, covariates=covariates, **unattended)
                     if stability_repeats:  # on the axes kept: one more read of the input per pass
                         then(result, fitted_blocks(src, result, active=prepared.active))
                 else:

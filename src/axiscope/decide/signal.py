@@ -330,6 +330,7 @@ def assess_signal(
     memory_limit: int | str | None = None,
     seed: int = 0,
     progress=None,
+    covariates=None,
 ) -> SignalAxes:
     """Every criterion for the number of axes of ``result``, a fit of ``source``.
 
@@ -353,6 +354,12 @@ def assess_signal(
         Seed of the subsample and of the permutations.
     progress : callable, optional
         ``progress(name, done, total)``.
+    covariates : axiscope.core.adjust.Covariates, optional
+        The covariates ``result`` was fitted after adjusting for (required then): the
+        subsample is adjusted for its own covariate values (projected off the span of its
+        rows of ``C``) before its spectrum and its permutations are taken, and every noise
+        level counts the ``rank(C)`` dimensions the adjustment removed instead of the one
+        centring removes.
 
     Returns
     -------
@@ -374,7 +381,13 @@ def assess_signal(
     spec = model.spec
     n, p, k = model.n_samples, model.n_features, model.n_components
     centred = bool(spec.center)
-    dof = n - 1 if centred else n
+    design = model.covariates
+    if (design is None) != (covariates is None):
+        raise OptionError("the fit was adjusted for covariates: pass the same covariates to assess its axes"
+                          if design is not None else
+                          "covariates were given, but the fit was not adjusted for any; leave them out")
+    removed = len(design.terms) if design is not None else (1 if centred else 0)  # dimensions taken out
+    dof = n - removed
     rank = min(dof, p)
     variance = model.variance
     total = float(model.total_inertia)
@@ -395,8 +408,11 @@ def assess_signal(
     fill = prep.mean_raw if spec.missing == "mean" and prep.mean_raw.size else None
     Z = read_subsample(source, rows, spec, prep.kept, prep.inverse_scale, fill, block_rows=block_rows,
                        progress=progress)
+    if design is not None:  # the subsample adjusted as the fit was: projected off its rows of C
+        basis, _ = np.linalg.qr(covariates.encode_for(design, np.asarray(source.sample_ids)[rows]))
+        Z -= (basis @ (basis.T @ Z.astype(np.float64))).astype(Z.dtype)
     t_read = time.perf_counter() - t0
-    dof_m = m - 1 if centred else m
+    dof_m = m - removed
     rank_m = min(dof_m, p)
     sub_eig = _spectrum(Z)[:rank_m]
 
@@ -551,7 +567,8 @@ def fit_with_signal(
     preprocess, engine, resources, layout, active, exclude_features, progress
         As for :func:`axiscope.fitting.run.fit`.
     **fit_options
-        Passed on to :func:`axiscope.fitting.run.fit` (``checksum``, ``checkpoint``, ``resume``).
+        Passed on to :func:`axiscope.fitting.run.fit` (``covariates``, ``checksum``, ``checkpoint``,
+        ``resume``, ``then``); the criteria are those of the adjusted matrix with ``covariates``.
 
     Returns
     -------
@@ -597,7 +614,7 @@ def fit_with_signal(
                      active=active, exclude_features=exclude_features, progress=progress, **fit_options)
         signal = assess_signal(result, src, active=active, permutations=permutations, quantile=quantile,
                                max_samples=max_samples, memory_limit=resources.memory_limit, seed=engine.seed,
-                               progress=progress)
+                               progress=progress, covariates=fit_options.get("covariates"))
     if auto:
         keep = max(1, signal.recommended)
         if keep < k:
