@@ -90,6 +90,15 @@ def demo_command(
                 write_figures(tmp / "fit", annotations=annotations, diagnostics_dir=tmp / "score")
                 build_report(tmp / "fit", annotations=annotations, scores_dir=tmp / "score",
                              out=tmp / "report.html")
+                # the fit adjusted for the batch, with its own cards, figures and page
+                adjusted.manifest = relocated(adjusted.manifest, tmp, out)
+                adjusted.write(tmp / "adjusted", parquet=parquet, command_line=sys.argv)
+                adjusted_cards = explain_axes(adjusted, annotations=data["reference_annotations"],
+                                              technical=DEMO_TECHNICAL, ignore=["corrupted"], top=5)
+                adjusted_cards.settings = relocated(adjusted_cards.settings, tmp, Path(out).resolve())
+                adjusted_cards.write(tmp / "adjusted", parquet=parquet)
+                write_figures(tmp / "adjusted", annotations=annotations)
+                build_report(tmp / "adjusted", annotations=annotations)
             corrupted = pd.read_csv(data["new_annotations"], sep="\t")["corrupted"].to_numpy(dtype=bool)
             batch_check = check_adjustment(result, adjusted, pd.read_csv(
                 data["reference_annotations"], sep="\t", dtype={"sample_id": str}), covariate="batch", biology="state")
@@ -101,6 +110,7 @@ def demo_command(
         down = ", ".join(genes[genes["side"] == "negative"]["feature_id"].head(5))
         say(f"    genes with the largest loadings: + {up}; − {down}", quiet)
     say(batch_check.line(), quiet)
+    say(f"  the adjusted fit: {out / 'adjusted'}, its page {out / 'adjusted' / 'report.html'}", quiet)
     say(f"{groups.n_groups} groups of the reference samples ({groups.grouping.method} on "
         f"{len(groups.axis_names)} axes); results in {out / 'fit' / 'groups'}", quiet)
     for line in groups.lines():
