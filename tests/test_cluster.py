@@ -208,3 +208,42 @@ def test_a_bad_cell_is_named_as_on_the_threaded_fit(client, write_matrix):
         messages.append(str(caught.value))
     assert messages[0] == messages[1]
     assert "sample_000556" in messages[1] and "is NaN or infinite" in messages[1]
+
+
+def test_fit_against_a_scheduler_started_by_hand(write_matrix, tmp_path):
+    """`dask scheduler` and `dask worker` started as their own processes, as on a multi-node
+    cluster; the fit is given the scheduler's address as a string (the README's commands)."""
+    import json
+    import subprocess
+    import time
+
+    dask_cli = [sys.executable, "-m", "distributed.cli.dask_scheduler"]
+    worker_cli = [sys.executable, "-m", "distributed.cli.dask_worker"]
+    info = tmp_path / "scheduler.json"
+    scheduler = subprocess.Popen([*dask_cli, "--host", "127.0.0.1", "--port", "0", "--no-dashboard",
+                                  "--scheduler-file", str(info)], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    worker = None
+    try:
+        for _ in range(300):
+            if info.exists() and info.stat().st_size:
+                break
+            time.sleep(0.1)
+        address = json.loads(info.read_text())["address"]
+        worker = subprocess.Popen([*worker_cli, address, "--nworkers", "1", "--nthreads", "1", "--no-dashboard",
+                                   "--local-directory", str(tmp_path / "worker")],
+                                  stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        with distributed.Client(address, timeout=60) as probe:
+            probe.wait_for_workers(1, timeout=60)
+        X = _planted(seed=4)
+        path = write_matrix(X, "h5", chunks=(100, P))
+        threaded = fit(path, n_components=K, engine=ENGINE, resources=Resources(memory_limit=BUDGET, threads=2))
+        remote = fit(path, n_components=K, engine=ENGINE,
+                     resources=Resources(memory_limit=BUDGET, threads=2, scheduler=address))
+        assert remote.manifest["execution"]["backend"] == "dask.distributed"
+        assert remote.manifest["execution"]["scheduler"] == address
+        _compare(threaded, remote)
+    finally:
+        for process in (worker, scheduler):
+            if process is not None:
+                process.terminate()
+                process.wait(timeout=30)
