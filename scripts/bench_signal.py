@@ -94,7 +94,8 @@ def main(argv=None) -> None:
         f"- command: `{' '.join(shlex.quote(a) for a in [sys.executable, *sys.argv])}`",
         f"- date: {_dt.datetime.now(_dt.timezone.utc).strftime('%Y-%m-%d %H:%M UTC')}; machine: {platform.platform()}, "
         f"nproc {os.cpu_count()}, memory `{mem[1].split()[1] if len(mem) > 1 else '?'}` GB total (free -g); "
-        "shared with other jobs (load average above 10 on 2 cores), so ratios, not seconds, are the result",
+        f"load average {os.getloadavg()[0]:.1f} at the end (the machine may be shared: ratios, not seconds, "
+        "are the result)",
         f"- recommended: {signal.recommended} axes (planted: 5); counts {signal.summary['counts']}",
         "",
         "| step | wall (s) | passes over the data | ratio to the 10-axis fit | note |",
