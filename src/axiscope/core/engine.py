@@ -42,7 +42,7 @@ if TYPE_CHECKING:
     from .adjust import Residualizer
 
 __all__ = ["AxisAccuracy", "Factorization", "randomized_factorization", "exact_factorization",
-           "orient_signs", "ritz_accuracy", "lapack_accuracy"]
+           "orient_signs", "ritz_accuracy", "lapack_accuracy", "accuracy_from_error"]
 
 logger = logging.getLogger(__name__)
 
@@ -744,15 +744,22 @@ def lapack_accuracy(s: np.ndarray, k: int, *, unit_roundoff: float = np.finfo(np
     singular values known (all of them for a dense SVD), descending.
     """
     s = np.asarray(s, dtype=np.float64)
-    scale = unit_roundoff * float(s[0]) if s.size else 0.0
+    return accuracy_from_error(s, k, unit_roundoff * float(s[0]) if s.size else 0.0, "lapack error bounds")
+
+
+def accuracy_from_error(s: np.ndarray, k: int, error: float, basis: str) -> AxisAccuracy:
+    """Per-axis bounds from an absolute error ``error`` on every singular value (Weyl) and the
+    gaps between the known values ``s`` (descending): loading angles at most ``error/gap``
+    (Wedin), the ``k``-axis subspace at most ``error/(s_k − s_{k+1})``."""
+    s = np.asarray(s, dtype=np.float64)
     gaps = np.array([np.min(np.abs(s[j] - np.delete(s, j))) if s.size > 1 else np.inf for j in range(k)])
     tiny = np.finfo(float).tiny
     below = float(s[k - 1] - s[k]) if s.size > k else np.inf
     return AxisAccuracy(
-        singular_value=scale / np.maximum(s[:k], tiny),
-        vector=np.minimum(1.0, scale / np.maximum(gaps, tiny)),
-        subspace=min(1.0, scale / below) if below > 0 else 1.0,
-        basis="lapack error bounds",
+        singular_value=error / np.maximum(s[:k], tiny),
+        vector=np.minimum(1.0, error / np.maximum(gaps, tiny)),
+        subspace=min(1.0, error / below) if below > 0 else 1.0,
+        basis=basis,
         relative_gap=_relative_gaps(s**2, k),
     )
 

@@ -44,7 +44,7 @@ import dask.array as da
 import numpy as np
 import scipy.linalg
 
-from .engine import AxisAccuracy, Factorization, _relative_gaps, orient_signs
+from .engine import Factorization, accuracy_from_error, orient_signs
 from .passes import PassRunner
 from .preprocess import BlockStats, block_statistics, first_nonfinite
 
@@ -193,7 +193,7 @@ def one_pass_factorization(
     orient_signs(components, scores)
 
     rel = np.sqrt(max(err2, 0.0) / total) if total > 0 else 0.0
-    accuracy = _sketch_accuracy(sv, k_eff, np.sqrt(max(err2, 0.0)))
+    accuracy = accuracy_from_error(sv, k_eff, np.sqrt(max(err2, 0.0)), "sketch error estimate")
     fac = Factorization(
         singular_values=sv[:k_eff].copy(),
         components=components,
@@ -225,17 +225,3 @@ def _estimated_row_norms(B, Y, core, stats: BlockStats, d) -> np.ndarray:
     else:
         outside[:] = rest / max(outside.shape[0], 1)
     return inside + outside
-
-
-def _sketch_accuracy(sv: np.ndarray, k: int, error: float) -> AxisAccuracy:
-    """Per-axis bounds from the estimated error ``‖X̃ − X̃ₖ‖``: Weyl for values, Wedin for vectors."""
-    tiny = np.finfo(float).tiny
-    gaps = np.array([np.min(np.abs(sv[j] - np.delete(sv, j))) if sv.size > 1 else np.inf for j in range(k)])
-    below = float(sv[k - 1] - sv[k]) if sv.size > k else np.inf
-    return AxisAccuracy(
-        singular_value=error / np.maximum(sv[:k], tiny),
-        vector=np.minimum(1.0, error / np.maximum(gaps, tiny)),
-        subspace=min(1.0, error / below) if below > 0 else 1.0,
-        basis="sketch error estimate",
-        relative_gap=_relative_gaps(sv**2, k),
-    )
