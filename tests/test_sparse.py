@@ -318,3 +318,18 @@ def test_npz_of_another_sparse_format_is_refused(tmp_path):
     sp.save_npz(path, planted_counts(n=10, p=5).tocoo())
     with pytest.raises(InputError, match="in 'coo' format; save it as CSR or CSC"):
         open_matrix(path)
+
+
+def test_sparse_values_that_are_not_dosages_are_named():
+    """scale='allele-frequency' on a sparse matrix holding 1.5: one InputError naming the cell."""
+    import scipy.sparse as sp
+
+    from axiscope.core.preprocess import PreprocessSpec
+    from axiscope.errors import InputError
+    from axiscope.fitting.run import fit
+    from axiscope.io import array_source
+
+    X = sp.random(50, 20, density=0.3, format="csr", random_state=0)
+    X.data[:] = 1.5
+    with pytest.raises(InputError, match="holds 1.5"):
+        fit(array_source(X), n_components=2, preprocess=PreprocessSpec(scale="allele-frequency"))

@@ -34,6 +34,7 @@ from ..core.sparse_ops import SparseBlockCache, as_columns, is_sparse, sparse_st
 from ..core.preprocess import (
     BlockStats,
     FeatureStatistics,
+    NotADosage,
     Preprocessing,
     PreprocessSpec,
     block_statistics,
