@@ -20,7 +20,8 @@ from .preprocess import PreprocessSpec
 if TYPE_CHECKING:  # pragma: no cover
     from ..io import MatrixSource
 
-__all__ = ["BlockPlan", "plan_blocks", "plan_sparse_blocks", "plan_fit", "check_scratch_writable", "decoded_chunk_bytes"]
+__all__ = ["BlockPlan", "plan_blocks", "plan_sparse_blocks", "plan_fit", "check_scratch_writable", "decoded_chunk_bytes",
+           "WINDOW", "window_block_rows"]
 
 logger = logging.getLogger(__name__)
 
@@ -324,3 +325,27 @@ def plan_sparse_blocks(
     fitting = max(1, int(free // per_thread))
     return BlockPlan(rows, cache, budget, fixed, BYTES_PER_STORED * block_nonzeros + rows * row_bytes,
                      cache_bytes, max_basis, min(threads, fitting), baseline, 0, block_nonzeros)
+
+
+#: Blocks in flight assumed by :func:`window_block_rows`, whatever the number of threads, so
+#: that the partition into blocks, and so the rounding of every sum, does not depend on it.
+WINDOW = 4
+
+
+def window_block_rows(source: "MatrixSource", *, budget: int, held: int, limit: int, accumulators: int,
+                      results: int, row_bytes: int, what: str) -> int:
+    """Rows per block of a streaming pass that keeps ``accumulators`` bytes while a window of
+    ``WINDOW`` blocks of ``row_bytes`` per row is in flight, and ``results`` bytes after it.
+
+    Blocks are whole multiples of the on-disk sample chunk when they span one or more.
+    ``what`` names the work in the error raised when the budget cannot hold it.
+    """
+    needed = max(accumulators + WINDOW * row_bytes, accumulators + results)
+    if needed > budget:
+        raise OptionError(f"memory_limit={format_bytes(limit)} is too small for {what} (needs at least "
+                          f"{format_bytes(needed + held)}); raise memory_limit")
+    n_all = source.shape[0]
+    block_rows = int(max(1, min((budget - accumulators) // (WINDOW * row_bytes), n_all)))
+    if source.sample_chunk and block_rows >= source.sample_chunk:
+        block_rows = (block_rows // source.sample_chunk) * source.sample_chunk
+    return block_rows

@@ -70,8 +70,9 @@ import numpy as np
 import pandas as pd
 from scipy import stats as sps
 
-from ..core.memory import default_memory_limit, format_bytes, parse_memory, process_baseline
+from ..core.memory import default_memory_limit, parse_memory, process_baseline
 from ..core.passes import PassRunner, Progress, array_from_blocks
+from ..core.plan import window_block_rows
 from ..core.preprocess import PreprocessSpec, first_nonfinite, transform_block
 from ..defaults import DEFAULT_MAX_GROUPS, DEFAULT_TOP_FEATURES, SAMPLES_PER_LIST, WARD_MAX_SAMPLES
 from ..errors import InputError, OptionError, counted
@@ -421,18 +422,10 @@ def _block_rows(source: MatrixSource, p: int, G: int, threads: int, memory_limit
     accumulators = 8 * p * (3 * G + 4)
     # after the pass: z, p-values and adjusted p-values (G × p each) and one step's temporaries
     results = 8 * p * 3 * G + 8 * min(p, _STEP) * 8 * G
-    window = 4  # fixed, so that the blocks, and so the rounding, do not depend on ``threads``
     row_bytes = p_all * source.dtype.itemsize * 2 + p * 8 * 3
-    needed = max(accumulators + window * row_bytes, accumulators + results)
-    if needed > budget:
-        raise OptionError(
-            f"memory_limit={format_bytes(limit)} is too small for the profiles of {counted(p, 'feature')} in "
-            f"{counted(G, 'group')} (needs at least {format_bytes(needed + held)}); raise memory_limit"
-        )
-    block_rows = int(max(1, min((budget - accumulators) // (window * row_bytes), n_all)))
-    if source.sample_chunk and block_rows >= source.sample_chunk:
-        block_rows = (block_rows // source.sample_chunk) * source.sample_chunk
-    return block_rows
+    return window_block_rows(source, budget=budget, held=held, limit=limit, accumulators=accumulators,
+                             results=results, row_bytes=row_bytes,
+                             what=f"the profiles of {counted(p, 'feature')} in {counted(G, 'group')}")
 
 
 def feature_group_sums(source: MatrixSource, labels: np.ndarray, *, rows: np.ndarray | None = None,

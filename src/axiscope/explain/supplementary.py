@@ -27,11 +27,11 @@ import numpy as np
 
 from ..core.memory import (
     default_memory_limit,
-    format_bytes,
     parse_memory,
     process_baseline,
 )
 from ..core.passes import PassRunner, Progress, array_from_blocks
+from ..core.plan import window_block_rows
 from ..core.preprocess import (
     PreprocessSpec,
     feature_scale,
@@ -149,20 +149,10 @@ def _block_rows(source: MatrixSource, n: int, p: int, k: int, threads: int, memo
     # after the pass: correlation, loading, squared cosine and the NaN contribution returned
     # (p, k each), the SD and ids (p each), and the temporaries of one step of features
     results = 8 * p * (4 * k + 2) + 8 * min(p, _STEP) * (4 * k + 8)
-    # sized for a window of four blocks whatever ``threads``: the partition into blocks, and so
-    # the rounding of every sum, must not depend on the number of threads
-    window = 4
     row_bytes = p_all * source.dtype.itemsize * 2 + p * 8 * 3 + 8 * p * k // max(1, n)
-    needed = max(accumulators + window * row_bytes, accumulators + results)
-    if needed > budget:
-        raise OptionError(
-            f"memory_limit={format_bytes(limit)} is too small for statistics of {p} supplementary "
-            f"features on {k} axes (needs at least {format_bytes(needed + held)}); raise memory_limit"
-        )
-    block_rows = int(max(1, min((budget - accumulators) // (window * row_bytes), n_all)))
-    if source.sample_chunk and block_rows >= source.sample_chunk:
-        block_rows = (block_rows // source.sample_chunk) * source.sample_chunk
-    return block_rows
+    return window_block_rows(source, budget=budget, held=held, limit=limit, accumulators=accumulators,
+                             results=results, row_bytes=row_bytes,
+                             what=f"statistics of {p} supplementary features on {k} axes")
 
 
 @dataclass
