@@ -259,12 +259,8 @@ class MatrixSource:
         ValueError
             If the range is out of bounds or the source is closed.
         """
-        n_samples, n_features = self.shape
-        if not 0 <= start <= stop <= n_samples:
-            raise ValueError(f"sample range {start}:{stop} is outside 0:{n_samples}")
-        backend = self._backend
-        if backend is None:
-            raise ValueError(f"{self.path.name}: source is closed")
+        backend = self._open_backend(start, stop)
+        n_features = self.shape[1]
         if start == stop:
             return np.empty((0, n_features), dtype=self.dtype)
         try:
@@ -284,6 +280,15 @@ class MatrixSource:
         if check_range:
             self._check_range(block, start)
         return block
+
+    def _open_backend(self, start: int, stop: int) -> Backend:
+        """The backend, after checking that samples ``start:stop`` exist and the source is open."""
+        n_samples = self.shape[0]
+        if not 0 <= start <= stop <= n_samples:
+            raise ValueError(f"sample range {start}:{stop} is outside 0:{n_samples}")
+        if self._backend is None:
+            raise ValueError(f"{self.path.name}: source is closed")
+        return self._backend
 
     def _check_range(self, block: np.ndarray, start: int) -> None:
         """Stop at the first finite value beyond :attr:`value_limit`, naming its cell."""

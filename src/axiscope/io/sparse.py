@@ -236,12 +236,7 @@ class SparseMatrixSource(MatrixSource):
         InputError
             Unreadable storage, a stored NaN or infinite value, or one beyond :attr:`value_limit`.
         """
-        n_samples, n_features = self.shape
-        if not 0 <= start <= stop <= n_samples:
-            raise ValueError(f"sample range {start}:{stop} is outside 0:{n_samples}")
-        backend = self._backend
-        if backend is None:
-            raise ValueError(f"{self.path.name}: source is closed")
+        backend = self._open_backend(start, stop)
         try:
             block = backend.read_csr(start, stop, self.samples_in)
         except InputError:
