@@ -28,6 +28,15 @@ low-rank matrix approximation with an application to scientific simulation", SIA
 Comput. 41(4), §6). It bounds each singular value's error (Weyl) and, divided by the gap to
 the neighbouring values, the angle of each loading vector (Wedin).
 
+Covariates (:mod:`axiscope.core.adjust`): the matrix factorised is then ``P·X̃`` with
+``P = I − Q·Qᵀ`` (``C = Q·R``, the intercept and the encoded columns of the annotations). The
+same pass accumulates ``(X − 1μᵀ)ᵀC`` (each block's ``X_bᵀC̄_b``, taken in the block's product
+with ``Ψ``), so ``M = X̃ᵀQ`` is known at the end, and both sketches are corrected without a
+pass: ``P·(X̃·Ω̃) = Y − Q·(QᵀY)`` and ``Ψ·P·X̃ = Ψ·X̃ − (Ψ·Q)·Mᵀ``; ``‖P·X̃‖²_F = ‖X̃‖²_F − ‖M‖²_F``.
+
+Sparse blocks (:mod:`axiscope.core.sparse_ops`) are never densified: ``X_bᵀ·[Ψ_bᵀ, C̄_b]`` and
+``X_b·Ω`` over the stored values, the block's mean taken out as a rank-one float64 correction.
+
 What one pass cannot give exactly: a sample's squared distance to the centre,
 ``‖x̃_i‖² = Σ_j d_j²(x_ij − μ_j)²``, is an inner product with vectors known only at the end.
 It is estimated as the squared norm of the sample's score in the ``s``-dimensional sketch
@@ -44,9 +53,12 @@ import dask.array as da
 import numpy as np
 import scipy.linalg
 
+from .adjust import Adjustment, Residualizer
 from .engine import Factorization, accuracy_from_error, orient_signs
 from .passes import PassRunner
 from .preprocess import BlockStats, block_statistics, first_nonfinite
+from .sparse_ops import (as_columns, first_nonfinite_sparse, is_sparse, sparse_block_statistics, sparse_products,
+                         sparse_transposed_product)
 
 __all__ = ["ERROR_ROWS", "OnePassResult", "one_pass_factorization", "sketch_widths"]
 
@@ -72,26 +84,59 @@ class OnePassResult:
     #: sketch widths (sample side, feature side, error rows)
     widths: tuple[int, int, int]
     distances_estimated: bool = True
+    #: ``Q`` and ``M = X̃ᵀQ`` of an adjusted fit (None without covariates)
+    residualizer: Residualizer | None = None
 
 
-def _task(block, psi_rows, omega):
-    """Statistics of a block, and its sketches about the block's own mean (float64).
+def _task(block, rows, width, omega):
+    """Statistics of a block, and its products about the block's own mean (float64).
 
-    ``left = Ψ_b·(X_b − 1·m_bᵀ)``, ``right = (X_b − 1·m_bᵀ)·Ω``: the block is centred in its
-    own dtype on ``m_b`` rounded to it, and the rounding ``e`` is taken out in float64.
+    ``rows`` holds this block's columns of ``Ψ`` (the first ``width`` columns) followed by its
+    rows of the centred covariates ``C̄`` (none without an adjustment). Returns
+    ``(stats, left, cross, right, bad)`` with ``left = (X_b − 1·m_bᵀ)ᵀ·Ψ_bᵀ`` (``p × width``),
+    ``cross = X_bᵀ·C̄_b`` (:func:`axiscope.core.adjust.block_cross`; None without covariates)
+    and ``right = (X_b − 1·m_bᵀ)·Ω``. Both left-hand products are one product with
+    ``[Ψ_bᵀ, C̄_b]``. A dense block is centred in its own dtype on ``m_b`` rounded to it, and
+    the rounding ``e`` is taken out in float64; a sparse block is never densified
+    (:func:`_sparse_task`).
     """
-    psi_b = psi_rows.T  # this block's columns of Ψ
+    if is_sparse(block):
+        return _sparse_task(block, rows, width, omega)
     stats = block_statistics(block)
     if stats.n_nonfinite:
-        return stats, None, None, first_nonfinite(block)
+        return stats, None, None, None, first_nonfinite(block)
     c = stats.mean.astype(block.dtype)
     e = stats.mean - c.astype(np.float64)
     centred = block - c
-    left = (psi_b.astype(block.dtype) @ centred).astype(np.float64)
-    left -= np.outer(psi_b.astype(block.dtype).astype(np.float64).sum(axis=1), e)
-    right = (centred @ omega.astype(block.dtype)).astype(np.float64)
-    right -= e @ omega.astype(block.dtype).astype(np.float64)
-    return stats, left, right, None
+    del block
+    rows_b = rows.astype(centred.dtype)
+    both = (centred.T @ rows_b).astype(np.float64)  # p × (width + covariates)
+    left = both[:, :width]
+    left -= np.outer(e, rows_b[:, :width].astype(np.float64).sum(axis=0))
+    cross = None
+    if rows.shape[1] > width:  # the shift comes back in float64: X_bᵀC̄_b = (X_b − 1cᵀ)ᵀC̄_b + c·(1ᵀC̄_b)
+        cross = both[:, width:] + np.outer(c.astype(np.float64), rows[:, width:].sum(axis=0))
+    omega_b = omega.astype(centred.dtype)
+    right = (centred @ omega_b).astype(np.float64)
+    right -= e @ omega_b.astype(np.float64)
+    return stats, left, cross, right, None
+
+
+def _sparse_task(block, rows, width, omega):
+    """:func:`_task` on a sparse block: products over the stored values, the block mean as a
+    rank-one correction in float64 (``(X_b − 1mᵀ)ᵀR = X_bᵀR − m·(1ᵀR)``,
+    ``(X_b − 1mᵀ)Ω = X_bΩ − 1·(mᵀΩ)``), never a dense copy of the block."""
+    block = as_columns(block)
+    bad = first_nonfinite_sparse(block)
+    if bad is not None:
+        return None, None, None, None, bad
+    stats = sparse_block_statistics(block)
+    both = sparse_transposed_product(block, rows)  # X_bᵀ·[Ψ_bᵀ, C̄_b]
+    left = both[:, :width] - np.outer(stats.mean, rows[:, :width].sum(axis=0))
+    cross = both[:, width:] if rows.shape[1] > width else None
+    zero = np.zeros_like(stats.mean)
+    right = sparse_products(block, omega, 0.0, stats.mean, zero, zero, None, 0, False)[0]
+    return stats, left, cross, right, None
 
 
 def one_pass_factorization(
@@ -105,13 +150,14 @@ def one_pass_factorization(
     on_missing: Callable[[int, int], None] | None = None,
     runner: PassRunner | None = None,
     source: str = "input",
+    adjust: Adjustment | None = None,
 ) -> OnePassResult:
     """Statistics and the leading ``n_components`` singular triplets of ``X̃`` in one pass.
 
     Parameters
     ----------
     X : dask.array.Array, shape (n, p)
-        Transformed values, chunked along rows.
+        Transformed values, chunked along rows (dense blocks, or SciPy sparse ones).
     n_components, oversample : int
     rng : numpy.random.Generator
         Source of the test matrices ``Ψ``, ``Θ`` and ``Ω``.
@@ -123,43 +169,58 @@ def one_pass_factorization(
     on_missing : callable, optional
         Called with ``(row, column)`` of the first non-finite cell; it should raise.
     runner : PassRunner, optional
+    adjust : Adjustment, optional
+        Covariates to remove (:mod:`axiscope.core.adjust`): the result factorises
+        ``P·X̃``, ``P = I − Q·Qᵀ``. The same pass accumulates ``(X − 1μᵀ)ᵀC`` into it;
+        afterwards both sketches are those of ``P·X̃``: ``P·(X̃·Ω̃) = Y − Q·(QᵀY)`` and
+        ``Ψ·P·X̃ = Ψ·X̃ − (Ψ·Q)·Mᵀ`` with ``M = X̃ᵀQ``
+        (:meth:`axiscope.core.adjust.Adjustment.residualizer`).
 
     Returns
     -------
     OnePassResult
+        With ``adjust``, :attr:`OnePassResult.residualizer` holds ``Q`` and ``M`` for the model.
     """
     runner = runner or PassRunner()
     n, p = X.shape
     k = n_components
     s, t = sketch_widths(k, oversample, n, p)
     q = ERROR_ROWS
-    psi = rng.standard_normal((s + q, n))
+    work = np.result_type(X.dtype, np.float32)
+    # test matrices rounded to the data's dtype: the float64 corrections use the very
+    # numbers the block products used
+    psi = rng.standard_normal((s + q, n)).astype(work).astype(np.float64)
     omega = rng.standard_normal((p, t))
     if omit is not None:
         omega[np.asarray(omit, dtype=bool)] = 0.0
-    omega_used = omega.astype(np.result_type(X.dtype, np.float32)).astype(np.float64)
+    omega_used = omega.astype(work).astype(np.float64)
+    rows = psi.T if adjust is None else np.hstack([psi.T, adjust.centred])
 
     Y = np.empty((n, t))
     acc: dict = {"stats": None, "left": None, "ref": None}
     shifts: list[tuple[int, int, np.ndarray]] = []
 
     def fold(result, index, start):
-        stats, left, right, bad = result
+        stats, left, cross, right, bad = result
         if bad is not None:
             if on_missing is not None:
                 on_missing(start + bad[0], bad[1])
             raise ValueError(f"non-finite value at row {start + bad[0]}, column {bad[1]}")
-        rows = right.shape[0]
+        m = right.shape[0]
         if acc["ref"] is None:
             acc["ref"] = stats.mean.copy()
-            acc["left"] = np.zeros((s + q, p))
+            acc["left"] = np.zeros((p, s + q))
         shift = stats.mean - acc["ref"]  # small: block mean against the first block's mean
-        acc["left"] += left + np.outer(psi[:, start : start + rows].sum(axis=1), shift)
-        Y[start : start + rows] = right
-        shifts.append((start, rows, shift @ omega_used))
+        acc["left"] += left
+        acc["left"] += np.outer(shift, psi[:, start : start + m].sum(axis=1))
+        if cross is not None:
+            adjust.add_cross(cross)
+        Y[start : start + m] = right
+        shifts.append((start, m, shift @ omega_used))
         acc["stats"] = stats if acc["stats"] is None else acc["stats"].merge(stats)
 
-    runner.run("one pass: statistics + sketches", source, X, _task, fold, omega_used, rows=psi.T)
+    name = "one pass: statistics + " + ("covariates + " if adjust is not None else "") + "sketches"
+    runner.run(name, source, X, _task, fold, s + q, omega_used, rows=rows)
     stats: BlockStats = acc["stats"]
     mean, d = finish(stats)
     mean = np.asarray(mean, dtype=np.float64)
@@ -167,11 +228,19 @@ def one_pass_factorization(
 
     # centre about μ (from about the first block's mean), then scale
     mu_shift = mean - acc["ref"]
-    left = acc["left"] - np.outer(psi.sum(axis=1), mu_shift)
+    left = acc["left"].T - np.outer(psi.sum(axis=1), mu_shift)  # Ψ·X̃ before the scale
     left *= d
     mu_omega = mu_shift @ omega_used
-    for start, rows, shift_omega in shifts:
-        Y[start : start + rows] += shift_omega - mu_omega
+    for start, m, shift_omega in shifts:
+        Y[start : start + m] += shift_omega - mu_omega
+    total = float(np.sum(stats.m2 * d**2))  # ‖X̃‖²_F
+    residualizer = None
+    if adjust is not None:  # both sketches of P·X̃ (module notes of core/adjust.py)
+        residualizer = adjust.residualizer(d, None)
+        basis, M = residualizer.basis, residualizer.loadings
+        left -= (psi @ basis) @ M.T
+        Y -= basis @ (basis.T @ Y)
+        total -= float(np.sum(M**2))
 
     sketch, theta_a = left[:s], left[s:]
     Q, _ = scipy.linalg.qr(sketch.T, mode="economic", check_finite=False)  # p × s
@@ -188,11 +257,11 @@ def one_pass_factorization(
     theta = psi[s:]
     approx = (theta @ scores) @ components.T
     err2 = float(np.sum((theta_a - approx) ** 2)) / q
-    total = float(np.sum(theta_a**2)) / q
-    norms = _estimated_row_norms(B, Y, core, stats, d)
+    seen = float(np.sum(theta_a**2)) / q
+    norms = _estimated_row_norms(B, Y, core, total)
     orient_signs(components, scores)
 
-    rel = np.sqrt(max(err2, 0.0) / total) if total > 0 else 0.0
+    rel = np.sqrt(max(err2, 0.0) / seen) if seen > 0 else 0.0
     accuracy = accuracy_from_error(sv, k_eff, np.sqrt(max(err2, 0.0)), "sketch error estimate")
     fac = Factorization(
         singular_values=sv[:k_eff].copy(),
@@ -205,20 +274,20 @@ def one_pass_factorization(
         residual_bound=float(np.sqrt(max(err2, 0.0))),
         accuracy=accuracy,
     )
-    return OnePassResult(fac, stats, float(rel), (s, t, q))
+    return OnePassResult(fac, stats, float(rel), (s, t, q), residualizer=residualizer)
 
 
-def _estimated_row_norms(B, Y, core, stats: BlockStats, d) -> np.ndarray:
+def _estimated_row_norms(B, Y, core, total: float) -> np.ndarray:
     """Estimated ``‖x̃_i‖²``: the sketch's part exactly, the residual through ``Ω̃``.
 
     The residual part ``‖r_i‖²`` is estimated by ``‖Y_i − B_i·(QᵀΩ̃)‖²`` and rescaled so
     that the residuals of all samples add up to the exact total
-    ``Σ_i ‖x̃_i‖² − ‖B‖_F²`` (the total from the statistics).
+    ``total − ‖B‖_F²``, ``total = Σ_i ‖x̃_i‖²`` from the statistics (minus what the
+    covariates account for, when adjusted).
     """
     inside = np.einsum("ij,ij->i", B, B)
     seen = Y - B @ core
     outside = np.einsum("ij,ij->i", seen, seen)
-    total = float(np.sum(stats.m2 * d**2))
     rest = max(total - float(inside.sum()), 0.0)
     if outside.sum() > 0:
         outside *= rest / float(outside.sum())

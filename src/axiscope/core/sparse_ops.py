@@ -167,6 +167,12 @@ def sparse_products(block, W, offset, centre, residual, d, fill, gram_width, wan
     return y, gram, norms
 
 
+def sparse_transposed_product(block, R: np.ndarray) -> np.ndarray:
+    """``X_bᵀ·R`` (``p × r``, float64) for a block's own dense rows ``R`` (``rows × r``), e.g. a
+    one-pass fit's test matrix and covariates (:mod:`axiscope.core.onepass`)."""
+    return np.asarray(as_columns(block).T @ np.asarray(R, dtype=np.float64))
+
+
 def _minus_outer(gram: np.ndarray, u: np.ndarray, v: np.ndarray) -> np.ndarray:
     """``gram − u·vᵀ`` in place (BLAS ``dger`` on the C-ordered ``p × l`` array; 3× faster than
     forming the outer product, measured for 30,000 × 20)."""

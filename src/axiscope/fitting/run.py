@@ -219,17 +219,13 @@ def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None, then=No
     if job.backend is not None and (reader.sparse or then is not None):
         raise OptionError(f"{src.path}: {'a sparse matrix' if reader.sparse else 'the split-half stability'} "
                           "is not yet computed on a cluster; run it without scheduler or cluster")
-    if reader.sparse and (adjust is not None or method == "one-pass"):
-        raise OptionError(f"{src.path}: a sparse matrix is not yet fitted "
-                          f"{'after a covariate adjustment' if adjust is not None else 'in one pass'}; "
-                          "drop that option, or store the matrix dense")
+    if reader.sparse and adjust is not None and method != "one-pass":
+        raise OptionError(f"{src.path}: a sparse matrix is not yet fitted after a covariate adjustment "
+                          "in several passes; pass method='one-pass', drop the adjustment, or store the matrix dense")
     if method == "one-pass":
-        if adjust is not None:
-            raise OptionError("a one-pass fit cannot adjust for covariates; drop either the adjustment "
-                              "or the one-pass mode")
-        stats, prep, fac = _one_pass(src, job, reader, exclude, n, rng, runner)
+        stats, prep, fac, residualizer = _one_pass(src, job, reader, exclude, n, rng, runner, adjust)
         return _result(src, job, active, n, prep, stats, fac, plan, runner, filtered=False, identity=identity,
-                       checkpoint=checkpoint)
+                       checkpoint=checkpoint, adjust=adjust, residualizer=residualizer)
     filtered = job.spec.has_filter or exclude is not None
     with _Caches(plan, job.resources, sparse=reader.sparse) as caches:
         if job.backend is not None and job.backend.reads_on_workers(src):
@@ -320,8 +316,9 @@ def _check_components(k: int, n: int, p: int, center: bool, where, *, after: str
         )
 
 
-def _one_pass(src: MatrixSource, job: _Job, reader: _Reader, exclude, n: int, rng, runner):
-    """Statistics and both sketches in one read of the input (no cache, no second pass)."""
+def _one_pass(src: MatrixSource, job: _Job, reader: _Reader, exclude, n: int, rng, runner, adjust=None):
+    """Statistics and both sketches in one read of the input (no cache, no second pass); with
+    ``adjust``, of the matrix after the covariate adjustment."""
     spec = job.spec
     if spec.has_filter or spec.missing != "error":
         raise OptionError(
@@ -346,12 +343,12 @@ def _one_pass(src: MatrixSource, job: _Job, reader: _Reader, exclude, n: int, rn
 
     result = one_pass_factorization(
         reader.array("read"), n_components=job.k, oversample=job.engine.oversample, rng=rng,
-        finish=finish, omit=exclude, on_missing=missing, runner=runner, source="input",
+        finish=finish, omit=exclude, on_missing=missing, runner=runner, source="input", adjust=adjust,
     )
     fac = result.factorization
     fac.sketch = {"relative_error": result.relative_error, "widths": list(result.widths),
                   "distances_estimated": result.distances_estimated}
-    return found["stats"], found["prep"], fac
+    return found["stats"], found["prep"], fac, result.residualizer
 
 
 def _choose_method(method: str, n: int, p: int, spec: PreprocessSpec, budget: int) -> str:
