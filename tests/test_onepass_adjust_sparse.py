@@ -172,3 +172,16 @@ def test_sparse_one_pass_with_transforms_equals_dense():
     sparse = fit(array_source(X), n_components=3, engine=ONE_PASS, preprocess=spec)
     dense = fit(array_source(X.toarray()), n_components=3, engine=ONE_PASS, preprocess=spec)
     _same(sparse, dense)
+
+
+@pytest.mark.parametrize("sparse", [False, True])
+def test_non_finite_value_is_named(sparse):
+    """A NaN stops the pass with the sample and feature named (dense and sparse blocks)."""
+    from axiscope.errors import InputError
+
+    X = _counts(n=60, p=20, seed=2).toarray()
+    X[37, 5] = np.nan
+    data = sp.csr_matrix(X) if sparse else X
+    ids = [f"s{i}" for i in range(60)]
+    with pytest.raises(InputError, match="sample 's37', feature 'feature_000006' is (NaN or infinite|stored as nan)"):
+        fit(array_source(data, sample_ids=ids), n_components=2, engine=ONE_PASS)

@@ -93,38 +93,62 @@ def _task(block, rows, width, omega):
 
     ``rows`` holds this block's columns of ``Ψ`` (the first ``width`` columns) followed by its
     rows of the centred covariates ``C̄`` (none without an adjustment). Returns
-    ``(stats, left, cross, right, bad)`` with ``left = (X_b − 1·m_bᵀ)ᵀ·Ψ_bᵀ`` (``p × width``),
+    ``(stats, left, cross, right, bad)`` with ``left = Ψ_b·(X_b − 1·m_bᵀ)`` (``width × p``),
     ``cross = X_bᵀ·C̄_b`` (:func:`axiscope.core.adjust.block_cross`; None without covariates)
     and ``right = (X_b − 1·m_bᵀ)·Ω``. Both left-hand products are one product with
-    ``[Ψ_bᵀ, C̄_b]``. A dense block is centred in its own dtype on ``m_b`` rounded to it, and
-    the rounding ``e`` is taken out in float64; a sparse block is never densified
-    (:func:`_sparse_task`).
+    ``[Ψ_bᵀ, C̄_b]``. A dense block is centred in its own dtype on a shift ``c`` near ``m_b``
+    (:func:`_shifted`), and ``e = m_b − c`` is taken out in float64; a sparse block is never
+    densified (:func:`_sparse_task`).
     """
     if is_sparse(block):
         return _sparse_task(block, rows, width, omega)
-    stats = block_statistics(block)
-    if stats.n_nonfinite:
+    stats, centred, c = _shifted(block)
+    if centred is None:
         return stats, None, None, None, first_nonfinite(block)
-    c = stats.mean.astype(block.dtype)
-    e = stats.mean - c.astype(np.float64)
-    centred = block - c
     del block
+    e = stats.mean - c.astype(np.float64)
     rows_b = rows.astype(centred.dtype)
-    both = (centred.T @ rows_b).astype(np.float64)  # p × (width + covariates)
-    left = both[:, :width]
-    left -= np.outer(e, rows_b[:, :width].astype(np.float64).sum(axis=0))
+    both = (rows_b.T @ centred).astype(np.float64)  # (width + covariates) × p
+    left = both[:width]
+    left -= np.outer(rows_b[:, :width].astype(np.float64).sum(axis=0), e)
     cross = None
     if rows.shape[1] > width:  # the shift comes back in float64: X_bᵀC̄_b = (X_b − 1cᵀ)ᵀC̄_b + c·(1ᵀC̄_b)
-        cross = both[:, width:] + np.outer(c.astype(np.float64), rows[:, width:].sum(axis=0))
+        cross = both[width:].T + np.outer(c.astype(np.float64), rows[:, width:].sum(axis=0))
     omega_b = omega.astype(centred.dtype)
     right = (centred @ omega_b).astype(np.float64)
     right -= e @ omega_b.astype(np.float64)
     return stats, left, cross, right, None
 
 
+def _shifted(block: np.ndarray) -> tuple[BlockStats, np.ndarray | None, np.ndarray | None]:
+    """The block's statistics, the block minus a shift ``c`` near its column means (in its own
+    dtype), and ``c``; ``(stats, None, None)`` when the block holds a non-finite value.
+
+    The statistics pass's :func:`axiscope.core.preprocess.block_statistics`, sharing its
+    shifted copy with the products: ``c`` is the column means rounded to the block's dtype,
+    ``mean = c + Σ(x − c)/m`` and ``M2 = Σ(x − c)² − (Σ(x − c))²/m``, all sums in float64
+    (no cancellation, as ``c`` is the mean to rounding).
+    """
+    m = block.shape[0]
+    total = np.add.reduce(block, axis=0, dtype=np.float64)
+    if np.isfinite(total).all():
+        c = (total / m).astype(block.dtype)
+    else:  # a NaN or infinite value, or sums past the largest float
+        stats = block_statistics(block)
+        if stats.n_nonfinite:
+            return stats, None, None
+        c = stats.mean.astype(block.dtype)
+    centred = block - c
+    csum = np.add.reduce(centred, axis=0, dtype=np.float64)
+    m2 = np.einsum("ij,ij->j", centred, centred, dtype=np.float64) - csum**2 / m
+    mean = c.astype(np.float64) + csum / m
+    eps = float(np.finfo(block.dtype if block.dtype.kind == "f" else np.float64).eps)
+    return BlockStats(m, np.full(block.shape[1], float(m)), mean, np.maximum(m2, 0.0), 0, eps), centred, c
+
+
 def _sparse_task(block, rows, width, omega):
     """:func:`_task` on a sparse block: products over the stored values, the block mean as a
-    rank-one correction in float64 (``(X_b − 1mᵀ)ᵀR = X_bᵀR − m·(1ᵀR)``,
+    rank-one correction in float64 (``Ψ_b(X_b − 1mᵀ) = (X_bᵀΨ_bᵀ)ᵀ − (Ψ_b1)·mᵀ``,
     ``(X_b − 1mᵀ)Ω = X_bΩ − 1·(mᵀΩ)``), never a dense copy of the block."""
     block = as_columns(block)
     bad = first_nonfinite_sparse(block)
@@ -132,7 +156,7 @@ def _sparse_task(block, rows, width, omega):
         return None, None, None, None, bad
     stats = sparse_block_statistics(block)
     both = sparse_transposed_product(block, rows)  # X_bᵀ·[Ψ_bᵀ, C̄_b]
-    left = both[:, :width] - np.outer(stats.mean, rows[:, :width].sum(axis=0))
+    left = both[:, :width].T - np.outer(rows[:, :width].sum(axis=0), stats.mean)
     cross = both[:, width:] if rows.shape[1] > width else None
     zero = np.zeros_like(stats.mean)
     right = sparse_products(block, omega, 0.0, stats.mean, zero, zero, None, 0, False)[0]
@@ -209,10 +233,10 @@ def one_pass_factorization(
         m = right.shape[0]
         if acc["ref"] is None:
             acc["ref"] = stats.mean.copy()
-            acc["left"] = np.zeros((p, s + q))
+            acc["left"] = np.zeros((s + q, p))
         shift = stats.mean - acc["ref"]  # small: block mean against the first block's mean
         acc["left"] += left
-        acc["left"] += np.outer(shift, psi[:, start : start + m].sum(axis=1))
+        acc["left"] += np.outer(psi[:, start : start + m].sum(axis=1), shift)
         if cross is not None:
             adjust.add_cross(cross)
         Y[start : start + m] = right
@@ -228,7 +252,7 @@ def one_pass_factorization(
 
     # centre about μ (from about the first block's mean), then scale
     mu_shift = mean - acc["ref"]
-    left = acc["left"].T - np.outer(psi.sum(axis=1), mu_shift)  # Ψ·X̃ before the scale
+    left = acc["left"] - np.outer(psi.sum(axis=1), mu_shift)  # Ψ·X̃ before the scale
     left *= d
     mu_omega = mu_shift @ omega_used
     for start, m, shift_omega in shifts:
