@@ -11,8 +11,12 @@ around the child, peak RSS from ``wait4``):
   the process (``bench_fit.worker_floor``, exactly as ``bench_fit.py`` times
   "floor: one streaming read");
 * ``one-pass``: ``axiscope.fit(path, preprocess=PreprocessSpec(scale="none"),
-  engine=EngineSettings(method="one-pass", seed=0))``, timed inside the process around
-  ``fit`` (the figure compared with the floor) and from outside;
+  engine=EngineSettings(method="one-pass", seed=0), resources=Resources(memory_limit=...))``
+  for each ``--memory-limit`` given, timed inside the process around ``fit`` (the figure
+  compared with the floor);
+
+Beside the wall times, the CPU seconds of the process during the timed work
+(``time.process_time``): on a machine shared with other jobs they move less than wall times.
 * ``multi-pass`` (with ``--with-multipass``): the default randomized fit, for the accuracy
   a few more passes buy.
 
@@ -60,6 +64,13 @@ REFERENCE_WIDTH = 40
 REFERENCE_ROWS = 2000
 
 
+def worker_floor_cpu(job: dict) -> dict:
+    """``bench_fit.worker_floor`` and the CPU seconds of the process during it."""
+    c0 = time.process_time()
+    result = bf.worker_floor(job)
+    return dict(result, cpu=time.process_time() - c0)
+
+
 def worker_onepass(job: dict) -> dict:
     bf._limit_threads(job.get("threads"))
     import numpy as np
@@ -67,17 +78,17 @@ def worker_onepass(job: dict) -> dict:
     from axiscope import EngineSettings, PreprocessSpec, Resources, fit
 
     method = job.get("method", "one-pass")
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.process_time()
     res = fit(job["path"], n_components=job["k"], preprocess=PreprocessSpec(scale="none"),
               engine=EngineSettings(method=method, seed=0),
               resources=Resources(memory_limit=job["memory_limit"], threads=job.get("threads")))
-    seconds = time.perf_counter() - t0
+    seconds, cpu = time.perf_counter() - t0, time.process_time() - c0
     man = res.manifest
     if job.get("factors"):
         np.savez(job["factors"], s=res.model.singular_values, V=res.model.components,
                  S=res.scores, mean=res.model.mean)
     one = man.get("one_pass", {})
-    return {"seconds": seconds, "passes": man["passes"]["count"],
+    return {"seconds": seconds, "cpu": cpu, "passes": man["passes"]["count"],
             "block_rows": man["plan"]["block_rows"],
             "estimated_relative_error": one.get("estimated_relative_error"),
             "widths": one.get("sketch_widths"),
@@ -183,7 +194,7 @@ def worker_evaluate_onepass(job: dict) -> dict:
     return out
 
 
-bf.WORKERS.update(onepass=worker_onepass, subspace_reference=worker_subspace_reference,
+bf.WORKERS.update(floor_cpu=worker_floor_cpu, onepass=worker_onepass, subspace_reference=worker_subspace_reference,
                   evaluate_onepass=worker_evaluate_onepass)
 
 
@@ -223,7 +234,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--size", default="40000x20000", help="ROWSxCOLUMNS (default 40000x20000)")
     ap.add_argument("--components", "-k", type=int, default=20)
     ap.add_argument("--repeats", type=int, default=3)
-    ap.add_argument("--memory-limit", default="1GB")
+    ap.add_argument("--memory-limit", default="1GB",
+                    help="the one-pass fit's memory limit; several, comma-separated, run side by side")
     ap.add_argument("--threads", type=int, default=None)
     ap.add_argument("--with-multipass", action="store_true", help="also the default (randomized) fit")
     ap.add_argument("--data-dir", default="bench-data")
@@ -242,13 +254,16 @@ def main(argv: list[str] | None = None) -> int:
         meta = bf.ensure_data(args, n, p, workdir)
         ref_path, ref_info = ensure_reference(args, n, p, meta, workdir)
         common = {"k": args.components, "threads": args.threads}
-        plan = [("floor: one streaming read", "floor", dict(common, kind="read", format="zarr", path=meta["zarr"])),
-                ("axiscope one pass (--passes 1)", "onepass",
-                 dict(common, path=meta["zarr"], memory_limit=args.memory_limit, method="one-pass"))]
+        plan = [("floor: one streaming read", "floor_cpu", dict(common, kind="read", format="zarr", path=meta["zarr"]))]
+        for limit in args.memory_limit.split(","):
+            plan.append((f"axiscope one pass (--passes 1), --memory-limit {limit}", "onepass",
+                         dict(common, path=meta["zarr"], memory_limit=limit, method="one-pass")))
         if args.with_multipass:
-            plan.append(("axiscope default passes", "onepass",
-                         dict(common, path=meta["zarr"], memory_limit=args.memory_limit, method="randomized")))
-        rows = {label: {"inside": [], "wall": [], "rss": [], "res": None, "factors": None} for label, _, _ in plan}
+            limit = args.memory_limit.split(",")[0]
+            plan.append((f"axiscope default passes, --memory-limit {limit}", "onepass",
+                         dict(common, path=meta["zarr"], memory_limit=limit, method="randomized")))
+        rows = {label: {"inside": [], "wall": [], "rss": [], "cpu": [], "res": None, "factors": None}
+                for label, _, _ in plan}
         for rep in range(args.repeats):
             for i, (label, worker, job) in enumerate(plan):
                 row = rows[label]
@@ -259,11 +274,13 @@ def main(argv: list[str] | None = None) -> int:
                 child = bf.run_child(worker, job, workdir)
                 if child.returncode != 0:
                     raise SystemExit(f"{label} failed: {child.stderr_tail}")
+                cpu = child.result["cpu"] if child.returncode == 0 else float("nan")
+                row["cpu"].append(cpu)
                 row["inside"].append(child.result["seconds"])
                 row["wall"].append(child.wall)
                 row["rss"].append(child.max_rss)
                 row["res"] = row["res"] or child.result
-                bf.say(f"    inside {child.result['seconds']:.2f} s, wall {child.wall:.2f} s, "
+                bf.say(f"    inside {child.result['seconds']:.2f} s, wall {child.wall:.2f} s, CPU {cpu:.1f} s, "
                        f"peak RSS {bf._fmt_bytes(child.max_rss)}")
         runs = {label: r["factors"] for label, r in rows.items() if r["factors"]}
         child = bf.run_child("evaluate_onepass", {"reference": str(ref_path), "k": args.components,
@@ -284,7 +301,7 @@ def _report(args, argv, n, p, meta, ref_info, rows, ev, load_before, load_after)
     k = args.components
     med = {label: statistics.median(r["inside"]) for label, r in rows.items()}
     floor = med["floor: one streaming read"]
-    one = "axiscope one pass (--passes 1)"
+    one = next(label for label in rows if label.startswith("axiscope one pass"))
     ref_s = ev["reference_s"]
     ref_kind = ("float64 Gram + LAPACK eigh (bench_fit.py)" if ref_info.get("kind") == "gram" else
                 f"float64 subspace iteration, width {ref_info.get('width')}, {ref_info.get('sweeps')} sweeps, "
@@ -295,18 +312,20 @@ def _report(args, argv, n, p, meta, ref_info, rows, ev, load_before, load_after)
            f"`--memory-limit {args.memory_limit}`, centred, no scaling. Reference: {ref_kind}; "
            f"σ1 = {ref_s[0]:.6g}, σ{k} = {ref_s[k - 1]:.6g}, σ{k}/σ{k + 1} = {ref_s[k - 1] / ref_s[k]:.3f}. "
            f"Load average (1, 5, 15 min) before {load_before}, after {load_after}.", "",
-           f"| run | time inside s (median of {args.repeats}) | runs | wall s incl. start-up (median) "
-           f"| peak RSS | passes | ratio to the read | max rel. error σ1..σ{k} | max sin θ | true rel. error "
+           f"| run | time inside s (median of {args.repeats}) | runs | ratio to the read | CPU s inside (median) "
+           f"| CPU ratio | peak RSS | passes | max rel. error σ1..σ{k} | max sin θ | true rel. error "
            f"| estimated rel. error |",
-           "|---|---:|---|---:|---:|---:|---:|---:|---:|---:|---:|"]
+           "|---|---:|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|"]
+    floor_cpu = statistics.median(rows["floor: one streaming read"]["cpu"])
     for label, r in rows.items():
         e = ev.get(label, {})
         res = r["res"]
         est = res.get("estimated_relative_error")
         out.append(
             f"| {label} | {med[label]:.2f} | {', '.join(f'{x:.2f}' for x in r['inside'])} | "
-            f"{statistics.median(r['wall']):.2f} | {bf._fmt_bytes(max(r['rss']))} | {res.get('passes', 1)} | "
-            f"{med[label] / floor:.2f}× | {bf._fmt_float(e.get('max_rel_err'))} | {bf._fmt_float(e.get('max_sin'))} | "
+            f"{med[label] / floor:.2f}× | {statistics.median(r['cpu']):.1f} | "
+            f"{statistics.median(r['cpu']) / floor_cpu:.2f}× | {bf._fmt_bytes(max(r['rss']))} | {res.get('passes', 1)} | "
+            f"{bf._fmt_float(e.get('max_rel_err'))} | {bf._fmt_float(e.get('max_sin'))} | "
             f"{bf._fmt_float(e.get('true_relative_error'), '.4f')} | {bf._fmt_float(est, '.4f')} |")
     out.append("")
     out.append(f"Best possible rank-{k} relative error (from the reference values): "
