@@ -237,6 +237,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--memory-limit", default="1GB",
                     help="the one-pass fit's memory limit; several, comma-separated, run side by side")
     ap.add_argument("--threads", type=int, default=None)
+    ap.add_argument("--noise", type=float, default=1.0,
+                    help="noise SD per entry of bench_fit.py's planted matrix (default 1)")
     ap.add_argument("--with-multipass", action="store_true", help="also the default (randomized) fit")
     ap.add_argument("--data-dir", default="bench-data")
     ap.add_argument("--out", default=None, help="append the Markdown report to this file")
@@ -246,7 +248,7 @@ def main(argv: list[str] | None = None) -> int:
     if args.worker:
         return bf._worker_main(args.worker, args.job)
     # the data set of bench_fit.py's defaults
-    args.rank, args.noise, args.decay, args.seed, args.zarr_chunks, args.verbose = 30, 1.0, 0.9, 0, None, False
+    args.rank, args.decay, args.seed, args.zarr_chunks, args.verbose = 30, 0.9, 0, None, False
     n, p = bf._parse_size(args.size)
     load_before = _uptime()
     with tempfile.TemporaryDirectory(prefix="bench-onepass-") as tmp:
@@ -308,7 +310,7 @@ def _report(args, argv, n, p, meta, ref_info, rows, ev, load_before, load_after)
                 f"largest eigen-residual {ref_info.get('max_eigen_residual', float('nan')):.1e} of σ²")
     out = [f"Command: `{shlex.join(['python', 'scripts/bench_onepass.py'] + argv)}`", "",
            f"Data: {n:,} × {p:,} float32 Zarr (chunks {meta['zarr_chunks'][0]}×{meta['zarr_chunks'][1]}, "
-           f"zarr's default codec), planted rank {args.rank} + unit noise (bench_fit.py's data); k = {k}, "
+           f"zarr's default codec), planted rank {args.rank} + noise SD {args.noise:g} (bench_fit.py's data); k = {k}, "
            f"`--memory-limit {args.memory_limit}`, centred, no scaling. Reference: {ref_kind}; "
            f"σ1 = {ref_s[0]:.6g}, σ{k} = {ref_s[k - 1]:.6g}, σ{k}/σ{k + 1} = {ref_s[k - 1] / ref_s[k]:.3f}. "
            f"Load average (1, 5, 15 min) before {load_before}, after {load_after}.", "",

@@ -221,7 +221,8 @@ def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None, then=No
                           "is not yet computed on a cluster; run it without scheduler or cluster")
     if reader.sparse and adjust is not None and method != "one-pass":
         raise OptionError(f"{src.path}: a sparse matrix is not yet fitted after a covariate adjustment "
-                          "in several passes; pass method='one-pass', drop the adjustment, or store the matrix dense")
+                          "in several passes; read it once (the one-pass method), drop the adjustment, "
+                          "or store the matrix dense")
     if method == "one-pass":
         stats, prep, fac, residualizer = _one_pass(src, job, reader, exclude, n, rng, runner, adjust)
         return _result(src, job, active, n, prep, stats, fac, plan, runner, filtered=False, identity=identity,
