@@ -185,3 +185,19 @@ def test_non_finite_value_is_named(sparse):
     ids = [f"s{i}" for i in range(60)]
     with pytest.raises(InputError, match="sample 's37', feature 'feature_000006' is (NaN or infinite|stored as nan)"):
         fit(array_source(data, sample_ids=ids), n_components=2, engine=ONE_PASS)
+
+
+def test_cli_sparse_npz_one_pass_equals_dense_npy(tmp_path):
+    """``fit --passes 1`` on a SciPy .npz file and on its dense copy: the same singular values (1e-6)."""
+    from axiscope.cli._app import main
+
+    X = _counts(seed=7)
+    sp.save_npz(tmp_path / "m.npz", X)
+    np.save(tmp_path / "m.npy", X.toarray())
+    for name in ("m.npz", "m.npy"):
+        assert main(["fit", str(tmp_path / name), "--out", str(tmp_path / name.replace(".", "-")), "-k", "3",
+                     "--passes", "1", "-q", "--threads", "1"]) == 0
+    got = [pd.read_csv(tmp_path / d / "components.tsv", sep="\t").singular_value.to_numpy() for d in ("m-npz", "m-npy")]
+    np.testing.assert_allclose(got[0], got[1], rtol=1e-6)
+    manifest = json.loads((tmp_path / "m-npz" / "manifest.json").read_text())
+    assert manifest["input"]["storage"].startswith("sparse") and manifest["passes"]["count"] == 1
