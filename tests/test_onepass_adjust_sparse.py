@@ -201,3 +201,19 @@ def test_cli_sparse_npz_one_pass_equals_dense_npy(tmp_path):
     np.testing.assert_allclose(got[0], got[1], rtol=1e-6)
     manifest = json.loads((tmp_path / "m-npz" / "manifest.json").read_text())
     assert manifest["input"]["storage"].startswith("sparse") and manifest["passes"]["count"] == 1
+
+
+def test_caller_array_is_left_alone():
+    """Blocks are centred in place only when they are the reader's fresh copies: the caller's
+    array is unchanged after a fit and after a direct call on blocks that are views of it."""
+    from axiscope.core.onepass import one_pass_factorization
+    from axiscope.core.passes import array_from_blocks
+    from axiscope.core.preprocess import FeatureStatistics
+
+    X, *_ = _planted(80, 30, 2, noise=0.1, seed=1)
+    before = X.copy()
+    fit(array_source(X), n_components=2, engine=ONE_PASS)
+    stats_of = lambda b: (FeatureStatistics.from_block_stats(b).mean, np.ones(X.shape[1]))  # noqa: E731
+    views = array_from_blocks(lambda i: X[40 * i : 40 * (i + 1)], [40, 40], 30, X.dtype, "views")
+    one_pass_factorization(views, n_components=2, oversample=5, rng=np.random.default_rng(0), finish=stats_of)
+    assert np.array_equal(X, before)

@@ -88,7 +88,7 @@ class OnePassResult:
     residualizer: Residualizer | None = None
 
 
-def _task(block, rows, width, omega):
+def _task(block, rows, width, omega, in_place=False):
     """Statistics of a block, and its products about the block's own mean (float64).
 
     ``rows`` holds this block's columns of ``Ψ`` (the first ``width`` columns) followed by its
@@ -97,12 +97,12 @@ def _task(block, rows, width, omega):
     ``cross = X_bᵀ·C̄_b`` (:func:`axiscope.core.adjust.block_cross`; None without covariates)
     and ``right = (X_b − 1·m_bᵀ)·Ω``. Both left-hand products are one product with
     ``[Ψ_bᵀ, C̄_b]``. A dense block is centred in its own dtype on a shift ``c`` near ``m_b``
-    (:func:`_shifted`), and ``e = m_b − c`` is taken out in float64; a sparse block is never
-    densified (:func:`_sparse_task`).
+    (:func:`_shifted`; in place when ``in_place``), and ``e = m_b − c`` is taken out in
+    float64; a sparse block is never densified (:func:`_sparse_task`).
     """
     if is_sparse(block):
         return _sparse_task(block, rows, width, omega)
-    stats, centred, c = _shifted(block)
+    stats, centred, c = _shifted(block, in_place)
     if centred is None:
         return stats, None, None, None, first_nonfinite(block)
     del block
@@ -120,9 +120,10 @@ def _task(block, rows, width, omega):
     return stats, left, cross, right, None
 
 
-def _shifted(block: np.ndarray) -> tuple[BlockStats, np.ndarray | None, np.ndarray | None]:
+def _shifted(block: np.ndarray, in_place: bool = False) -> tuple[BlockStats, np.ndarray | None, np.ndarray | None]:
     """The block's statistics, the block minus a shift ``c`` near its column means (in its own
-    dtype), and ``c``; ``(stats, None, None)`` when the block holds a non-finite value.
+    dtype; the block itself, overwritten, when ``in_place``), and ``c``; ``(stats, None, None)``
+    when the block holds a non-finite value.
 
     The statistics pass's :func:`axiscope.core.preprocess.block_statistics`, sharing its
     shifted copy with the products: ``c`` is the column means rounded to the block's dtype,
@@ -138,7 +139,7 @@ def _shifted(block: np.ndarray) -> tuple[BlockStats, np.ndarray | None, np.ndarr
         if stats.n_nonfinite:
             return stats, None, None
         c = stats.mean.astype(block.dtype)
-    centred = block - c
+    centred = np.subtract(block, c, out=block) if in_place else block - c
     csum = np.add.reduce(centred, axis=0, dtype=np.float64)
     m2 = np.einsum("ij,ij->j", centred, centred, dtype=np.float64) - csum**2 / m
     mean = c.astype(np.float64) + csum / m
@@ -175,6 +176,7 @@ def one_pass_factorization(
     runner: PassRunner | None = None,
     source: str = "input",
     adjust: Adjustment | None = None,
+    fresh_blocks: bool = False,
 ) -> OnePassResult:
     """Statistics and the leading ``n_components`` singular triplets of ``X̃`` in one pass.
 
@@ -199,6 +201,9 @@ def one_pass_factorization(
         afterwards both sketches are those of ``P·X̃``: ``P·(X̃·Ω̃) = Y − Q·(QᵀY)`` and
         ``Ψ·P·X̃ = Ψ·X̃ − (Ψ·Q)·Mᵀ`` with ``M = X̃ᵀQ``
         (:meth:`axiscope.core.adjust.Adjustment.residualizer`).
+    fresh_blocks : bool, default=False
+        Every block of ``X`` is a fresh array that nothing else holds (as the fit's reader
+        makes them): dense blocks are then centred in place, without a copy.
 
     Returns
     -------
@@ -244,7 +249,7 @@ def one_pass_factorization(
         acc["stats"] = stats if acc["stats"] is None else acc["stats"].merge(stats)
 
     name = "one pass: statistics + " + ("covariates + " if adjust is not None else "") + "sketches"
-    runner.run(name, source, X, _task, fold, s + q, omega_used, rows=rows)
+    runner.run(name, source, X, _task, fold, s + q, omega_used, bool(fresh_blocks), rows=rows)
     stats: BlockStats = acc["stats"]
     mean, d = finish(stats)
     mean = np.asarray(mean, dtype=np.float64)

@@ -345,6 +345,7 @@ def _one_pass(src: MatrixSource, job: _Job, reader: _Reader, exclude, n: int, rn
     result = one_pass_factorization(
         reader.array("read"), n_components=job.k, oversample=job.engine.oversample, rng=rng,
         finish=finish, omit=exclude, on_missing=missing, runner=runner, source="input", adjust=adjust,
+        fresh_blocks=True,  # the reader's blocks are fresh copies (MatrixSource.read_samples)
     )
     fac = result.factorization
     fac.sketch = {"relative_error": result.relative_error, "widths": list(result.widths),
