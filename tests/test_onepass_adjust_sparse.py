@@ -217,3 +217,15 @@ def test_caller_array_is_left_alone():
     views = array_from_blocks(lambda i: X[40 * i : 40 * (i + 1)], [40, 40], 30, X.dtype, "views")
     one_pass_factorization(views, n_components=2, oversample=5, rng=np.random.default_rng(0), finish=stats_of)
     assert np.array_equal(X, before)
+
+
+def test_estimator_one_pass_sparse_equals_dense():
+    """``AxiscopePCA(method="one-pass")`` on a SciPy sparse matrix and on its dense copy (1e-6)."""
+    from axiscope.estimator import AxiscopePCA
+
+    X = _counts(seed=8)
+    a = AxiscopePCA(n_components=3, method="one-pass", random_state=0).fit(X)
+    b = AxiscopePCA(n_components=3, method="one-pass", random_state=0).fit(X.toarray())
+    np.testing.assert_allclose(a.singular_values_, b.singular_values_, rtol=1e-6)
+    scores = b.transform(X[:20].toarray())
+    np.testing.assert_allclose(a.transform(X[:20]), scores, atol=1e-6 * np.abs(scores).max())
