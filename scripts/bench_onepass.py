@@ -33,7 +33,8 @@ block subspace iteration on the whole centred matrix in float64 (``Z = X̃ᵀX̃
 then a Rayleigh–Ritz step with LAPACK's SVD), run until the eigen-residuals
 ``‖X̃ᵀX̃·v − σ²·v‖ / σ²`` of all k+1 pairs are below 1e-10; each eigenvalue of ``X̃ᵀX̃`` is then
 within that residual of the computed one (the residual bound for symmetric matrices,
-Parlett, *The Symmetric Eigenvalue Problem*, Thm 4.5.1), so each σ within half of it. The
+Parlett, *The Symmetric Eigenvalue Problem*, ch. 4; theorem number not checked, recalled from
+memory), so each σ within half of it. The
 reference is cached beside the data.
 
 Example::
