@@ -79,7 +79,11 @@ def test_score_on_the_cluster_equals_the_threaded_score(client, write_matrix):
     assert 0 < detail["bytes_to_client"] < 8 * M * (K + 2) + 20_000 < 8 * M * P
 
 
-def test_supplementary_passes_on_the_cluster_equal_the_threaded_ones(client, write_matrix):
+def test_supplementary_passes_on_the_cluster_equal_the_threaded_ones(client, write_matrix, monkeypatch):
+    from axiscope.explain import supplementary
+
+    # blocks of 100 rows: a budget small enough for that is below the smallest one allowed
+    monkeypatch.setattr(supplementary, "_block_rows", lambda *args, **kwargs: 100)
     X = _planted(N, 2)
     X[:, 7] = 0.5 * X[:, 0] + np.random.default_rng(3).standard_normal(N)  # a supplementary feature
     path = write_matrix(X, "h5", chunks=(100, P))
@@ -98,6 +102,10 @@ def test_supplementary_passes_on_the_cluster_equal_the_threaded_ones(client, wri
         record = result.manifest["explanation"]
         assert [p["name"] for p in record["passes"]] == ["projection", "supplementary features"]
         assert record["execution"]["backend"] == ("threaded" if name == "threaded" else "dask.distributed")
+    # the supplementary features' sums come back once, added up on the workers: 3 features ×
+    # (K + 2) floats plus pickling overhead, never the blocks
+    blocks, sums = record["passes"][1]["blocks"], record["passes"][1]["bytes_to_client"]
+    assert blocks >= 4 and 8 * 3 * (K + 2) <= sums < 8 * 3 * (K + 2) + 20_000 < 8 * N * P
     a, b = (cards[name].feature_statistics for name in ("threaded", "cluster"))
     sup = np.flatnonzero(a.supplementary)
     assert len(sup) == 3 and list(a.feature_ids[sup]) == list(b.feature_ids[sup])

@@ -184,6 +184,10 @@ class _Sums:
     count: np.ndarray | None = None
     missing_scores: np.ndarray | None = None
 
+    def __sizeof__(self) -> int:  # what Dask counts as the bytes of a result (sys.getsizeof)
+        return object.__sizeof__(self) + sum(a.nbytes for a in (self.s1, self.s2, self.cross, self.count,
+                                                                  self.missing_scores) if a is not None)
+
     def counts(self) -> np.ndarray:
         """Finite cells per feature."""
         return self.count if self.count is not None else np.full(self.s1.shape[0], float(self.rows))
