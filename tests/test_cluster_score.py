@@ -12,6 +12,7 @@ Data: a planted low-rank matrix plus noise, invented here.
 
 from __future__ import annotations
 
+import contextlib
 import json
 import sys
 
@@ -56,7 +57,8 @@ def test_score_on_the_cluster_equals_the_threaded_score(client, write_matrix):
     path = write_matrix(new[:, order], "zarr3", chunks=(50, P),
                         feature_ids=np.asarray(model.feature_ids)[order])
     threaded = score(model, path, memory_limit=BUDGET, threads=2)
-    clustered = score(model, path, memory_limit=BUDGET, threads=2, scheduler=client)
+    # against the scheduler's address, as given on the command line
+    clustered = score(model, path, memory_limit=BUDGET, threads=2, scheduler=client.scheduler.address)
     assert threaded.manifest["passes"][0]["blocks"] >= 4
     columns = list(model.axis_names)
     _close(threaded.scores[columns].to_numpy(), clustered.scores[columns].to_numpy())
@@ -72,6 +74,7 @@ def test_score_on_the_cluster_equals_the_threaded_score(client, write_matrix):
     np.testing.assert_allclose(clustered.diagnostics["q"].to_numpy(), q, rtol=1e-8)
     record = clustered.manifest["execution"]
     assert record["backend"] == "dask.distributed" and record["workers"] == 2
+    assert record["connected_to"] == "scheduler" and record["scheduler"] == client.scheduler.address
     assert threaded.manifest["execution"] == {"backend": "threaded", "threads": 2}
     # only the scores, squared norms and fill counts come back (M × (K + 2) floats plus
     # pickling overhead), never the blocks (M × P)
@@ -95,9 +98,10 @@ def test_supplementary_passes_on_the_cluster_equal_the_threaded_ones(client, wri
     result = fit(path, n_components=K, engine=ENGINE, active=active, exclude_features=exclude,
                  resources=Resources(memory_limit=BUDGET, threads=2))
     cards = {}
-    for name, extra in (("threaded", {}), ("cluster", {"scheduler": client})):
-        with open_matrix(path) as src:
-            cards[name] = explain_fit(plan, result, src, memory_limit=BUDGET, threads=2, **extra)
+    for name in ("threaded", "cluster"):
+        # the cluster run uses the current client, without being told
+        with open_matrix(path) as src, (client.as_current() if name == "cluster" else contextlib.nullcontext()):
+            cards[name] = explain_fit(plan, result, src, memory_limit=BUDGET, threads=2)
             feature_ids = np.asarray(src.feature_ids)
         record = result.manifest["explanation"]
         assert [p["name"] for p in record["passes"]] == ["projection", "supplementary features"]
