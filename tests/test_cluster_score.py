@@ -152,3 +152,33 @@ def test_cli_score_on_a_local_cluster(write_matrix, tmp_path):
     done = runner.invoke(app, [*common, "--out", str(tmp_path / "bad"), "--cluster", "remote:2"])
     assert done.exit_code == 2 and "--cluster 'remote:2' is not a local cluster" in done.output
     assert not (tmp_path / "bad").exists()
+
+
+def test_cli_fit_places_supplementary_features_on_the_scheduler(client, write_matrix, tmp_path):
+    from typer.testing import CliRunner
+
+    from axiscope.cli import app
+
+    X = _planted(N, 6)
+    path = write_matrix(X, "h5", chunks=(100, P))
+    with open_matrix(path) as src:
+        listed = [str(src.feature_ids[j]) for j in (5, 30)]
+    (tmp_path / "sup.txt").write_text("\n".join(listed) + "\n")
+    runner = CliRunner()
+    common = ["fit", str(path), "-k", str(K), "--method", "randomized", "--seed", "5", "--memory-limit", BUDGET,
+              "--supplementary-features", str(tmp_path / "sup.txt"), "--quiet"]
+    done = runner.invoke(app, [*common, "--out", str(tmp_path / "threaded")])
+    assert done.exit_code == 0, done.output
+    done = runner.invoke(app, [*common, "--out", str(tmp_path / "cluster"), "--scheduler", client.scheduler.address])
+    assert done.exit_code == 0, done.output
+    manifest = json.loads((tmp_path / "cluster" / "manifest.json").read_text())
+    record = manifest["explanation"]
+    assert record["execution"]["connected_to"] == "scheduler"
+    assert [p["name"] for p in record["passes"]] == ["supplementary features"]
+    a, b = (pd.read_csv(tmp_path / name / "feature_statistics.tsv", sep="\t", comment="#")
+            for name in ("threaded", "cluster"))
+    a, b = a[a["supplementary"]], b[b["supplementary"]]
+    assert sorted(a["feature_id"]) == sorted(listed) and list(a["feature_id"]) == list(b["feature_id"])
+    numeric = [c for c in a.columns if c.startswith(("loading", "correlation", "sq_cosine"))]
+    # the table holds 8 significant digits: equal to within one unit of the 8th
+    np.testing.assert_allclose(a[numeric].to_numpy(), b[numeric].to_numpy(), rtol=2e-7, atol=1e-12)
