@@ -80,6 +80,9 @@ def test_score_on_the_cluster_equals_the_threaded_score(client, write_matrix):
     # pickling overhead), never the blocks (M × P)
     (detail,) = clustered.manifest["passes"]
     assert 0 < detail["bytes_to_client"] < 8 * M * (K + 2) + 20_000 < 8 * M * P
+    # the workers read the blocks themselves: sent to them are the model's arrays, once per
+    # worker (five p-vectors and V, p × k), not the blocks
+    assert 0 < detail["bytes_from_client"] <= 2 * 8 * P * (6 + K) < 8 * M * P
 
 
 def test_supplementary_passes_on_the_cluster_equal_the_threaded_ones(client, write_matrix, monkeypatch):
@@ -110,6 +113,9 @@ def test_supplementary_passes_on_the_cluster_equal_the_threaded_ones(client, wri
     # (K + 2) floats plus pickling overhead, never the blocks
     blocks, sums = record["passes"][1]["blocks"], record["passes"][1]["bytes_to_client"]
     assert blocks >= 4 and 8 * 3 * (K + 2) <= sums < 8 * 3 * (K + 2) + 20_000 < 8 * N * P
+    # sent: each block's rows of the scores (n × k in all) and the shift, never the blocks
+    n = int(active.sum())
+    assert 8 * n * K <= record["passes"][1]["bytes_from_client"] <= 8 * n * K + 2 * 8 * 3
     a, b = (cards[name].feature_statistics for name in ("threaded", "cluster"))
     sup = np.flatnonzero(a.supplementary)
     assert len(sup) == 3 and list(a.feature_ids[sup]) == list(b.feature_ids[sup])
