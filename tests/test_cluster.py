@@ -33,16 +33,6 @@ ENGINE = EngineSettings(method="randomized", seed=3)
 BUDGET = "16MB"  # small blocks: several per pass
 
 
-@pytest.fixture(scope="module")
-def client():
-    cluster = distributed.LocalCluster(processes=True, n_workers=2, threads_per_worker=1, host="127.0.0.1",
-                                       dashboard_address=None)
-    client = distributed.Client(cluster, set_as_default=False)
-    yield client
-    client.close()
-    cluster.close()
-
-
 def _planted(seed: int = 0) -> np.ndarray:
     rng = np.random.default_rng(seed)
     U = np.linalg.qr(rng.standard_normal((N, K)))[0]

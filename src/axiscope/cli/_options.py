@@ -64,6 +64,16 @@ MemoryLimit = Annotated[str | None, typer.Option(
     show_default="half the RAM")]
 Threads = Annotated[int | None, typer.Option(
     min=1, help="Blocks processed at once.", show_default="number of cores")]
+# Where the passes run (fit, score): a Dask cluster instead of threads of this process
+SchedulerOpt = Annotated[str | None, typer.Option(
+    "--scheduler", metavar="ADDRESS",
+    help="Run the passes on a running Dask cluster: its scheduler's address (tcp://host:8786). "
+         "Every worker must see INPUT at the same path. Needs pip install \"axiscope[cluster]\".")]
+ClusterOpt = Annotated[str | None, typer.Option(
+    "--cluster", metavar="local[:N]",
+    help="Run the passes on N worker processes of this machine started for the run (default N: the "
+         "number of cores), each with an equal share of --memory-limit. Needs "
+         "pip install \"axiscope[cluster]\".")]
 Overwrite = Annotated[bool, typer.Option(help="Replace an existing output directory.")]
 Wait = Annotated[bool, typer.Option(
     help="When another run is writing the same --out, wait for it to end instead of stopping at once.")]

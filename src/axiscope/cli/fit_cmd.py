@@ -28,8 +28,10 @@ from ._options import (
     Quiet,
     SampleIds,
     SamplesIn,
+    ClusterOpt,
     CompressedAxis,
     CompressedAxisOpt,
+    SchedulerOpt,
     SparseNames,
     SamplesInOpt,
     Scale,
@@ -59,15 +61,6 @@ LogTransform = Annotated[bool, typer.Option(
 TopVariable = Annotated[int | None, typer.Option(min=2, help="Keep the N features of largest variance.")]
 Scratch = Annotated[Path | None, typer.Option(
     help="Folder for the scratch file when blocks do not fit in memory (made if missing; default: the temporary folder).")]
-SchedulerOpt = Annotated[str | None, typer.Option(
-    "--scheduler", metavar="ADDRESS",
-    help="Run the passes on a running Dask cluster: its scheduler's address (tcp://host:8786). "
-         "Every worker must see INPUT at the same path. Needs pip install \"axiscope[cluster]\".")]
-ClusterOpt = Annotated[str | None, typer.Option(
-    "--cluster", metavar="local[:N]",
-    help="Run the passes on N worker processes of this machine started for the run (default N: the "
-         "number of cores), each with an equal share of --memory-limit. Needs "
-         "pip install \"axiscope[cluster]\".")]
 
 
 FitComponents = Annotated[str, typer.Option(
@@ -274,7 +267,7 @@ def fit_command(
                                  then=then if stability_repeats else None, **unattended)
                 stability = assessed[0] if assessed else None
                 cards = explain_fit(prepared, result, src, top=top, memory_limit=memory_limit,
-                                    threads=threads, progress=progress)
+                                    threads=threads, progress=progress, scheduler=scheduler, cluster=cluster)
         with atomic_directory(out, overwrite=overwrite) as tmp:
             result.write(tmp, top=top, parquet=format is TableFormat.parquet, command_line=sys.argv)
             if stability is not None:

@@ -16,6 +16,7 @@ from ._app import app, progress_display, say, setup_logging, user_errors
 from ._options import (
     AllowExternalData,
     AllowMissingChunks,
+    ClusterOpt,
     Dataset,
     FeatureIds,
     FormatOpt,
@@ -26,6 +27,7 @@ from ._options import (
     SampleIds,
     SamplesIn,
     SamplesInOpt,
+    SchedulerOpt,
     TableFormat,
     Threads,
     Wait,
@@ -90,6 +92,8 @@ def score_command(
              "training input (size and hash) is another file.")] = None,
     memory_limit: MemoryLimit = None,
     threads: Threads = None,
+    scheduler: SchedulerOpt = None,
+    cluster: ClusterOpt = None,
     overwrite: Overwrite = False,
     wait: Wait = False,
     quiet: Quiet = False,
@@ -115,7 +119,7 @@ def score_command(
                 sample_ids=sample_ids, feature_ids=feature_ids, samples_in=samples_in.value,
                 allow_external_data=allow_external_data, allow_missing_chunks=allow_missing_chunks,
                 covariates=None if covariates is None else Covariates(covariates, id_column=id_column),
-                reference=reference,
+                reference=reference, scheduler=scheduler, cluster=cluster,
             )
         with atomic_directory(out, overwrite=overwrite) as tmp:
             result.write(tmp, parquet=format is TableFormat.parquet, command_line=sys.argv)

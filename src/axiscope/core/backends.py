@@ -246,13 +246,19 @@ def _forget(run: str) -> int:
 
 
 def read_block(source, span, mask, spec, columns) -> np.ndarray:
-    """Samples ``span`` of ``source``, active rows only, transformed, with the chosen columns."""
+    """Samples ``span`` of ``source``, active rows only, transformed, with the chosen columns.
+
+    ``spec=None``: the values as stored, unchecked (the task transforms and checks them, as
+    the projection of samples onto a model does).
+    """
     from .preprocess import NotADosage, transform_block
 
     a, b = span
-    block = source.read_samples(a, b)
+    block = source.read_samples(a, b, check_range=spec is not None)
     if mask is not None:
         block = block[mask]
+    if spec is None:
+        return block if columns is None else np.ascontiguousarray(block[:, columns])
     try:
         block = transform_block(block, spec)
     except NotADosage as exc:
@@ -302,11 +308,12 @@ def _limit_blas() -> None:
 _BLAS_LIMITED = False
 
 
-def _run_block(piece, task, split, *args):
-    """On a worker: read (or receive) a block, run the task on it, split the result."""
+def _run_block(piece, task, split, *args, rows=None):
+    """On a worker: read (or receive) a block, run the task on it (with the block's ``rows``
+    when the pass has some), split the result."""
     _limit_blas()
     block = piece() if callable(piece) else piece
-    result = task(block, *args)
+    result = task(block, *args) if rows is None else task(block, rows, *args)
     return split(result) if split is not None else result
 
 
@@ -377,8 +384,12 @@ class ClusterBackend:
                 "source": "none: the workers read the file on every pass"}[self.cache]}),
         }
 
-    def run(self, name: str, X, task, fold, args: tuple, reduce: Reduction | None, progress) -> PassTraffic:
+    def run(self, name: str, X, task, fold, args: tuple, reduce: Reduction | None, progress,
+            rows: np.ndarray | None = None) -> PassTraffic:
         """One pass on the cluster; ``fold`` is called here, in block order (see :class:`Reduction`).
+
+        With ``rows`` (one row per sample of ``X``), each block's task receives its rows as
+        on the threaded back-end; they travel with the block's task.
 
         A task lost with its worker is run again by Dask. When a result was lost that Dask can
         no longer recompute (its inputs already released), the pass is run again from its
@@ -391,7 +402,7 @@ class ClusterBackend:
             progress(name, 0, len(X.chunks[0]))
         for attempt in range(1, PASS_ATTEMPTS + 1):
             try:
-                self._attempt(name, X, task, fold, args, reduce, progress, traffic, folded)
+                self._attempt(name, X, task, fold, args, reduce, progress, traffic, folded, rows)
                 break
             except _lost_errors() as exc:
                 if attempt == PASS_ATTEMPTS:
@@ -401,7 +412,7 @@ class ClusterBackend:
         self.traffic.append(traffic)
         return traffic
 
-    def _attempt(self, name, X, task, fold, args, reduce, progress, traffic, folded) -> None:
+    def _attempt(self, name, X, task, fold, args, reduce, progress, traffic, folded, rows=None) -> None:
         from dask.sizeof import sizeof
         from distributed import wait
 
@@ -421,7 +432,10 @@ class ClusterBackend:
         try:
             for i in range(n):
                 while submitted < n and len(pending) < window:
-                    pending.append(self._submit(X, blocks, submitted, task, split, shared, tree, token, traffic, whole))
+                    block_rows = None if rows is None else \
+                        rows[starts[submitted] : starts[submitted] + X.chunks[0][submitted]]
+                    pending.append(self._submit(X, blocks, submitted, task, split, shared, tree, token, traffic, whole,
+                                                block_rows))
                     submitted += 1
                 piece = pending.popleft()
                 if whole or i < folded[0]:  # nothing to fetch (or fetched by an earlier attempt)
@@ -462,8 +476,8 @@ class ClusterBackend:
                 traffic.sent += args[i].nbytes * len(self._addresses())
         return shared
 
-    def _submit(self, X, blocks, i, task, split, shared, tree, token, traffic, whole):
-        """Block ``i``'s task; returns the future of what comes back for it."""
+    def _submit(self, X, blocks, i, task, split, shared, tree, token, traffic, whole, rows=None):
+        """Block ``i``'s task (with its ``rows``, if any); returns the future of what comes back for it."""
         client = self.client
         loader = block_loader(X, i)
         placement = {}
@@ -477,8 +491,12 @@ class ClusterBackend:
             (block,) = dask.compute(blocks[i], scheduler="synchronous")
             traffic.sent += block.nbytes
             piece = client.scatter(block, hash=False)
+        own = {}
+        if rows is not None:  # passed to _run_block
+            traffic.sent += rows.nbytes
+            own["rows"] = rows
         future = client.submit(_run_block, piece, task, split, *shared, key=f"{token}-block-{i}", pure=False,
-                               **placement)
+                               **placement, **own)
         if tree is None:
             return future
         if whole:

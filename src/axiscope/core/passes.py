@@ -22,7 +22,6 @@ import dask
 import dask.array as da
 import numpy as np
 
-from ..errors import OptionError
 
 __all__ = ["PassRecord", "PassRunner", "array_from_blocks", "blas_threads"]
 
@@ -42,6 +41,13 @@ class PassRecord:
     #: Bytes received from / sent to a cluster's workers (None on the threaded back-end).
     bytes_to_client: int | None = None
     bytes_from_client: int | None = None
+
+    def to_dict(self) -> dict:
+        """The record as the manifests write it (bytes only for passes run on a cluster)."""
+        return {"name": self.name, "read_from": self.source, "seconds": round(self.seconds, 3),
+                "blocks": self.n_blocks,
+                **({} if self.bytes_to_client is None else
+                   {"bytes_to_client": self.bytes_to_client, "bytes_from_client": self.bytes_from_client})}
 
 
 def _log_pass(number: int, record: PassRecord) -> None:
@@ -89,7 +95,7 @@ class PassRunner:
         """Compute ``task(block, *args)`` for every row block and call ``fold(result, index, start)``.
 
         With ``rows`` (one row per sample of ``X``, e.g. covariates), the task is called as
-        ``task(block, rows_of_the_block, *args)`` (threaded back-end only).
+        ``task(block, rows_of_the_block, *args)``.
 
         ``fold`` is called on the calling thread, in block order. On the threaded back-end
         each result is folded as soon as the blocks before it are done (no barrier between
@@ -100,10 +106,7 @@ class PassRunner:
         t0 = time.perf_counter()
         n = len(X.chunks[0])
         if self.backend is not None:
-            if rows is not None:
-                raise OptionError(f"the pass {name!r} hands each block rows of its own, which the cluster "
-                                  "back-end does not do yet; run it without scheduler or cluster")
-            traffic = self.backend.run(name, X, task, fold, args, reduce, self.progress)
+            traffic = self.backend.run(name, X, task, fold, args, reduce, self.progress, rows=rows)
             self.records.append(PassRecord(name, source, time.perf_counter() - t0, n,
                                            traffic.received, traffic.sent))
             _log_pass(self.n_passes, self.records[-1])

@@ -124,29 +124,51 @@ def _supplementary_feature_mask(mask: np.ndarray | None) -> np.ndarray | None:
 
 
 def explain_fit(plan: ExplanationPlan, result: "FitResult", source, *, top: int = DEFAULT_TOP_FEATURES,
-                memory_limit=None, threads=None, progress=None, **options) -> AxisCards:
+                memory_limit=None, threads=None, progress=None, scheduler=None, cluster=None,
+                **options) -> AxisCards:
     """Place the supplementary samples and features on the axes, then build the axis cards.
 
     One streaming pass projects the supplementary samples and one computes the statistics
-    of the supplementary features (each only when there are some). ``options`` go to
+    of the supplementary features (each only when there are some). ``scheduler`` and
+    ``cluster`` run them on a ``dask.distributed`` cluster as for :func:`axiscope.fit`
+    (:class:`axiscope.Resources`); the fit's manifest records them (``explanation``:
+    ``execution`` and ``passes``, as the fit's own). ``options`` go to
     :func:`axiscope.explain.cards.explain_axes` (``samples_per_list``, ``alpha``, ``warn_share``).
     """
+    sup_samples = sup_features = None
+    if (plan.active is not None and not plan.active.all()) or plan.exclude is not None:
+        from ..core.options import Resources
+
+        resources = Resources(memory_limit=memory_limit, threads=threads, scheduler=scheduler, cluster=cluster)
+        sup_samples, sup_features = _supplementary_passes(plan, result, source, resources, progress)
+    return explain_axes(result, annotations=plan.annotations, supplementary_features=sup_features,
+                        supplementary_samples=sup_samples, top=top, **options)
+
+
+def _supplementary_passes(plan: ExplanationPlan, result: "FitResult", source, resources, progress):
+    """The supplementary samples' scores and the supplementary features' statistics, each in
+    one pass on the back-end ``resources`` asks for; the passes are recorded in the fit's manifest."""
+    from ..core.backends import open_backend
+    from ..core.passes import PassRunner
     from ..model.project import project
     from .supplementary import supplementary_feature_statistics
 
-    sup_samples = None
-    if plan.active is not None and not plan.active.all():
-        placed = project(result.model, source, rows=~plan.active, memory_limit=memory_limit, threads=threads,
-                         progress=progress, fill_missing=result.model.spec.missing == "mean")
-        # the projection keeps what the axes leave out; adding back the scores' part gives the squared norm
-        norms = placed.residual + np.einsum("ij,ij->i", placed.scores, placed.scores)
-        sup_samples = SupplementarySamples(placed.sample_ids, placed.scores, norms)
-    sup_features = None
-    if plan.exclude is not None:
-        sup_features = supplementary_feature_statistics(
-            source, result.scores, result.model.singular_values, columns=plan.exclude, rows=plan.active,
-            spec=result.model.spec, axis_names=result.axis_names, sample_ids=result.sample_ids,
-            memory_limit=memory_limit, threads=threads, progress=progress,
-        )
-    return explain_axes(result, annotations=plan.annotations, supplementary_features=sup_features,
-                        supplementary_samples=sup_samples, top=top, **options)
+    sup_samples = sup_features = None
+    memory_limit, threads = resources.memory_limit, resources.n_threads
+    with open_backend(resources) as backend:
+        runner = PassRunner(threads=threads, progress=progress, backend=backend)
+        if plan.active is not None and not plan.active.all():
+            placed = project(result.model, source, rows=~plan.active, memory_limit=memory_limit, threads=threads,
+                             progress=progress, fill_missing=result.model.spec.missing == "mean", runner=runner)
+            # the projection keeps what the axes leave out; adding back the scores' part gives the squared norm
+            norms = placed.residual + np.einsum("ij,ij->i", placed.scores, placed.scores)
+            sup_samples = SupplementarySamples(placed.sample_ids, placed.scores, norms)
+        if plan.exclude is not None:
+            sup_features = supplementary_feature_statistics(
+                source, result.scores, result.model.singular_values, columns=plan.exclude, rows=plan.active,
+                spec=result.model.spec, axis_names=result.axis_names, sample_ids=result.sample_ids,
+                memory_limit=memory_limit, threads=threads, progress=progress, runner=runner,
+            )
+        result.manifest["explanation"] = {"execution": runner.describe(),
+                                          "passes": [r.to_dict() for r in runner.records]}
+    return sup_samples, sup_features

@@ -30,13 +30,13 @@ from ..core.memory import (
     parse_memory,
     process_baseline,
 )
+from ..core.backends import Reduction, SourceBlocks, read_block
 from ..core.passes import PassRunner, Progress, array_from_blocks
 from ..core.plan import window_block_rows
 from ..core.preprocess import (
     PreprocessSpec,
     feature_scale,
     first_nonfinite,
-    transform_block,
 )
 from ..errors import InputError, OptionError
 from ..io import MatrixSource
@@ -63,6 +63,7 @@ def supplementary_feature_statistics(
     memory_limit: int | str | None = None,
     threads: int | None = None,
     progress: Progress | None = None,
+    runner: PassRunner | None = None,
 ) -> FeatureAxisStatistics:
     """Statistics of features not used to build the axes, in one streaming pass.
 
@@ -85,6 +86,11 @@ def supplementary_feature_statistics(
         Ids of the scored samples; checked against ``source`` when given.
     memory_limit, threads, progress
         As for :func:`axiscope.fit`.
+    runner : PassRunner, optional
+        Runs the pass and keeps its record (default: a new one on ``threads`` threads).
+        Made with a cluster back-end (:func:`axiscope.core.backends.open_backend`), the
+        workers read their own blocks of a file they can open, add up their sums among
+        themselves, and only the ``p × k`` totals come back.
 
     Returns
     -------
@@ -95,7 +101,8 @@ def supplementary_feature_statistics(
     -----
     The steps: check which rows and columns are used (:func:`_selection`), size the row
     blocks from the memory budget (:func:`_block_rows`), stream the blocks once folding
-    sums, sums of squares and cross-products with the scores (:class:`_Sums`), then turn
+    sums, sums of squares and cross-products with the scores (:class:`_Sums`, per block,
+    added up in block order or by a cluster's fixed tree), then turn
     the sums into correlations, loadings and squared cosines (:func:`_finish`).
 
     Memory: ``O(p_sup·k)`` float64 accumulators (cross-products, and with imputation the
@@ -112,8 +119,9 @@ def supplementary_feature_statistics(
     threads = max(1, int(threads or os.cpu_count() or 1))
     block_rows = _block_rows(source, F.shape[0], cols.shape[0], k, threads, memory_limit,
                              imputing=spec.missing == "mean")
-    sums = _stream(source, F, rows, cols, spec, block_rows, threads, progress)
-    return _finish(sums, F, singular_values, spec, np.asarray(source.feature_ids, dtype=object)[cols], names)
+    runner = runner or PassRunner(threads=threads, progress=progress)
+    sums, shift = _stream(source, F, rows, cols, spec, block_rows, runner)
+    return _finish(sums, shift, F, singular_values, spec, np.asarray(source.feature_ids, dtype=object)[cols], names)
 
 
 def _selection(source: MatrixSource, F: np.ndarray, rows, columns, sample_ids) -> tuple[np.ndarray, np.ndarray]:
@@ -146,102 +154,161 @@ def _block_rows(source: MatrixSource, n: int, p: int, k: int, threads: int, memo
     # scores of missing cells; five length-p vectors (sums, squares, counts, shift, column
     # indices); the scores; and a window of row blocks
     accumulators = 8 * p * (k * (2 if imputing else 1) + 5) + 8 * n * k * 2
+    # the sums of each block in flight (2·threads of them): gone once the pass is over
+    in_flight = 2 * threads * 8 * p * (k * (2 if imputing else 1) + 2)
     # after the pass: correlation, loading, squared cosine and the NaN contribution returned
     # (p, k each), the SD and ids (p each), and the temporaries of one step of features
     results = 8 * p * (4 * k + 2) + 8 * min(p, _STEP) * (4 * k + 8)
-    row_bytes = p_all * source.dtype.itemsize * 2 + p * 8 * 3 + 8 * p * k // max(1, n)
-    return window_block_rows(source, budget=budget, held=held, limit=limit, accumulators=accumulators,
-                             results=results, row_bytes=row_bytes,
+    # a row read and transformed, then in float64 and shifted
+    row_bytes = p_all * source.dtype.itemsize * 2 + p * 8 * 2 + 8 * p * k // max(1, n)
+    return window_block_rows(source, budget=budget, held=held, limit=limit, accumulators=accumulators + in_flight,
+                             results=max(0, results - in_flight), row_bytes=row_bytes,
                              what=f"statistics of {p} supplementary features on {k} axes")
 
 
 @dataclass
 class _Sums:
-    """Sums folded over the row blocks, per supplementary feature.
+    """Sums over row blocks, per supplementary feature.
 
-    ``shift`` is the first row: sums of ``x − shift`` keep the variance accurate (Chan,
-    Golub & LeVeque 1983). ``count`` and ``missing_scores`` (the sum of the scores of the
-    samples where a feature is missing) exist only once a non-finite cell was seen.
+    ``shift`` (the first active row, :func:`_shift`) is subtracted before summing: sums of
+    ``x − shift`` keep the variance accurate (Chan, Golub & LeVeque 1983). ``rows`` counts
+    the rows summed; ``count`` (finite cells per feature) and ``missing_scores`` (the sum of
+    the scores of the samples where a feature is missing) exist only once a non-finite cell
+    was seen.
     """
 
     s1: np.ndarray
     s2: np.ndarray
     cross: np.ndarray
-    shift: np.ndarray | None = None
+    rows: int
     count: np.ndarray | None = None
     missing_scores: np.ndarray | None = None
 
-    def fold(self, x: np.ndarray, Fb: np.ndarray, start: int, mask: np.ndarray | None) -> None:
-        """Add one block ``x`` (rows ``start:start+len(x)``, missing cells zeroed in ``mask``)."""
-        if mask is not None:
-            if self.count is None:
-                self.count = np.full(x.shape[1], float(start))
-                self.missing_scores = np.zeros(self.cross.shape)
-            self.count += x.shape[0] - mask.sum(axis=0)
-            self.missing_scores += mask.T.astype(np.float64) @ Fb
-        elif self.count is not None:
-            self.count += x.shape[0]
-        if self.shift is None:
-            self.shift = x[0].copy()
-        shifted = x - self.shift
-        if mask is not None:
-            shifted[mask] = 0.0
-        self.s1 += shifted.sum(axis=0)
-        np.square(shifted, out=shifted)
-        self.s2 += shifted.sum(axis=0)
-        del shifted
-        self.cross += x.T @ Fb
+    def __sizeof__(self) -> int:  # what Dask counts as the bytes of a result (sys.getsizeof)
+        return object.__sizeof__(self) + sum(a.nbytes for a in (self.s1, self.s2, self.cross, self.count,
+                                                                  self.missing_scores) if a is not None)
+
+    def counts(self) -> np.ndarray:
+        """Finite cells per feature."""
+        return self.count if self.count is not None else np.full(self.s1.shape[0], float(self.rows))
+
+    def add(self, other: "_Sums") -> None:
+        """Add the sums of the blocks after these (in place)."""
+        if self.count is not None or other.count is not None:
+            self.count = self.counts() + other.counts()
+        if other.missing_scores is not None:
+            self.missing_scores = other.missing_scores if self.missing_scores is None else \
+                self.missing_scores + other.missing_scores
+        self.s1 += other.s1
+        self.s2 += other.s2
+        self.cross += other.cross
+        self.rows += other.rows
+
+
+def _block_sums(block: np.ndarray, Fb: np.ndarray, shift: np.ndarray):
+    """One block's sums (:class:`_Sums`), and the first non-finite cell (or None).
+
+    ``block``: the transformed values of the block's rows and the analysed columns;
+    ``Fb``: the block's scores. Non-finite cells are left out of the sums (they count as the
+    feature mean when imputing; otherwise the fold reports the first one).
+    """
+    x = block.astype(np.float64)
+    bad = first_nonfinite(x)
+    mask = None
+    if bad is not None:
+        mask = ~np.isfinite(x)
+        x[mask] = 0.0
+    shifted = x - shift
+    if mask is not None:
+        shifted[mask] = 0.0
+    s1 = shifted.sum(axis=0)
+    np.square(shifted, out=shifted)
+    s2 = shifted.sum(axis=0)
+    del shifted
+    sums = _Sums(s1, s2, x.T @ Fb, x.shape[0])
+    if mask is not None:
+        sums.count = x.shape[0] - mask.sum(axis=0).astype(np.float64)
+        sums.missing_scores = mask.T.astype(np.float64) @ Fb
+    return bad, sums
+
+
+def _add_sums(a: _Sums, b: _Sums) -> _Sums:
+    """The sums of two runs of blocks as one (``a`` before ``b``; neither is changed)."""
+    total = _Sums(a.s1.copy(), a.s2.copy(), a.cross.copy(), a.rows, a.count, a.missing_scores)
+    total.add(b)
+    return total
+
+
+def _split_sums(result):
+    bad, sums = result
+    return (bad, None), sums
+
+
+def _join_sums(piece, total):
+    return piece[0], total
+
+
+#: On a cluster, the sums are added up on the workers; only the first non-finite cell of
+#: each block comes back per block (:class:`axiscope.core.backends.Reduction`).
+SUMS = Reduction(_add_sums, split=_split_sums, join=_join_sums)
+
+
+def _shift(source: MatrixSource, rows: np.ndarray, cols: np.ndarray | None, spec: PreprocessSpec) -> np.ndarray:
+    """The first active row, transformed, with the analysed columns (non-finite cells as 0)."""
+    first = int(np.flatnonzero(rows)[0])
+    x = read_block(source, (first, first + 1), None, spec, cols)[0].astype(np.float64)
+    x[~np.isfinite(x)] = 0.0
+    return x
 
 
 def _stream(source: MatrixSource, F: np.ndarray, rows: np.ndarray, cols: np.ndarray, spec: PreprocessSpec,
-            block_rows: int, threads: int, progress: Progress | None) -> _Sums:
-    """One pass over the active rows of ``source``, folding the sums of the columns ``cols``."""
+            block_rows: int, runner: PassRunner) -> tuple[_Sums, np.ndarray]:
+    """One pass over the active rows of ``source``: the sums over the columns ``cols``, and the shift.
+
+    Each block's sums are computed where the block is (a thread, or a cluster's worker that
+    reads it), then added up in block order (threads) or by the cluster's fixed tree.
+    """
     n_all, p_all = source.shape
     p = cols.shape[0]
     spans = [(a, min(n_all, a + block_rows)) for a in range(0, n_all, block_rows)]
     spans = [(a, b) for a, b in spans if rows[a:b].any()]
     ids = np.asarray(source.sample_ids, dtype=object)[rows]
     imputing = spec.missing == "mean"
-    sums = _Sums(np.zeros(p), np.zeros(p), np.zeros((p, F.shape[1])))
-
-    def load(i: int) -> np.ndarray:
-        a, b = spans[i]
-        block = source.read_samples(a, b)
-        return block if rows[a:b].all() else block[rows[a:b]]
-
-    def task(block: np.ndarray):
-        block = transform_block(block, spec)  # totals over all columns of the source, as in the fit
-        x = (block[:, cols] if p != p_all else block).astype(np.float64)
-        return x, first_nonfinite(x)
+    columns = None if p == p_all else cols
+    total = {}
 
     def fold(result, index: int, start: int) -> None:
-        x, bad = result
-        mask = None
-        if bad is not None:
-            if not imputing:
-                r, c = bad
-                raise InputError(
-                    f"{source.path}: sample {ids[start + r]!r}, feature {source.feature_ids[cols[c]]!r} is NaN "
-                    f"or infinite (after the transforms); fix the input or impute missing cells with the "
-                    f"feature mean (missing='mean')"
-                )
-            mask = ~np.isfinite(x)
-            x[mask] = 0.0
-        sums.fold(x, F[start : start + x.shape[0]], start, mask)
+        bad, sums = result
+        if bad is not None and not imputing:
+            r, c = bad
+            raise InputError(
+                f"{source.path}: sample {ids[start + r]!r}, feature {source.feature_ids[cols[c]]!r} is NaN "
+                f"or infinite (after the transforms); fix the input or impute missing cells with the "
+                f"feature mean (missing='mean')"
+            )
+        if sums is not None:  # (the blocks' own sums: added in place)
+            if "sums" in total:
+                total["sums"].add(sums)
+            else:
+                total["sums"] = sums
 
     counts = [int(rows[a:b].sum()) for a, b in spans]
-    X = array_from_blocks(load, counts, p_all, source.dtype, f"supfeat-{id(source)}-{os.getpid()}")
-    PassRunner(threads=threads, progress=progress).run("supplementary features", "input", X, task, fold)
-    return sums
+    # a picklable description of the blocks (read, transformed, the analysed columns), so
+    # that a cluster's workers read their own
+    load = SourceBlocks(source, spans, [None if rows[a:b].all() else rows[a:b] for a, b in spans], spec, columns)
+    X = array_from_blocks(load, counts, p, source.dtype, f"supfeat-{id(source)}-{os.getpid()}")
+    shift = _shift(source, rows, columns, spec)
+    runner.run(
+        "supplementary features", "input", X, _block_sums, fold, shift, rows=F, reduce=SUMS)
+    return total["sums"], shift
 
 
-def _finish(sums: _Sums, F: np.ndarray, singular_values: np.ndarray, spec: PreprocessSpec,
+def _finish(sums: _Sums, shift: np.ndarray, F: np.ndarray, singular_values: np.ndarray, spec: PreprocessSpec,
             feature_ids: np.ndarray, names: list[str]) -> FeatureAxisStatistics:
     """Correlations, loadings (in the units of the active ones) and squared cosines from the sums."""
     n, k = F.shape
     p = sums.s1.shape[0]
-    count = sums.count if sums.count is not None else np.full(p, float(n))
-    shift = sums.shift if sums.shift is not None else np.zeros(p)
+    count = sums.counts()
     f_tot = F.sum(axis=0)
     sd_f = np.sqrt(np.maximum((F**2).sum(axis=0) / n - (f_tot / n) ** 2, 0.0))
     s2 = np.asarray(singular_values, dtype=np.float64) ** 2

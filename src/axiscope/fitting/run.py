@@ -755,12 +755,7 @@ def _manifest(src, job: _Job, n, prep, stats, fac, plan, runner) -> dict:
         "execution": runner.describe(),
         "passes": {
             "count": runner.n_passes,
-            "detail": [
-                {"name": r.name, "read_from": r.source, "seconds": round(r.seconds, 3), "blocks": r.n_blocks,
-                 **({} if r.bytes_to_client is None else
-                    {"bytes_to_client": r.bytes_to_client, "bytes_from_client": r.bytes_from_client})}
-                for r in runner.records
-            ],
+            "detail": [r.to_dict() for r in runner.records],
         },
         "accuracy": _accuracy_record(fac, job.engine.tol),
         **({"one_pass": _one_pass_record(fac)} if fac.sketch is not None else {}),

@@ -14,6 +14,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..core.backends import SourceBlocks
 from ..core.memory import default_memory_limit, parse_memory
 from ..core.passes import PassRunner, Progress, array_from_blocks, blas_threads
 from ..core.plan import plan_blocks
@@ -146,6 +147,67 @@ class Projection:
     passes: PassRunner
 
 
+@dataclass
+class _Placement:
+    """The projection's task: one block of stored values to its scores, squared norms and
+    filled-cell counts (a picklable object, so that a cluster's workers can run it).
+
+    Called as ``task(block, model_columns, total_columns, mean, inv, V, fill[, mean64,
+    inv64, V64])``: the model's arrays in the input's dtype, then in float64 for rows with
+    values too large for that dtype (absent for float64 input). Returns
+    ``((scores, sq, n_bad), None)``, or ``(None, (row, column))`` of the first non-finite
+    cell when they are not filled.
+    """
+
+    spec: object
+    fill_missing: bool
+    all_total: bool
+    same_columns: bool
+    limit: float
+
+    def __call__(self, block, model_columns, total_columns, mean_t, inv_t, V_t, fill_t, *exact):
+        mean, inv, V = exact or (mean_t, inv_t, V_t)
+        spec = self.spec
+        # at most one gathered copy of the model's columns, then everything in place in the input dtype
+        totals = None
+        if spec.counts_per is not None:
+            totals = row_totals(block if self.all_total else block[:, total_columns])
+        x = block if self.same_columns else block[:, model_columns]
+        x = transform_block(x, spec, totals=totals)
+        n_bad = np.zeros(x.shape[0])
+        limit = self.limit
+        if x.size and -limit <= x.min() and x.max() <= limit:  # the common case: two reductions
+            return (*_place(x, mean_t, inv_t, V_t), n_bad), None
+        missing = ~np.isfinite(x)
+        if missing.any():  # non-finite cells: an error, or the training mean
+            if spec.missing != "mean" and not self.fill_missing:
+                return None, first_nonfinite(x)
+            n_bad = missing.sum(axis=1)
+            x[missing] = fill_t[np.nonzero(missing)[1]]
+        with np.errstate(invalid="ignore"):
+            wide = (np.abs(x) > limit).any(axis=1)
+        if not wide.any():
+            return (*_place(x, mean_t, inv_t, V_t), n_bad), None
+        # rows with values too large for sums of squares in the input dtype: placed in float64
+        # (where their squared norm may still overflow: it is then infinite, and flagged)
+        scores = np.empty((x.shape[0], V.shape[1]))
+        sq = np.empty(x.shape[0])
+        scores[~wide], sq[~wide] = _place(x[~wide], mean_t, inv_t, V_t)
+        scores[wide], sq[wide] = _place(x[wide].astype(np.float64), mean, inv, V)
+        return (scores, sq, n_bad), None
+
+
+def _place(x, centre, inverse, loadings):
+    """Scores and squared norms of transformed, filled rows (in place, in their own dtype)."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        x -= centre
+        x *= inverse
+        scores = (x @ loadings).astype(np.float64)
+        sq = np.einsum("ij,ij->i", x, x, dtype=np.float64)
+    sq[~np.isfinite(sq)] = np.inf  # overflow: the sample lies beyond any limit
+    return scores, sq
+
+
 def project(
     model: Model,
     source: MatrixSource,
@@ -156,6 +218,7 @@ def project(
     threads: int | None = None,
     progress: Progress | None = None,
     covariates: np.ndarray | None = None,
+    runner: PassRunner | None = None,
 ) -> Projection:
     """Scores of (some) samples of ``source`` on the model's axes, in one streaming pass.
 
@@ -175,6 +238,11 @@ def project(
         when the model was fitted after adjusting for covariates: each sample is placed as
         ``x̃ − Γ·c`` (:mod:`axiscope.core.adjust`), its scores and squared distances those
         of the adjusted sample.
+    runner : PassRunner, optional
+        Runs the pass and keeps its record (default: a new one on ``threads`` threads).
+        Made with a cluster back-end (:func:`axiscope.core.backends.open_backend`), the
+        workers read their own blocks of a file they can open, and only the ``m × k``
+        scores come back.
 
     Notes
     -----
@@ -204,14 +272,11 @@ def project(
         V = np.hstack([V, adjusted.coef[present]])
     fill = model.extras.get("feature_mean", model.mean)[present]
 
-    def load(i):
-        a, b = spans[i]
-        # values too large for sums of squares are placed in float64 and flagged, not refused
-        block = source.read_samples(a, b, check_range=False)
-        return block[rows[a:b]] if not rows[a:b].all() else block
-
     dtype = source.dtype
-    mean_t, inv_t, V_t, fill_t = mean.astype(dtype), inv.astype(dtype), V.astype(dtype), fill.astype(dtype)
+    # the input's dtype for the common case; float64 for rows with values too large for it
+    exact = () if dtype == np.float64 else (mean, inv, V)
+    arrays = (match.model_columns, match.total_columns, mean.astype(dtype), inv.astype(dtype), V.astype(dtype),
+              fill.astype(dtype), *exact)
     # An absent feature takes its training mean too: a constant contribution to every
     # sample (zero when features are centred).
     absent = ~present
@@ -219,52 +284,19 @@ def project(
     absent_scores = absent_value @ (model.components[absent] if adjusted is None
                                     else np.hstack([model.components[absent], adjusted.coef[absent]]))
     absent_sq = float(absent_value @ absent_value)
-    all_total = match.total_columns.shape[0] == p_in
-    # the common case of the same features in the same order needs no gathered copy
-    same_columns = match.model_columns.shape[0] == p_in and bool(
-        np.array_equal(match.model_columns, np.arange(p_in)))
-    # a row whose values all stay within this squares and sums without overflow in ``dtype``
-    limit = value_limit(dtype, (1, int(present.sum())))
-
-    def place(x, centre, inverse, loadings):
-        """Scores and squared norms of transformed, filled rows (in place, in their own dtype)."""
-        with np.errstate(over="ignore", invalid="ignore"):
-            x -= centre
-            x *= inverse
-            scores = (x @ loadings).astype(np.float64)
-            sq = np.einsum("ij,ij->i", x, x, dtype=np.float64)
-        sq[~np.isfinite(sq)] = np.inf  # overflow: the sample lies beyond any limit
-        return scores, sq
-
-    def task(block):
-        # at most one gathered copy of the model's columns, then everything in place in the input dtype
-        totals = None
-        if spec.counts_per is not None:
-            totals = row_totals(block if all_total else block[:, match.total_columns])
-        x = block if same_columns else block[:, match.model_columns]
-        x = transform_block(x, spec, totals=totals)
-        n_bad = np.zeros(x.shape[0])
-        if x.size and -limit <= x.min() and x.max() <= limit:  # the common case: two reductions
-            return (*place(x, mean_t, inv_t, V_t), n_bad), None
-        missing = ~np.isfinite(x)
-        if missing.any():  # non-finite cells: an error, or the training mean
-            if spec.missing != "mean" and not fill_missing:
-                return None, first_nonfinite(x)
-            n_bad = missing.sum(axis=1)
-            x[missing] = fill_t[np.nonzero(missing)[1]]
-        with np.errstate(invalid="ignore"):
-            wide = (np.abs(x) > limit).any(axis=1)
-        if not wide.any():
-            return (*place(x, mean_t, inv_t, V_t), n_bad), None
-        # rows with values too large for sums of squares in the input dtype: placed in float64
-        # (where their squared norm may still overflow: it is then infinite, and flagged)
-        scores = np.empty((x.shape[0], V.shape[1]))
-        sq = np.empty(x.shape[0])
-        scores[~wide], sq[~wide] = place(x[~wide], mean_t, inv_t, V_t)
-        scores[wide], sq[wide] = place(x[wide].astype(np.float64), mean, inv, V)
-        return (scores, sq, n_bad), None
+    task = _Placement(
+        spec, fill_missing=fill_missing,
+        all_total=match.total_columns.shape[0] == p_in,
+        # the common case of the same features in the same order needs no gathered copy
+        same_columns=match.model_columns.shape[0] == p_in and bool(
+            np.array_equal(match.model_columns, np.arange(p_in))),
+        # a row whose values all stay within this squares and sums without overflow in ``dtype``
+        limit=value_limit(dtype, (1, int(present.sum()))))
 
     counts = [int(rows[a:b].sum()) for a, b in spans]
+    # the values as stored (spec=None): the task transforms and checks them; a picklable
+    # description, so that a cluster's workers read their own blocks
+    load = SourceBlocks(source, spans, [None if rows[a:b].all() else rows[a:b] for a, b in spans], None)
     X = array_from_blocks(load, counts, p_in, source.dtype, f"project-{id(source)}-{os.getpid()}")
     m = int(sum(counts))
     scores = np.empty((m, V.shape[1]))
@@ -288,9 +320,9 @@ def project(
         sq[start : start + s.shape[0]] = q + absent_sq
         n_bad[start : start + s.shape[0]] = nb
 
-    runner = PassRunner(threads=threads, progress=progress)
+    runner = runner or PassRunner(threads=threads, progress=progress)
     with blas_threads(threads):
-        runner.run("projection", "input", X, task, fold)
+        runner.run("projection", "input", X, task, fold, *arrays)
     if adjusted is not None:
         scores, sq = adjusted.apply(scores, sq, model)
     with np.errstate(over="ignore", invalid="ignore"):

@@ -47,6 +47,9 @@ from scipy import stats
 
 from .. import __version__
 from ..core.adjust import Covariates
+from ..core.backends import open_backend
+from ..core.options import Resources
+from ..core.passes import PassRunner
 from ..errors import InputError, ModelError, OptionError, agree, counted
 from ..io import MatrixSource, opened
 from ..model.project import project
@@ -379,6 +382,8 @@ def score(
     allow_missing_chunks: bool = False,
     covariates: Covariates | None = None,
     reference: str | os.PathLike | None = None,
+    scheduler=None,
+    cluster: str | None = None,
 ) -> ScoreResult:
     """Score new samples against a saved model and flag those the model does not describe.
 
@@ -426,6 +431,12 @@ def score(
         The matrix the model should have been fitted on. A warning is logged when the
         model's recorded training input (:func:`axiscope.io.identity.file_identity`) is
         another file, or when the model records none; the manifest keeps the outcome.
+    scheduler, cluster
+        Run the pass on a ``dask.distributed`` cluster, as for :func:`axiscope.fit`
+        (:class:`axiscope.Resources`): a scheduler's address or a client, or ``"local:N"``
+        worker processes started for the run; by default the current client when the caller
+        made one, otherwise threads of this process. The workers read their own blocks of an
+        HDF5, Zarr or ``.npy`` input; the scores equal the threaded ones to rounding.
 
     Returns
     -------
@@ -437,6 +448,7 @@ def score(
     ``O(m·k)`` for the ``m`` scored samples.
     """
     t0 = time.perf_counter()
+    resources = Resources(memory_limit=memory_limit, threads=threads, scheduler=scheduler, cluster=cluster)
     fill = _fill_option(fill_missing)
     if not 0.5 < confidence < 1:
         raise OptionError(f"confidence={confidence} is out of range; choose a value between 0.5 and 1 "
@@ -475,10 +487,12 @@ def score(
 
     with opened(source, dataset=dataset, sample_ids=sample_ids, feature_ids=feature_ids,
                 samples_in=samples_in, allow_external_data=allow_external_data,
-                allow_missing_chunks=allow_missing_chunks) as src:
+                allow_missing_chunks=allow_missing_chunks) as src, open_backend(resources) as backend:
         rows = None if design is None else covariates.encode_for(design, src.sample_ids)
+        runner = PassRunner(threads=resources.n_threads, progress=progress, backend=backend)
         proj = project(model, src, fill_missing=fill, memory_limit=memory_limit, threads=threads,
-                       progress=progress, covariates=rows)
+                       progress=progress, covariates=rows, runner=runner)
+        execution = runner.describe()
         input_info = {
             "path": str(src.path),
             "format": src.format,
@@ -557,10 +571,8 @@ def score(
             "flags": result.counts(),
             "flagged_at": {f"{level:g}": int(result.flagged(level).sum()) for level in levels},
         },
-        "passes": [
-            {"name": r.name, "read_from": r.source, "seconds": round(r.seconds, 3), "blocks": r.n_blocks}
-            for r in proj.passes.records
-        ],
+        "execution": execution,
+        "passes": [r.to_dict() for r in proj.passes.records],
         "seconds": round(time.perf_counter() - t0, 3),
     }
     if proj.match.n_missing:
