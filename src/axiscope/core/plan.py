@@ -235,6 +235,9 @@ def plan_fit(
         from .sparse_ops import check_sparse_spec
 
         check_sparse_spec(preprocess)
+        from .sparse_kernels import prepare
+
+        prepare()  # the compiled products are loaded before the process is measured
         return plan_sparse_blocks(
             n, p, int(source.nnz), sketch_width=min(n_components + engine.oversample, n, p),
             threads=resources.n_threads, budget=resources.budget, held_bytes=int(source.held_bytes),
