@@ -32,7 +32,6 @@ use SciPy's kernels even where numba is installed.
 from __future__ import annotations
 
 import importlib.util
-import logging
 import os
 import threading
 from typing import Any
@@ -42,7 +41,6 @@ import numpy as np
 __all__ = ["kernel_name", "prepare", "times_dense", "transposed_times", "centred_row_sq_norms", "column_statistics",
            "NUMBA_AVAILABLE"]
 
-logger = logging.getLogger(__name__)
 
 #: Whether numba is installed (the ``fast`` extra); it is imported on the first product only.
 NUMBA_AVAILABLE = importlib.util.find_spec("numba") is not None
@@ -232,8 +230,3 @@ def column_statistics(block) -> tuple[np.ndarray, np.ndarray]:
     m2 = np.empty(p)
     _compiled("_csc_column_statistics")(block.indptr, block.data, float(m), mean, m2)
     return mean, m2
-
-
-def describe() -> dict[str, Any]:
-    """Which kernel ran, for the manifest."""
-    return {"sparse_kernel": kernel_name()}
