@@ -7,7 +7,11 @@ then runs, each in a child process of its own with its peak resident memory (``V
 * ``axiscope.fit`` on the HDF5 file (``scale="none"``: covariance PCA, the problem
   scikit-learn solves), once per ``--memory-limit`` (the limit counts the whole process;
   by default 800MB, where later passes re-read the file, and 1.6GB, where the transformed
-  blocks stay in memory), and with ``--cli`` the command line too (tables and cards);
+  blocks stay in memory), with the compiled products (numba) and, with
+  ``--scipy-kernels``, once more at the last limit with SciPy's kernels
+  (``AXISCOPE_SPARSE_KERNEL=scipy``); with ``--cli`` the command line too (tables and cards);
+* the compile time of the compiled products on first use (a child with an empty numba
+  cache folder) and their load time from that cache (a second child);
 * scikit-learn ``PCA(svd_solver="arpack")`` on the same matrix loaded into memory as a
   ``scipy.sparse.csr_matrix`` (its implicitly centred path; load time and memory included);
 * scikit-learn ``TruncatedSVD`` on the same matrix in memory, which does NOT centre: it
@@ -33,6 +37,19 @@ import sys
 import tempfile
 import time
 from pathlib import Path
+
+COMPILE = r"""
+import json, time
+import numpy as np, scipy.sparse as sp
+from axiscope.core import sparse_kernels as K
+from axiscope.core.sparse_ops import sparse_products, sparse_stats_task
+block = sp.random(200, 100, density=0.05, format="csc", dtype=np.float32, random_state=0)
+W, z = np.ones((100, 4)), np.zeros(100)
+t0 = time.perf_counter()
+sparse_stats_task(block, W, True)
+sparse_products(block, W, np.zeros(4), z, z, np.ones(100), None, 4, True)
+print(json.dumps({"kernel": K.kernel_name(), "first_call_seconds": time.perf_counter() - t0}))
+"""
 
 CHILD = r"""
 import json, sys, time
@@ -65,6 +82,9 @@ elif method.startswith("axiscope-api"):
     result["s"] = res.factorization.singular_values.tolist()
     result["passes"] = res.manifest["passes"]["count"]
     result["plan_cache"] = res.manifest["plan"]["cache"]
+    result["cache_bytes"] = res.manifest["plan"]["cache_bytes"]
+    from axiscope.core.sparse_kernels import kernel_name
+    result["kernel"] = kernel_name()
     result["pass_seconds"] = [p["seconds"] for p in res.manifest["passes"]["detail"]]
     result["estimated_max_sv_error"] = res.manifest["accuracy"]["max_singular_value_error"]
 else:
@@ -111,8 +131,8 @@ def write_matrix(path: Path, n: int, p: int, density: float, seed: int = 0) -> i
     return nnz
 
 
-def run(method: str, path: Path, k: int, out: Path, limit: str) -> dict:
-    env = dict(os.environ, OPENBLAS_NUM_THREADS="2", OMP_NUM_THREADS="2")
+def run(method: str, path: Path, k: int, out: Path, limit: str, **extra_env: str) -> dict:
+    env = dict(os.environ, OPENBLAS_NUM_THREADS="2", OMP_NUM_THREADS="2", **extra_env)
     done = subprocess.run([sys.executable, "-c", CHILD, method, str(path), str(k), str(out), limit],
                           capture_output=True, text=True, env=env, check=False)
     if done.returncode != 0:
@@ -130,6 +150,8 @@ def main() -> None:
                         help="axiscope runs, one per limit (the whole process; the smaller re-reads the file "
                              "each pass, the larger keeps the transformed blocks in memory)")
     parser.add_argument("--reuse", action="store_true", help="use the matrix already in --folder")
+    parser.add_argument("--scipy-kernels", action="store_true",
+                        help="also fit at the last --memory-limit with SciPy's kernels instead of the compiled ones")
     parser.add_argument("--cli", action="store_true", help="also time the command line (tables, cards)")
     parser.add_argument("--folder", type=Path, default=None)
     args = parser.parse_args()
@@ -148,13 +170,23 @@ def main() -> None:
         nnz = write_matrix(path, args.samples, args.features, args.density)
     print(json.dumps({"written": str(path), "nnz": nnz, "seconds": round(time.perf_counter() - t0, 1),
                       "dense_float64_bytes": args.samples * args.features * 8}), flush=True)
+    cache_dir = folder / "numba-cache"  # empty: the first child compiles, the second loads
+    subprocess.run(["rm", "-rf", str(cache_dir)], check=True)
+    for label in ("compile", "load from cache"):
+        done = subprocess.run([sys.executable, "-c", COMPILE], capture_output=True, text=True, check=True,
+                              env=dict(os.environ, NUMBA_CACHE_DIR=str(cache_dir)))
+        print(json.dumps({"kernels": label, **json.loads(done.stdout.strip().splitlines()[-1])}), flush=True)
     results = {}
-    runs = [(f"axiscope-api {limit}", limit) for limit in args.memory_limit]
+    runs = [(f"axiscope-api {limit}", limit, {}) for limit in args.memory_limit]
+    if args.scipy_kernels:
+        runs.append((f"axiscope-api {args.memory_limit[-1]} scipy-kernels", args.memory_limit[-1],
+                     {"AXISCOPE_SPARSE_KERNEL": "scipy"}))
     if args.cli:
-        runs.append(("axiscope-cli", args.memory_limit[0]))
-    runs += [("sklearn-pca-arpack", ""), ("sklearn-truncated-svd", "")]
-    for method, limit in runs:
-        results[method] = run(method, path, args.k, folder / "axiscope-out", limit)
+        runs.append(("axiscope-cli", args.memory_limit[0], {}))
+    runs += [("sklearn-pca-arpack", "", {}), ("sklearn-truncated-svd", "", {})]
+    for method, limit, env in runs:
+        results[method] = run(method, path, args.k, folder / "axiscope-out", limit,
+                              NUMBA_CACHE_DIR=str(cache_dir), **env)
         print(json.dumps({"method": method, **results[method]}), flush=True)
     ref = np.array(results["sklearn-pca-arpack"]["s"])
     base = results["sklearn-pca-arpack"]

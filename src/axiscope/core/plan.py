@@ -235,10 +235,14 @@ def plan_fit(
         from .sparse_ops import check_sparse_spec
 
         check_sparse_spec(preprocess)
+        from .sparse_kernels import prepare
+
+        prepare()  # the compiled products are loaded before the process is measured
         return plan_sparse_blocks(
             n, p, int(source.nnz), sketch_width=min(n_components + engine.oversample, n, p),
             threads=resources.n_threads, budget=resources.budget, held_bytes=int(source.held_bytes),
-            source_in_memory=source.held_bytes > 0 or source.format == "array")
+            source_in_memory=source.held_bytes > 0 or source.format == "array",
+            stored_bytes=_cached_stored_bytes(source, preprocess))
     cache_features = min(preprocess.top_variable or p, p)
     transforms = preprocess.log_transform or preprocess.counts_per is not None
     return plan_blocks(
@@ -254,6 +258,15 @@ def plan_fit(
     )
 
 
+def _cached_stored_bytes(source: "MatrixSource", preprocess: PreprocessSpec) -> int:
+    """Bytes per stored value of a cached sparse block: its values (float32 stays float32
+    unless a per-sample transform rewrites them in float64) and its int32 indices."""
+    stored = int(getattr(source, "stored_bytes", 12))
+    if preprocess.log_transform or preprocess.counts_per is not None:
+        stored = max(stored, 12)
+    return stored
+
+
 def plan_sparse_blocks(
     n_samples: int,
     n_features: int,
@@ -265,6 +278,7 @@ def plan_sparse_blocks(
     held_bytes: int = 0,
     source_in_memory: bool = False,
     baseline: int | None = None,
+    stored_bytes: int = 12,
 ) -> BlockPlan:
     """Blocks of a sparse matrix cut by stored values, within ``budget``.
 
@@ -275,8 +289,9 @@ def plan_sparse_blocks(
     per sample and a ``p × l`` partial product. Half of a block's share goes to stored
     values, half to rows; at least 8 blocks when there are 512 samples or more. A single
     sample may exceed the block's stored values (it is a block alone) if the budget holds
-    a whole dense row of work. Transformed blocks stay in memory (12 bytes per stored
-    value plus 8 per sample) when that leaves room for one thread's smallest blocks, and
+    a whole dense row of work. Transformed blocks stay in memory, by columns (``stored_bytes``
+    per stored value: 8 for float32 values with int32 indices, 12 for float64; plus each
+    block's column pointers, ``4·(features + 1)``) when that leaves room for one thread's smallest blocks, and
     the blocks share what is left; otherwise, and when the source is already in memory,
     later passes read the source again (no scratch file for sparse input).
 
@@ -298,7 +313,7 @@ def plan_sparse_blocks(
     row_bytes = 3 * 8 * width
     smallest = 2 * (partial + BYTES_PER_STORED * n_features + row_bytes)  # one thread, one-sample blocks
     free = data_budget - fixed
-    cache_bytes = 12 * nonzeros + 8 * (n_samples + 1)
+    cache_bytes = stored_bytes * nonzeros + 4 * (n_features + 1) * _MIN_BLOCKS
     # the cache first, when it leaves room for one thread's smallest blocks; blocks share the rest
     cache = "memory" if not source_in_memory and free - cache_bytes >= 2 * smallest else "source"
     if cache == "memory":
@@ -321,6 +336,9 @@ def plan_sparse_blocks(
     if n_samples >= 512:  # enough blocks to keep threads busy
         block_nonzeros = min(block_nonzeros, max(n_features, -(-nonzeros // _MIN_BLOCKS)))
         rows = min(rows, -(-n_samples // _MIN_BLOCKS))
+    if cache == "memory":  # the column pointers of every block, now that their number is known
+        cache_bytes = stored_bytes * nonzeros + 4 * (n_features + 1) * max(
+            _MIN_BLOCKS, -(-nonzeros // block_nonzeros), -(-n_samples // rows))
     per_thread = 2 * (partial + BYTES_PER_STORED * block_nonzeros + rows * row_bytes)
     fitting = max(1, int(free // per_thread))
     return BlockPlan(rows, cache, budget, fixed, BYTES_PER_STORED * block_nonzeros + rows * row_bytes,

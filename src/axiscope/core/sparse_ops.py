@@ -1,13 +1,16 @@
 """Sparse blocks: transforms, statistics and products over the stored values only.
 
-A block of samples arrives from the reader as a :class:`scipy.sparse.csr_matrix` in float64;
-the per-sample transforms act on it, and the fit then keeps it in compressed-column form
-(:func:`as_columns`, the block's own CSC: its stored values grouped by feature). Both
-products then run as SciPy's row-gather kernels, ``X_b·W`` scattering into the small
-``rows × l`` output and ``X_bᵀ·Y`` gathering from it, measured 2–4× faster than on the CSR
-block (752,400 stored values, 30,000 features, l = 20: 0.045 s against 0.12 s for both
-products; the conversion costs about one product and is made once when blocks are
-cached). Nothing here forms a dense copy of a block: centring and scaling stay implicit, as a rank-one correction in float64,
+A block of samples arrives from the reader as a :class:`scipy.sparse.csr_matrix` with the
+file's float values (float32 stays float32; other dtypes become float64, and so does a
+block that a per-sample transform rewrites); the per-sample transforms act on it, and the
+fit then keeps it in compressed-column form (:func:`as_columns`, the block's own CSC: its
+stored values grouped by feature), in the layout and dtype the products of
+:mod:`axiscope.core.sparse_kernels` read, so a cached block is used as it is on every pass
+(8 bytes per stored float32 value with int32 indices). ``X_b·W`` scatters into the small
+``rows × l`` output and ``X_bᵀ·Y`` gathers from it, measured 2–4× faster than on the CSR
+block; the conversion costs about one product and is made once when blocks are cached.
+Every product accumulates in float64. Nothing here forms a dense copy of a block:
+centring and scaling stay implicit, as a rank-one correction in float64,
 
     X̃_b·W  = X_b·(d∘W) − 1·(μᵀ(d∘W))
     X̃_bᵀ·Y = d ∘ (X_bᵀ·Y − μ·(1ᵀY))
@@ -38,13 +41,15 @@ import numpy as np
 
 from ..errors import OptionError
 from .preprocess import BlockStats, NotADosage, PreprocessSpec
+from .sparse_kernels import centred_row_sq_norms, column_statistics, times_dense, transposed_times
 
 __all__ = ["as_columns", "is_sparse", "check_sparse_spec", "transform_sparse", "sparse_block_statistics", "sparse_block_sketch",
            "sparse_stats_task", "sparse_products", "SparseBlockCache", "BYTES_PER_STORED", "first_nonfinite_sparse"]
 
 #: Bytes held per stored value of a block in flight: the CSR block and its CSC copy
-#: (8 + 4 each), the feature index of each value (8) and the float64 work arrays of the
-#: statistics (value minus mean, squared: 16), rounded up (common practice, no source).
+#: (at most 8 + 4 each), a float64 copy of the values where a transform or SciPy's kernels
+#: need one (8), and the float64 work arrays of the statistics (16), rounded up (common
+#: practice, no source).
 BYTES_PER_STORED = 64
 
 
@@ -69,6 +74,8 @@ def transform_sparse(block, spec: PreprocessSpec):
             at = int(np.flatnonzero(bad)[0])
             row = int(np.searchsorted(block.indptr, at, side="right")) - 1
             raise NotADosage(values[at], row, int(block.indices[at]), int(bad.sum()))
+    if (spec.counts_per is not None or spec.log_transform) and block.dtype != np.float64:
+        block = block.astype(np.float64)  # the transformed values in float64
     if spec.counts_per is not None:
         totals = np.asarray(block.sum(axis=1), dtype=np.float64).reshape(-1)
         factors = np.where(totals > 0, spec.counts_per / np.where(totals > 0, totals, 1), 0)
@@ -106,11 +113,7 @@ def sparse_block_statistics(block) -> BlockStats:
     """Mean and sum of squared deviations of each feature over a block's rows (float64, CSC)."""
     block = as_columns(block)
     m, p = block.shape
-    stored = np.diff(block.indptr).astype(np.float64)
-    feature = _feature_of_each(block)
-    mean = np.bincount(feature, weights=block.data, minlength=p) / m
-    dev = block.data - mean[feature]
-    m2 = np.bincount(feature, weights=dev * dev, minlength=p) + (m - stored) * mean**2
+    mean, m2 = column_statistics(block)
     return BlockStats(m, np.full(p, float(m)), mean, m2, 0, float(np.finfo(np.float64).eps))
 
 
@@ -121,11 +124,11 @@ def sparse_block_sketch(block, omega: np.ndarray, mean: np.ndarray | None) -> np
     ``(X_b − 1m_bᵀ)ᵀ·t = X_bᵀ·t − m_b·(1ᵀt)``.
     """
     block = as_columns(block)
-    t = block @ omega
+    t = times_dense(block, omega)
     if mean is None:
-        return np.asarray(block.T @ t)
+        return transposed_times(block, t)
     t -= mean @ omega
-    return _minus_outer(np.asarray(block.T @ t), mean, t.sum(axis=0))
+    return _minus_outer(transposed_times(block, t), mean, t.sum(axis=0))
 
 
 def sparse_stats_task(block, omega: np.ndarray | None, centre: bool):
@@ -143,26 +146,24 @@ def sparse_products(block, W, offset, centre, residual, d, fill, gram_width, wan
     """``Y_b = X̃_b·W'``, ``(X_b − 1μᵀ)ᵀ·Y_b`` (before ``d``) and ``‖x̃_i‖²`` of one block (CSC).
 
     Same contract as the dense block products of :mod:`axiscope.core.engine` (``W`` is
-    ``d∘W``; ``centre + residual`` is ``μ``; ``offset = residualᵀ·W``), all in float64
-    over the stored values; ``fill`` is unused (sparse input has no missing values).
+    ``d∘W``; ``centre + residual`` is ``μ``; ``offset = residualᵀ·W``), all accumulated in
+    float64 over the stored values (:mod:`axiscope.core.sparse_kernels`); ``fill`` is unused
+    (sparse input has no missing values).
     """
     block = as_columns(block)
     W = np.asarray(W, dtype=np.float64)
-    y = np.asarray(block @ W)
+    y = times_dense(block, W)
     y -= centre @ W
     y -= offset
     gram = None
     if gram_width:
         head = y[:, :gram_width]
-        gram = _minus_outer(np.asarray(block.T @ head), centre, head.sum(axis=0))
+        gram = _minus_outer(transposed_times(block, head), centre, head.sum(axis=0))
     norms = None
     if want_norms:
         mu = centre + residual
-        feature = _feature_of_each(block)
-        x = block.data
         dd = d * d
-        terms = dd[feature] * x * (x - 2.0 * mu[feature])
-        norms = np.bincount(block.indices, weights=terms, minlength=block.shape[0])
+        norms = centred_row_sq_norms(block, dd, mu)
         norms += float(dd @ (mu * mu))
     return y, gram, norms
 

@@ -22,14 +22,15 @@ stored values; every index lies inside the matrix (one read of ``indices``, in s
 Stored NaN or infinite values are an error when read (an absent entry is a zero, so a
 sparse file cannot mark a value as missing).
 
-Blocks of samples come out as :class:`scipy.sparse.csr_matrix` in float64
-(:meth:`SparseMatrixSource.read_sparse`), duplicates summed, indices sorted. When samples
+Blocks of samples come out as :class:`scipy.sparse.csr_matrix` with float32 values when the
+file stores float32 and float64 otherwise (:meth:`SparseMatrixSource.read_sparse`; the
+products accumulate in float64 whatever the values' dtype), duplicates summed, indices sorted. When samples
 run along the compressed axis (CSR with samples as rows, CSC with samples as columns) a
 block is one slice of each array. Otherwise (CSC with samples as rows, the usual layout
 of feature × cell matrices read the other way round) the matrix is converted once to
 sample order, in memory, the first time a block is read: slabs of features are read,
-regrouped by sample with SciPy and scattered into one float64 CSR copy (12 bytes per stored
-value plus 8 per sample, held for the rest of the run and counted by the memory plan);
+regrouped by sample with SciPy and scattered into one CSR copy (values in the blocks' dtype:
+8 or 12 bytes per stored value, plus 8 per sample, held for the rest of the run and counted by the memory plan);
 this costs one more read of the stored values, and a pass after it costs no reading at all.
 :meth:`MatrixSource.read_samples` still returns dense blocks (``toarray``) for the readers
 of dense blocks (scoring, supplementary features), which size their blocks for dense rows.
@@ -98,6 +99,8 @@ class SparseBackend(Backend):
                  compressed: str, *, lock: bool, close: Any = None) -> None:
         self._data, self._indices, self._indptr = data, indices, indptr
         self.stored_dtype = np.dtype(data.dtype)
+        #: dtype of the values of a block: float32 stays float32, anything else is float64
+        self.value_dtype = np.dtype(np.float32 if self.stored_dtype == np.float32 else np.float64)
         self.file_shape = file_shape
         self.compressed = compressed
         self._lock = threading.Lock() if lock else None
@@ -123,14 +126,14 @@ class SparseBackend(Backend):
         return None if self._rows is None else self._rows[2]
 
     def read_csr(self, start: int, stop: int, samples_in: str):
-        """Samples ``start:stop`` as a float64 CSR matrix (samples × features), canonical."""
+        """Samples ``start:stop`` as a CSR matrix (samples × features) of :attr:`value_dtype`, canonical."""
         import scipy.sparse as sp
 
         n_features = self.file_shape[1] if samples_in == "rows" else self.file_shape[0]
         if self.sample_major(samples_in):
             a, b = int(self._indptr[start]), int(self._indptr[stop])
             data, indices = self._slice(a, b)
-            data = data.astype(np.float64, copy=True)
+            data = data.astype(self.value_dtype, copy=True)
             pointers = (self._indptr[start : stop + 1] - a).astype(np.int64)
         else:
             data_all, indices_all, pointers_all = self._converted(samples_in)
@@ -146,7 +149,7 @@ class SparseBackend(Backend):
         return np.asarray(self.read_csr(start, stop, samples_in).toarray(), dtype=dtype, order="C")
 
     def _converted(self, samples_in: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """The whole matrix in sample order (float64 values, built once, slab by slab)."""
+        """The whole matrix in sample order (values of :attr:`value_dtype`, built once, slab by slab)."""
         with self._convert_lock:
             if self._rows is None:
                 self._rows = self._convert(samples_in)
@@ -163,7 +166,7 @@ class SparseBackend(Backend):
             counts += np.bincount(idx, minlength=n_samples)
         pointers = np.zeros(n_samples + 1, dtype=np.int64)
         np.cumsum(counts, out=pointers[1:])
-        data = np.empty(self.nnz, dtype=np.float64)
+        data = np.empty(self.nnz, dtype=self.value_dtype)
         index_type = np.int32 if major < 2**31 else np.int64
         indices = np.empty(self.nnz, dtype=index_type)
         fill = pointers[:-1].copy()
@@ -173,7 +176,7 @@ class SparseBackend(Backend):
             f1 = min(major, max(f1, f0 + 1))
             a, b = int(self._indptr[f0]), int(self._indptr[f1])
             values, idx = self._slice(a, b)
-            slab = sp.csc_matrix((values.astype(np.float64), idx, self._indptr[f0 : f1 + 1] - a),
+            slab = sp.csc_matrix((values.astype(self.value_dtype), idx, self._indptr[f0 : f1 + 1] - a),
                                  shape=(n_samples, f1 - f0)).tocsr()
             per_row = np.diff(slab.indptr)
             where = np.arange(slab.nnz, dtype=np.int64) + np.repeat(fill - slab.indptr[:-1], per_row)
@@ -194,8 +197,9 @@ class SparseBackend(Backend):
 class SparseMatrixSource(MatrixSource):
     """A :class:`MatrixSource` over a compressed sparse matrix.
 
-    Blocks are computed in float64 (:attr:`dtype`) whatever the stored dtype: the implicit
-    centring ``X·W − 1·(μᵀW)`` is a rank-one correction that must not lose digits.
+    Products are computed in float64 (:attr:`dtype`) whatever the stored dtype: the implicit
+    centring ``X·W − 1·(μᵀW)`` is a rank-one correction that must not lose digits. The
+    blocks' values keep float32 when the file stores float32 (:attr:`stored_bytes`).
 
     Attributes (besides those of :class:`MatrixSource`)
     ----------------------------------------------------
@@ -218,8 +222,10 @@ class SparseMatrixSource(MatrixSource):
         self.nnz = backend.nnz
         self.plain_reads = False
         self.held_bytes = int(held_bytes)
+        #: bytes per stored value of a block (values in their block dtype, int32 or int64 indices)
+        self.stored_bytes = backend.value_dtype.itemsize + (4 if self.shape[1] < 2**31 else 8)
         if not backend.sample_major(self.samples_in):
-            self.held_bytes += 12 * self.nnz + 8 * (self.shape[0] + 1)
+            self.held_bytes += self.stored_bytes * self.nnz + 8 * (self.shape[0] + 1)
         self.notes.pop("computed_in", None)
         n, p = self.shape
         self.notes.update({"storage": "sparse, compressed by " + ("samples" if backend.sample_major(self.samples_in)
@@ -229,7 +235,7 @@ class SparseMatrixSource(MatrixSource):
                            "computed_in": "float64 (sparse input)"})
 
     def read_sparse(self, start: int, stop: int):
-        """Samples ``start:stop`` as a float64 :class:`scipy.sparse.csr_matrix`, values checked.
+        """Samples ``start:stop`` as a :class:`scipy.sparse.csr_matrix` (float32 or float64), values checked.
 
         Raises
         ------
@@ -250,8 +256,9 @@ class SparseMatrixSource(MatrixSource):
     def _check_stored(self, block, start: int) -> None:
         values = block.data
         limit = self.value_limit
-        if values.size == 0 or (-limit <= values.min() and values.max() <= limit):
+        if values.size == 0 or (-limit <= float(values.min()) and float(values.max()) <= limit):
             return
+        values = values.astype(np.float64)  # compared in float64 (the limit may exceed float32's range)
         bad = ~np.isfinite(values) | (np.abs(np.nan_to_num(values, nan=0.0)) > limit)
         at = int(np.flatnonzero(bad)[0])
         row = int(np.searchsorted(block.indptr, at, side="right")) - 1
