@@ -155,19 +155,24 @@ def prepare() -> None:
     if kernel_name() == "numba":
         import scipy.sparse as sp
 
-        block = sp.csc_matrix(np.ones((2, 2), dtype=np.float32))
-        column_statistics(block)
-        centred_row_sq_norms(block, np.ones(2), np.zeros(2))
-        transposed_times(block, times_dense(block, np.ones((2, 1))))
+        for dtype in (np.float32, np.float64):  # the values as stored, or transformed
+            block = sp.csc_matrix(np.ones((2, 2), dtype=dtype))
+            column_statistics(block)
+            centred_row_sq_norms(block, np.ones(2), np.zeros(2))
+            transposed_times(block, times_dense(block, np.ones((2, 1))))
 
 
 # ------------------------------------------------------------------------------ dispatch
 
 
 def _arrays(block) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The block's arrays in the only types the loops are compiled for: int64 offsets, int32
+    row numbers (rows of one block), float32 or float64 values. Any other combination would
+    compile a new version during a pass, whose memory the plan did not see."""
     if block.format != "csc":
         raise TypeError(f"expected a CSC block, got {block.format}")
-    return block.indptr, block.indices, block.data
+    data = block.data if block.data.dtype in (np.float32, np.float64) else block.data.astype(np.float64)
+    return block.indptr.astype(np.int64, copy=False), block.indices.astype(np.int32, copy=False), data
 
 
 def _float64(block):
@@ -228,5 +233,6 @@ def column_statistics(block) -> tuple[np.ndarray, np.ndarray]:
         return mean, m2
     mean = np.empty(p)
     m2 = np.empty(p)
-    _compiled("_csc_column_statistics")(block.indptr, block.data, float(m), mean, m2)
+    indptr, _, data = _arrays(block)
+    _compiled("_csc_column_statistics")(indptr, data, float(m), mean, m2)
     return mean, m2
