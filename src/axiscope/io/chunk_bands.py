@@ -15,6 +15,7 @@ only the work). The memory plan counts the decoded band of one read per thread
 
 from __future__ import annotations
 
+import os
 import threading
 from collections import OrderedDict
 from collections.abc import Callable
@@ -147,7 +148,7 @@ def chunk_bands(backend, samples_in: str) -> ChunkBands | None:
         return None
     axis = 0 if samples_in == "rows" else 1
     bands = backend._bands.get(samples_in)
-    if bands is None:
-        bands = backend._bands.setdefault(
-            samples_in, ChunkBands(backend.disk_chunks[axis], backend.file_shape[axis], axis=axis))
+    if bands is None:  # as many bands held as reads may run at once (threads: at most the cores)
+        bands = backend._bands.setdefault(samples_in, ChunkBands(
+            backend.disk_chunks[axis], backend.file_shape[axis], axis=axis, keep=max(2, os.cpu_count() or 1)))
     return bands
