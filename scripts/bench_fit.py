@@ -270,6 +270,17 @@ def _count_chunk_fetches() -> dict:
     return counts
 
 
+def _resident_bytes() -> int | None:
+    """This process's resident memory now (VmRSS), or None where /proc is missing."""
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmRSS:"):
+                return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return None
+
+
 def worker_axiscope(job: dict) -> dict:
     _limit_threads(job.get("threads"))
     from axiscope import EngineSettings, PreprocessSpec, Resources, fit
@@ -277,6 +288,7 @@ def worker_axiscope(job: dict) -> dict:
     if job.get("cache", "auto") != "auto":
         _impose_cache(job["cache"])
     fetched = _count_chunk_fetches() if job.get("format") == "zarr" else None
+    rss_before = _resident_bytes()  # interpreter and libraries: not part of the fit's budget from Python
     t0 = time.perf_counter()
     res = fit(job["path"], n_components=job["k"], preprocess=PreprocessSpec(scale="none"),
               engine=EngineSettings(method="randomized", tol=job.get("tol", 1e-6)),
@@ -304,6 +316,7 @@ def worker_axiscope(job: dict) -> dict:
         "cache_held_bytes": plan.get("cache_held_bytes"),
         "cache_spilled_bytes": plan.get("cache_spilled_bytes"),
         "decoded_bytes": res.model.n_samples * res.input_feature_ids.shape[0] * 4,
+        "rss_before": rss_before,
         "chunk_fetches": fetched["fetches"] if fetched else None,
         "chunks_fetched": len(fetched["keys"]) if fetched else None,
     }
@@ -712,6 +725,8 @@ def _describe(row: Row, worker: str, res: dict) -> None:
         row.notes.append(f"cache: {res['cache']}")
         row.notes.append(f"{res['power_iterations']} power iterations")
         row.notes.append(f"blocks of {res['block_rows']} rows, {res['threads']} threads")
+        if res.get("rss_before"):
+            row.notes.append(f"RSS before the fit {_fmt_bytes(res['rss_before'])}")
         row.notes.append(f"first pass {res['first_pass_seconds']:.1f} s, {res['passes'] - 1} later "
                          f"{res['later_pass_seconds']:.1f} s; {res['source_passes']} read the source")
         if res.get("cache_held_bytes") is not None:
