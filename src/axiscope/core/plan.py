@@ -257,7 +257,10 @@ def decoded_chunk_bytes(source: "MatrixSource") -> int:
     A read decodes every chunk its rows touch, whole: a band of ``sample_chunk`` samples
     across all features (chunks of one band may be decoded concurrently), whatever the rows
     of the block, and holds the compressed bytes (up to the decoded size for data that do
-    not compress) beside the decoded ones: twice the band is counted. Measured on Zarr with
+    not compress) beside the decoded ones: twice the band is counted. Blocks smaller than
+    the band are served from the decoded band, held until its last block was read
+    (:class:`axiscope.io.chunk_bands.ChunkBands`): one band held and one being decoded per
+    thread, within the same count. Measured on Zarr with
     zstd, 2,000 × 20,000 float32 chunks of Gaussian values: reading 224 rows raised the
     resident memory by 311 MB for a 160 MB chunk. Contiguous and in-memory inputs are read
     straight into the block: 0.
