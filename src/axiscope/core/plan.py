@@ -34,10 +34,6 @@ _REFERENCE_WINDOW = 4
 #: Inputs of at least 512 samples are cut into at least this many blocks, so that threads
 #: have blocks to share (a constant, not the thread count: see ``_REFERENCE_WINDOW``).
 _MIN_BLOCKS = 8
-#: With large decoded chunks, two threads' worth of blocks is kept while blocks keep at least
-#: this many rows: measured on 40,000 × 20,000 float32 Zarr with 2,000-row chunks under 1 GB,
-#: one thread with blocks of 958 rows took 52 s, two with smaller blocks less (BENCHMARKS.md).
-_SHARED_MIN_ROWS = 64
 
 
 @dataclass
@@ -203,8 +199,8 @@ def _block_rows(free: int, n_samples: int, n_features: int, itemsize: int, parti
     rows = window = 0
     for window in (_REFERENCE_WINDOW, 2):  # two threads' worth, else one thread's
         rows = int(((free - (window // 2) * chunk_bytes) // window - partial) // row_bytes)
-        if rows >= 1 and (window == 2 or 4 * chunk_bytes <= free or rows >= _SHARED_MIN_ROWS):
-            break  # (large decoded chunks: one thread's worth only when two leave tiny blocks)
+        if rows >= 1 and (window == 2 or 4 * chunk_bytes <= free):
+            break  # (large decoded chunks: one thread's worth, for blocks of more rows)
     if rows < 1:
         return rows, window
     rows = int(min(rows, _MAX_BLOCK_BYTES // max(1, n_features * itemsize)))
