@@ -200,7 +200,9 @@ def _block_rows(free: int, n_samples: int, n_features: int, itemsize: int, parti
     for window in (_REFERENCE_WINDOW, 2):  # two threads' worth, else one thread's
         rows = int(((free - (window // 2) * chunk_bytes) // window - partial) // row_bytes)
         if rows >= 1 and (window == 2 or 4 * chunk_bytes <= free):
-            break  # (large decoded chunks: one thread's worth, for blocks of more rows)
+            break  # (large decoded chunks: one thread's worth, for blocks of more rows; measured
+            # on 160 MB chunks under 1 GB: one thread with 958-row blocks 52 s, two threads with
+            # 132-row blocks 67 s, BENCHMARKS.md)
     if rows < 1:
         return rows, window
     rows = int(min(rows, _MAX_BLOCK_BYTES // max(1, n_features * itemsize)))
