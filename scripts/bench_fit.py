@@ -26,14 +26,27 @@ are ``sqrt(λ)``. The reference is cached beside the data. For every method the 
 the largest relative error of σ1..σk and the largest principal-angle sine between its
 k-dimensional right singular subspace and the reference one (``scipy.linalg.subspace_angles``).
 
-The report (machine, command line, date, one Markdown table per size) is printed and, with
-``--out FILE``, appended to FILE.
+The report (machine, command line, date, one Markdown table per size and chunk layout) is
+printed and, with ``--out FILE``, appended to FILE.
+
+Chunk layouts and caches: ``--zarr-chunks 2000x20000,auto`` measures several Zarr chunk
+layouts of the same values one after the other (the values are drawn in 500-row units, so
+the HDF5 copy and the exact reference are shared); ``--axiscope-runs auto,source,compressed-all``
+runs axiscope once per entry with that block cache imposed on its plan (optionally
+``KIND@TOL`` for another tolerance), and the notes give the first and later passes' times,
+the compressed cache's size and the number of chunk files Zarr fetched.
 
 Examples
 --------
 Small smoke run (seconds)::
 
     python scripts/bench_fit.py --sizes 2000x3000 --data-dir /tmp/benchsmall
+
+The later passes' cache on two chunk layouts, side by side (about 30 minutes with the
+reference)::
+
+    python scripts/bench_fit.py --sizes 40000x20000 --zarr-chunks 2000x20000,auto --inputs zarr \
+        --axiscope-runs auto,source,compressed-all,auto@1e-4 --methods axiscope,floor,dask
 
 Full benchmark (roughly 40 minutes on 2 cores, half of it for the exact references, which
 are cached; about 9 GB of disk for the data)::
