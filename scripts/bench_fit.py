@@ -26,14 +26,27 @@ are ``sqrt(λ)``. The reference is cached beside the data. For every method the 
 the largest relative error of σ1..σk and the largest principal-angle sine between its
 k-dimensional right singular subspace and the reference one (``scipy.linalg.subspace_angles``).
 
-The report (machine, command line, date, one Markdown table per size) is printed and, with
-``--out FILE``, appended to FILE.
+The report (machine, command line, date, one Markdown table per size and chunk layout) is
+printed and, with ``--out FILE``, appended to FILE.
+
+Chunk layouts and caches: ``--zarr-chunks 2000x20000,auto`` measures several Zarr chunk
+layouts of the same values one after the other (the values are drawn in 500-row units, so
+the HDF5 copy and the exact reference are shared); ``--axiscope-runs auto,source,compressed-all``
+runs axiscope once per entry with that block cache imposed on its plan (optionally
+``KIND@TOL`` for another tolerance), and the notes give the first and later passes' times,
+the compressed cache's size and the number of chunk files Zarr fetched.
 
 Examples
 --------
 Small smoke run (seconds)::
 
     python scripts/bench_fit.py --sizes 2000x3000 --data-dir /tmp/benchsmall
+
+The later passes' cache on two chunk layouts, side by side (about 30 minutes with the
+reference)::
+
+    python scripts/bench_fit.py --sizes 40000x20000 --zarr-chunks 2000x20000,auto --inputs zarr \
+        --axiscope-runs auto,source,compressed-all,auto@1e-4 --methods axiscope,floor,dask
 
 Full benchmark (roughly 40 minutes on 2 cores, half of it for the exact references, which
 are cached; about 9 GB of disk for the data)::
@@ -76,6 +89,13 @@ LARGE_SIZE = "80000x20000"
 FLOOR_WIDTH = 30
 #: Target bytes of a row block read by the floors, the generator and the reference.
 BLOCK_BYTES = 64 * 2**20
+#: Rows drawn from one seeded generator: the values do not depend on the Zarr chunks, so
+#: every chunk layout of one matrix shares its HDF5 copy and its exact reference.
+GEN_ROWS = 500
+#: Kinds of block cache a run may impose on axiscope (``--axiscope-runs``): those of
+#: ``axiscope.core.plan.plan_blocks``, and ``compressed-all``, the compressed cache with no
+#: allowance (to measure its size and speed even where it does not fit the budget).
+CACHE_KINDS = ("auto", "memory", "compressed", "compressed-all", "scratch", "source")
 SCRIPT = Path(__file__).resolve()
 
 
@@ -162,17 +182,31 @@ def worker_generate(job: dict) -> dict:
     z = zarr.create_array(store=str(zpath), shape=(n, p), dtype="float32", chunks=chunks,
                           overwrite=True)
     rows = _block_rows(p, 4, align=z.chunks[0])
-    with h5py.File(hpath, "w") as h5:
-        ds = h5.create_dataset("matrix", shape=(n, p), dtype="float32")  # contiguous, no filter
+
+    def planted_rows(a: int, b: int) -> np.ndarray:
+        out = np.empty((b - a, p), dtype=np.float32)
+        for u0 in range(a - a % GEN_ROWS, b, GEN_ROWS):  # whole generator units, cut to a:b
+            u1 = min(n, u0 + GEN_ROWS)
+            g = np.random.default_rng([job["seed"], u0])
+            unit = g.standard_normal((u1 - u0, r)) @ W
+            unit += mu
+            unit += job["noise"] * g.standard_normal((u1 - u0, p))
+            lo, hi = max(a, u0), min(b, u1)
+            out[lo - a:hi - a] = unit[lo - u0:hi - u0]
+        return out
+
+    h5 = h5py.File(hpath, "w") if job["write_hdf5"] else None
+    try:
+        ds = h5.create_dataset("matrix", shape=(n, p), dtype="float32") if h5 else None  # contiguous, no filter
         for a, b in _spans(n, rows):
-            g = np.random.default_rng([job["seed"], a])
-            block = g.standard_normal((b - a, r)) @ W
-            block += mu
-            block += job["noise"] * g.standard_normal((b - a, p))
-            block32 = block.astype(np.float32)
+            block32 = planted_rows(a, b)
             z[a:b] = block32
-            ds[a:b] = block32
+            if ds is not None:
+                ds[a:b] = block32
             print(f"  generated rows {b}/{n}", file=sys.stderr, flush=True)
+    finally:
+        if h5 is not None:
+            h5.close()
     return {"zarr_chunks": list(z.chunks), "compressors": [repr(c) for c in z.compressors],
             "planted_singular_values_approx": (np.sqrt(n) * d).tolist()}
 
@@ -211,27 +245,93 @@ def worker_reference(job: dict) -> dict:
     return {"seconds_gram": t_gram, "seconds_total": time.perf_counter() - t0}
 
 
+def _impose_cache(kind: str) -> None:
+    """Make the fit's plan keep the cache ``kind`` (within the same budget; see CACHE_KINDS)."""
+    import dataclasses
+
+    from axiscope.fitting import run as run_module
+
+    planned = run_module.plan_fit
+
+    def imposed(*args, **kwargs):
+        plan = planned(*args, cache="compressed" if kind == "compressed-all" else kind, **kwargs)
+        if kind == "compressed-all":
+            plan = dataclasses.replace(plan, cache_allowance=2**62)
+        return plan
+
+    run_module.plan_fit = imposed
+
+
+def _count_chunk_fetches() -> dict:
+    """Count the chunk files Zarr fetches from a local store (its own reads, keys ``c/…``)."""
+    import threading
+
+    from zarr.storage import LocalStore
+
+    counts = {"fetches": 0, "keys": set()}
+    lock = threading.Lock()
+    original = LocalStore.get
+
+    async def counting(self, key, *args, **kwargs):
+        if key.startswith("c/"):
+            with lock:
+                counts["fetches"] += 1
+                counts["keys"].add(key)
+        return await original(self, key, *args, **kwargs)
+
+    LocalStore.get = counting
+    return counts
+
+
+def _resident_bytes() -> int | None:
+    """This process's resident memory now (VmRSS), or None where /proc is missing."""
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmRSS:"):
+                return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return None
+
+
 def worker_axiscope(job: dict) -> dict:
     _limit_threads(job.get("threads"))
     from axiscope import EngineSettings, PreprocessSpec, Resources, fit
 
+    if job.get("cache", "auto") != "auto":
+        _impose_cache(job["cache"])
+    fetched = _count_chunk_fetches() if job.get("format") == "zarr" else None
+    rss_before = _resident_bytes()  # interpreter and libraries: not part of the fit's budget from Python
     t0 = time.perf_counter()
     res = fit(job["path"], n_components=job["k"], preprocess=PreprocessSpec(scale="none"),
-              engine=EngineSettings(method="randomized"),
-              resources=Resources(memory_limit=job["memory_limit"], threads=job.get("threads")))
+              engine=EngineSettings(method="randomized", tol=job.get("tol", 1e-6)),
+              resources=Resources(memory_limit=job["memory_limit"], threads=job.get("threads"),
+                                  scratch=job.get("scratch")))
     seconds = time.perf_counter() - t0
     man = res.manifest
     if res.model.components.shape[0] != res.input_feature_ids.shape[0]:
         raise SystemExit("axiscope dropped features; the comparison needs all of them")
     _save_factors(job, res.model.singular_values, res.model.components)
     acc = man.get("accuracy", {})
+    detail = man["passes"]["detail"]
+    plan = man["plan"]
     return {
         "seconds": seconds,
         "passes": man["passes"]["count"],
-        "cache": man["plan"]["cache"],
-        "block_rows": man["plan"]["block_rows"],
+        "cache": plan["cache"],
+        "block_rows": plan["block_rows"],
+        "threads": plan["threads"],
         "power_iterations": acc.get("power_iterations_run"),
-        "pass_seconds": [(d["name"], d["read_from"], d["seconds"]) for d in man["passes"]["detail"]],
+        "pass_seconds": [(d["name"], d["read_from"], d["seconds"]) for d in detail],
+        "first_pass_seconds": detail[0]["seconds"],
+        "later_pass_seconds": sum(d["seconds"] for d in detail[1:]),
+        "source_passes": sum(d["read_from"] in ("input", "source") for d in detail),
+        "cache_held_bytes": plan.get("cache_held_bytes"),
+        "cache_spilled_bytes": plan.get("cache_spilled_bytes"),
+        "decoded_bytes": res.model.n_samples * res.input_feature_ids.shape[0] * 4,
+        "rss_before": rss_before,
+        "chunk_fetches": fetched["fetches"] if fetched else None,
+        "chunks_fetched": len(fetched["keys"]) if fetched else None,
     }
 
 
@@ -409,7 +509,7 @@ class Child:
 
 
 def run_child(name: str, job: dict, workdir: Path, *, timeout: float | None = None,
-              echo: bool = False) -> Child:
+              echo: bool = False, env: dict | None = None) -> Child:
     """Run one worker in a fresh interpreter; time it and read its own peak RSS (wait4)."""
     fd, job_file = tempfile.mkstemp(prefix=f"{name}-", suffix=".json", dir=workdir)
     os.close(fd)
@@ -420,7 +520,7 @@ def run_child(name: str, job: dict, workdir: Path, *, timeout: float | None = No
     with open(err_path, "wb") as err:
         t0 = time.perf_counter()
         proc = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
-                                stderr=None if echo else err)
+                                stderr=None if echo else err, env=None if env is None else {**os.environ, **env})
         deadline = None if timeout is None else t0 + timeout
         killed = False
         while True:
@@ -463,11 +563,15 @@ class Row:
     factors: str | None = None
 
 
+def _values_dir(args, n: int, p: int) -> Path:
+    """Folder of what depends on the values only: the HDF5 copy and the exact reference."""
+    return Path(args.data_dir) / (f"planted-{n}x{p}-rank{args.rank}-noise{args.noise:g}-decay{args.decay:g}"
+                                  f"-seed{args.seed}-units{GEN_ROWS}")
+
+
 def _dataset_dir(args, n: int, p: int) -> Path:
     chunks = "auto" if args.zarr_chunks is None else f"{args.zarr_chunks[0]}x{args.zarr_chunks[1]}"
-    tag = (f"planted-{n}x{p}-rank{args.rank}-noise{args.noise:g}-decay{args.decay:g}"
-           f"-seed{args.seed}-chunks{chunks}")
-    return Path(args.data_dir) / tag
+    return Path(str(_values_dir(args, n, p)) + f"-chunks{chunks}")
 
 
 def ensure_data(args, n: int, p: int, workdir: Path) -> dict:
@@ -479,25 +583,30 @@ def ensure_data(args, n: int, p: int, workdir: Path) -> dict:
     if d.exists():
         shutil.rmtree(d)  # an interrupted generation: start again
     d.mkdir(parents=True)
-    need = 2.1 * n * p * 4
+    values = _values_dir(args, n, p)
+    values.mkdir(parents=True, exist_ok=True)
+    write_hdf5 = not (values / "hdf5.done").exists()
+    need = (2.1 if write_hdf5 else 1.05) * n * p * 4
     free = shutil.disk_usage(d).free
     if free < need:
         raise SystemExit(f"error: {d}: needs about {_fmt_bytes(need)} of disk for the Zarr and "
                          f"HDF5 copies, {_fmt_bytes(free)} free; choose another --data-dir")
     say(f"[{n}x{p}] generating planted matrix in {d}")
     job = {"n": n, "p": p, "rank": args.rank, "seed": args.seed, "noise": args.noise,
-           "decay": args.decay, "chunks": args.zarr_chunks,
-           "zarr": str(d / "matrix.zarr"), "hdf5": str(d / "matrix.h5")}
+           "decay": args.decay, "chunks": args.zarr_chunks, "write_hdf5": write_hdf5,
+           "zarr": str(d / "matrix.zarr"), "hdf5": str(values / "matrix.h5")}
     child = run_child("generate", job, workdir, echo=args.verbose)
     if child.returncode != 0:
         raise SystemExit(f"error: generating {d} failed: {child.stderr_tail}")
+    if write_hdf5:
+        (values / "hdf5.done").write_text("the HDF5 copy is complete\n")
     meta = dict(job, **child.result, seconds=round(child.wall, 1))
     meta_path.write_text(json.dumps(meta, indent=1))  # written last: marks a complete data set
     return meta
 
 
 def ensure_reference(args, n: int, p: int, meta: dict, workdir: Path) -> tuple[Path, dict]:
-    d = _dataset_dir(args, n, p)
+    d = _values_dir(args, n, p)
     m = min(args.components + 1, p - 1)
     ref = d / f"reference-top{m}.npz"
     info_path = ref.with_suffix(".json")
@@ -511,8 +620,12 @@ def ensure_reference(args, n: int, p: int, meta: dict, workdir: Path) -> tuple[P
             return other, json.loads(other.with_suffix(".json").read_text())
     say(f"[{n}x{p}] computing exact reference (float64 Gram {p}x{p} + LAPACK eigh)")
     tmp = d / f".tmp-{ref.name}"
+    # OpenBLAS 0.3.30 (scipy's) picks its SkylakeX kernels on CPUs with AVX-512 and crashed
+    # (segmentation fault) in dsyrk for the 20,000 × 20,000 Gram here; the Haswell kernels
+    # do not. Only the reference is computed so; the measured methods keep the default.
+    coretype = {} if os.environ.get("OPENBLAS_CORETYPE") else {"OPENBLAS_CORETYPE": "Haswell"}
     child = run_child("reference", {"hdf5": meta["hdf5"], "m": m, "out": str(tmp)}, workdir,
-                      echo=args.verbose)
+                      echo=args.verbose, env=coretype)
     if child.returncode != 0:
         raise SystemExit(f"error: exact reference for {d} failed: {child.stderr_tail}")
     os.replace(tmp, ref)
@@ -532,15 +645,23 @@ def plan_runs(args, size_index: int, meta: dict) -> list[tuple[Row, str, dict]]:
     plan: list[tuple[Row, str, dict]] = []
     methods = args.methods
     for method in methods:
+        inputs = [(fmt, path) for fmt, path in (("zarr", zpath), ("hdf5", hpath)) if fmt in args.inputs]
         if method == "floor":
             for kind, label in (("read", "floor: one streaming read"),
                                 ("product", f"floor: one pass A·Ω (Ω {FLOOR_WIDTH} columns)")):
-                for fmt, path in (("zarr", zpath), ("hdf5", hpath)):
+                for fmt, path in inputs:
                     plan.append((Row(label, fmt), "floor", dict(common, kind=kind, format=fmt, path=path)))
         elif method == "axiscope":
-            for fmt, path in (("zarr", zpath), ("hdf5", hpath)):
-                plan.append((Row(f"axiscope (memory limit {args.memory_limit})", fmt), "axiscope",
-                             dict(common, path=path, memory_limit=args.memory_limit)))
+            for fmt, path in inputs:
+                for kind, tol in args.axiscope_runs:
+                    what = [f"memory limit {args.memory_limit}"]
+                    if kind != "auto":
+                        what.append(f"cache imposed: {kind}")
+                    if tol is not None:
+                        what.append(f"tol {tol:g}")
+                    plan.append((Row(f"axiscope ({'; '.join(what)})", fmt), "axiscope",
+                                 dict(common, path=path, memory_limit=args.memory_limit, format=fmt, cache=kind,
+                                      tol=1e-6 if tol is None else tol, scratch=args.scratch)))
         elif method == "sklearn":
             plan.append((Row("scikit-learn PCA randomized (load included)", "zarr"), "sklearn",
                          dict(common, path=zpath)))
@@ -620,6 +741,18 @@ def _describe(row: Row, worker: str, res: dict) -> None:
         row.passes = str(res["passes"])
         row.notes.append(f"cache: {res['cache']}")
         row.notes.append(f"{res['power_iterations']} power iterations")
+        row.notes.append(f"blocks of {res['block_rows']} rows, {res['threads']} threads")
+        if res.get("rss_before"):
+            row.notes.append(f"RSS before the fit {_fmt_bytes(res['rss_before'])}")
+        row.notes.append(f"first pass {res['first_pass_seconds']:.1f} s, {res['passes'] - 1} later "
+                         f"{res['later_pass_seconds']:.1f} s; {res['source_passes']} read the source")
+        if res.get("cache_held_bytes") is not None:
+            held, spilled = res["cache_held_bytes"], res["cache_spilled_bytes"]
+            kept = res["decoded_bytes"] - spilled
+            ratio = f", ratio {kept / held:.2f}" if held else ""
+            row.notes.append(f"compressed in memory {_fmt_bytes(held)}{ratio}, scratch {_fmt_bytes(spilled)}")
+        if res.get("chunk_fetches") is not None:
+            row.notes.append(f"Zarr chunk fetches {res['chunk_fetches']} for {res['chunks_fetched']} chunks")
     elif worker == "sklearn":
         row.passes = "1 read"
         row.notes.append(f"load {res['seconds_load']:.1f} s; then in memory")
@@ -742,8 +875,16 @@ def build_parser() -> argparse.ArgumentParser:
     ap.add_argument("--threads", type=int, default=None,
                     help="threads for axiscope, dask, the floors and BLAS (default: all cores)")
     ap.add_argument("--repeats", type=int, default=1, help="runs per method; median wall (default 1)")
-    ap.add_argument("--zarr-chunks", type=_parse_chunks, default=None, metavar="ROWSxCOLS|auto",
-                    help="chunk shape of the Zarr store (default: zarr's own 'auto')")
+    ap.add_argument("--zarr-chunks", default="auto", metavar="ROWSxCOLS|auto[,...]",
+                    help="chunk shape of the Zarr store; several, comma-separated, are measured one after "
+                         "the other in one run, on the same values (default: zarr's own 'auto')")
+    ap.add_argument("--inputs", default="zarr,hdf5",
+                    help="inputs of the axiscope and floor runs: zarr, hdf5 or both (default zarr,hdf5)")
+    ap.add_argument("--axiscope-runs", default="auto", metavar="KIND[@TOL][,...]",
+                    help="one axiscope run per entry: the block cache imposed on the plan (auto: the "
+                         f"plan's choice; {', '.join(CACHE_KINDS[1:])}) and optionally the tolerance "
+                         "of the singular values (default auto, tol 1e-6)")
+    ap.add_argument("--scratch", default=None, help="axiscope's scratch folder (default: the temporary folder)")
     ap.add_argument("--data-dir", default="bench-data", help="where data and references are cached")
     ap.add_argument("--out", default=None, help="append the Markdown report to this file")
     ap.add_argument("--skip-reference", action="store_true",
@@ -774,6 +915,22 @@ def main(argv: list[str] | None = None) -> int:
     if unknown:
         ap.error(f"--methods: unknown {', '.join(unknown)}; choose from {', '.join(ALL_METHODS)}")
     args.methods = methods
+    try:
+        layouts = [_parse_chunks(c.strip()) for c in args.zarr_chunks.split(",") if c.strip()]
+    except argparse.ArgumentTypeError as exc:
+        ap.error(f"--zarr-chunks: {exc}")
+    args.inputs = tuple(x.strip() for x in args.inputs.split(",") if x.strip())
+    if not args.inputs or any(x not in ("zarr", "hdf5") for x in args.inputs):
+        ap.error("--inputs: choose zarr, hdf5 or zarr,hdf5")
+    entries, args.axiscope_runs = args.axiscope_runs, []
+    for entry in (e.strip() for e in entries.split(",") if e.strip()):
+        kind, _, tol = entry.partition("@")
+        if kind not in CACHE_KINDS:
+            ap.error(f"--axiscope-runs: unknown cache kind {kind!r}; choose from {', '.join(CACHE_KINDS)}")
+        try:
+            args.axiscope_runs.append((kind, float(tol) if tol else None))
+        except ValueError:
+            ap.error(f"--axiscope-runs: {tol!r} is not a tolerance")
     if args.repeats < 1:
         ap.error("--repeats must be at least 1")
     for n, p in sizes:
@@ -786,9 +943,11 @@ def main(argv: list[str] | None = None) -> int:
         workdir = Path(tmp)
         child_rss: list[int] = []
         for i, (n, p) in enumerate(sizes):
-            text, rss = run_size(args, i, n, p, workdir)
-            parts.append(text)
-            child_rss += rss
+            for layout in layouts:
+                args.zarr_chunks = layout
+                text, rss = run_size(args, i, n, p, workdir)
+                parts.append(text)
+                child_rss += rss
     parent_rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
     check = ("every figure above is larger, so each is the child's own peak"
              if child_rss and min(child_rss) > parent_rss else

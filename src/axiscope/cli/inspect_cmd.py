@@ -103,6 +103,7 @@ def inspect_command(
                  if plan.block_nonzeros else f"{plan.block_rows} samples")
     typer.echo(
         f"  fit with a {format_bytes(plan.budget)} budget and {resources.n_threads} threads: blocks of "
-        f"{per_block}, transformed blocks kept in {plan.cache} "
-        f"({format_bytes(plan.cache_bytes)}), fixed memory about {format_bytes(plan.fixed_bytes)}"
+        f"{per_block}, transformed blocks kept "
+        f"{'compressed in memory (about ' if plan.cache == 'compressed' else 'in ' + plan.cache + ' ('}"
+        f"{format_bytes(plan.cache_bytes)}), fixed memory about {format_bytes(plan.fixed_bytes)}"
     )

@@ -21,7 +21,7 @@ if TYPE_CHECKING:  # pragma: no cover
     from ..io import MatrixSource
 
 __all__ = ["BlockPlan", "plan_blocks", "plan_sparse_blocks", "plan_fit", "check_scratch_writable", "decoded_chunk_bytes",
-           "WINDOW", "window_block_rows"]
+           "compressed_cache_bytes", "WINDOW", "window_block_rows"]
 
 logger = logging.getLogger(__name__)
 
@@ -49,7 +49,7 @@ class BlockPlan:
     """
 
     block_rows: int
-    cache: str  # "memory" | "scratch" | "source"
+    cache: str  # "memory" | "compressed" | "scratch" | "source"
     budget: int
     fixed_bytes: int
     block_bytes: int
@@ -60,9 +60,14 @@ class BlockPlan:
     chunk_bytes: int = 0
     #: Sparse input: stored values per block (blocks are cut by these, ``block_rows`` at most).
     block_nonzeros: int | None = None
+    #: ``cache="compressed"``: compressed bytes the cache may hold in memory (blocks past it
+    #: go to the scratch file); ``cache_bytes`` is then the expected compressed size.
+    cache_allowance: int = 0
 
     def to_dict(self) -> dict:
         extra = {} if self.block_nonzeros is None else {"block_nonzeros": self.block_nonzeros}
+        if self.cache == "compressed":
+            extra["cache_allowance"] = self.cache_allowance
         return {**extra,
             "block_rows": self.block_rows,
             "threads": self.threads,
@@ -91,6 +96,8 @@ def plan_blocks(
     reread_cheap: bool = False,
     chunk_bytes: int = 0,
     baseline: int | None = None,
+    compressed_bytes: int | None = None,
+    cache: str = "auto",
 ) -> BlockPlan:
     """Choose block rows, Krylov basis width and cache location to stay within ``budget``.
 
@@ -102,7 +109,12 @@ def plan_blocks(
     partial product, and the decoded on-disk chunks of one read (``chunk_bytes``); and the
     cache when it is kept in memory. When the cache does not fit and ``reread_cheap`` (an
     uncompressed input needing no per-sample transform), later passes re-read the input
-    instead of writing a scratch copy of it.
+    instead of writing a scratch copy of it. Otherwise, when ``compressed_bytes`` (the
+    expected size of the cache compressed with :func:`axiscope.core.cache.fast_codec`)
+    fits what the work leaves, the cache is kept compressed in memory, with the scratch
+    file for any block past that allowance. ``cache`` other than ``"auto"`` imposes the kind
+    (``"compressed"``, ``"scratch"`` or ``"source"``; for measurements such as
+    ``scripts/bench_fit.py``), within the same budget.
 
     The block rows do not depend on ``threads``: they are sized for two threads' worth of
     blocks (``_REFERENCE_WINDOW``), or one thread's when the budget is smaller than that, so
@@ -130,11 +142,7 @@ def plan_blocks(
     row_bytes = 3 * n_features * itemsize + 8 * width
     partial = 8 * n_features * width
     free = data_budget - fixed
-    rows = window = 0
-    for window in (_REFERENCE_WINDOW, 2):  # two threads' worth, else one thread's
-        rows = int(((free - (window // 2) * chunk_bytes) // window - partial) // row_bytes)
-        if rows >= 1 and (window == 2 or 4 * chunk_bytes <= free):
-            break  # (large decoded chunks: one thread's worth, for blocks of more rows)
+    rows, window = _block_rows(free, n_samples, n_features, itemsize, partial, row_bytes, chunk_bytes, sample_chunk)
     if rows < 1:
         need = fixed + 2 * (partial + row_bytes) + chunk_bytes
         held = f"the process already holds {format_bytes(baseline)} and " if baseline else ""
@@ -144,22 +152,28 @@ def plan_blocks(
             f"{format_bytes(need)}{' more' if baseline else ''}; raise memory_limit to at least "
             f"{format_bytes(baseline + need).replace(' ', '')}, or lower n_components"
         )
-    rows = int(min(rows, _MAX_BLOCK_BYTES // max(1, n_features * itemsize)))
-    rows = max(1, min(rows, n_samples))
-    if n_samples >= 512:  # enough blocks to keep threads busy
-        rows = min(rows, -(-n_samples // _MIN_BLOCKS))
-    if sample_chunk and sample_chunk < n_samples:
-        # whole on-disk chunks per block, so no chunk is decoded twice
-        if rows >= sample_chunk:
-            rows = (rows // sample_chunk) * sample_chunk
-        elif window * (partial + sample_chunk * row_bytes) + (window // 2) * chunk_bytes <= free:
-            rows = sample_chunk
     per_thread = 2 * (partial + rows * row_bytes) + chunk_bytes
     cache_bytes = n_samples * cache_features * itemsize
-    if fixed + threads * per_thread + cache_bytes <= data_budget:
+    imposed, cache = cache, None
+    if imposed not in ("auto", "memory", "compressed", "scratch", "source"):
+        raise OptionError(f"cache={imposed!r} is not a cache kind; choose auto, memory, compressed, scratch or source")
+    if imposed != "auto":
+        cache = imposed
+        if imposed in ("scratch", "compressed"):
+            check_scratch_writable(scratch)
+    elif fixed + threads * per_thread + cache_bytes <= data_budget:
         cache = "memory"
     elif reread_cheap:  # the input is an uncompressed file: reading it again is as cheap as a scratch copy
         cache = "source"
+    elif compressed_bytes is not None and _smaller_blocks_leave_room(
+            free - compressed_bytes, rows, threads, n_samples, n_features, itemsize, partial, row_bytes,
+            chunk_bytes, sample_chunk) and scratch_has_room(scratch, cache_bytes):
+        # the compressed cache is reserved first, and blocks share what it leaves
+        check_scratch_writable(scratch)  # (for blocks past the allowance)
+        cache = "compressed"
+        rows, window = _block_rows(free - compressed_bytes, n_samples, n_features, itemsize, partial, row_bytes,
+                                   chunk_bytes, sample_chunk)
+        per_thread = 2 * (partial + rows * row_bytes) + chunk_bytes
     elif scratch_has_room(scratch, cache_bytes):
         check_scratch_writable(scratch)
         cache = "scratch"
@@ -169,10 +183,53 @@ def plan_blocks(
             format_bytes(cache_bytes), scratch or "the temporary directory",
         )
         cache = "source"
-    held = cache_bytes if cache == "memory" else 0
+    allowance = 0
+    if cache == "compressed":  # everything the threads' blocks leave
+        allowance = max(0, int(data_budget - fixed - threads * per_thread))
+        cache_bytes = int(compressed_bytes) if compressed_bytes is not None else cache_bytes
+    held = cache_bytes if cache == "memory" else allowance
     fitting = max(1, int((data_budget - fixed - held) // per_thread))
     return BlockPlan(rows, cache, budget, fixed, rows * n_features * itemsize, cache_bytes, max_basis,
-                     min(threads, fitting), baseline, chunk_bytes)
+                     min(threads, fitting), baseline, chunk_bytes, cache_allowance=allowance)
+
+
+def _block_rows(free: int, n_samples: int, n_features: int, itemsize: int, partial: int, row_bytes: int,
+                chunk_bytes: int, sample_chunk: int | None) -> tuple[int, int]:
+    """Rows per block, and the blocks in flight they were sized for, within ``free`` bytes (rows < 1: none fit)."""
+    rows = window = 0
+    for window in (_REFERENCE_WINDOW, 2):  # two threads' worth, else one thread's
+        rows = int(((free - (window // 2) * chunk_bytes) // window - partial) // row_bytes)
+        if rows >= 1 and (window == 2 or 4 * chunk_bytes <= free):
+            break  # (large decoded chunks: one thread's worth, for blocks of more rows; measured
+            # on 160 MB chunks under 1 GB: one thread with 958-row blocks 52 s, two threads with
+            # 132-row blocks 67 s, BENCHMARKS.md)
+    if rows < 1:
+        return rows, window
+    rows = int(min(rows, _MAX_BLOCK_BYTES // max(1, n_features * itemsize)))
+    rows = max(1, min(rows, n_samples))
+    if n_samples >= 512:  # enough blocks to keep threads busy
+        rows = min(rows, -(-n_samples // _MIN_BLOCKS))
+    if sample_chunk and sample_chunk < n_samples:
+        # whole on-disk chunks per block when they fit (a chunk cut into blocks is decoded
+        # once all the same: io/chunk_bands.py)
+        if rows >= sample_chunk:
+            rows = (rows // sample_chunk) * sample_chunk
+        elif window * (partial + sample_chunk * row_bytes) + (window // 2) * chunk_bytes <= free:
+            rows = sample_chunk
+    return rows, window
+
+
+def _smaller_blocks_leave_room(free: int, rows: int, threads: int, *shape) -> bool:
+    """Whether blocks sized within ``free`` (what a reserved cache leaves) are at least a
+    quarter of ``rows`` and the threads' blocks fit (common practice, no source: smaller
+    blocks cost a little per-block work, far less than decoding the input again)."""
+    n_samples, n_features, itemsize, partial, row_bytes, chunk_bytes, sample_chunk = shape
+    if free <= 0:
+        return False
+    smaller, _ = _block_rows(free, *shape)
+    if smaller < 1 or 4 * smaller < rows:
+        return False
+    return 2 * (partial + smaller * row_bytes) + chunk_bytes <= free // max(1, min(threads, 2))
 
 
 def check_scratch_writable(scratch: Path | None) -> None:
@@ -202,7 +259,10 @@ def decoded_chunk_bytes(source: "MatrixSource") -> int:
     A read decodes every chunk its rows touch, whole: a band of ``sample_chunk`` samples
     across all features (chunks of one band may be decoded concurrently), whatever the rows
     of the block, and holds the compressed bytes (up to the decoded size for data that do
-    not compress) beside the decoded ones: twice the band is counted. Measured on Zarr with
+    not compress) beside the decoded ones: twice the band is counted. Blocks smaller than
+    the band are served from the decoded band, held until its last block was read
+    (:class:`axiscope.io.chunk_bands.ChunkBands`): one band held and one being decoded per
+    thread, within the same count. Measured on Zarr with
     zstd, 2,000 × 20,000 float32 chunks of Gaussian values: reading 224 rows raised the
     resident memory by 311 MB for a 160 MB chunk. Contiguous and in-memory inputs are read
     straight into the block: 0.
@@ -220,8 +280,12 @@ def plan_fit(
     preprocess: PreprocessSpec,
     engine: EngineSettings,
     resources: Resources,
+    cache: str = "auto",
 ) -> BlockPlan:
     """The block plan that :func:`axiscope.fit` uses for ``source`` with these options.
+
+    ``cache`` imposes the kind of cache of dense input (see :func:`plan_blocks`; the fit
+    passes ``"auto"``).
 
     ``axiscope inspect`` calls this too, so what it predicts is what the fit then does.
     The plan depends on the file (shape, dtype, on-disk sample chunk, whether reading it
@@ -255,6 +319,8 @@ def plan_fit(
         scratch=resources.scratch,
         reread_cheap=bool(source.plain_reads) and not transforms,
         chunk_bytes=decoded_chunk_bytes(source),
+        compressed_bytes=compressed_cache_bytes(source, cache_features),
+        cache=cache,
     )
 
 
@@ -265,6 +331,24 @@ def _cached_stored_bytes(source: "MatrixSource", preprocess: PreprocessSpec) -> 
     if preprocess.log_transform or preprocess.counts_per is not None:
         stored = max(stored, 12)
     return stored
+
+
+def compressed_cache_bytes(source: "MatrixSource", cache_features: int) -> int | None:
+    """Expected size of the cache compressed by the fast codec, from the file's own ratio.
+
+    The bytes on disk of a compressed store, for the features cached, times 2 (a fast
+    codec compresses less than the zstd or gzip of a store: measured ratios 1.12 for LZ4
+    with byte shuffle against 1.11 for zstd level 0 on float32 noise plus signal, 3.6
+    against 6.1 on float32 Poisson counts). None when that is not smaller than the decoded
+    cache, or the file is not compressed or its size unknown. Blocks past the plan's
+    allowance go to the scratch file, so a wrong guess costs time, not memory.
+    """
+    size = int(getattr(source, "file_size", 0) or 0)
+    if not size or source.plain_reads or size >= source.nbytes:
+        return None
+    n, p = source.shape
+    estimate = int(min(1.0, 2.0 * size / source.nbytes) * n * cache_features * source.dtype.itemsize)
+    return estimate if estimate < n * cache_features * source.dtype.itemsize else None
 
 
 def plan_sparse_blocks(

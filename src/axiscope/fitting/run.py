@@ -252,6 +252,7 @@ def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None, then=No
         fac = _factorise(method, operand, job, n, rng, runner, plan, sketch, residualizer, checkpoint)
         result = _result(src, job, active, n, prep, stats, fac, plan, runner, filtered=operand.columns is not None,
                          identity=identity, checkpoint=checkpoint, adjust=adjust, residualizer=residualizer)
+        caches.record(result.manifest["plan"])
         if then is not None:
             then(result, operand.blocks(reader, prep))
     return result
@@ -509,6 +510,7 @@ class _Caches:
 
     def __init__(self, plan: BlockPlan, resources: Resources, *, sparse: bool = False):
         self.mode = plan.cache
+        self.allowance = plan.cache_allowance if plan.cache == "compressed" else None
         self.resources = resources
         self.sparse = sparse
         self.opened: list[BlockCache] = []
@@ -522,10 +524,17 @@ class _Caches:
             cache = SparseBlockCache()
             self.opened.append(cache)
             return cache
-        scratch = self.resources.scratch_folder() if self.mode == "scratch" else None
-        cache = BlockCache(self.mode, n_rows, n_cols, dtype, scratch)
+        scratch = self.resources.scratch_folder() if self.mode in ("scratch", "compressed") else None
+        cache = BlockCache(self.mode, n_rows, n_cols, dtype, scratch, allowance=self.allowance)
         self.opened.append(cache)
         return cache
+
+    def record(self, plan: dict) -> None:
+        """What a compressed cache held in memory and wrote to scratch, into the manifest's plan."""
+        for cache in self.opened:
+            if getattr(cache, "mode", None) == "compressed":
+                plan["cache_held_bytes"] = cache.held_bytes
+                plan["cache_spilled_bytes"] = cache.spilled_bytes
 
     def __enter__(self) -> "_Caches":
         return self

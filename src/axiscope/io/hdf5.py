@@ -29,6 +29,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import InputError, agree, counted, reason
+from .chunk_bands import ChunkBands, chunk_bands
 from .ids import container_ids
 from .source import (
     Backend,
@@ -61,6 +62,8 @@ class Hdf5Backend(Backend):
         self.file_shape = (int(dataset.shape[0]), int(dataset.shape[1]))
         chunks = dataset.chunks
         self.disk_chunks = (int(chunks[0]), int(chunks[1])) if chunks else None
+        #: per orientation: the decoded bands of chunks shared by the blocks read from them
+        self._bands: dict[str, ChunkBands] = {}
         self._offset: int | None = None
         self._fd: int | None = None
         if chunks is None and self.stored_dtype.isnative and self.stored_dtype.kind in "fiub":
@@ -82,8 +85,12 @@ class Hdf5Backend(Backend):
         if self.plain_rows(samples_in):
             return pread_rows(self._fd, self._offset, start, stop, self.file_shape[1],
                               self.stored_dtype, dtype)
-        with self._lock:
-            block = self._dataset[slab_key(start, stop, samples_in)]
+        def decode(a: int, b: int) -> np.ndarray:
+            with self._lock:
+                return self._dataset[slab_key(a, b, samples_in)]
+
+        bands = chunk_bands(self, samples_in)
+        block = decode(start, stop) if bands is None else bands.read(start, stop, decode)
         return orient_block(block, samples_in, dtype)
 
     def close(self) -> None:

@@ -29,6 +29,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import InputError, OptionError, agree, counted, one_line, reason
+from .chunk_bands import ChunkBands, chunk_bands
 from .ids import container_ids, plain_ids
 from .source import Backend, MatrixSource, build_source, is_numeric, orient_block, select_matrix, slab_key
 
@@ -54,10 +55,16 @@ class ZarrBackend(Backend):
         self.file_shape = (int(array.shape[0]), int(array.shape[1]))
         chunks = array.chunks
         self.disk_chunks = (int(chunks[0]), int(chunks[1])) if chunks else None
+        #: per orientation: the decoded bands of chunks shared by the blocks read from them
+        self._bands: dict[str, ChunkBands] = {}
 
     def read(self, start: int, stop: int, samples_in: str, dtype: np.dtype) -> np.ndarray:
-        block = self._array[slab_key(start, stop, samples_in)]
-        return orient_block(np.asarray(block), samples_in, dtype)
+        def decode(a: int, b: int) -> np.ndarray:
+            return np.asarray(self._array[slab_key(a, b, samples_in)])
+
+        bands = chunk_bands(self, samples_in)
+        block = decode(start, stop) if bands is None else bands.read(start, stop, decode)
+        return orient_block(block, samples_in, dtype)
 
 
 # ------------------------------------------------------------------ checks before decoding
