@@ -91,6 +91,64 @@ def test_fit_on_the_cluster_equals_the_threaded_fit(client, write_matrix, fmt, s
     assert threaded.manifest["execution"] == {"backend": "threaded", "threads": 2}
 
 
+def _ids(n: int) -> list[str]:
+    return [f"s{i}" for i in range(n)]
+
+
+def test_covariate_adjusted_fit_on_the_cluster_equals_the_threaded_fit(client, write_matrix):
+    # the statistics pass hands each block its rows of the centred covariates: they travel
+    # with the block's task, and the cross products are summed in the workers' tree
+    import pandas as pd
+
+    from axiscope.core.adjust import Covariates
+
+    rng = np.random.default_rng(6)
+    X = _planted(6)
+    batch = rng.choice(["A", "B", "C"], N)
+    depth = rng.normal(10.0, 2.0, N)
+    X += (batch == "B")[:, None] * rng.normal(0, 3, P) + depth[:, None] * rng.normal(0, 0.5, P)
+    path = write_matrix(X, "h5", chunks=(100, P), sample_ids=_ids(N))
+    table = pd.DataFrame({"sample_id": _ids(N), "batch": batch, "depth": depth})
+    options = dict(n_components=K, engine=ENGINE, covariates=Covariates(table, ["batch", "depth"]))
+    threaded = fit(path, **options, resources=Resources(memory_limit=BUDGET, threads=2))
+    clustered = fit(path, **options, resources=Resources(memory_limit=BUDGET, threads=2, scheduler=client))
+    first = clustered.manifest["passes"]["detail"][0]
+    assert first["name"].startswith("statistics + covariates") and first["blocks"] >= 6
+    _compare(threaded, clustered)
+    _close(threaded.sample_sq_dist, clustered.sample_sq_dist)
+    _close(threaded.model.extras["covariate_coef"], clustered.model.extras["covariate_coef"])
+    # sent: each block's covariate rows once (N × 3 float64 in all) and Ω to both workers;
+    # received: only the merged statistics, sketch and cross products (never per block)
+    assert first["bytes_from_client"] < 8 * (N * 3 + 2 * P * (K + 10)) + 20_000
+    assert first["bytes_to_client"] < 8 * (P * (K + 10) + P * 3 + 4 * P) + 20_000
+
+
+def test_one_pass_fit_on_the_cluster_equals_the_threaded_fit(client, write_matrix):
+    # the one pass hands each block its columns of Ψ; Ψ·X is merged in the workers' tree,
+    # X·Ω and the block means come back per block
+    from axiscope.core.onepass import ERROR_ROWS, sketch_widths
+
+    X = _planted(7)
+    path = write_matrix(X, "zarr3", chunks=(100, P))
+    engine = EngineSettings(method="one-pass", seed=3)
+    threaded = fit(path, n_components=K, engine=engine, resources=Resources(memory_limit=BUDGET, threads=2))
+    clustered = fit(path, n_components=K, engine=engine,
+                    resources=Resources(memory_limit=BUDGET, threads=2, scheduler=client))
+    assert clustered.manifest["passes"]["count"] == 1
+    detail = clustered.manifest["passes"]["detail"][0]
+    assert detail["blocks"] >= 6 and detail["read_from"] == "input"
+    _compare(threaded, clustered)
+    _close(threaded.sample_sq_dist, clustered.sample_sq_dist)
+    assert threaded.manifest["one_pass"]["estimated_relative_error"] == pytest.approx(
+        clustered.manifest["one_pass"]["estimated_relative_error"], rel=1e-10)
+    s, t = sketch_widths(K, ENGINE.oversample, N, P)
+    blocks = detail["blocks"]
+    # sent: Ψ's columns once (N × (s + q)), Ω to both workers; received: N × t, a mean per
+    # block, one merged (s + q) × P and the statistics
+    assert detail["bytes_from_client"] < 8 * (N * (s + ERROR_ROWS) + 2 * P * t) + 20_000
+    assert detail["bytes_to_client"] < 8 * (N * t + blocks * P + (s + ERROR_ROWS) * P + 4 * P) + 2_000 * blocks
+
+
 def test_in_memory_input_under_the_current_client(client):
     # the estimator's in-memory array cannot be opened by a worker: its blocks are sent from
     # here, and the fit uses the current client without being told

@@ -310,6 +310,14 @@ def _run_block(piece, task, split, *args):
     return split(result) if split is not None else result
 
 
+def _run_block_with_rows(piece, rows, task, split, *args):
+    """:func:`_run_block` for a task that takes the block's own rows: ``task(block, rows, *args)``."""
+    _limit_blas()
+    block = piece() if callable(piece) else piece
+    result = task(block, rows, *args)
+    return split(result) if split is not None else result
+
+
 @dataclass
 class ClusterBackend:
     """Passes on the workers of a ``dask.distributed`` cluster (see the module's notes).
@@ -377,8 +385,13 @@ class ClusterBackend:
                 "source": "none: the workers read the file on every pass"}[self.cache]}),
         }
 
-    def run(self, name: str, X, task, fold, args: tuple, reduce: Reduction | None, progress) -> PassTraffic:
+    def run(self, name: str, X, task, fold, args: tuple, reduce: Reduction | None, progress,
+            rows: np.ndarray | None = None) -> PassTraffic:
         """One pass on the cluster; ``fold`` is called here, in block order (see :class:`Reduction`).
+
+        With ``rows`` (one row per sample of ``X``), block ``i``'s task receives its own
+        rows: each block's slice travels with its task, once per pass (never the whole array
+        to every worker).
 
         A task lost with its worker is run again by Dask. When a result was lost that Dask can
         no longer recompute (its inputs already released), the pass is run again from its
@@ -391,7 +404,7 @@ class ClusterBackend:
             progress(name, 0, len(X.chunks[0]))
         for attempt in range(1, PASS_ATTEMPTS + 1):
             try:
-                self._attempt(name, X, task, fold, args, reduce, progress, traffic, folded)
+                self._attempt(name, X, task, fold, args, reduce, progress, traffic, folded, rows)
                 break
             except _lost_errors() as exc:
                 if attempt == PASS_ATTEMPTS:
@@ -401,7 +414,7 @@ class ClusterBackend:
         self.traffic.append(traffic)
         return traffic
 
-    def _attempt(self, name, X, task, fold, args, reduce, progress, traffic, folded) -> None:
+    def _attempt(self, name, X, task, fold, args, reduce, progress, traffic, folded, rows=None) -> None:
         from dask.sizeof import sizeof
         from distributed import wait
 
@@ -421,7 +434,9 @@ class ClusterBackend:
         try:
             for i in range(n):
                 while submitted < n and len(pending) < window:
-                    pending.append(self._submit(X, blocks, submitted, task, split, shared, tree, token, traffic, whole))
+                    block_rows = None if rows is None else rows[starts[submitted]: starts[submitted] + X.chunks[0][submitted]]
+                    pending.append(self._submit(X, blocks, submitted, task, split, shared, tree, token, traffic, whole,
+                                                block_rows))
                     submitted += 1
                 piece = pending.popleft()
                 if whole or i < folded[0]:  # nothing to fetch (or fetched by an earlier attempt)
@@ -462,8 +477,8 @@ class ClusterBackend:
                 traffic.sent += args[i].nbytes * len(self._addresses())
         return shared
 
-    def _submit(self, X, blocks, i, task, split, shared, tree, token, traffic, whole):
-        """Block ``i``'s task; returns the future of what comes back for it."""
+    def _submit(self, X, blocks, i, task, split, shared, tree, token, traffic, whole, rows=None):
+        """Block ``i``'s task (with its ``rows``, if any); returns the future of what comes back for it."""
         client = self.client
         loader = block_loader(X, i)
         placement = {}
@@ -477,8 +492,14 @@ class ClusterBackend:
             (block,) = dask.compute(blocks[i], scheduler="synchronous")
             traffic.sent += block.nbytes
             piece = client.scatter(block, hash=False)
-        future = client.submit(_run_block, piece, task, split, *shared, key=f"{token}-block-{i}", pure=False,
-                               **placement)
+        if rows is None:
+            future = client.submit(_run_block, piece, task, split, *shared, key=f"{token}-block-{i}", pure=False,
+                                   **placement)
+        else:
+            rows = np.ascontiguousarray(rows)
+            traffic.sent += rows.nbytes
+            future = client.submit(_run_block_with_rows, piece, rows, task, split, *shared,
+                                   key=f"{token}-block-{i}", pure=False, **placement)
         if tree is None:
             return future
         if whole:

@@ -44,6 +44,7 @@ import dask.array as da
 import numpy as np
 import scipy.linalg
 
+from .backends import Reduction
 from .engine import Factorization, accuracy_from_error, orient_signs
 from .passes import PassRunner
 from .preprocess import BlockStats, block_statistics, first_nonfinite
@@ -79,11 +80,14 @@ def _task(block, psi_rows, omega):
 
     ``left = Ψ_b·(X_b − 1·m_bᵀ)``, ``right = (X_b − 1·m_bᵀ)·Ω``: the block is centred in its
     own dtype on ``m_b`` rounded to it, and the rounding ``e`` is taken out in float64.
+    Returns ``(stats, left, right, bad, Ψ_b·1, m_b)`` (the last two to merge ``left`` over
+    blocks and to move ``right`` to the final centre).
     """
     psi_b = psi_rows.T  # this block's columns of Ψ
     stats = block_statistics(block)
+    psi_sum = psi_b.sum(axis=1)
     if stats.n_nonfinite:
-        return stats, None, None, first_nonfinite(block)
+        return stats, None, None, first_nonfinite(block), psi_sum, stats.mean
     c = stats.mean.astype(block.dtype)
     e = stats.mean - c.astype(np.float64)
     centred = block - c
@@ -91,7 +95,42 @@ def _task(block, psi_rows, omega):
     left -= np.outer(psi_b.astype(block.dtype).astype(np.float64).sum(axis=1), e)
     right = (centred @ omega.astype(block.dtype)).astype(np.float64)
     right -= e @ omega.astype(block.dtype).astype(np.float64)
-    return stats, left, right, None
+    return stats, left, right, None, psi_sum, stats.mean
+
+
+def _merge_left(a, b):
+    """Two runs of blocks' ``(stats, left, Ψ·1)`` as one, ``left`` about the merged mean.
+
+    With ``left_A = Ψ_A·(X_A − 1·m_Aᵀ)`` and the merged mean ``m``,
+    ``Ψ_A·(X_A − 1·mᵀ) = left_A + (Ψ_A·1)·(m_A − m)ᵀ``; the shifts are differences of
+    means, small next to the means themselves.
+    """
+    stats_a, left_a, sum_a = a
+    stats_b, left_b, sum_b = b
+    stats = stats_a.merge(stats_b)
+    left = None
+    if left_a is not None and left_b is not None:
+        left = left_a + np.outer(sum_a, stats_a.mean - stats.mean)
+        left += left_b
+        left += np.outer(sum_b, stats_b.mean - stats.mean)
+    return stats, left, sum_a + sum_b
+
+
+def _split(result):
+    """On a cluster: ``right``, the bad cell and the block mean come back per block; the
+    statistics and ``left`` are merged on the workers (:func:`_merge_left`)."""
+    stats, left, right, bad, psi_sum, mean = result
+    return (None, None, right, bad, None, mean), (stats, left, psi_sum)
+
+
+def _join(piece, total):
+    _, _, right, bad, _, mean = piece
+    stats, left, psi_sum = total
+    return stats, left, right, bad, psi_sum, mean
+
+
+#: How a cluster sums the one-pass results (:class:`axiscope.core.backends.Reduction`).
+ONE_PASS_SUM = Reduction(_merge_left, split=_split, join=_join)
 
 
 def one_pass_factorization(
@@ -140,36 +179,35 @@ def one_pass_factorization(
     omega_used = omega.astype(np.result_type(X.dtype, np.float32)).astype(np.float64)
 
     Y = np.empty((n, t))
-    acc: dict = {"stats": None, "left": None, "ref": None}
+    acc: dict = {"merged": None, "ref": None}
     shifts: list[tuple[int, int, np.ndarray]] = []
 
     def fold(result, index, start):
-        stats, left, right, bad = result
+        stats, left, right, bad, psi_sum, mean = result
         if bad is not None:
             if on_missing is not None:
                 on_missing(start + bad[0], bad[1])
             raise ValueError(f"non-finite value at row {start + bad[0]}, column {bad[1]}")
         rows = right.shape[0]
         if acc["ref"] is None:
-            acc["ref"] = stats.mean.copy()
-            acc["left"] = np.zeros((s + q, p))
-        shift = stats.mean - acc["ref"]  # small: block mean against the first block's mean
-        acc["left"] += left + np.outer(psi[:, start : start + rows].sum(axis=1), shift)
+            acc["ref"] = mean.copy()
         Y[start : start + rows] = right
-        shifts.append((start, rows, shift @ omega_used))
-        acc["stats"] = stats if acc["stats"] is None else acc["stats"].merge(stats)
+        shifts.append((start, rows, (mean - acc["ref"]) @ omega_used))  # small: against the first block's mean
+        if stats is not None:  # on a cluster, only the last block brings the merged total
+            merged = (stats, left, psi_sum)
+            acc["merged"] = merged if acc["merged"] is None else _merge_left(acc["merged"], merged)
 
-    runner.run("one pass: statistics + sketches", source, X, _task, fold, omega_used, rows=psi.T)
-    stats: BlockStats = acc["stats"]
+    runner.run("one pass: statistics + sketches", source, X, _task, fold, omega_used, rows=psi.T,
+               reduce=ONE_PASS_SUM)
+    stats, left_about, psi_sum = acc["merged"]
     mean, d = finish(stats)
     mean = np.asarray(mean, dtype=np.float64)
     d = np.asarray(d, dtype=np.float64)
 
-    # centre about μ (from about the first block's mean), then scale
-    mu_shift = mean - acc["ref"]
-    left = acc["left"] - np.outer(psi.sum(axis=1), mu_shift)
+    # centre about μ (from about the mean of the pass), then scale
+    left = left_about - np.outer(psi_sum, mean - stats.mean)
     left *= d
-    mu_omega = mu_shift @ omega_used
+    mu_omega = (mean - acc["ref"]) @ omega_used
     for start, rows, shift_omega in shifts:
         Y[start : start + rows] += shift_omega - mu_omega
 

@@ -22,7 +22,6 @@ import dask
 import dask.array as da
 import numpy as np
 
-from ..errors import OptionError
 
 __all__ = ["PassRecord", "PassRunner", "array_from_blocks", "blas_threads"]
 
@@ -89,7 +88,8 @@ class PassRunner:
         """Compute ``task(block, *args)`` for every row block and call ``fold(result, index, start)``.
 
         With ``rows`` (one row per sample of ``X``, e.g. covariates), the task is called as
-        ``task(block, rows_of_the_block, *args)`` (threaded back-end only).
+        ``task(block, rows_of_the_block, *args)``; on a cluster each block's rows travel with
+        its task.
 
         ``fold`` is called on the calling thread, in block order. On the threaded back-end
         each result is folded as soon as the blocks before it are done (no barrier between
@@ -100,10 +100,7 @@ class PassRunner:
         t0 = time.perf_counter()
         n = len(X.chunks[0])
         if self.backend is not None:
-            if rows is not None:
-                raise OptionError(f"the pass {name!r} hands each block rows of its own, which the cluster "
-                                  "back-end does not do yet; run it without scheduler or cluster")
-            traffic = self.backend.run(name, X, task, fold, args, reduce, self.progress)
+            traffic = self.backend.run(name, X, task, fold, args, reduce, self.progress, rows=rows)
             self.records.append(PassRecord(name, source, time.perf_counter() - t0, n,
                                            traffic.received, traffic.sent))
             _log_pass(self.n_passes, self.records[-1])

@@ -878,6 +878,13 @@ def _merge_stats(a, b, omega, centre):
     return stats_a.merge(stats_b), sketch, bad
 
 
+def _merge_stats_and_cross(a, b, omega, centre):
+    """:func:`_merge_stats` of the covariate-adjusted statistics pass: the cross products
+    ``X_bᵀ·C̄_b`` add up (None once a bad cell was met)."""
+    cross = None if a[3] is None or b[3] is None else a[3] + b[3]
+    return (*_merge_stats(a[:3], b[:3], omega, centre), cross)
+
+
 def _statistics_pass(X, spec, omega, runner, src, active, *, centre: bool = True,
                      adjust: Adjustment | None = None):
     """One pass: feature statistics, and the sketch ``X̃ᵀX̃·Ω`` (unscaled) when ``omega`` is given.
@@ -924,7 +931,8 @@ def _statistics_pass(X, spec, omega, runner, src, active, *, centre: bool = True
                    _stats_task, fold, omega32, centre, reduce=Reduction(_merge_stats, (omega, centre)))
     else:
         runner.run("statistics + covariates" + (" + sketch" if omega is not None else ""), "input", X,
-                   _stats_task_with_rows, fold, omega32, centre, rows=adjust.centred)
+                   _stats_task_with_rows, fold, omega32, centre, rows=adjust.centred,
+                   reduce=Reduction(_merge_stats_and_cross, (omega, centre)))
     merged: BlockStats = state["stats"]
     return FeatureStatistics.from_block_stats(merged), state["sketch"]
 
