@@ -149,6 +149,68 @@ def test_one_pass_fit_on_the_cluster_equals_the_threaded_fit(client, write_matri
     assert detail["bytes_to_client"] < 8 * (N * t + blocks * P + (s + ERROR_ROWS) * P + 4 * P) + 2_000 * blocks
 
 
+def _sparse_counts(seed: int = 8):
+    """Poisson counts around a planted rank-3 rate matrix, about 90% zeros (as tests/test_sparse.py)."""
+    import scipy.sparse as sp
+
+    rng = np.random.default_rng(seed)
+    rates = 0.1 * rng.gamma(1.0, 1.0, (N, 3)) @ (rng.gamma(0.3, 1.0, (3, P)) * np.array([[3.0], [1.5], [0.8]]))
+    counts = rng.poisson(rates).astype(np.float64)
+    counts[:, :3] += rng.poisson(0.3, (N, 3))  # no column all zero
+    counts[np.arange(N), rng.integers(0, P, N)] += 1.0  # no sample all zero
+    return sp.csr_matrix(counts)
+
+
+def _write_sparse(path, X, order: str):
+    """The data, indices and indptr of ``X`` in CSR or CSC order and its shape, in an HDF5 or Zarr group."""
+    M = X.tocsr() if order == "csr" else X.tocsc()
+    arrays = {"data": M.data.astype(np.float32), "indices": M.indices.astype(np.int32),
+              "indptr": M.indptr.astype(np.int64)}
+    if path.suffix == ".h5":
+        import h5py
+
+        with h5py.File(path, "w") as handle:
+            group = handle.create_group("counts")
+            for name, values in arrays.items():
+                group.create_dataset(name, data=values)
+            group.attrs.update({"shape": list(M.shape), "format": order})
+    else:
+        import zarr
+
+        group = zarr.open_group(str(path), mode="w").create_group("counts")
+        for name, values in arrays.items():
+            group.create_array(name, shape=values.shape, dtype=values.dtype)[:] = values
+        group.attrs.update({"shape": list(M.shape), "format": order})
+    return path
+
+
+@pytest.mark.parametrize("name, order", [("m.h5", "csr"), ("m.zarr", "csc")])
+def test_sparse_fit_on_the_cluster_equals_the_threaded_fit(client, tmp_path, name, order):
+    # CSR: the workers open the group and read their own ranges of samples, kept compressed;
+    # CSC (converted to sample order once, in this process): the blocks are read here and
+    # sent, compressed, to the workers
+    X = _sparse_counts()
+    path = _write_sparse(tmp_path / name, X, order)
+    spec = PreprocessSpec(counts_per=1e4, log_transform=True)
+    options = dict(n_components=3, engine=ENGINE, preprocess=spec)
+    threaded = fit(path, **options, resources=Resources(memory_limit=BUDGET, threads=2))
+    clustered = fit(path, **options, resources=Resources(memory_limit=BUDGET, threads=2, scheduler=client))
+    assert clustered.manifest["input"]["storage"].startswith("sparse")
+    assert threaded.manifest["passes"]["detail"][0]["blocks"] >= 3
+    _compare(threaded, clustered)
+    _close(threaded.sample_sq_dist, clustered.sample_sq_dist)
+    # LAPACK reference on the dense copy, transformed and standardised (population SD)
+    D = X.toarray()
+    D = np.log1p(D * (1e4 / D.sum(axis=1, keepdims=True)))
+    Z = (D - D.mean(axis=0)) / D.std(axis=0)
+    np.testing.assert_allclose(clustered.model.singular_values, np.linalg.svd(Z, compute_uv=False)[:3], rtol=1e-8)
+    sent = sum(d["bytes_from_client"] for d in clustered.manifest["passes"]["detail"])
+    if order == "csr":  # the blocks never travel: Ω and the bases only
+        assert sent < 8 * 2 * P * 40 * len(clustered.manifest["passes"]["detail"]) + 20_000
+    else:  # each block sent on each pass, compressed (12 bytes a stored value, plus pointers)
+        assert sent >= 12 * X.nnz
+
+
 def test_in_memory_input_under_the_current_client(client):
     # the estimator's in-memory array cannot be opened by a worker: its blocks are sent from
     # here, and the fit uses the current client without being told

@@ -153,6 +153,9 @@ class SourceBlocks:
     store : callable, optional
         ``store(index, block)``, called with each block read (filling a block cache of this
         process); a description with ``store`` is read here only.
+    sparse : bool
+        The source is sparse: blocks are read as compressed matrices
+        (:func:`read_sparse_block`), never densified.
     """
 
     source: Any
@@ -163,6 +166,7 @@ class SourceBlocks:
     store: Callable[[int, np.ndarray], None] | None = None
     run: str = field(default_factory=lambda: uuid.uuid4().hex)
     keep_on_worker: bool = False
+    sparse: bool = False
 
     @property
     def on_worker(self) -> bool:
@@ -170,7 +174,8 @@ class SourceBlocks:
         return self.store is None and getattr(self.source, "reopen", None) is not None
 
     def __call__(self, i: int) -> np.ndarray:
-        block = read_block(self.source, self.spans[i], self.masks[i], self.spec, self.columns)
+        read = read_sparse_block if self.sparse else read_block
+        block = read(self.source, self.spans[i], self.masks[i], self.spec, self.columns)
         if self.store is not None:
             self.store(i, block)
         return block
@@ -186,7 +191,7 @@ class SourceBlocks:
         keep = (self.run, i, None if self.columns is None else hash(self.columns.tobytes())) \
             if self.keep_on_worker else None
         return _OneBlock(self.source.reopen, self.run, self.spans[i], self.masks[i], self.spec, columns,
-                         packed, self.source.shape[1], keep)
+                         packed, self.source.shape[1], keep, self.sparse)
 
 
 @dataclass
@@ -202,6 +207,7 @@ class _OneBlock:
     packed_columns: np.ndarray | None
     n_columns: int
     keep: tuple | None = None
+    sparse: bool = False
 
     def __call__(self) -> np.ndarray:
         if self.keep is not None:
@@ -211,9 +217,10 @@ class _OneBlock:
         columns = self.columns
         if self.packed_columns is not None:
             columns = np.flatnonzero(np.unpackbits(self.packed_columns, count=self.n_columns))
-        block = read_block(_open_once(self.reopen, self.run), self.span, self.mask, self.spec, columns)
+        read = read_sparse_block if self.sparse else read_block
+        block = read(_open_once(self.reopen, self.run), self.span, self.mask, self.spec, columns)
         if self.keep is not None:
-            block.flags.writeable = False  # shared by later passes: no task may change it
+            _read_only(block)  # shared by later passes: no task may change it
             with _OPEN_LOCK:
                 for key in [k for k in _KEPT if k[0] != self.run]:  # blocks of earlier runs
                     del _KEPT[key]
@@ -263,6 +270,44 @@ def read_block(source, span, mask, spec, columns) -> np.ndarray:
     if columns is not None:
         block = np.ascontiguousarray(block[:, columns])
     return block
+
+
+def read_sparse_block(source, span, mask, spec, columns):
+    """:func:`read_block` of a sparse source: a compressed block, never densified.
+
+    The active rows of samples ``span`` as CSR, the per-sample transforms on the stored
+    values, the chosen columns, and then the compressed-column layout the statistics and
+    products use (:mod:`axiscope.core.sparse_ops`).
+    """
+    from .preprocess import NotADosage
+    from .sparse_ops import as_columns, transform_sparse
+
+    a, b = span
+    block = source.read_sparse(a, b)
+    if mask is not None:
+        block = block[mask]
+    try:
+        block = transform_sparse(block, spec)
+    except NotADosage as exc:
+        rows = np.arange(a, b) if mask is None else a + np.flatnonzero(mask)
+        sample = source.sample_ids[rows[exc.row]]
+        feature = source.feature_ids[exc.column]
+        raise InputError(exc.located(f"{source.path.name}: sample {sample!r}, feature {feature!r}")) from None
+    return as_columns(block if columns is None else block[:, columns])
+
+
+def _read_only(block) -> None:
+    """Make a kept block (dense, or the values of a sparse one) read-only."""
+    values = block if isinstance(block, np.ndarray) else getattr(block, "data", None)
+    if isinstance(values, np.ndarray):
+        values.flags.writeable = False
+
+
+def block_nbytes(block) -> int:
+    """Bytes of a dense or sparse block (values, indices and pointers)."""
+    if isinstance(block, np.ndarray):
+        return int(block.nbytes)
+    return int(sum(getattr(block, name).nbytes for name in ("data", "indices", "indptr") if hasattr(block, name)))
 
 
 def block_loader(X, i: int):
@@ -490,7 +535,7 @@ class ClusterBackend:
                 placement = {"workers": [addresses[i % len(addresses)]], "allow_other_workers": True}
         else:  # read here (memory, text, a cache of this process) and sent to a worker
             (block,) = dask.compute(blocks[i], scheduler="synchronous")
-            traffic.sent += block.nbytes
+            traffic.sent += block_nbytes(block)
             piece = client.scatter(block, hash=False)
         if rows is None:
             future = client.submit(_run_block, piece, task, split, *shared, key=f"{token}-block-{i}", pure=False,

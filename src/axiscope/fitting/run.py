@@ -23,18 +23,17 @@ import pandas as pd
 
 from .. import __version__
 from ..core.adjust import Adjustment, Covariates, Residualizer, block_cross
-from ..core.backends import Reduction, SourceBlocks, WorkerCache, open_backend, read_block
+from ..core.backends import Reduction, SourceBlocks, WorkerCache, open_backend, read_block, read_sparse_block
 from ..core.cache import BlockCache, remove_scratch_leftovers
 from ..core.engine import Factorization, exact_factorization, randomized_factorization
 from ..core.onepass import one_pass_factorization
 from ..core.options import METHODS, EngineSettings, InputLayout, Resources
 from ..core.passes import PassRunner, Progress, array_from_blocks, blas_threads
 from ..core.plan import BlockPlan, plan_fit
-from ..core.sparse_ops import SparseBlockCache, as_columns, is_sparse, sparse_stats_task, transform_sparse
+from ..core.sparse_ops import SparseBlockCache, is_sparse, sparse_stats_task
 from ..core.preprocess import (
     BlockStats,
     FeatureStatistics,
-    NotADosage,
     Preprocessing,
     PreprocessSpec,
     block_statistics,
@@ -216,9 +215,9 @@ def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None, then=No
     checkpoint = _checkpoint(job, identity, plan, active, exclude, method, adjust)
     rng = job.engine.generator()
     reader = _Reader(src, job.spec, active, plan.block_rows, plan.block_nonzeros)
-    if job.backend is not None and (reader.sparse or then is not None):
-        raise OptionError(f"{src.path}: {'a sparse matrix' if reader.sparse else 'the split-half stability'} "
-                          "is not yet computed on a cluster; run it without scheduler or cluster")
+    if job.backend is not None and then is not None:
+        raise OptionError(f"{src.path}: the split-half stability is not yet computed on a cluster; run it "
+                          "without scheduler or cluster")
     if reader.sparse and (adjust is not None or method == "one-pass"):
         raise OptionError(f"{src.path}: a sparse matrix is not yet fitted "
                           f"{'after a covariate adjustment' if adjust is not None else 'in one pass'}; "
@@ -403,20 +402,9 @@ class _Reader:
 
     def block(self, i: int, columns=None, cache: BlockCache | None = None) -> np.ndarray:
         a, b = self.spans[i]
-        if self.sparse:
-            block = self.src.read_sparse(a, b)
-            if not self.all_active:
-                block = block[self.active[a:b]]
-            try:
-                block = transform_sparse(block, self.spec)
-            except NotADosage as exc:
-                sample = self.src.sample_ids[a + np.flatnonzero(self.active[a:b])[exc.row]]
-                feature = self.src.feature_ids[exc.column]
-                raise InputError(exc.located(f"{self.src.path.name}: sample {sample!r}, feature {feature!r}")) from None
-            # the products' layout (core/sparse_ops.py), made once per read
-            block = as_columns(block if columns is None else block[:, columns])
-        else:
-            block = read_block(self.src, (a, b), None if self.all_active else self.active[a:b], self.spec, columns)
+        # sparse blocks stay compressed, in the products' layout (core/sparse_ops.py)
+        read = read_sparse_block if self.sparse else read_block
+        block = read(self.src, (a, b), None if self.all_active else self.active[a:b], self.spec, columns)
         if cache is not None:
             cache.put(int(self.starts[i]), block)
         return block
@@ -426,15 +414,15 @@ class _Reader:
         masks = [None if self.all_active else self.active[a:b] for a, b in self.spans]
         if isinstance(cache, WorkerCache):  # the workers keep the blocks they read
             cache.columns = columns
-            return SourceBlocks(self.src, self.spans, masks, self.spec, columns, None, self.token, True)
+            return SourceBlocks(self.src, self.spans, masks, self.spec, columns, None, self.token, True,
+                                sparse=self.sparse)
         store = None if cache is None else (lambda i, block: cache.put(int(self.starts[i]), block))
-        return SourceBlocks(self.src, self.spans, masks, self.spec, columns, store, self.token)
+        return SourceBlocks(self.src, self.spans, masks, self.spec, columns, store, self.token, sparse=self.sparse)
 
     def array(self, name: str, columns=None, cache: BlockCache | None = None):
         """The input read once more (filling ``cache`` when given), as a Dask array."""
         width = self.src.shape[1] if columns is None else columns.shape[0]
-        load = (lambda i: self.block(i, columns, cache)) if self.sparse else self.blocks(columns, cache)
-        return array_from_blocks(load, self.rows, width, self.src.dtype, f"{name}-{self.token}")
+        return array_from_blocks(self.blocks(columns, cache), self.rows, width, self.src.dtype, f"{name}-{self.token}")
 
     def load_cached(self, cache: BlockCache):
         """``load(i)``: the ``i``-th block from ``cache``."""
@@ -868,6 +856,8 @@ def _merge_stats(a, b, omega, centre):
     stats_a, sketch_a, bad_a = a
     stats_b, sketch_b, bad_b = b
     bad = bad_a if bad_a is not None else None if bad_b is None else (bad_b[0] + stats_a.n_samples, bad_b[1])
+    if stats_a is None or stats_b is None:  # a sparse block with a bad cell has no statistics
+        return None, None, bad
     sketch = None
     if sketch_a is not None and sketch_b is not None:
         if centre:
