@@ -211,6 +211,31 @@ def test_sparse_fit_on_the_cluster_equals_the_threaded_fit(client, tmp_path, nam
         assert sent >= 12 * X.nnz
 
 
+def test_split_half_stability_on_the_cluster_equals_the_threaded_one(client, write_matrix):
+    # the stability's passes read the fit's blocks where the fit left them (kept by the
+    # workers), each block receives its rows of the half labels, the halves' products are
+    # summed on the workers
+    from axiscope.decide.stability import axis_stability
+
+    X = _planted(9)
+    path = write_matrix(X, "h5", chunks=(100, P))
+    found = {}
+
+    def then(result, blocks):
+        found[blocks.backend is None] = axis_stability(blocks, result, stability_repeats=2, seed=4)
+
+    for extra in ({}, {"scheduler": client}):
+        fit(path, n_components=K, engine=ENGINE, then=then,
+            resources=Resources(memory_limit=BUDGET, threads=2, **extra))
+    threaded, clustered = found[True], found[False]
+    assert clustered.read_from == "workers" and clustered.passes == threaded.passes >= 2
+    np.testing.assert_allclose(clustered.per_repeat, threaded.per_repeat, rtol=0, atol=1e-10)
+    np.testing.assert_allclose(clustered.subspace_per_repeat, threaded.subspace_per_repeat, rtol=0, atol=1e-10)
+    for pair_a, pair_b in zip(threaded.loadings, clustered.loadings):
+        for a, b in zip(pair_a, pair_b):  # each half's vectors, up to the sign eigh picks
+            _close(a, b * np.sign(np.sum(a * b, axis=0)))
+
+
 def test_in_memory_input_under_the_current_client(client):
     # the estimator's in-memory array cannot be opened by a worker: its blocks are sent from
     # here, and the fit uses the current client without being told

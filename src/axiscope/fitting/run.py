@@ -215,9 +215,6 @@ def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None, then=No
     checkpoint = _checkpoint(job, identity, plan, active, exclude, method, adjust)
     rng = job.engine.generator()
     reader = _Reader(src, job.spec, active, plan.block_rows, plan.block_nonzeros)
-    if job.backend is not None and then is not None:
-        raise OptionError(f"{src.path}: the split-half stability is not yet computed on a cluster; run it "
-                          "without scheduler or cluster")
     if reader.sparse and (adjust is not None or method == "one-pass"):
         raise OptionError(f"{src.path}: a sparse matrix is not yet fitted "
                           f"{'after a covariate adjustment' if adjust is not None else 'in one pass'}; "
@@ -255,7 +252,7 @@ def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None, then=No
         result = _result(src, job, active, n, prep, stats, fac, plan, runner, filtered=operand.columns is not None,
                          identity=identity, checkpoint=checkpoint, adjust=adjust, residualizer=residualizer)
         if then is not None:
-            then(result, operand.blocks(reader, prep))
+            then(result, operand.blocks(reader, prep, job.backend))
     return result
 
 
@@ -460,6 +457,9 @@ class FittedBlocks:
     kept: np.ndarray | None = None
     #: Where the blocks are read from: "input", "memory", "scratch" or "source".
     source: str = "input"
+    #: The cluster the fit ran on (None: threads of this process); passes over these blocks
+    #: run there too (their blocks may be kept by its workers).
+    backend: object = None
 
 
 def fitted_blocks(src: MatrixSource, result: FitResult, *, active: np.ndarray | None = None,
@@ -585,13 +585,13 @@ class _Operand:
             later, source = reader.array("reread", columns), "source"
         return cls(columns, mean, d, fill, first, later, source, cache)
 
-    def blocks(self, reader: _Reader, prep: Preprocessing) -> FittedBlocks:
-        """The blocks the later passes read (cache or input), for passes after the fit."""
+    def blocks(self, reader: _Reader, prep: Preprocessing, backend=None) -> FittedBlocks:
+        """The blocks the later passes read (cache or input), for passes after the fit (on ``backend``)."""
         load = reader.load_cached(self.cache) if self.cache is not None else \
             (lambda i: reader.block(i, self.columns))
         kept = None if self.columns is not None or prep.kept.shape[0] == reader.src.shape[1] else prep.kept
         return FittedBlocks(self.later, self.mean, self.inverse_scale, self.fill, load, list(reader.rows),
-                            kept, self.later_source)
+                            kept, self.later_source, backend)
 
 
 def _input_identity(src: MatrixSource, checksum: str) -> dict | None:
