@@ -91,6 +91,32 @@ def test_fit_on_the_cluster_equals_the_threaded_fit(client, write_matrix, fmt, s
     assert threaded.manifest["execution"] == {"backend": "threaded", "threads": 2}
 
 
+def _local_directories(dask_worker=None) -> list[str]:
+    """On a worker: what its local directory holds (the scratch folders of kept blocks)."""
+    return sorted(os.listdir(dask_worker.local_directory))
+
+
+def test_blocks_planned_on_scratch_are_kept_in_each_worker_s_scratch_file(client, write_matrix):
+    # a compressed input whose decoded copy does not fit the budget: the plan puts the cache
+    # in a scratch file, and on the cluster each worker keeps the blocks it decoded in a file
+    # of its local directory (read back on the later passes), removed when the fit ends
+    rng = np.random.default_rng(10)
+    n, p = 2000, 400
+    X = (rng.standard_normal((n, 6)) * [30, 20, 12, 8, 5, 4]) @ rng.standard_normal((6, p)) \
+        + rng.standard_normal((n, p))
+    path = write_matrix(X, "zarr3", chunks=(200, p))
+    threaded = fit(path, n_components=K, engine=ENGINE, resources=Resources(memory_limit=BUDGET, threads=2))
+    assert threaded.manifest["plan"]["cache"] == "scratch"
+    clustered = fit(path, n_components=K, engine=ENGINE,
+                    resources=Resources(memory_limit=BUDGET, threads=2, scheduler=client))
+    assert clustered.manifest["execution"]["blocks_kept"].startswith("in a scratch file")
+    later = [d["read_from"] for d in clustered.manifest["passes"]["detail"][1:]]
+    assert later and set(later) == {"worker scratch"}
+    _compare(threaded, clustered)
+    for listing in client.run(_local_directories).values():
+        assert not [name for name in listing if name.startswith("axiscope-blocks-")]
+
+
 def _ids(n: int) -> list[str]:
     return [f"s{i}" for i in range(n)]
 

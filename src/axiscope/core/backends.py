@@ -61,6 +61,8 @@ logger = logging.getLogger(__name__)
 WORKER_LIBRARIES = 256 << 20
 #: Times a pass is run when results are lost with workers (see :meth:`ClusterBackend.run`).
 PASS_ATTEMPTS = 3
+#: Finished block results (pieces waiting for an earlier block) held per task in flight, at most.
+PIECES_HELD = 4
 #: Seconds to wait for a scheduler address to answer.
 CONNECT_TIMEOUT = 20
 
@@ -167,6 +169,8 @@ class SourceBlocks:
     run: str = field(default_factory=lambda: uuid.uuid4().hex)
     keep_on_worker: bool = False
     sparse: bool = False
+    #: Kept blocks go to a scratch file of each worker (its local directory), not its memory.
+    keep_on_disk: bool = False
 
     @property
     def on_worker(self) -> bool:
@@ -191,7 +195,7 @@ class SourceBlocks:
         keep = (self.run, i, None if self.columns is None else hash(self.columns.tobytes())) \
             if self.keep_on_worker else None
         return _OneBlock(self.source.reopen, self.run, self.spans[i], self.masks[i], self.spec, columns,
-                         packed, self.source.shape[1], keep, self.sparse)
+                         packed, self.source.shape[1], keep, self.sparse, self.keep_on_disk)
 
 
 @dataclass
@@ -208,10 +212,11 @@ class _OneBlock:
     n_columns: int
     keep: tuple | None = None
     sparse: bool = False
+    on_disk: bool = False
 
     def __call__(self) -> np.ndarray:
         if self.keep is not None:
-            block = _KEPT.get(self.keep)
+            block = _kept(self.keep)
             if block is not None:
                 return block
         columns = self.columns
@@ -220,36 +225,101 @@ class _OneBlock:
         read = read_sparse_block if self.sparse else read_block
         block = read(_open_once(self.reopen, self.run), self.span, self.mask, self.spec, columns)
         if self.keep is not None:
-            _read_only(block)  # shared by later passes: no task may change it
-            with _OPEN_LOCK:
-                for key in [k for k in _KEPT if k[0] != self.run]:  # blocks of earlier runs
-                    del _KEPT[key]
-                _KEPT[self.keep] = block
+            _keep(self.keep, block, self.on_disk)
         return block
 
 
 class WorkerCache:
-    """The decode-once cache kept by the workers: each keeps the blocks it read in memory.
+    """The decode-once cache kept by the workers: each keeps the blocks it read.
 
-    Block ``i`` is sent to worker ``i mod W`` on every pass (another one if that worker is
-    gone: it then reads the block from the file again). Blocks of a run stay until the
-    worker reads for another run, or the run ends (:meth:`ClusterBackend.forget`).
+    In memory, or (``on_disk``) uncompressed in a scratch file of the worker's local
+    directory, read back whole on the later passes. Block ``i`` is sent to worker ``i mod W``
+    on every pass (another one if that worker is gone: it then reads the block from the file
+    again). Blocks of a run stay until the worker reads for another run, or the run ends
+    (:meth:`ClusterBackend.forget`).
     """
 
     columns: np.ndarray | None = None
 
+    def __init__(self, on_disk: bool = False):
+        self.on_disk = on_disk
 
-#: Blocks kept by this worker process: (run, block, columns) -> read-only array.
-_KEPT: dict[tuple, np.ndarray] = {}
+
+@dataclass(frozen=True)
+class _OnDisk:
+    """A kept block in a worker's scratch file."""
+
+    path: str
+    shape: tuple
+    dtype: str
+
+    def load(self) -> np.ndarray | None:
+        try:
+            return np.fromfile(self.path, dtype=self.dtype).reshape(self.shape)
+        except (OSError, ValueError):  # removed or cut short: read from the input again
+            return None
+
+
+#: Blocks kept by this worker process: (run, block, columns) -> read-only array or _OnDisk.
+_KEPT: dict[tuple, Any] = {}
+
+
+def _kept(key: tuple):
+    """The block kept under ``key`` by this process (None: not kept, read it)."""
+    entry = _KEPT.get(key)
+    return entry.load() if isinstance(entry, _OnDisk) else entry
+
+
+def _keep(key: tuple, block, on_disk: bool) -> None:
+    """Keep ``block`` for the later passes of its run; blocks of earlier runs are dropped."""
+    run = key[0]
+    if on_disk and isinstance(block, np.ndarray):
+        folder = _scratch_folder(run)
+        os.makedirs(folder, exist_ok=True)
+        path = os.path.join(folder, "block-" + "-".join(str(part) for part in key[1:]) + ".bin")
+        partial = f"{path}.{uuid.uuid4().hex[:8]}"
+        np.ascontiguousarray(block).tofile(partial)
+        os.replace(partial, path)
+        entry = _OnDisk(path, tuple(block.shape), block.dtype.str)
+    else:
+        _read_only(block)  # shared by later passes: no task may change it
+        entry = block
+    with _OPEN_LOCK:
+        for old in {k[0] for k in _KEPT if k[0] != run}:  # blocks of earlier runs
+            _drop(old)
+        _KEPT[key] = entry
+
+
+def _scratch_folder(run: str) -> str:
+    """Where this worker keeps blocks of ``run`` on disk: its local directory (else the temporary one)."""
+    import tempfile
+
+    try:
+        from distributed import get_worker
+
+        base = get_worker().local_directory
+    except (ImportError, ValueError):
+        base = tempfile.gettempdir()
+    return os.path.join(base, f"axiscope-blocks-{run}")
+
+
+def _drop(run: str) -> int:
+    """Forget the blocks kept for ``run`` (removing their scratch files); the caller holds the lock."""
+    import shutil
+
+    keys = [k for k in _KEPT if k[0] == run]
+    folders = {os.path.dirname(_KEPT[k].path) for k in keys if isinstance(_KEPT[k], _OnDisk)}
+    for key in keys:
+        del _KEPT[key]
+    for folder in folders:
+        shutil.rmtree(folder, ignore_errors=True)
+    return len(keys)
 
 
 def _forget(run: str) -> int:
     """Drop the blocks this process keeps for ``run``; returns how many."""
     with _OPEN_LOCK:
-        keys = [k for k in _KEPT if k[0] == run]
-        for key in keys:
-            del _KEPT[key]
-    return len(keys)
+        return _drop(run)
 
 
 def read_block(source, span, mask, spec, columns) -> np.ndarray:
@@ -412,6 +482,15 @@ class ClusterBackend:
             self._threads = max(1, sum(int(w.get("nthreads", 1)) for w in info.values()))
         return self._threads
 
+    def cache_mode(self, planned: str) -> str:
+        """Where the workers keep the blocks they read, for the plan's cache ``planned``.
+
+        ``"workers"`` (their memory) for a cache in memory, ``"worker scratch"`` (a file in
+        each worker's local directory) for a scratch file, ``"source"`` (kept nowhere: read
+        from the input on every pass) otherwise.
+        """
+        return {"memory": "workers", "scratch": "worker scratch"}.get(planned, "source")
+
     def reads_on_workers(self, source) -> bool:
         """Whether the workers can open ``source`` themselves."""
         return getattr(source, "reopen", None) is not None
@@ -427,6 +506,7 @@ class ClusterBackend:
             "sums_over_blocks": "pairwise tree on the workers (fixed by the number of blocks)",
             **({} if self.cache is None else {"blocks_kept": {
                 "workers": "in the workers' memory, block i on worker i mod W",
+                "worker scratch": "in a scratch file in each worker's local directory, block i on worker i mod W",
                 "source": "none: the workers read the file on every pass"}[self.cache]}),
         }
 
@@ -473,21 +553,29 @@ class ClusterBackend:
         split = reduce.split if reduce is not None else None
         whole = reduce is not None and split is None
         tree = _PairwiseTree(client, reduce, combine_args, token) if reduce is not None else None
-        window = 2 * self.worker_threads
+        window = 2 * self.worker_threads  # tasks submitted and not finished
+        held = PIECES_HELD * window  # finished ones waiting for an earlier block, at most
         pending: deque = deque()
         submitted = 0
+
+        def top_up() -> None:
+            nonlocal submitted
+            while submitted < n and len(pending) < held and sum(not f.done() for f in pending) < window:
+                block_rows = None if rows is None else rows[starts[submitted]: starts[submitted] + X.chunks[0][submitted]]
+                pending.append(self._submit(X, blocks, submitted, task, split, shared, tree, token, traffic, whole,
+                                            block_rows))
+                submitted += 1
+
         try:
-            for i in range(n):
-                while submitted < n and len(pending) < window:
-                    block_rows = None if rows is None else rows[starts[submitted]: starts[submitted] + X.chunks[0][submitted]]
-                    pending.append(self._submit(X, blocks, submitted, task, split, shared, tree, token, traffic, whole,
-                                                block_rows))
-                    submitted += 1
-                piece = pending.popleft()
-                if whole or i < folded[0]:  # nothing to fetch (or fetched by an earlier attempt)
+            i = 0
+            while i < n:
+                top_up()
+                if not pending[0].done():  # wait for any task, so that the workers never idle behind a slow one
                     with client.as_current():
-                        wait(piece)
-                else:
+                        wait([f for f in pending if not f.done()], return_when="FIRST_COMPLETED")
+                    continue
+                piece = pending.popleft()
+                if not (whole or i < folded[0]):  # (else nothing to fetch, or fetched by an earlier attempt)
                     result = piece.result()
                     traffic.received += sizeof(result)
                     if i < n - 1 or tree is None:
@@ -498,9 +586,12 @@ class ClusterBackend:
                         fold(reduce.join(result, total), i, starts[i])
                     folded[0] = i + 1
                     del result
+                elif piece.status == "error":
+                    piece.result()  # raises the task's error
                 del piece
+                i += 1
                 if progress:
-                    progress(name, i + 1, n)
+                    progress(name, i, n)
             if whole:
                 total = tree.total().result()
                 traffic.received += sizeof(total)
@@ -551,7 +642,7 @@ class ClusterBackend:
             tree.push(future)
             return future
         kept = client.submit(operator.getitem, future, 0, key=f"{token}-piece-{i}", pure=False)
-        tree.push(client.submit(operator.getitem, future, 1, key=f"{token}-part-{i}", pure=False))
+        tree.push(future, part=True)  # the tree takes the summed part itself: no task for it
         return kept
 
 
@@ -565,36 +656,47 @@ class _PairwiseTree:
 
     def __init__(self, client, reduce: Reduction, combine_args, token: str):
         self.client, self.reduce, self.args, self.token = client, reduce, list(combine_args), token
-        self.stack: list[tuple[int, Any]] = []
+        #: (height, future, whether the future is a block's (piece, part) of which to sum the part)
+        self.stack: list[tuple[int, Any, bool]] = []
         self.count = 0
         self.made: list = []
 
     def _combine(self, left, right):
         self.count += 1
-        future = self.client.submit(self.reduce.combine, left, right, *self.args,
+        future = self.client.submit(_sum_pair, self.reduce.combine, left[1], left[2], right[1], right[2], *self.args,
                                     key=f"{self.token}-sum-{self.count}", pure=False)
         self.made.append(future)
         return future
 
-    def push(self, future) -> None:
-        height = 0
+    def push(self, future, part: bool = False) -> None:
+        """Block ``i``'s result (``part``: a ``(piece, summed)`` pair, of which the second is summed)."""
+        height, entry = 0, (0, future, part)
         while self.stack and self.stack[-1][0] == height:
-            _, left = self.stack.pop()
-            future = self._combine(left, future)
+            left = self.stack.pop()
+            entry = (height + 1, self._combine(left, entry), False)
             height += 1
-        self.stack.append((height, future))
+        self.stack.append(entry)
 
     def total(self):
-        _, future = self.stack.pop()
+        entry = self.stack.pop()
+        if entry[2] and not self.stack:  # a single block: its summed part alone
+            entry = (entry[0], self.client.submit(operator.getitem, entry[1], 1, key=f"{self.token}-part",
+                                                  pure=False), False)
+            self.made.append(entry[1])
         while self.stack:
-            _, left = self.stack.pop()
-            future = self._combine(left, future)
-        self.stack.append((np.inf, future))
+            left = self.stack.pop()
+            entry = (entry[0], self._combine(left, entry), False)
+        self.stack.append((np.inf, entry[1], False))
         self.made = []
-        return future
+        return entry[1]
 
     def cancel(self) -> None:
-        self.client.cancel([f for _, f in self.stack] + self.made)
+        self.client.cancel([f for _, f, _ in self.stack] + self.made)
+
+
+def _sum_pair(combine, left, left_part: bool, right, right_part: bool, *args):
+    """On a worker: ``combine`` of two partial sums, taking the summed part of a block's pair."""
+    return combine(left[1] if left_part else left, right[1] if right_part else right, *args)
 
 
 # ------------------------------------------------------------------------ choosing a back-end

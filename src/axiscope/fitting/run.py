@@ -229,9 +229,10 @@ def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None, then=No
     filtered = job.spec.has_filter or exclude is not None
     with _Caches(plan, job.resources, sparse=reader.sparse) as caches:
         if job.backend is not None and job.backend.reads_on_workers(src):
-            # workers read their own blocks: kept in the workers' memory when the plan has room
-            # for the cache in memory, otherwise decoded from the file on every pass
-            caches.mode = job.backend.cache = "workers" if plan.cache == "memory" else "source"
+            # workers read their own blocks: kept in their memory when the plan has room for the
+            # cache in memory, in a scratch file of each worker when it plans a scratch file,
+            # otherwise read from the input on every pass
+            caches.mode = job.backend.cache = job.backend.cache_mode(plan.cache)
         first_cache = None if filtered else caches.new(n, src.shape[1], src.dtype)
         fuse = not filtered and job.spec.missing == "error" and method == "randomized"
         l = min(job.k + job.engine.oversample, min(n, src.shape[1]))
@@ -412,7 +413,7 @@ class _Reader:
         if isinstance(cache, WorkerCache):  # the workers keep the blocks they read
             cache.columns = columns
             return SourceBlocks(self.src, self.spans, masks, self.spec, columns, None, self.token, True,
-                                sparse=self.sparse)
+                                sparse=self.sparse, keep_on_disk=cache.on_disk)
         store = None if cache is None else (lambda i, block: cache.put(int(self.starts[i]), block))
         return SourceBlocks(self.src, self.spans, masks, self.spec, columns, store, self.token, sparse=self.sparse)
 
@@ -505,8 +506,8 @@ class _Caches:
     def new(self, n_rows: int, n_cols: int, dtype) -> BlockCache | WorkerCache | None:
         if self.mode == "source":
             return None
-        if self.mode == "workers":
-            return WorkerCache()
+        if self.mode in ("workers", "worker scratch"):
+            return WorkerCache(on_disk=self.mode == "worker scratch")
         if self.sparse:  # the plan keeps sparse blocks in memory or re-reads the source
             cache = SparseBlockCache()
             self.opened.append(cache)
