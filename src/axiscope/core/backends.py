@@ -380,6 +380,24 @@ def block_nbytes(block) -> int:
     return int(sum(getattr(block, name).nbytes for name in ("data", "indices", "indptr") if hasattr(block, name)))
 
 
+def traffic_bytes(value) -> int:
+    """Bytes of a result as it crosses the network: arrays (dense or sparse) inside tuples,
+    lists, dicts and dataclasses counted by their buffers; anything else by dask's estimate."""
+    import dataclasses
+
+    from dask.sizeof import sizeof
+
+    if isinstance(value, np.ndarray) or hasattr(value, "indptr"):
+        return block_nbytes(value)
+    if isinstance(value, (tuple, list)):
+        return sum(traffic_bytes(v) for v in value)
+    if isinstance(value, dict):
+        return sum(traffic_bytes(v) for v in value.values())
+    if dataclasses.is_dataclass(value) and not isinstance(value, type):
+        return sum(traffic_bytes(getattr(value, f.name)) for f in dataclasses.fields(value))
+    return int(sizeof(value))
+
+
 def block_loader(X, i: int):
     """The loader of block ``i`` of a Dask array made by ``array_from_blocks`` (None otherwise)."""
     try:
@@ -540,7 +558,6 @@ class ClusterBackend:
         return traffic
 
     def _attempt(self, name, X, task, fold, args, reduce, progress, traffic, folded, rows=None) -> None:
-        from dask.sizeof import sizeof
         from distributed import wait
 
         client = self.client
@@ -577,12 +594,12 @@ class ClusterBackend:
                 piece = pending.popleft()
                 if not (whole or i < folded[0]):  # (else nothing to fetch, or fetched by an earlier attempt)
                     result = piece.result()
-                    traffic.received += sizeof(result)
+                    traffic.received += traffic_bytes(result)
                     if i < n - 1 or tree is None:
                         fold(result, i, starts[i])
                     else:
                         total = tree.total().result()
-                        traffic.received += sizeof(total)
+                        traffic.received += traffic_bytes(total)
                         fold(reduce.join(result, total), i, starts[i])
                     folded[0] = i + 1
                     del result
@@ -594,7 +611,7 @@ class ClusterBackend:
                     progress(name, i, n)
             if whole:
                 total = tree.total().result()
-                traffic.received += sizeof(total)
+                traffic.received += traffic_bytes(total)
                 fold(total, 0, 0)
         except BaseException:
             client.cancel(list(pending))
