@@ -7,11 +7,15 @@ on the workers of a ``dask.distributed`` cluster:
 * a block is read on the worker that works on it, from a picklable description
   (:class:`SourceBlocks`: file, dataset, orientation, block bounds, preprocessing); the
   worker opens the file itself once per process and keeps it open. No open file handle,
-  lock or closure travels. When the memory plan has room for the cache, worker ``i mod W``
-  keeps block ``i`` in memory for the later passes (:class:`WorkerCache`; a block whose
-  worker is gone is read from the file again). Blocks with no such description (an
-  in-memory array, parsed text, a block cache of this process) are read here and sent to a
-  worker;
+  lock or closure travels. Sparse blocks stay compressed (:func:`read_sparse_block`). When
+  the memory plan has room for the cache, worker ``i mod W`` keeps block ``i`` in memory for
+  the later passes, and where the plan would write a scratch file, in a scratch file of its
+  own local directory (:class:`WorkerCache`; a block whose worker is gone is read from the
+  file again). Blocks with no such description (an in-memory array, parsed text, a sparse
+  matrix converted to sample order in this process, a block cache of this process) are read
+  here and sent to a worker;
+* rows of their own that a pass hands each block (covariates, sketch columns, half labels)
+  travel with the block's task, once per pass;
 * the arguments of the tasks (the basis ``W``) are sent once per pass to every worker
   (``scatter(broadcast=True)``);
 * the part of each block's result that is summed over blocks (the ``features × l`` Gram
@@ -19,7 +23,9 @@ on the workers of a ``dask.distributed`` cluster:
   shape depends on the number of blocks only, never on timing or on the number of
   workers, and only the total comes back;
 * the per-block pieces the caller needs row by row (``samples × l``) come back and are
-  folded in block order, as on the threaded back-end.
+  folded in block order, as on the threaded back-end; the client keeps ``2·worker threads``
+  tasks unfinished, topping them up as soon as any finishes, so that no worker idles behind
+  a slow block.
 
 Same seed, same result: every block's products are the same numbers as on the threaded
 back-end (BLAS runs single-threaded on both); only the order of the sums over blocks differs
