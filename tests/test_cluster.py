@@ -364,18 +364,21 @@ def test_bad_cluster_options_are_one_line_errors(monkeypatch, write_matrix, tmp_
     assert 'pip install "axiscope[cluster]"' in done.output
 
 
-def test_a_bad_cell_is_named_as_on_the_threaded_fit(client, write_matrix):
+@pytest.mark.parametrize("method", ["randomized", "one-pass"])
+def test_a_bad_cell_is_named_as_on_the_threaded_fit(client, write_matrix, method):
     # the statistics pass's tree carries the first bad cell's row from the start of its run
-    # of blocks; the message must name the same sample and feature as the threaded fit's
+    # of blocks (the one pass: each block's piece carries it); the message must name the
+    # same sample and feature as the threaded fit's
     from axiscope.errors import InputError
 
     X = _planted(5)
     X[555, 7] = np.nan
     path = write_matrix(X, "h5", chunks=(100, P))
+    engine = EngineSettings(method=method, seed=3)
     messages = []
     for extra in ({}, {"scheduler": client}):
         with pytest.raises(InputError) as caught:
-            fit(path, n_components=K, engine=ENGINE, resources=Resources(memory_limit=BUDGET, threads=2, **extra))
+            fit(path, n_components=K, engine=engine, resources=Resources(memory_limit=BUDGET, threads=2, **extra))
         messages.append(str(caught.value))
     assert messages[0] == messages[1]
     assert "sample_000556" in messages[1] and "is NaN or infinite" in messages[1]
