@@ -281,11 +281,18 @@ def _keep(key: tuple, block, on_disk: bool) -> None:
     run = key[0]
     if on_disk and isinstance(block, np.ndarray):
         folder = _scratch_folder(run)
-        os.makedirs(folder, exist_ok=True)
         path = os.path.join(folder, "block-" + "-".join(str(part) for part in key[1:]) + ".bin")
         partial = f"{path}.{uuid.uuid4().hex[:8]}"
-        np.ascontiguousarray(block).tofile(partial)
-        os.replace(partial, path)
+        try:
+            os.makedirs(folder, exist_ok=True)
+            np.ascontiguousarray(block).tofile(partial)
+            os.replace(partial, path)
+        except OSError as exc:  # a full or read-only disk: this block is read from the input again
+            logger.warning("could not keep a block in %s (%s); it will be read from the input again",
+                           folder, reason(exc))
+            with contextlib.suppress(OSError):
+                os.remove(partial)
+            return
         entry = _OnDisk(path, tuple(block.shape), block.dtype.str)
     else:
         _read_only(block)  # shared by later passes: no task may change it
