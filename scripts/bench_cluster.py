@@ -92,13 +92,17 @@ def report(args, threaded_s, threaded, startup_s, cluster_s, clustered) -> None:
     for t, c in zip(threaded.manifest["passes"]["detail"], clustered.manifest["passes"]["detail"]):
         m = l + (10 if c["name"] == "iteration 1" else 0)
         floor = 8 * (n * m + n + p * l)
-        rows.append({"pass": c["name"], "threaded_s": t["seconds"], "cluster_s": c["seconds"],
+        rows.append({"pass": c["name"], "threaded_from": t["read_from"], "cluster_from": c["read_from"],
+                     "threaded_s": t["seconds"], "cluster_s": c["seconds"],
                      "bytes_to_client": c["bytes_to_client"], "floor_bytes": floor,
                      "ratio_to_floor": round(c["bytes_to_client"] / floor, 3),
                      "bytes_from_client": c["bytes_from_client"]})
     summary = {
         "shape": [n, p], "components": args.components, "l": l, "workers": args.workers,
-        "memory_limit": args.memory_limit, "nproc": os.cpu_count(),
+        "memory_limit": args.memory_limit, "nproc": os.cpu_count(), "load_average_after": os.getloadavg(),
+        "plan": {k: threaded.manifest["plan"][k] for k in ("cache", "block_rows")},
+        "blocks": threaded.manifest["passes"]["detail"][0]["blocks"],
+        "cluster_execution": clustered.manifest["execution"],
         "threaded_fit_s": round(threaded_s, 2), "cluster_startup_s": round(startup_s, 2),
         "cluster_fit_s": round(cluster_s, 2), "cluster_over_threaded": round(cluster_s / threaded_s, 2),
         "median_pass_ratio": float(np.median([r["cluster_s"] / r["threaded_s"] for r in rows[1:]])) if len(rows) > 1 else None,

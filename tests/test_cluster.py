@@ -81,6 +81,177 @@ def test_fit_on_the_cluster_equals_the_threaded_fit(client, write_matrix, fmt, s
     assert threaded.manifest["execution"] == {"backend": "threaded", "threads": 2}
 
 
+def _local_directories(dask_worker=None) -> list[str]:
+    """On a worker: what its local directory holds (the scratch folders of kept blocks)."""
+    return sorted(os.listdir(dask_worker.local_directory))
+
+
+def test_blocks_planned_on_scratch_are_kept_in_each_worker_s_scratch_file(client, write_matrix):
+    # a compressed input whose decoded copy does not fit the budget: the plan puts the cache
+    # in a scratch file, and on the cluster each worker keeps the blocks it decoded in a file
+    # of its local directory (read back on the later passes), removed when the fit ends
+    rng = np.random.default_rng(10)
+    n, p = 2000, 400
+    X = (rng.standard_normal((n, 6)) * [30, 20, 12, 8, 5, 4]) @ rng.standard_normal((6, p)) \
+        + rng.standard_normal((n, p))
+    path = write_matrix(X, "zarr3", chunks=(200, p))
+    threaded = fit(path, n_components=K, engine=ENGINE, resources=Resources(memory_limit=BUDGET, threads=2))
+    assert threaded.manifest["plan"]["cache"] == "scratch"
+    clustered = fit(path, n_components=K, engine=ENGINE,
+                    resources=Resources(memory_limit=BUDGET, threads=2, scheduler=client))
+    assert clustered.manifest["execution"]["blocks_kept"].startswith("in a scratch file")
+    later = [d["read_from"] for d in clustered.manifest["passes"]["detail"][1:]]
+    assert later and set(later) == {"worker scratch"}
+    _compare(threaded, clustered)
+    for listing in client.run(_local_directories).values():
+        assert not [name for name in listing if name.startswith("axiscope-blocks-")]
+
+
+def _ids(n: int) -> list[str]:
+    return [f"s{i}" for i in range(n)]
+
+
+def test_covariate_adjusted_fit_on_the_cluster_equals_the_threaded_fit(client, write_matrix):
+    # the statistics pass hands each block its rows of the centred covariates: they travel
+    # with the block's task, and the cross products are summed in the workers' tree
+    import pandas as pd
+
+    from axiscope.core.adjust import Covariates
+
+    rng = np.random.default_rng(6)
+    X = _planted(6)
+    batch = rng.choice(["A", "B", "C"], N)
+    depth = rng.normal(10.0, 2.0, N)
+    X += (batch == "B")[:, None] * rng.normal(0, 3, P) + depth[:, None] * rng.normal(0, 0.5, P)
+    path = write_matrix(X, "h5", chunks=(100, P), sample_ids=_ids(N))
+    table = pd.DataFrame({"sample_id": _ids(N), "batch": batch, "depth": depth})
+    options = dict(n_components=K, engine=ENGINE, covariates=Covariates(table, ["batch", "depth"]))
+    threaded = fit(path, **options, resources=Resources(memory_limit=BUDGET, threads=2))
+    clustered = fit(path, **options, resources=Resources(memory_limit=BUDGET, threads=2, scheduler=client))
+    first = clustered.manifest["passes"]["detail"][0]
+    assert first["name"].startswith("statistics + covariates") and first["blocks"] >= 6
+    _compare(threaded, clustered)
+    _close(threaded.sample_sq_dist, clustered.sample_sq_dist)
+    _close(threaded.model.extras["covariate_coef"], clustered.model.extras["covariate_coef"])
+    # sent: each block's covariate rows once (N × 3 float64 in all) and Ω to both workers;
+    # received: only the merged statistics, sketch and cross products (never per block)
+    assert first["bytes_from_client"] < 8 * (N * 3 + 2 * P * (K + 10)) + 20_000
+    assert first["bytes_to_client"] < 8 * (P * (K + 10) + P * 3 + 4 * P) + 20_000
+
+
+def test_one_pass_fit_on_the_cluster_equals_the_threaded_fit(client, write_matrix):
+    # the one pass hands each block its columns of Ψ; Ψ·X is merged in the workers' tree,
+    # X·Ω and the block means come back per block
+    from axiscope.core.onepass import ERROR_ROWS, sketch_widths
+
+    X = _planted(7)
+    path = write_matrix(X, "zarr3", chunks=(100, P))
+    engine = EngineSettings(method="one-pass", seed=3)
+    threaded = fit(path, n_components=K, engine=engine, resources=Resources(memory_limit=BUDGET, threads=2))
+    clustered = fit(path, n_components=K, engine=engine,
+                    resources=Resources(memory_limit=BUDGET, threads=2, scheduler=client))
+    assert clustered.manifest["passes"]["count"] == 1
+    detail = clustered.manifest["passes"]["detail"][0]
+    assert detail["blocks"] >= 6 and detail["read_from"] == "input"
+    _compare(threaded, clustered)
+    _close(threaded.sample_sq_dist, clustered.sample_sq_dist)
+    assert threaded.manifest["one_pass"]["estimated_relative_error"] == pytest.approx(
+        clustered.manifest["one_pass"]["estimated_relative_error"], rel=1e-10)
+    s, t = sketch_widths(K, ENGINE.oversample, N, P)
+    blocks = detail["blocks"]
+    # sent: Ψ's columns once (N × (s + q)), Ω to both workers; received: N × t, a mean per
+    # block, one merged (s + q) × P and the statistics
+    assert detail["bytes_from_client"] < 8 * (N * (s + ERROR_ROWS) + 2 * P * t) + 20_000
+    assert detail["bytes_to_client"] < 8 * (N * t + blocks * P + (s + ERROR_ROWS) * P + 4 * P) + 2_000 * blocks
+
+
+def _sparse_counts(seed: int = 8):
+    """Poisson counts around a planted rank-3 rate matrix, about 90% zeros (as tests/test_sparse.py)."""
+    import scipy.sparse as sp
+
+    rng = np.random.default_rng(seed)
+    rates = 0.1 * rng.gamma(1.0, 1.0, (N, 3)) @ (rng.gamma(0.3, 1.0, (3, P)) * np.array([[3.0], [1.5], [0.8]]))
+    counts = rng.poisson(rates).astype(np.float64)
+    counts[:, :3] += rng.poisson(0.3, (N, 3))  # no column all zero
+    counts[np.arange(N), rng.integers(0, P, N)] += 1.0  # no sample all zero
+    return sp.csr_matrix(counts)
+
+
+def _write_sparse(path, X, order: str):
+    """The data, indices and indptr of ``X`` in CSR or CSC order and its shape, in an HDF5 or Zarr group."""
+    M = X.tocsr() if order == "csr" else X.tocsc()
+    arrays = {"data": M.data.astype(np.float32), "indices": M.indices.astype(np.int32),
+              "indptr": M.indptr.astype(np.int64)}
+    if path.suffix == ".h5":
+        import h5py
+
+        with h5py.File(path, "w") as handle:
+            group = handle.create_group("counts")
+            for name, values in arrays.items():
+                group.create_dataset(name, data=values)
+            group.attrs.update({"shape": list(M.shape), "format": order})
+    else:
+        import zarr
+
+        group = zarr.open_group(str(path), mode="w").create_group("counts")
+        for name, values in arrays.items():
+            group.create_array(name, shape=values.shape, dtype=values.dtype)[:] = values
+        group.attrs.update({"shape": list(M.shape), "format": order})
+    return path
+
+
+@pytest.mark.parametrize("name, order", [("m.h5", "csr"), ("m.zarr", "csc")])
+def test_sparse_fit_on_the_cluster_equals_the_threaded_fit(client, tmp_path, name, order):
+    # CSR: the workers open the group and read their own ranges of samples, kept compressed;
+    # CSC (converted to sample order once, in this process): the blocks are read here and
+    # sent, compressed, to the workers
+    X = _sparse_counts()
+    path = _write_sparse(tmp_path / name, X, order)
+    spec = PreprocessSpec(counts_per=1e4, log_transform=True)
+    options = dict(n_components=3, engine=ENGINE, preprocess=spec)
+    threaded = fit(path, **options, resources=Resources(memory_limit=BUDGET, threads=2))
+    clustered = fit(path, **options, resources=Resources(memory_limit=BUDGET, threads=2, scheduler=client))
+    assert clustered.manifest["input"]["storage"].startswith("sparse")
+    assert threaded.manifest["passes"]["detail"][0]["blocks"] >= 3
+    _compare(threaded, clustered)
+    _close(threaded.sample_sq_dist, clustered.sample_sq_dist)
+    # LAPACK reference on the dense copy, transformed and standardised (population SD)
+    D = X.toarray()
+    D = np.log1p(D * (1e4 / D.sum(axis=1, keepdims=True)))
+    Z = (D - D.mean(axis=0)) / D.std(axis=0)
+    np.testing.assert_allclose(clustered.model.singular_values, np.linalg.svd(Z, compute_uv=False)[:3], rtol=1e-8)
+    sent = sum(d["bytes_from_client"] for d in clustered.manifest["passes"]["detail"])
+    if order == "csr":  # the blocks never travel: Ω and the bases only
+        assert sent < 8 * 2 * P * 40 * len(clustered.manifest["passes"]["detail"]) + 20_000
+    else:  # each block sent on each pass, compressed (12 bytes a stored value, plus pointers)
+        assert sent >= 12 * X.nnz
+
+
+def test_split_half_stability_on_the_cluster_equals_the_threaded_one(client, write_matrix):
+    # the stability's passes read the fit's blocks where the fit left them (kept by the
+    # workers), each block receives its rows of the half labels, the halves' products are
+    # summed on the workers
+    from axiscope.decide.stability import axis_stability
+
+    X = _planted(9)
+    path = write_matrix(X, "h5", chunks=(100, P))
+    found = {}
+
+    def then(result, blocks):
+        found[blocks.backend is None] = axis_stability(blocks, result, stability_repeats=2, seed=4)
+
+    for extra in ({}, {"scheduler": client}):
+        fit(path, n_components=K, engine=ENGINE, then=then,
+            resources=Resources(memory_limit=BUDGET, threads=2, **extra))
+    threaded, clustered = found[True], found[False]
+    assert clustered.read_from == "workers" and clustered.passes == threaded.passes >= 2
+    np.testing.assert_allclose(clustered.per_repeat, threaded.per_repeat, rtol=0, atol=1e-10)
+    np.testing.assert_allclose(clustered.subspace_per_repeat, threaded.subspace_per_repeat, rtol=0, atol=1e-10)
+    for pair_a, pair_b in zip(threaded.loadings, clustered.loadings):
+        for a, b in zip(pair_a, pair_b):  # each half's vectors, up to the sign eigh picks
+            _close(a, b * np.sign(np.sum(a * b, axis=0)))
+
+
 def test_in_memory_input_under_the_current_client(client):
     # the estimator's in-memory array cannot be opened by a worker: its blocks are sent from
     # here, and the fit uses the current client without being told
@@ -183,18 +354,21 @@ def test_bad_cluster_options_are_one_line_errors(monkeypatch, write_matrix, tmp_
     assert 'pip install "axiscope[cluster]"' in done.output
 
 
-def test_a_bad_cell_is_named_as_on_the_threaded_fit(client, write_matrix):
+@pytest.mark.parametrize("method", ["randomized", "one-pass"])
+def test_a_bad_cell_is_named_as_on_the_threaded_fit(client, write_matrix, method):
     # the statistics pass's tree carries the first bad cell's row from the start of its run
-    # of blocks; the message must name the same sample and feature as the threaded fit's
+    # of blocks (the one pass: each block's piece carries it); the message must name the
+    # same sample and feature as the threaded fit's
     from axiscope.errors import InputError
 
     X = _planted(5)
     X[555, 7] = np.nan
     path = write_matrix(X, "h5", chunks=(100, P))
+    engine = EngineSettings(method=method, seed=3)
     messages = []
     for extra in ({}, {"scheduler": client}):
         with pytest.raises(InputError) as caught:
-            fit(path, n_components=K, engine=ENGINE, resources=Resources(memory_limit=BUDGET, threads=2, **extra))
+            fit(path, n_components=K, engine=engine, resources=Resources(memory_limit=BUDGET, threads=2, **extra))
         messages.append(str(caught.value))
     assert messages[0] == messages[1]
     assert "sample_000556" in messages[1] and "is NaN or infinite" in messages[1]

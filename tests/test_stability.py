@@ -131,9 +131,9 @@ def _counting(src):
     read = src.read_samples
     src.rows_read = 0
 
-    def read_samples(start, stop):
+    def read_samples(start, stop, **options):
         src.rows_read += stop - start
-        return read(start, stop)
+        return read(start, stop, **options)
 
     src.read_samples = read_samples
     return src

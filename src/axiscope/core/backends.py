@@ -7,11 +7,15 @@ on the workers of a ``dask.distributed`` cluster:
 * a block is read on the worker that works on it, from a picklable description
   (:class:`SourceBlocks`: file, dataset, orientation, block bounds, preprocessing); the
   worker opens the file itself once per process and keeps it open. No open file handle,
-  lock or closure travels. When the memory plan has room for the cache, worker ``i mod W``
-  keeps block ``i`` in memory for the later passes (:class:`WorkerCache`; a block whose
-  worker is gone is read from the file again). Blocks with no such description (an
-  in-memory array, parsed text, a block cache of this process) are read here and sent to a
-  worker;
+  lock or closure travels. Sparse blocks stay compressed (:func:`read_sparse_block`). When
+  the memory plan has room for the cache, worker ``i mod W`` keeps block ``i`` in memory for
+  the later passes, and where the plan would write a scratch file, in a scratch file of its
+  own local directory (:class:`WorkerCache`; a block whose worker is gone is read from the
+  file again). Blocks with no such description (an in-memory array, parsed text, a sparse
+  matrix converted to sample order in this process, a block cache of this process) are read
+  here and sent to a worker;
+* rows of their own that a pass hands each block (covariates, sketch columns, half labels)
+  travel with the block's task, once per pass;
 * the arguments of the tasks (the basis ``W``) are sent once per pass to every worker
   (``scatter(broadcast=True)``);
 * the part of each block's result that is summed over blocks (the ``features × l`` Gram
@@ -19,7 +23,9 @@ on the workers of a ``dask.distributed`` cluster:
   shape depends on the number of blocks only, never on timing or on the number of
   workers, and only the total comes back;
 * the per-block pieces the caller needs row by row (``samples × l``) come back and are
-  folded in block order, as on the threaded back-end.
+  folded in block order, as on the threaded back-end; the client keeps ``2·worker threads``
+  tasks unfinished, topping them up as soon as any finishes, so that no worker idles behind
+  a slow block.
 
 Same seed, same result: every block's products are the same numbers as on the threaded
 back-end (BLAS runs single-threaded on both); only the order of the sums over blocks differs
@@ -61,6 +67,8 @@ logger = logging.getLogger(__name__)
 WORKER_LIBRARIES = 256 << 20
 #: Times a pass is run when results are lost with workers (see :meth:`ClusterBackend.run`).
 PASS_ATTEMPTS = 3
+#: Finished block results (pieces waiting for an earlier block) held per task in flight, at most.
+PIECES_HELD = 4
 #: Seconds to wait for a scheduler address to answer.
 CONNECT_TIMEOUT = 20
 
@@ -153,6 +161,9 @@ class SourceBlocks:
     store : callable, optional
         ``store(index, block)``, called with each block read (filling a block cache of this
         process); a description with ``store`` is read here only.
+    sparse : bool
+        The source is sparse: blocks are read as compressed matrices
+        (:func:`read_sparse_block`), never densified.
     """
 
     source: Any
@@ -163,6 +174,9 @@ class SourceBlocks:
     store: Callable[[int, np.ndarray], None] | None = None
     run: str = field(default_factory=lambda: uuid.uuid4().hex)
     keep_on_worker: bool = False
+    sparse: bool = False
+    #: Kept blocks go to a scratch file of each worker (its local directory), not its memory.
+    keep_on_disk: bool = False
 
     @property
     def on_worker(self) -> bool:
@@ -170,7 +184,8 @@ class SourceBlocks:
         return self.store is None and getattr(self.source, "reopen", None) is not None
 
     def __call__(self, i: int) -> np.ndarray:
-        block = read_block(self.source, self.spans[i], self.masks[i], self.spec, self.columns)
+        read = read_sparse_block if self.sparse else read_block
+        block = read(self.source, self.spans[i], self.masks[i], self.spec, self.columns)
         if self.store is not None:
             self.store(i, block)
         return block
@@ -186,7 +201,7 @@ class SourceBlocks:
         keep = (self.run, i, None if self.columns is None else hash(self.columns.tobytes())) \
             if self.keep_on_worker else None
         return _OneBlock(self.source.reopen, self.run, self.spans[i], self.masks[i], self.spec, columns,
-                         packed, self.source.shape[1], keep)
+                         packed, self.source.shape[1], keep, self.sparse, self.keep_on_disk)
 
 
 @dataclass
@@ -202,47 +217,122 @@ class _OneBlock:
     packed_columns: np.ndarray | None
     n_columns: int
     keep: tuple | None = None
+    sparse: bool = False
+    on_disk: bool = False
 
     def __call__(self) -> np.ndarray:
         if self.keep is not None:
-            block = _KEPT.get(self.keep)
+            block = _kept(self.keep)
             if block is not None:
                 return block
         columns = self.columns
         if self.packed_columns is not None:
             columns = np.flatnonzero(np.unpackbits(self.packed_columns, count=self.n_columns))
-        block = read_block(_open_once(self.reopen, self.run), self.span, self.mask, self.spec, columns)
+        read = read_sparse_block if self.sparse else read_block
+        block = read(_open_once(self.reopen, self.run), self.span, self.mask, self.spec, columns)
         if self.keep is not None:
-            block.flags.writeable = False  # shared by later passes: no task may change it
-            with _OPEN_LOCK:
-                for key in [k for k in _KEPT if k[0] != self.run]:  # blocks of earlier runs
-                    del _KEPT[key]
-                _KEPT[self.keep] = block
+            _keep(self.keep, block, self.on_disk)
         return block
 
 
 class WorkerCache:
-    """The decode-once cache kept by the workers: each keeps the blocks it read in memory.
+    """The decode-once cache kept by the workers: each keeps the blocks it read.
 
-    Block ``i`` is sent to worker ``i mod W`` on every pass (another one if that worker is
-    gone: it then reads the block from the file again). Blocks of a run stay until the
-    worker reads for another run, or the run ends (:meth:`ClusterBackend.forget`).
+    In memory, or (``on_disk``) uncompressed in a scratch file of the worker's local
+    directory, read back whole on the later passes. Block ``i`` is sent to worker ``i mod W``
+    on every pass (another one if that worker is gone: it then reads the block from the file
+    again). Blocks of a run stay until the worker reads for another run, or the run ends
+    (:meth:`ClusterBackend.forget`).
     """
 
     columns: np.ndarray | None = None
 
+    def __init__(self, on_disk: bool = False):
+        self.on_disk = on_disk
 
-#: Blocks kept by this worker process: (run, block, columns) -> read-only array.
-_KEPT: dict[tuple, np.ndarray] = {}
+
+@dataclass(frozen=True)
+class _OnDisk:
+    """A kept block in a worker's scratch file."""
+
+    path: str
+    shape: tuple
+    dtype: str
+
+    def load(self) -> np.ndarray | None:
+        try:
+            return np.fromfile(self.path, dtype=self.dtype).reshape(self.shape)
+        except (OSError, ValueError):  # removed or cut short: read from the input again
+            return None
+
+
+#: Blocks kept by this worker process: (run, block, columns) -> read-only array or _OnDisk.
+_KEPT: dict[tuple, Any] = {}
+
+
+def _kept(key: tuple):
+    """The block kept under ``key`` by this process (None: not kept, read it)."""
+    entry = _KEPT.get(key)
+    return entry.load() if isinstance(entry, _OnDisk) else entry
+
+
+def _keep(key: tuple, block, on_disk: bool) -> None:
+    """Keep ``block`` for the later passes of its run; blocks of earlier runs are dropped."""
+    run = key[0]
+    if on_disk and isinstance(block, np.ndarray):
+        folder = _scratch_folder(run)
+        path = os.path.join(folder, "block-" + "-".join(str(part) for part in key[1:]) + ".bin")
+        partial = f"{path}.{uuid.uuid4().hex[:8]}"
+        try:
+            os.makedirs(folder, exist_ok=True)
+            np.ascontiguousarray(block).tofile(partial)
+            os.replace(partial, path)
+        except OSError as exc:  # a full or read-only disk: this block is read from the input again
+            logger.warning("could not keep a block in %s (%s); it will be read from the input again",
+                           folder, reason(exc))
+            with contextlib.suppress(OSError):
+                os.remove(partial)
+            return
+        entry = _OnDisk(path, tuple(block.shape), block.dtype.str)
+    else:
+        _read_only(block)  # shared by later passes: no task may change it
+        entry = block
+    with _OPEN_LOCK:
+        for old in {k[0] for k in _KEPT if k[0] != run}:  # blocks of earlier runs
+            _drop(old)
+        _KEPT[key] = entry
+
+
+def _scratch_folder(run: str) -> str:
+    """Where this worker keeps blocks of ``run`` on disk: its local directory (else the temporary one)."""
+    import tempfile
+
+    try:
+        from distributed import get_worker
+
+        base = get_worker().local_directory
+    except (ImportError, ValueError):
+        base = tempfile.gettempdir()
+    return os.path.join(base, f"axiscope-blocks-{run}")
+
+
+def _drop(run: str) -> int:
+    """Forget the blocks kept for ``run`` (removing their scratch files); the caller holds the lock."""
+    import shutil
+
+    keys = [k for k in _KEPT if k[0] == run]
+    folders = {os.path.dirname(_KEPT[k].path) for k in keys if isinstance(_KEPT[k], _OnDisk)}
+    for key in keys:
+        del _KEPT[key]
+    for folder in folders:
+        shutil.rmtree(folder, ignore_errors=True)
+    return len(keys)
 
 
 def _forget(run: str) -> int:
     """Drop the blocks this process keeps for ``run``; returns how many."""
     with _OPEN_LOCK:
-        keys = [k for k in _KEPT if k[0] == run]
-        for key in keys:
-            del _KEPT[key]
-    return len(keys)
+        return _drop(run)
 
 
 def read_block(source, span, mask, spec, columns) -> np.ndarray:
@@ -269,6 +359,62 @@ def read_block(source, span, mask, spec, columns) -> np.ndarray:
     if columns is not None:
         block = np.ascontiguousarray(block[:, columns])
     return block
+
+
+def read_sparse_block(source, span, mask, spec, columns):
+    """:func:`read_block` of a sparse source: a compressed block, never densified.
+
+    The active rows of samples ``span`` as CSR, the per-sample transforms on the stored
+    values, the chosen columns, and then the compressed-column layout the statistics and
+    products use (:mod:`axiscope.core.sparse_ops`).
+    """
+    from .preprocess import NotADosage
+    from .sparse_ops import as_columns, transform_sparse
+
+    a, b = span
+    block = source.read_sparse(a, b)
+    if mask is not None:
+        block = block[mask]
+    try:
+        block = transform_sparse(block, spec)
+    except NotADosage as exc:
+        rows = np.arange(a, b) if mask is None else a + np.flatnonzero(mask)
+        sample = source.sample_ids[rows[exc.row]]
+        feature = source.feature_ids[exc.column]
+        raise InputError(exc.located(f"{source.path.name}: sample {sample!r}, feature {feature!r}")) from None
+    return as_columns(block if columns is None else block[:, columns])
+
+
+def _read_only(block) -> None:
+    """Make a kept block (dense, or the values of a sparse one) read-only."""
+    values = block if isinstance(block, np.ndarray) else getattr(block, "data", None)
+    if isinstance(values, np.ndarray):
+        values.flags.writeable = False
+
+
+def block_nbytes(block) -> int:
+    """Bytes of a dense or sparse block (values, indices and pointers)."""
+    if isinstance(block, np.ndarray):
+        return int(block.nbytes)
+    return int(sum(getattr(block, name).nbytes for name in ("data", "indices", "indptr") if hasattr(block, name)))
+
+
+def traffic_bytes(value) -> int:
+    """Bytes of a result as it crosses the network: arrays (dense or sparse) inside tuples,
+    lists, dicts and dataclasses counted by their buffers; anything else by dask's estimate."""
+    import dataclasses
+
+    from dask.sizeof import sizeof
+
+    if isinstance(value, np.ndarray) or hasattr(value, "indptr"):
+        return block_nbytes(value)
+    if isinstance(value, (tuple, list)):
+        return sum(traffic_bytes(v) for v in value)
+    if isinstance(value, dict):
+        return sum(traffic_bytes(v) for v in value.values())
+    if dataclasses.is_dataclass(value) and not isinstance(value, type):
+        return sum(traffic_bytes(getattr(value, f.name)) for f in dataclasses.fields(value))
+    return int(sizeof(value))
 
 
 def block_loader(X, i: int):
@@ -314,6 +460,14 @@ def _run_block(piece, task, split, *args, rows=None):
     _limit_blas()
     block = piece() if callable(piece) else piece
     result = task(block, *args) if rows is None else task(block, rows, *args)
+    return split(result) if split is not None else result
+
+
+def _run_block_with_rows(piece, rows, task, split, *args):
+    """:func:`_run_block` for a task that takes the block's own rows: ``task(block, rows, *args)``."""
+    _limit_blas()
+    block = piece() if callable(piece) else piece
+    result = task(block, rows, *args)
     return split(result) if split is not None else result
 
 
@@ -366,6 +520,15 @@ class ClusterBackend:
             self._threads = max(1, sum(int(w.get("nthreads", 1)) for w in info.values()))
         return self._threads
 
+    def cache_mode(self, planned: str) -> str:
+        """Where the workers keep the blocks they read, for the plan's cache ``planned``.
+
+        ``"workers"`` (their memory) for a cache in memory, ``"worker scratch"`` (a file in
+        each worker's local directory) for a scratch file, ``"source"`` (kept nowhere: read
+        from the input on every pass) otherwise.
+        """
+        return {"memory": "workers", "scratch": "worker scratch"}.get(planned, "source")
+
     def reads_on_workers(self, source) -> bool:
         """Whether the workers can open ``source`` themselves."""
         return getattr(source, "reopen", None) is not None
@@ -381,6 +544,7 @@ class ClusterBackend:
             "sums_over_blocks": "pairwise tree on the workers (fixed by the number of blocks)",
             **({} if self.cache is None else {"blocks_kept": {
                 "workers": "in the workers' memory, block i on worker i mod W",
+                "worker scratch": "in a scratch file in each worker's local directory, block i on worker i mod W",
                 "source": "none: the workers read the file on every pass"}[self.cache]}),
         }
 
@@ -388,8 +552,9 @@ class ClusterBackend:
             rows: np.ndarray | None = None) -> PassTraffic:
         """One pass on the cluster; ``fold`` is called here, in block order (see :class:`Reduction`).
 
-        With ``rows`` (one row per sample of ``X``), each block's task receives its rows as
-        on the threaded back-end; they travel with the block's task.
+        With ``rows`` (one row per sample of ``X``), block ``i``'s task receives its own
+        rows: each block's slice travels with its task, once per pass (never the whole array
+        to every worker).
 
         A task lost with its worker is run again by Dask. When a result was lost that Dask can
         no longer recompute (its inputs already released), the pass is run again from its
@@ -413,7 +578,6 @@ class ClusterBackend:
         return traffic
 
     def _attempt(self, name, X, task, fold, args, reduce, progress, traffic, folded, rows=None) -> None:
-        from dask.sizeof import sizeof
         from distributed import wait
 
         client = self.client
@@ -426,38 +590,48 @@ class ClusterBackend:
         split = reduce.split if reduce is not None else None
         whole = reduce is not None and split is None
         tree = _PairwiseTree(client, reduce, combine_args, token) if reduce is not None else None
-        window = 2 * self.worker_threads
+        window = 2 * self.worker_threads  # tasks submitted and not finished
+        held = PIECES_HELD * window  # finished ones waiting for an earlier block, at most
         pending: deque = deque()
         submitted = 0
+
+        def top_up() -> None:
+            nonlocal submitted
+            while submitted < n and len(pending) < held and sum(not f.done() for f in pending) < window:
+                block_rows = None if rows is None else rows[starts[submitted]: starts[submitted] + X.chunks[0][submitted]]
+                pending.append(self._submit(X, blocks, submitted, task, split, shared, tree, token, traffic, whole,
+                                            block_rows))
+                submitted += 1
+
         try:
-            for i in range(n):
-                while submitted < n and len(pending) < window:
-                    block_rows = None if rows is None else \
-                        rows[starts[submitted] : starts[submitted] + X.chunks[0][submitted]]
-                    pending.append(self._submit(X, blocks, submitted, task, split, shared, tree, token, traffic, whole,
-                                                block_rows))
-                    submitted += 1
-                piece = pending.popleft()
-                if whole or i < folded[0]:  # nothing to fetch (or fetched by an earlier attempt)
+            i = 0
+            while i < n:
+                top_up()
+                if not pending[0].done():  # wait for any task, so that the workers never idle behind a slow one
                     with client.as_current():
-                        wait(piece)
-                else:
+                        wait([f for f in pending if not f.done()], return_when="FIRST_COMPLETED")
+                    continue
+                piece = pending.popleft()
+                if not (whole or i < folded[0]):  # (else nothing to fetch, or fetched by an earlier attempt)
                     result = piece.result()
-                    traffic.received += sizeof(result)
+                    traffic.received += traffic_bytes(result)
                     if i < n - 1 or tree is None:
                         fold(result, i, starts[i])
                     else:
                         total = tree.total().result()
-                        traffic.received += sizeof(total)
+                        traffic.received += traffic_bytes(total)
                         fold(reduce.join(result, total), i, starts[i])
                     folded[0] = i + 1
                     del result
+                elif piece.status == "error":
+                    piece.result()  # raises the task's error
                 del piece
+                i += 1
                 if progress:
-                    progress(name, i + 1, n)
+                    progress(name, i, n)
             if whole:
                 total = tree.total().result()
-                traffic.received += sizeof(total)
+                traffic.received += traffic_bytes(total)
                 fold(total, 0, 0)
         except BaseException:
             client.cancel(list(pending))
@@ -489,21 +663,23 @@ class ClusterBackend:
                 placement = {"workers": [addresses[i % len(addresses)]], "allow_other_workers": True}
         else:  # read here (memory, text, a cache of this process) and sent to a worker
             (block,) = dask.compute(blocks[i], scheduler="synchronous")
-            traffic.sent += block.nbytes
+            traffic.sent += block_nbytes(block)
             piece = client.scatter(block, hash=False)
-        own = {}
-        if rows is not None:  # passed to _run_block
+        if rows is None:
+            future = client.submit(_run_block, piece, task, split, *shared, key=f"{token}-block-{i}", pure=False,
+                                   **placement)
+        else:
+            rows = np.ascontiguousarray(rows)
             traffic.sent += rows.nbytes
-            own["rows"] = rows
-        future = client.submit(_run_block, piece, task, split, *shared, key=f"{token}-block-{i}", pure=False,
-                               **placement, **own)
+            future = client.submit(_run_block_with_rows, piece, rows, task, split, *shared,
+                                   key=f"{token}-block-{i}", pure=False, **placement)
         if tree is None:
             return future
         if whole:
             tree.push(future)
             return future
         kept = client.submit(operator.getitem, future, 0, key=f"{token}-piece-{i}", pure=False)
-        tree.push(client.submit(operator.getitem, future, 1, key=f"{token}-part-{i}", pure=False))
+        tree.push(future, part=True)  # the tree takes the summed part itself: no task for it
         return kept
 
 
@@ -517,36 +693,47 @@ class _PairwiseTree:
 
     def __init__(self, client, reduce: Reduction, combine_args, token: str):
         self.client, self.reduce, self.args, self.token = client, reduce, list(combine_args), token
-        self.stack: list[tuple[int, Any]] = []
+        #: (height, future, whether the future is a block's (piece, part) of which to sum the part)
+        self.stack: list[tuple[int, Any, bool]] = []
         self.count = 0
         self.made: list = []
 
     def _combine(self, left, right):
         self.count += 1
-        future = self.client.submit(self.reduce.combine, left, right, *self.args,
+        future = self.client.submit(_sum_pair, self.reduce.combine, left[1], left[2], right[1], right[2], *self.args,
                                     key=f"{self.token}-sum-{self.count}", pure=False)
         self.made.append(future)
         return future
 
-    def push(self, future) -> None:
-        height = 0
+    def push(self, future, part: bool = False) -> None:
+        """Block ``i``'s result (``part``: a ``(piece, summed)`` pair, of which the second is summed)."""
+        height, entry = 0, (0, future, part)
         while self.stack and self.stack[-1][0] == height:
-            _, left = self.stack.pop()
-            future = self._combine(left, future)
+            left = self.stack.pop()
+            entry = (height + 1, self._combine(left, entry), False)
             height += 1
-        self.stack.append((height, future))
+        self.stack.append(entry)
 
     def total(self):
-        _, future = self.stack.pop()
+        entry = self.stack.pop()
+        if entry[2] and not self.stack:  # a single block: its summed part alone
+            entry = (entry[0], self.client.submit(operator.getitem, entry[1], 1, key=f"{self.token}-part",
+                                                  pure=False), False)
+            self.made.append(entry[1])
         while self.stack:
-            _, left = self.stack.pop()
-            future = self._combine(left, future)
-        self.stack.append((np.inf, future))
+            left = self.stack.pop()
+            entry = (entry[0], self._combine(left, entry), False)
+        self.stack.append((np.inf, entry[1], False))
         self.made = []
-        return future
+        return entry[1]
 
     def cancel(self) -> None:
-        self.client.cancel([f for _, f in self.stack] + self.made)
+        self.client.cancel([f for _, f, _ in self.stack] + self.made)
+
+
+def _sum_pair(combine, left, left_part: bool, right, right_part: bool, *args):
+    """On a worker: ``combine`` of two partial sums, taking the summed part of a block's pair."""
+    return combine(left[1] if left_part else left, right[1] if right_part else right, *args)
 
 
 # ------------------------------------------------------------------------ choosing a back-end

@@ -54,6 +54,7 @@ import numpy as np
 import scipy.linalg
 
 from .adjust import Adjustment, Residualizer
+from .backends import Reduction
 from .engine import Factorization, accuracy_from_error, orient_signs
 from .passes import PassRunner
 from .preprocess import BlockStats, block_statistics, first_nonfinite
@@ -93,7 +94,8 @@ def _task(block, rows, width, omega, in_place=False):
 
     ``rows`` holds this block's columns of ``Ψ`` (the first ``width`` columns) followed by its
     rows of the centred covariates ``C̄`` (none without an adjustment). Returns
-    ``(stats, left, cross, right, bad)`` with ``left = Ψ_b·(X_b − 1·m_bᵀ)`` (``width × p``),
+    ``(stats, left, cross, right, bad, Ψ_b·1, m_b)`` (the last two to merge ``left`` over
+    blocks and to move ``right`` to the final centre) with ``left = Ψ_b·(X_b − 1·m_bᵀ)`` (``width × p``),
     ``cross = X_bᵀ·C̄_b`` (:func:`axiscope.core.adjust.block_cross`; None without covariates)
     and ``right = (X_b − 1·m_bᵀ)·Ω``. Both left-hand products are one product with
     ``[Ψ_bᵀ, C̄_b]``. A dense block is centred in its own dtype on a shift ``c`` near ``m_b``
@@ -103,8 +105,9 @@ def _task(block, rows, width, omega, in_place=False):
     if is_sparse(block):
         return _sparse_task(block, rows, width, omega)
     stats, centred, c = _shifted(block, in_place)
+    psi_sum = rows[:, :width].astype(np.float64).sum(axis=0)
     if centred is None:
-        return stats, None, None, None, first_nonfinite(block)
+        return stats, None, None, None, first_nonfinite(block), psi_sum, stats.mean
     del block
     e = stats.mean - c.astype(np.float64)
     rows_b = rows.astype(centred.dtype)
@@ -117,7 +120,7 @@ def _task(block, rows, width, omega, in_place=False):
     omega_b = omega.astype(centred.dtype)
     right = (centred @ omega_b).astype(np.float64)
     right -= e @ omega_b.astype(np.float64)
-    return stats, left, cross, right, None
+    return stats, left, cross, right, None, psi_sum, stats.mean
 
 
 def _shifted(block: np.ndarray, in_place: bool = False) -> tuple[BlockStats, np.ndarray | None, np.ndarray | None]:
@@ -153,15 +156,55 @@ def _sparse_task(block, rows, width, omega):
     ``(X_b − 1mᵀ)Ω = X_bΩ − 1·(mᵀΩ)``), never a dense copy of the block."""
     block = as_columns(block)
     bad = first_nonfinite_sparse(block)
+    psi_sum = rows[:, :width].astype(np.float64).sum(axis=0)
     if bad is not None:
-        return None, None, None, None, bad
+        return None, None, None, None, bad, psi_sum, None
     stats = sparse_block_statistics(block)
     both = sparse_transposed_product(block, rows)  # X_bᵀ·[Ψ_bᵀ, C̄_b]
     left = both[:, :width].T - np.outer(rows[:, :width].sum(axis=0), stats.mean)
     cross = both[:, width:] if rows.shape[1] > width else None
     zero = np.zeros_like(stats.mean)
     right = sparse_products(block, omega, 0.0, stats.mean, zero, zero, None, 0, False)[0]
-    return stats, left, cross, right, None
+    return stats, left, cross, right, None, psi_sum, stats.mean
+
+
+def _merge_left(a, b):
+    """Two runs of blocks' ``(stats, left, Ψ·1, cross)`` as one, ``left`` about the merged mean
+    (``cross``, the covariates' ``XᵀC̄``, is a plain sum; None without covariates).
+
+    With ``left_A = Ψ_A·(X_A − 1·m_Aᵀ)`` and the merged mean ``m``,
+    ``Ψ_A·(X_A − 1·mᵀ) = left_A + (Ψ_A·1)·(m_A − m)ᵀ``; the shifts are differences of
+    means, small next to the means themselves.
+    """
+    stats_a, left_a, sum_a, cross_a = a
+    stats_b, left_b, sum_b, cross_b = b
+    if stats_a is None or stats_b is None:  # a sparse block with a non-finite value, named when folded
+        return None, None, sum_a + sum_b, None
+    stats = stats_a.merge(stats_b)
+    left = None
+    if left_a is not None and left_b is not None:
+        left = left_a + np.outer(sum_a, stats_a.mean - stats.mean)
+        left += left_b
+        left += np.outer(sum_b, stats_b.mean - stats.mean)
+    cross = None if cross_a is None or cross_b is None else cross_a + cross_b
+    return stats, left, sum_a + sum_b, cross
+
+
+def _split(result):
+    """On a cluster: ``right``, the bad cell and the block mean come back per block; the
+    statistics and ``left`` are merged on the workers (:func:`_merge_left`)."""
+    stats, left, cross, right, bad, psi_sum, mean = result
+    return (None, None, None, right, bad, None, mean), (stats, left, psi_sum, cross)
+
+
+def _join(piece, total):
+    _, _, _, right, bad, _, mean = piece
+    stats, left, psi_sum, cross = total
+    return stats, left, cross, right, bad, psi_sum, mean
+
+
+#: How a cluster sums the one-pass results (:class:`axiscope.core.backends.Reduction`).
+ONE_PASS_SUM = Reduction(_merge_left, split=_split, join=_join)
 
 
 def one_pass_factorization(
@@ -226,40 +269,38 @@ def one_pass_factorization(
     rows = psi.T if adjust is None else np.hstack([psi.T, adjust.centred])
 
     Y = np.empty((n, t))
-    acc: dict = {"stats": None, "left": None, "ref": None}
+    acc: dict = {"merged": None, "ref": None}
     shifts: list[tuple[int, int, np.ndarray]] = []
 
     def fold(result, index, start):
-        stats, left, cross, right, bad = result
+        stats, left, cross, right, bad, psi_sum, mean = result
         if bad is not None:
             if on_missing is not None:
                 on_missing(start + bad[0], bad[1])
             raise ValueError(f"non-finite value at row {start + bad[0]}, column {bad[1]}")
         m = right.shape[0]
         if acc["ref"] is None:
-            acc["ref"] = stats.mean.copy()
-            acc["left"] = np.zeros((s + q, p))
-        shift = stats.mean - acc["ref"]  # small: block mean against the first block's mean
-        acc["left"] += left
-        acc["left"] += np.outer(psi[:, start : start + m].sum(axis=1), shift)
-        if cross is not None:
-            adjust.add_cross(cross)
+            acc["ref"] = mean.copy()
         Y[start : start + m] = right
-        shifts.append((start, m, shift @ omega_used))
-        acc["stats"] = stats if acc["stats"] is None else acc["stats"].merge(stats)
+        shifts.append((start, m, (mean - acc["ref"]) @ omega_used))  # small: against the first block's mean
+        if stats is not None:  # on a cluster, only the last block brings the merged total
+            merged = (stats, left, psi_sum, cross)
+            acc["merged"] = merged if acc["merged"] is None else _merge_left(acc["merged"], merged)
 
     name = "one pass: statistics + " + ("covariates + " if adjust is not None else "") + "sketches"
-    runner.run(name, source, X, _task, fold, s + q, omega_used, bool(fresh_blocks), rows=rows)
-    stats: BlockStats = acc["stats"]
+    in_place = bool(fresh_blocks) and runner.backend is None  # (a cluster may run a block's task twice)
+    runner.run(name, source, X, _task, fold, s + q, omega_used, in_place, rows=rows, reduce=ONE_PASS_SUM)
+    stats, left_about, psi_sum, cross = acc["merged"]
+    if cross is not None:
+        adjust.add_cross(cross)
     mean, d = finish(stats)
     mean = np.asarray(mean, dtype=np.float64)
     d = np.asarray(d, dtype=np.float64)
 
-    # centre about μ (from about the first block's mean), then scale
-    mu_shift = mean - acc["ref"]
-    left = acc["left"] - np.outer(psi.sum(axis=1), mu_shift)  # Ψ·X̃ before the scale
+    # centre about μ (from about the mean of the pass), then scale
+    left = left_about - np.outer(psi_sum, mean - stats.mean)  # Ψ·X̃ before the scale
     left *= d
-    mu_omega = mu_shift @ omega_used
+    mu_omega = (mean - acc["ref"]) @ omega_used
     for start, m, shift_omega in shifts:
         Y[start : start + m] += shift_omega - mu_omega
     total = float(np.sum(stats.m2 * d**2))  # ‖X̃‖²_F

@@ -95,7 +95,8 @@ class PassRunner:
         """Compute ``task(block, *args)`` for every row block and call ``fold(result, index, start)``.
 
         With ``rows`` (one row per sample of ``X``, e.g. covariates), the task is called as
-        ``task(block, rows_of_the_block, *args)``.
+        ``task(block, rows_of_the_block, *args)``; on a cluster each block's rows travel with
+        its task.
 
         ``fold`` is called on the calling thread, in block order. On the threaded back-end
         each result is folded as soon as the blocks before it are done (no barrier between

@@ -64,8 +64,9 @@ import pandas as pd
 import scipy.linalg
 from scipy.optimize import linear_sum_assignment
 
+from ..core.backends import Reduction
 from ..core.engine import ritz_accuracy
-from ..core.passes import PassRunner, Progress, array_from_blocks, blas_threads
+from ..core.passes import PassRunner, Progress, blas_threads
 from ..errors import OptionError
 from ..fitting.result import FitResult
 from ..fitting.run import FittedBlocks, fitted_blocks
@@ -257,7 +258,7 @@ def axis_stability(
     blocks = source if isinstance(source, FittedBlocks) else \
         fitted_blocks(source, result, active=active, name="stability")
     threads = threads or int(result.manifest.get("plan", {}).get("threads", 1))
-    runner = PassRunner(threads=threads, progress=progress)
+    runner = PassRunner(threads=threads, progress=progress, backend=blocks.backend)  # the fit's cluster, if any
     rng = np.random.default_rng(seed)
     labels = np.stack([_split(n, rng) for _ in range(repeats)])
     with blas_threads(threads):
@@ -442,7 +443,8 @@ def _shared_pass(runner: PassRunner, blocks, labels, Ws, offsets, centre, fill, 
     """One read of the matrix: for every half, ``C_hᵀ·Y_h``, ``Σ Y_h`` and (first pass) ``Σ C_h``.
 
     ``C_h`` are the half's rows of the block centred (in the data's dtype) on the fit's centre
-    rounded to it, ``Y_h = C_h·W_h − 1·offset_h`` in float64. Results are folded in block order.
+    rounded to it, ``Y_h = C_h·W_h − 1·offset_h`` in float64. Each block receives its rows of
+    the half labels; results are folded in block order (on a cluster, summed on the workers).
     """
     n_halves = len(Ws)
     acc = {"g": [np.zeros((W.shape[0], W.shape[1])) for W in Ws],
@@ -457,16 +459,25 @@ def _shared_pass(runner: PassRunner, blocks, labels, Ws, offsets, centre, fill, 
             if csum is not None:
                 acc["c"][j] += csum
 
-    def task(item):
-        start, block = item
-        return _half_products(block, labels, start, Ws, offsets, centre, fill, first)
-
-    starts = np.concatenate([[0], np.cumsum(blocks.rows)])[:-1].astype(int)
-    # each chunk computes (first row, block), so that the task knows which half each row is in
-    tagged = array_from_blocks(lambda i: (int(starts[i]), blocks.load(i)), blocks.rows,
-                               blocks.mean.shape[0], blocks.X.dtype, f"{blocks.X.name}-rows")
-    runner.run(name, blocks.source, tagged, task, fold)
+    runner.run(name, blocks.source, blocks.X, _half_task, fold, centre, fill, first, *Ws, *offsets,
+               rows=np.ascontiguousarray(labels.T), reduce=HALF_SUMS)
     return acc["g"], acc["y"], acc["c"] if first else [None] * n_halves
+
+
+def _half_task(block, label_rows, centre, fill, first, *arrays):
+    """:func:`_half_products` of one block, given its rows of the labels (samples × repeats) and
+    the halves' ``W`` then ``offset`` arrays (each its own argument, so a cluster sends each once)."""
+    half = len(arrays) // 2
+    return _half_products(block, label_rows.T, 0, arrays[:half], arrays[half:], centre, fill, first)
+
+
+def _add_halves(a, b):
+    """The summed products of two runs of blocks, half by half (a cluster's tree sum)."""
+    return [(ga + gb, ya + yb, None if ca is None else ca + cb) for (ga, ya, ca), (gb, yb, cb) in zip(a, b)]
+
+
+#: On a cluster, every half's products are summed on the workers; only the totals come back.
+HALF_SUMS = Reduction(_add_halves)
 
 
 def _half_products(block, labels, start, Ws, offsets, centre, fill, first):

@@ -23,18 +23,17 @@ import pandas as pd
 
 from .. import __version__
 from ..core.adjust import Adjustment, Covariates, Residualizer, block_cross
-from ..core.backends import Reduction, SourceBlocks, WorkerCache, open_backend, read_block
+from ..core.backends import Reduction, SourceBlocks, WorkerCache, open_backend, read_block, read_sparse_block
 from ..core.cache import BlockCache, remove_scratch_leftovers
 from ..core.engine import Factorization, exact_factorization, randomized_factorization
 from ..core.onepass import one_pass_factorization
 from ..core.options import METHODS, EngineSettings, InputLayout, Resources
 from ..core.passes import PassRunner, Progress, array_from_blocks, blas_threads
 from ..core.plan import BlockPlan, plan_fit
-from ..core.sparse_ops import SparseBlockCache, as_columns, is_sparse, sparse_stats_task, transform_sparse
+from ..core.sparse_ops import SparseBlockCache, is_sparse, sparse_stats_task
 from ..core.preprocess import (
     BlockStats,
     FeatureStatistics,
-    NotADosage,
     Preprocessing,
     PreprocessSpec,
     block_statistics,
@@ -216,9 +215,6 @@ def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None, then=No
     checkpoint = _checkpoint(job, identity, plan, active, exclude, method, adjust)
     rng = job.engine.generator()
     reader = _Reader(src, job.spec, active, plan.block_rows, plan.block_nonzeros)
-    if job.backend is not None and (reader.sparse or then is not None):
-        raise OptionError(f"{src.path}: {'a sparse matrix' if reader.sparse else 'the split-half stability'} "
-                          "is not yet computed on a cluster; run it without scheduler or cluster")
     if reader.sparse and adjust is not None and method != "one-pass":
         raise OptionError(f"{src.path}: a sparse matrix is not yet fitted after a covariate adjustment "
                           "in several passes; read it once (the one-pass method), drop the adjustment, "
@@ -230,9 +226,10 @@ def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None, then=No
     filtered = job.spec.has_filter or exclude is not None
     with _Caches(plan, job.resources, sparse=reader.sparse) as caches:
         if job.backend is not None and job.backend.reads_on_workers(src):
-            # workers read their own blocks: kept in the workers' memory when the plan has room
-            # for the cache in memory, otherwise decoded from the file on every pass
-            caches.mode = job.backend.cache = "workers" if plan.cache == "memory" else "source"
+            # workers read their own blocks: kept in their memory when the plan has room for the
+            # cache in memory, in a scratch file of each worker when it plans a scratch file,
+            # otherwise read from the input on every pass
+            caches.mode = job.backend.cache = job.backend.cache_mode(plan.cache)
         first_cache = None if filtered else caches.new(n, src.shape[1], src.dtype)
         fuse = not filtered and job.spec.missing == "error" and method == "randomized"
         l = min(job.k + job.engine.oversample, min(n, src.shape[1]))
@@ -254,7 +251,7 @@ def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None, then=No
                          identity=identity, checkpoint=checkpoint, adjust=adjust, residualizer=residualizer)
         caches.record(result.manifest["plan"])
         if then is not None:
-            then(result, operand.blocks(reader, prep))
+            then(result, operand.blocks(reader, prep, job.backend))
     return result
 
 
@@ -403,20 +400,9 @@ class _Reader:
 
     def block(self, i: int, columns=None, cache: BlockCache | None = None) -> np.ndarray:
         a, b = self.spans[i]
-        if self.sparse:
-            block = self.src.read_sparse(a, b)
-            if not self.all_active:
-                block = block[self.active[a:b]]
-            try:
-                block = transform_sparse(block, self.spec)
-            except NotADosage as exc:
-                sample = self.src.sample_ids[a + np.flatnonzero(self.active[a:b])[exc.row]]
-                feature = self.src.feature_ids[exc.column]
-                raise InputError(exc.located(f"{self.src.path.name}: sample {sample!r}, feature {feature!r}")) from None
-            # the products' layout (core/sparse_ops.py), made once per read
-            block = as_columns(block if columns is None else block[:, columns])
-        else:
-            block = read_block(self.src, (a, b), None if self.all_active else self.active[a:b], self.spec, columns)
+        # sparse blocks stay compressed, in the products' layout (core/sparse_ops.py)
+        read = read_sparse_block if self.sparse else read_block
+        block = read(self.src, (a, b), None if self.all_active else self.active[a:b], self.spec, columns)
         if cache is not None:
             cache.put(int(self.starts[i]), block)
         return block
@@ -426,15 +412,15 @@ class _Reader:
         masks = [None if self.all_active else self.active[a:b] for a, b in self.spans]
         if isinstance(cache, WorkerCache):  # the workers keep the blocks they read
             cache.columns = columns
-            return SourceBlocks(self.src, self.spans, masks, self.spec, columns, None, self.token, True)
+            return SourceBlocks(self.src, self.spans, masks, self.spec, columns, None, self.token, True,
+                                sparse=self.sparse, keep_on_disk=cache.on_disk)
         store = None if cache is None else (lambda i, block: cache.put(int(self.starts[i]), block))
-        return SourceBlocks(self.src, self.spans, masks, self.spec, columns, store, self.token)
+        return SourceBlocks(self.src, self.spans, masks, self.spec, columns, store, self.token, sparse=self.sparse)
 
     def array(self, name: str, columns=None, cache: BlockCache | None = None):
         """The input read once more (filling ``cache`` when given), as a Dask array."""
         width = self.src.shape[1] if columns is None else columns.shape[0]
-        load = (lambda i: self.block(i, columns, cache)) if self.sparse else self.blocks(columns, cache)
-        return array_from_blocks(load, self.rows, width, self.src.dtype, f"{name}-{self.token}")
+        return array_from_blocks(self.blocks(columns, cache), self.rows, width, self.src.dtype, f"{name}-{self.token}")
 
     def load_cached(self, cache: BlockCache):
         """``load(i)``: the ``i``-th block from ``cache``."""
@@ -472,6 +458,9 @@ class FittedBlocks:
     kept: np.ndarray | None = None
     #: Where the blocks are read from: "input", "memory", "scratch" or "source".
     source: str = "input"
+    #: The cluster the fit ran on (None: threads of this process); passes over these blocks
+    #: run there too (their blocks may be kept by its workers).
+    backend: object = None
 
 
 def fitted_blocks(src: MatrixSource, result: FitResult, *, active: np.ndarray | None = None,
@@ -518,8 +507,8 @@ class _Caches:
     def new(self, n_rows: int, n_cols: int, dtype) -> BlockCache | WorkerCache | None:
         if self.mode == "source":
             return None
-        if self.mode == "workers":
-            return WorkerCache()
+        if self.mode in ("workers", "worker scratch"):
+            return WorkerCache(on_disk=self.mode == "worker scratch")
         if self.sparse:  # the plan keeps sparse blocks in memory or re-reads the source
             cache = SparseBlockCache()
             self.opened.append(cache)
@@ -605,13 +594,13 @@ class _Operand:
             later, source = reader.array("reread", columns), "source"
         return cls(columns, mean, d, fill, first, later, source, cache)
 
-    def blocks(self, reader: _Reader, prep: Preprocessing) -> FittedBlocks:
-        """The blocks the later passes read (cache or input), for passes after the fit."""
+    def blocks(self, reader: _Reader, prep: Preprocessing, backend=None) -> FittedBlocks:
+        """The blocks the later passes read (cache or input), for passes after the fit (on ``backend``)."""
         load = reader.load_cached(self.cache) if self.cache is not None else \
             (lambda i: reader.block(i, self.columns))
         kept = None if self.columns is not None or prep.kept.shape[0] == reader.src.shape[1] else prep.kept
         return FittedBlocks(self.later, self.mean, self.inverse_scale, self.fill, load, list(reader.rows),
-                            kept, self.later_source)
+                            kept, self.later_source, backend)
 
 
 def _input_identity(src: MatrixSource, checksum: str) -> dict | None:
@@ -871,6 +860,8 @@ def _merge_stats(a, b, omega, centre):
     stats_a, sketch_a, bad_a = a
     stats_b, sketch_b, bad_b = b
     bad = bad_a if bad_a is not None else None if bad_b is None else (bad_b[0] + stats_a.n_samples, bad_b[1])
+    if stats_a is None or stats_b is None:  # a sparse block with a bad cell has no statistics
+        return None, None, bad
     sketch = None
     if sketch_a is not None and sketch_b is not None:
         if centre:
@@ -879,6 +870,13 @@ def _merge_stats(a, b, omega, centre):
             sketch_b = sketch_b + (n_a * n_b / (n_a + n_b)) * np.outer(delta, delta @ omega)
         sketch = sketch_a + sketch_b
     return stats_a.merge(stats_b), sketch, bad
+
+
+def _merge_stats_and_cross(a, b, omega, centre):
+    """:func:`_merge_stats` of the covariate-adjusted statistics pass: the cross products
+    ``X_bᵀ·C̄_b`` add up (None once a bad cell was met)."""
+    cross = None if a[3] is None or b[3] is None else a[3] + b[3]
+    return (*_merge_stats(a[:3], b[:3], omega, centre), cross)
 
 
 def _statistics_pass(X, spec, omega, runner, src, active, *, centre: bool = True,
@@ -927,7 +925,8 @@ def _statistics_pass(X, spec, omega, runner, src, active, *, centre: bool = True
                    _stats_task, fold, omega32, centre, reduce=Reduction(_merge_stats, (omega, centre)))
     else:
         runner.run("statistics + covariates" + (" + sketch" if omega is not None else ""), "input", X,
-                   _stats_task_with_rows, fold, omega32, centre, rows=adjust.centred)
+                   _stats_task_with_rows, fold, omega32, centre, rows=adjust.centred,
+                   reduce=Reduction(_merge_stats_and_cross, (omega, centre)))
     merged: BlockStats = state["stats"]
     return FeatureStatistics.from_block_stats(merged), state["sketch"]
 

@@ -123,6 +123,12 @@ def open_matrix(path: str | os.PathLike[str], *, dataset: str | None = None,
                                  allow_external_data=allow_external_data,
                                  allow_missing_chunks=allow_missing_chunks)
         if sparse is not None:
+            if sparse.held_bytes == 0:  # read by ranges of samples, nothing held: another process can open it
+                sparse.reopen = {"path": str(path.resolve()), "dataset": sparse.dataset,
+                                 "sample_ids": _absolute(sample_ids), "feature_ids": _absolute(feature_ids),
+                                 "samples_in": samples_in, "sparse_names": sparse_names,
+                                 "compressed_axis": compressed_axis, "allow_external_data": bool(allow_external_data),
+                                 "allow_missing_chunks": bool(allow_missing_chunks)}
             return sparse
     if kind in ("npy", "text") and dataset is not None:
         raise OptionError(f"{path.name}: dataset={dataset!r} only applies to HDF5 and Zarr input; leave it out")
