@@ -341,7 +341,7 @@ def read_block(source, span, mask, spec, columns) -> np.ndarray:
     ``spec=None``: the values as stored, unchecked (the task transforms and checks them, as
     the projection of samples onto a model does).
     """
-    from .preprocess import NotADosage, transform_block
+    from .preprocess import transform_block
 
     a, b = span
     block = source.read_samples(a, b, check_range=spec is not None)
@@ -349,13 +349,7 @@ def read_block(source, span, mask, spec, columns) -> np.ndarray:
         block = block[mask]
     if spec is None:
         return block if columns is None else np.ascontiguousarray(block[:, columns])
-    try:
-        block = transform_block(block, spec)
-    except NotADosage as exc:
-        rows = np.arange(a, b) if mask is None else a + np.flatnonzero(mask)
-        sample = source.sample_ids[rows[exc.row]]
-        feature = source.feature_ids[exc.column]
-        raise InputError(exc.located(f"{source.path.name}: sample {sample!r}, feature {feature!r}")) from None
+    block = _transformed(transform_block, block, spec, source, span, mask)
     if columns is not None:
         block = np.ascontiguousarray(block[:, columns])
     return block
@@ -368,21 +362,27 @@ def read_sparse_block(source, span, mask, spec, columns):
     values, the chosen columns, and then the compressed-column layout the statistics and
     products use (:mod:`axiscope.core.sparse_ops`).
     """
-    from .preprocess import NotADosage
     from .sparse_ops import as_columns, transform_sparse
 
     a, b = span
     block = source.read_sparse(a, b)
     if mask is not None:
         block = block[mask]
+    block = _transformed(transform_sparse, block, spec, source, span, mask)
+    return as_columns(block if columns is None else block[:, columns])
+
+
+def _transformed(transform, block, spec, source, span, mask):
+    """``transform(block, spec)``; a value that is not a dosage is named by sample and feature."""
+    from .preprocess import NotADosage
+
     try:
-        block = transform_sparse(block, spec)
+        return transform(block, spec)
     except NotADosage as exc:
-        rows = np.arange(a, b) if mask is None else a + np.flatnonzero(mask)
+        rows = np.arange(*span) if mask is None else span[0] + np.flatnonzero(mask)
         sample = source.sample_ids[rows[exc.row]]
         feature = source.feature_ids[exc.column]
         raise InputError(exc.located(f"{source.path.name}: sample {sample!r}, feature {feature!r}")) from None
-    return as_columns(block if columns is None else block[:, columns])
 
 
 def _read_only(block) -> None:
