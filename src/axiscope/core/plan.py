@@ -435,13 +435,15 @@ WINDOW = 4
 
 
 def window_block_rows(source: "MatrixSource", *, budget: int, held: int, limit: int, accumulators: int,
-                      results: int, row_bytes: int, what: str) -> int:
+                      results: int, row_bytes: int, what: str, threads: int = WINDOW // 2) -> int:
     """Rows per block of a streaming pass that keeps ``accumulators`` bytes while a window of
     ``WINDOW`` blocks of ``row_bytes`` per row is in flight, and ``results`` bytes after it.
 
-    Blocks are whole multiples of the on-disk sample chunk when they span one or more.
-    ``what`` names the work in the error raised when the budget cannot hold it.
+    Blocks are whole multiples of the on-disk sample chunk when they span one or more; the
+    band of decoded chunks each of ``threads`` reading threads holds
+    (:class:`axiscope.io.chunk_bands.ChunkBands`) is counted with the accumulators. ``what`` names the work in the error raised when the budget cannot hold it.
     """
+    accumulators += threads * (decoded_chunk_bytes(source) // 2)  # a decoded chunk band per thread
     needed = max(accumulators + WINDOW * row_bytes, accumulators + results)
     if needed > budget:
         raise OptionError(f"memory_limit={format_bytes(limit)} is too small for {what} (needs at least "

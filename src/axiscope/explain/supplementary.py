@@ -163,7 +163,7 @@ def _block_rows(source: MatrixSource, n: int, p: int, k: int, threads: int, memo
     row_bytes = p_all * source.dtype.itemsize * 2 + p * 8 * 2 + 8 * p * k // max(1, n)
     return window_block_rows(source, budget=budget, held=held, limit=limit, accumulators=accumulators + in_flight,
                              results=max(0, results - in_flight), row_bytes=row_bytes,
-                             what=f"statistics of {p} supplementary features on {k} axes")
+                             what=f"statistics of {p} supplementary features on {k} axes", threads=threads)
 
 
 @dataclass
