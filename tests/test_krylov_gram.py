@@ -55,3 +55,31 @@ def test_ritz_values_through_extension_and_restart_match_lapack():
         basis.restart_if_full(W, l)
     # after the restarts the carried Gram matrix is still BᵀB of the basis held
     assert np.max(np.abs(basis.G - basis.B.T @ basis.B)) <= ROUNDING * np.max(np.abs(basis.G))
+
+
+def _restarting_fit(X, **extra):
+    import dask.array as da
+
+    from axiscope.core.engine import randomized_factorization
+
+    mean, d = X.mean(axis=0), 1.0 / X.std(axis=0)
+    return randomized_factorization(da.from_array(X, chunks=(100, X.shape[1])), mean, d, n_components=4,
+                                    oversample=4, max_basis=24, power_iterations=10,
+                                    rng=np.random.default_rng(3), **extra)
+
+
+def test_a_restarting_fit_matches_lapack_and_resumes_byte_identically():
+    rng = np.random.default_rng(4)
+    X = rng.standard_normal((300, 80)) * np.geomspace(4.0, 0.5, 80)  # small width: the basis restarts
+    states = []
+    full = _restarting_fit(X, on_pass=lambda state: states.append(
+        {key: (dict(value) if isinstance(value, dict) else np.array(value)) for key, value in state.items()}))
+    Z = (X - X.mean(axis=0)) / X.std(axis=0)
+    s = np.linalg.svd(Z, compute_uv=False)  # reference: LAPACK gesdd via numpy.linalg.svd
+    assert np.max(np.abs(full.singular_values - s[:4]) / s[:4]) <= 1e-4  # SV_RTOL of tests/test_engine.py
+    late = states[-1]  # saved after restarts (width 24 = 3 blocks of 8, restarted from pass 3 on)
+    assert "G" in late and late["K"].shape[1] == 24 - 8
+    resumed = _restarting_fit(X, resume_from=late)
+    assert np.array_equal(resumed.singular_values, full.singular_values)
+    assert np.array_equal(resumed.components, full.components)
+    assert np.array_equal(resumed.scores, full.scores)
