@@ -434,6 +434,7 @@ def _iteration_state(next_i, done, Q, probes, basis, row_norms, Yp, watch, rng) 
     """Everything the iteration needs to continue at iteration ``next_i`` (arrays kept exactly)."""
     return {
         "Q": Q, "probes": probes, "K": basis.K, "B": basis.B, "AK": basis.AK,
+        **({"G": basis.G} if basis.G is not None else {}),
         "row_norms": row_norms, "Yp": Yp,
         "history": np.array(watch.history, dtype=float),
         "convergence": np.array([watch.change, watch.estimate, watch.worst_residual], dtype=float),
@@ -445,7 +446,7 @@ def _iteration_state(next_i, done, Q, probes, basis, row_norms, Yp, watch, rng) 
 def _restore_state(state: dict, watch: "_Convergence", rng: np.random.Generator):
     """The inverse of :func:`_iteration_state`: set ``watch`` and ``rng``, return the rest."""
     scalars = state["scalars"]
-    basis = _KrylovBasis(state["K"], state["B"], state["AK"], int(scalars["max_width"]))
+    basis = _KrylovBasis(state["K"], state["B"], state["AK"], int(scalars["max_width"]), state.get("G"))
     watch.history = [row.copy() for row in state["history"]]
     watch.change, watch.estimate, watch.worst_residual = (float(v) for v in state["convergence"])
     watch.converged = bool(scalars["converged"])
@@ -467,29 +468,36 @@ def _first_block(op: "_Operator", start: np.ndarray | None, rng: np.random.Gener
 
 @dataclass
 class _KrylovBasis:
-    """The orthonormal basis ``K`` (p × m) with its images ``B = X̃·K`` and ``AK = X̃ᵀX̃·K``."""
+    """The orthonormal basis ``K`` (p × m) with its images ``B = X̃·K`` and ``AK = X̃ᵀX̃·K``,
+    and the Gram matrix ``G = BᵀB`` (m × m) of the Rayleigh–Ritz step, kept up to date by the
+    columns each pass adds (``None``: computed in full on first use)."""
 
     K: np.ndarray
     B: np.ndarray
     AK: np.ndarray
     max_width: int
+    G: np.ndarray | None = None
 
     @classmethod
     def empty(cls, n: int, p: int, max_width: int) -> "_KrylovBasis":
-        return cls(np.empty((p, 0)), np.empty((n, 0)), np.empty((p, 0)), max_width)
+        return cls(np.empty((p, 0)), np.empty((n, 0)), np.empty((p, 0)), max_width, np.empty((0, 0)))
 
     @property
     def width(self) -> int:
         return self.K.shape[1]
 
     def extend(self, Q: np.ndarray, Y: np.ndarray, Z: np.ndarray) -> None:
+        if self.G is not None:
+            self.G = _gram_extended(self.G, self.B, Y)
         self.K = _grown(self.K, Q, self.max_width)
         self.B = _grown(self.B, Y, self.max_width)
         self.AK = _grown(self.AK, Z, self.max_width)
 
     def ritz(self) -> tuple[np.ndarray, np.ndarray]:
         """Ritz values ``s`` (descending) and the coefficients ``W`` of the Ritz vectors ``K·W``."""
-        return _ritz(self.B)
+        if self.G is None:
+            self.G = self.B.T @ self.B
+        return _ritz(self.G)
 
     def residual_norms(self, s: np.ndarray, W: np.ndarray, m: int) -> np.ndarray:
         """``‖X̃ᵀX̃v − s²v‖`` of the first ``m`` Ritz pairs ``(s, v = K·w)``."""
@@ -500,9 +508,12 @@ class _KrylovBasis:
         """Keep the leading Ritz vectors when the next block would overflow ``max_width``."""
         if self.width + l > self.max_width:
             keep = self.max_width - l
-            self.K = self.K @ W[:, :keep]
-            self.B = self.B @ W[:, :keep]
-            self.AK = self.AK @ W[:, :keep]
+            self.K = _restarted(self.K, W[:, :keep], self.max_width)
+            self.B = _restarted(self.B, W[:, :keep], self.max_width)
+            self.AK = _restarted(self.AK, W[:, :keep], self.max_width)
+            if self.G is not None:  # (B·W)ᵀ(B·W) = Wᵀ·G·W, without a pass over B
+                G = W[:, :keep].T @ (self.G @ W[:, :keep])
+                self.G = (G + G.T) / 2
 
 
 @dataclass
@@ -647,6 +658,8 @@ def _grown(A: np.ndarray, new: np.ndarray, capacity: int) -> np.ndarray:
     Measured at 100,000 × 160: 2.6 s of ``hstack`` copies over a fit's 9 passes."""
     rows, width = A.shape
     buffer = A.base
+    if isinstance(buffer, np.ndarray) and buffer.ndim == 2 and buffer.flags.c_contiguous and buffer.shape[1] == rows:
+        buffer = buffer.T  # written by _restarted as its transpose: column-major as seen here
     in_place = (isinstance(buffer, np.ndarray) and buffer.ndim == 2 and buffer.flags.f_contiguous
                 and A.flags.f_contiguous and buffer.shape[0] == rows and buffer.shape[1] >= width + new.shape[1]
                 and A.__array_interface__["data"][0] == buffer.__array_interface__["data"][0])
@@ -657,16 +670,46 @@ def _grown(A: np.ndarray, new: np.ndarray, capacity: int) -> np.ndarray:
     return buffer[:, : width + new.shape[1]]
 
 
-def _ritz(B: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Singular values and right singular vectors of ``B`` (n × L) from its L × L Gram matrix.
+def _restarted(A: np.ndarray, W: np.ndarray, capacity: int) -> np.ndarray:
+    """``A·W`` written straight into the first columns of a column-major buffer of
+    ``capacity`` columns, which :func:`_grown` then fills in place (no copy of the restarted
+    basis on the next pass; measured for ``B`` at 100,000 × 160 → 140 columns, one restart and
+    the next append: 0.39 s by ``A @ W`` and a copy, 0.13 s this way)."""
+    rows, keep = A.shape[0], W.shape[1]
+    buffer = np.empty((max(capacity, keep), rows))  # row-major transpose of the column-major buffer
+    np.matmul(np.ascontiguousarray(W.T), A.T, out=buffer[:keep])
+    return buffer[:keep].T
+
+
+def _ritz(G: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Singular values and right singular vectors of ``B`` (n × L) from its L × L Gram matrix
+    ``G = BᵀB``.
 
     Holding only ``B`` and an ``L × L`` matrix (not the ``n × L`` left factor) keeps memory
     at one copy of the basis; squaring the condition number costs nothing for the leading
     values that are wanted.
     """
-    evals, W = scipy.linalg.eigh(B.T @ B, check_finite=False)
+    evals, W = scipy.linalg.eigh(G, check_finite=False)
     order = np.argsort(evals)[::-1]
     return np.sqrt(np.maximum(evals[order], 0.0)), W[:, order]
+
+
+def _gram_extended(G: np.ndarray, B: np.ndarray, Y: np.ndarray) -> np.ndarray:
+    """``[B, Y]ᵀ[B, Y]`` from ``G = BᵀB``: only the products with the new columns ``Y``.
+
+    A pass adds ``l`` columns to a basis of ``m``, so this costs ``n·l·(m + l)`` instead of
+    ``n·(m + l)²`` (measured at 100,000 × up to 160 columns over a fit's 9 passes, with the
+    eigensolver: 0.35–0.6 s in full, 0.02 s this way). Every entry is one dot product of two columns, as in ``BᵀB``, and the matrix is
+    exactly symmetric (the new cross block is mirrored).
+    """
+    m, l = G.shape[0], Y.shape[1]
+    out = np.empty((m + l, m + l))
+    out[:m, :m] = G
+    cross = B.T @ Y
+    out[:m, m:] = cross
+    out[m:, :m] = cross.T
+    out[m:, m:] = Y.T @ Y
+    return out
 
 
 def _new_block(Z: np.ndarray, K: np.ndarray) -> np.ndarray:
