@@ -435,15 +435,17 @@ WINDOW = 4
 
 
 def window_block_rows(source: "MatrixSource", *, budget: int, held: int, limit: int, accumulators: int,
-                      results: int, row_bytes: int, what: str, threads: int = WINDOW // 2) -> int:
+                      results: int, row_bytes: int, what: str) -> int:
     """Rows per block of a streaming pass that keeps ``accumulators`` bytes while a window of
     ``WINDOW`` blocks of ``row_bytes`` per row is in flight, and ``results`` bytes after it.
 
     Blocks are whole multiples of the on-disk sample chunk when they span one or more; the
-    band of decoded chunks each of ``threads`` reading threads holds
-    (:class:`axiscope.io.chunk_bands.ChunkBands`) is counted with the accumulators. ``what`` names the work in the error raised when the budget cannot hold it.
+    bands of decoded chunks the reads hold (:class:`axiscope.io.chunk_bands.ChunkBands`;
+    :func:`decoded_chunk_bytes`) are counted with the accumulators. ``what`` names the work in the error raised when the budget cannot hold it.
     """
-    accumulators += threads * (decoded_chunk_bytes(source) // 2)  # a decoded chunk band per thread
+    # the decoded chunk bands of the reads: two (a block's band and the next one's), whatever the
+    # threads, so that the blocks, hence the sums, are the same for any thread count
+    accumulators += decoded_chunk_bytes(source)
     needed = max(accumulators + WINDOW * row_bytes, accumulators + results)
     if needed > budget:
         raise OptionError(f"memory_limit={format_bytes(limit)} is too small for {what} (needs at least "

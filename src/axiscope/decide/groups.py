@@ -425,8 +425,7 @@ def _block_rows(source: MatrixSource, p: int, G: int, threads: int, memory_limit
     row_bytes = p_all * source.dtype.itemsize * 2 + p * 8 * 3
     return window_block_rows(source, budget=budget, held=held, limit=limit, accumulators=accumulators,
                              results=results, row_bytes=row_bytes,
-                             what=f"the profiles of {counted(p, 'feature')} in {counted(G, 'group')}",
-                             threads=threads)
+                             what=f"the profiles of {counted(p, 'feature')} in {counted(G, 'group')}")
 
 
 def feature_group_sums(source: MatrixSource, labels: np.ndarray, *, rows: np.ndarray | None = None,

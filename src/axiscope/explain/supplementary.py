@@ -32,7 +32,7 @@ from ..core.memory import (
 )
 from ..core.backends import Reduction, SourceBlocks, read_block
 from ..core.passes import PassRunner, Progress, array_from_blocks
-from ..core.plan import window_block_rows
+from ..core.plan import WINDOW, window_block_rows
 from ..core.preprocess import (
     PreprocessSpec,
     feature_scale,
@@ -154,8 +154,9 @@ def _block_rows(source: MatrixSource, n: int, p: int, k: int, threads: int, memo
     # scores of missing cells; five length-p vectors (sums, squares, counts, shift, column
     # indices); the scores; and a window of row blocks
     accumulators = 8 * p * (k * (2 if imputing else 1) + 5) + 8 * n * k * 2
-    # the sums of each block in flight (2·threads of them): gone once the pass is over
-    in_flight = 2 * threads * 8 * p * (k * (2 if imputing else 1) + 2)
+    # the sums of each block in flight (WINDOW of them, as for the blocks, so that any thread
+    # count cuts the samples the same way): gone once the pass is over
+    in_flight = WINDOW * 8 * p * (k * (2 if imputing else 1) + 2)
     # after the pass: correlation, loading, squared cosine and the NaN contribution returned
     # (p, k each), the SD and ids (p each), and the temporaries of one step of features
     results = 8 * p * (4 * k + 2) + 8 * min(p, _STEP) * (4 * k + 8)
@@ -163,7 +164,7 @@ def _block_rows(source: MatrixSource, n: int, p: int, k: int, threads: int, memo
     row_bytes = p_all * source.dtype.itemsize * 2 + p * 8 * 2 + 8 * p * k // max(1, n)
     return window_block_rows(source, budget=budget, held=held, limit=limit, accumulators=accumulators + in_flight,
                              results=max(0, results - in_flight), row_bytes=row_bytes,
-                             what=f"statistics of {p} supplementary features on {k} axes", threads=threads)
+                             what=f"statistics of {p} supplementary features on {k} axes")
 
 
 @dataclass
