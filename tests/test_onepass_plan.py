@@ -72,7 +72,8 @@ _RSS_SCRIPT = textwrap.dedent(
             handle.write("5")
     except OSError:
         pass
-    result = fit(path, n_components=5, engine=engine, preprocess=PreprocessSpec(scale="none"), resources=Resources(memory_limit=limit, threads=2))
+    result = fit(path, n_components=5, engine=engine, preprocess=PreprocessSpec(scale="none"),
+                 resources=Resources(memory_limit=limit, threads=2))
     peak = status("VmHWM")
     print(json.dumps({"delta": peak - base, "plan": result.manifest["plan"],
                       "singular_values": result.factorization.singular_values.tolist()}))

@@ -215,13 +215,14 @@ def plan_one_pass(
     of per-feature statistics. Per thread: the block, its shifted copy (counted although the
     fit centres fresh blocks in place, so that a cluster's copy fits too), its products
     (``(s + q) × p`` in the block's dtype and in float64, its ``t`` and ``s + q`` columns per
-    row), the float64 products of one more block done and waiting to be folded, and the decoded on-disk chunk band of one read (``chunk_bytes``). Sketch widths
-    ``s, t`` and ``q`` are those of :func:`axiscope.core.onepass.sketch_widths`.
+    row), the float64 products of one more block done and waiting to be folded, and the
+    decoded on-disk chunk band of one read (``chunk_bytes``). The sketch widths ``s`` and
+    ``t`` are those of :func:`axiscope.core.onepass.sketch_widths`, ``q`` is its ``ERROR_ROWS``.
 
     Blocks are sized as if two threads were working (``_REFERENCE_WINDOW // 2``), or one
     when the budget holds only one, whatever ``threads``, so that the partition, and every
-    rounding, does not depend on the thread count; whole on-disk chunks per block when they
-    fit. ``max_basis`` and ``cache_bytes`` are 0 and ``cache`` is ``"source"``: nothing is read
+    rounding, does not depend on the thread count; whole on-disk chunks per block when the
+    rows reach one (smaller blocks share a decoded band: :mod:`axiscope.io.chunk_bands`). ``max_basis`` and ``cache_bytes`` are 0 and ``cache`` is ``"source"``: nothing is read
     again.
 
     Raises
