@@ -20,7 +20,7 @@ from .preprocess import PreprocessSpec
 if TYPE_CHECKING:  # pragma: no cover
     from ..io import MatrixSource
 
-__all__ = ["BlockPlan", "plan_blocks", "plan_sparse_blocks", "plan_fit", "check_scratch_writable", "decoded_chunk_bytes",
+__all__ = ["BlockPlan", "plan_blocks", "plan_one_pass", "plan_sparse_blocks", "plan_fit", "check_scratch_writable", "decoded_chunk_bytes",
            "compressed_cache_bytes", "WINDOW", "window_block_rows"]
 
 logger = logging.getLogger(__name__)
@@ -193,6 +193,79 @@ def plan_blocks(
                      min(threads, fitting), baseline, chunk_bytes, cache_allowance=allowance)
 
 
+def plan_one_pass(
+    n_samples: int,
+    n_features: int,
+    itemsize: int,
+    *,
+    n_components: int,
+    oversample: int,
+    threads: int,
+    budget: int,
+    sample_chunk: int | None = None,
+    chunk_bytes: int = 0,
+    baseline: int | None = None,
+) -> BlockPlan:
+    """Block rows and threads of the one-pass fit (:mod:`axiscope.core.onepass`) within ``budget``.
+
+    The one-pass fit keeps no Krylov basis and no cache. Held for the whole pass: the
+    ``n × t`` sample sketch ``Y``, the ``(s + q) × p`` feature sketch and its running sum
+    (two of them while two are merged), the test matrices ``Ψ`` (``(s + q) × n``) and ``Ω``
+    (``p × t``, three copies: drawn, rounded, divided by the scale), all float64, and vectors
+    of per-feature statistics. Per thread: the block, its shifted copy (counted although the
+    fit centres fresh blocks in place, so that a cluster's copy fits too), its products
+    (``(s + q) × p`` in the block's dtype and in float64, its ``t`` and ``s + q`` columns per
+    row), the float64 products of one more block done and waiting to be folded, and the
+    decoded on-disk chunk band of one read (``chunk_bytes``). The sketch widths ``s`` and
+    ``t`` are those of :func:`axiscope.core.onepass.sketch_widths`, ``q`` is its ``ERROR_ROWS``.
+
+    Blocks are sized as if two threads were working (``_REFERENCE_WINDOW // 2``), or one
+    when the budget holds only one, whatever ``threads``, so that the partition, and every
+    rounding, does not depend on the thread count; whole on-disk chunks per block when the
+    rows reach one (smaller blocks share a decoded band: :mod:`axiscope.io.chunk_bands`). ``max_basis`` and ``cache_bytes`` are 0 and ``cache`` is ``"source"``: nothing is read
+    again.
+
+    Raises
+    ------
+    ResourceError
+        The budget cannot hold one thread's block of one sample.
+    """
+    from .onepass import ERROR_ROWS, sketch_widths
+
+    baseline = process_baseline() if baseline is None else int(baseline)
+    data_budget = budget - baseline
+    s, t = sketch_widths(n_components, oversample, n_samples, n_features)
+    left = s + ERROR_ROWS
+    fixed = 8 * n_samples * (t + left) + 8 * n_features * (2 * left + 3 * t + 12)
+    # products (in the block's dtype, then float64) and statistics of the block worked on and
+    # of one done and waiting to be folded (the runner keeps 2·threads blocks in flight)
+    partial = n_features * left * (2 * 8 + itemsize) + 2 * 8 * 6 * n_features
+    row_bytes = 2 * n_features * itemsize + 8 * (t + left)  # the block, its shifted copy, Ψ_b and Y_b rows
+    free = data_budget - fixed
+    rows = 0
+    for window in (_REFERENCE_WINDOW // 2, 1):
+        rows = int(((free - window * chunk_bytes) // window - partial) // row_bytes)
+        if rows >= 1:
+            break
+    if rows < 1:
+        need = fixed + partial + row_bytes + chunk_bytes
+        held = f"the process already holds {format_bytes(baseline)} and " if baseline else ""
+        raise ResourceError(
+            f"memory_limit={format_bytes(budget).replace(' ', '')} is too small for a one-pass fit of "
+            f"{n_samples} samples × {n_features} features: {held}the work needs at least "
+            f"{format_bytes(need)}{' more' if baseline else ''}; raise memory_limit to at least "
+            f"{format_bytes(baseline + need).replace(' ', '')}, or lower n_components")
+    rows = int(min(rows, _MAX_BLOCK_BYTES // max(1, n_features * itemsize), n_samples))
+    if n_samples >= 512:  # enough blocks to keep threads busy
+        rows = min(rows, -(-n_samples // _MIN_BLOCKS))
+    if sample_chunk and sample_chunk < n_samples and rows >= sample_chunk:
+        rows = (rows // sample_chunk) * sample_chunk  # whole on-disk chunks per block
+    per_thread = partial + rows * row_bytes + chunk_bytes
+    fitting = max(1, int(free // per_thread))
+    return BlockPlan(rows, "source", budget, fixed, rows * n_features * itemsize, 0, 0,
+                     min(threads, fitting), baseline, chunk_bytes)
+
+
 def _block_rows(free: int, n_samples: int, n_features: int, itemsize: int, partial: int, row_bytes: int,
                 chunk_bytes: int, sample_chunk: int | None) -> tuple[int, int]:
     """Rows per block, and the blocks in flight they were sized for, within ``free`` bytes (rows < 1: none fit)."""
@@ -287,6 +360,9 @@ def plan_fit(
     ``cache`` imposes the kind of cache of dense input (see :func:`plan_blocks`; the fit
     passes ``"auto"``).
 
+    A dense one-pass fit (``engine.method="one-pass"``) has a plan of its own
+    (:func:`plan_one_pass`).
+
     ``axiscope inspect`` calls this too, so what it predicts is what the fit then does.
     The plan depends on the file (shape, dtype, on-disk sample chunk, whether reading it
     again is as cheap as a scratch copy), on the sketch width ``n_components + oversample``,
@@ -307,6 +383,10 @@ def plan_fit(
             threads=resources.n_threads, budget=resources.budget, held_bytes=int(source.held_bytes),
             source_in_memory=source.held_bytes > 0 or source.format == "array",
             stored_bytes=_cached_stored_bytes(source, preprocess))
+    if engine.method == "one-pass":  # one read, no Krylov basis, no cache
+        return plan_one_pass(n, p, source.dtype.itemsize, n_components=n_components,
+                             oversample=engine.oversample, threads=resources.n_threads, budget=resources.budget,
+                             sample_chunk=source.sample_chunk, chunk_bytes=decoded_chunk_bytes(source))
     cache_features = min(preprocess.top_variable or p, p)
     transforms = preprocess.log_transform or preprocess.counts_per is not None
     return plan_blocks(

@@ -1,0 +1,71 @@
+"""Where the one-pass fit's time goes: thread CPU time of each step of its block task.
+
+Usage (the Zarr matrix of ``scripts/bench_onepass.py``; one fit per call)::
+
+    flock /work/bench.lock python scripts/profile_onepass_steps.py \\
+        '/work/tmp/onepass2/planted-40000x20000-*/matrix.zarr' 1GB
+
+Fits the matrix once (``method="one-pass"``, centred, no scaling, ``seed=0``) with the steps
+wrapped in timers and prints, summed over the blocks: the thread CPU and wall time of the
+block reads (``MatrixSource.read_samples``: decoding, the chunk band, the copy), of the
+statistics and the shifted copy (``onepass._shifted``) and of the whole block task
+(``onepass._task``); the products are the task less the statistics; what the process spent
+outside the reads and tasks (folding, the small factorisations after the pass, threads
+waiting) is the rest of its CPU time. Thread CPU times add up over threads, so they exceed
+the wall time when two threads work at once.
+"""
+
+from __future__ import annotations
+
+import argparse
+import glob
+import threading
+import time
+from collections import defaultdict
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    parser.add_argument("path", help="the matrix (a glob pattern is expanded; the first match is used)")
+    parser.add_argument("memory_limit", help="e.g. 1GB")
+    parser.add_argument("--components", "-k", type=int, default=20)
+    args = parser.parse_args()
+
+    import axiscope.core.onepass as onepass
+    from axiscope import EngineSettings, PreprocessSpec, Resources, fit
+    from axiscope.io.source import MatrixSource
+
+    spent: dict[str, float] = defaultdict(float)
+    lock = threading.Lock()
+
+    def timed(name, function):
+        def wrapper(*a, **k):
+            cpu, wall = time.thread_time(), time.perf_counter()
+            result = function(*a, **k)
+            with lock:
+                spent[name] += time.thread_time() - cpu
+                spent[name + " (wall)"] += time.perf_counter() - wall
+            return result
+        return wrapper
+
+    onepass._shifted = timed("statistics + shifted copy", onepass._shifted)
+    onepass._task = timed("whole block task", onepass._task)
+    MatrixSource.read_samples = timed("block reads", MatrixSource.read_samples)
+    path = sorted(glob.glob(args.path))[0]
+    wall, cpu = time.perf_counter(), time.process_time()
+    result = fit(path, n_components=args.components, preprocess=PreprocessSpec(scale="none"),
+                 engine=EngineSettings(method="one-pass", seed=0), resources=Resources(memory_limit=args.memory_limit))
+    wall, cpu = time.perf_counter() - wall, time.process_time() - cpu
+    plan = result.manifest["plan"]
+    print(f"fit wall {wall:.2f} s, process CPU {cpu:.2f} s, blocks of {plan['block_rows']} rows, "
+          f"{plan['threads']} threads, passes {result.manifest['passes']['detail']}")
+    for name, seconds in spent.items():
+        print(f"  {name:34s} {seconds:7.2f} s")
+    print(f"  {'products (task − statistics)':34s} "
+          f"{spent['whole block task'] - spent['statistics + shifted copy']:7.2f} s CPU")
+    print(f"  {'outside reads and tasks':34s} {cpu - spent['whole block task'] - spent['block reads']:7.2f} s CPU")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
