@@ -12,7 +12,6 @@ import json
 import os
 import subprocess
 import sys
-import textwrap
 from pathlib import Path
 
 import numpy as np
@@ -128,37 +127,7 @@ def test_scratch_removed_on_failure(write_matrix, tmp_path, planted):
     assert list(scratch.iterdir()) == []
 
 
-_RSS_SCRIPT = textwrap.dedent(
-    """
-    import json, sys
-    import numpy as np
-    from axiscope import EngineSettings, Resources
-    from axiscope.fitting.run import fit
-    from axiscope.io import array_source
-
-    def status(key):
-        with open("/proc/self/status") as handle:
-            for line in handle:
-                if line.startswith(key + ":"):
-                    return int(line.split()[1]) * 1024  # kB
-        raise KeyError(key)
-
-    path, limit = sys.argv[1], sys.argv[2]
-    # warm up: imports and first-use allocations are not part of the fit's data memory
-    fit(array_source(np.random.default_rng(1).standard_normal((60, 40))), n_components=3,
-        engine=EngineSettings(method="randomized"))
-    base = status("VmRSS")
-    try:  # reset the high-water mark to the current RSS (Linux >= 4.0)
-        with open("/proc/self/clear_refs", "w") as handle:
-            handle.write("5")
-    except OSError:
-        pass
-    result = fit(path, n_components=5, resources=Resources(memory_limit=limit, threads=2))
-    peak = status("VmHWM")
-    print(json.dumps({"delta": peak - base, "cache": result.manifest["plan"]["cache"],
-                      "passes": result.manifest["passes"]["count"]}))
-    """
-)
+RSS_PROBE = str(Path(__file__).with_name("rss_probe.py"))  # one fit's peak RSS, in a process of its own
 
 
 @pytest.mark.skipif(not os.path.exists("/proc/self/status"), reason="needs Linux /proc for VmHWM")
@@ -183,7 +152,7 @@ def test_peak_rss_stays_near_the_budget(tmp_path):
             dataset[start:start + 500] = U @ V + rng.standard_normal((500, p), dtype=np.float32) + shift
     limit = 40 * 10**6
     env = dict(os.environ, OPENBLAS_NUM_THREADS="1", OMP_NUM_THREADS="1")
-    out = subprocess.run([sys.executable, "-c", _RSS_SCRIPT, str(path), str(limit)], capture_output=True,
+    out = subprocess.run([sys.executable, RSS_PROBE, str(path), str(limit)], capture_output=True,
                          text=True, env=env, timeout=120, check=False)
     assert out.returncode == 0, out.stderr
     report = json.loads(out.stdout.strip().splitlines()[-1])

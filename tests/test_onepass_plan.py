@@ -12,7 +12,7 @@ import json
 import os
 import subprocess
 import sys
-import textwrap
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -46,39 +46,7 @@ def test_one_pass_plan_refuses_a_budget_too_small_in_one_line():
                       baseline=0)
 
 
-_RSS_SCRIPT = textwrap.dedent(
-    """
-    import json, sys
-    import numpy as np
-    from axiscope import EngineSettings, Resources
-    from axiscope.core.preprocess import PreprocessSpec
-    from axiscope.fitting.run import fit
-    from axiscope.io import array_source
-
-    def status(key):
-        with open("/proc/self/status") as handle:
-            for line in handle:
-                if line.startswith(key + ":"):
-                    return int(line.split()[1]) * 1024  # kB
-        raise KeyError(key)
-
-    path, limit = sys.argv[1], sys.argv[2]
-    engine = EngineSettings(method="one-pass", seed=3)
-    # warm up: imports and first-use allocations are not part of the fit's data memory
-    fit(array_source(np.random.default_rng(1).standard_normal((60, 40))), n_components=3, engine=engine)
-    base = status("VmRSS")
-    try:  # reset the high-water mark to the current RSS (Linux >= 4.0)
-        with open("/proc/self/clear_refs", "w") as handle:
-            handle.write("5")
-    except OSError:
-        pass
-    result = fit(path, n_components=5, engine=engine, preprocess=PreprocessSpec(scale="none"),
-                 resources=Resources(memory_limit=limit, threads=2))
-    peak = status("VmHWM")
-    print(json.dumps({"delta": peak - base, "plan": result.manifest["plan"],
-                      "singular_values": result.factorization.singular_values.tolist()}))
-    """
-)
+RSS_PROBE = str(Path(__file__).with_name("rss_probe.py"))  # one fit's peak RSS, in a process of its own
 
 
 @pytest.mark.skipif(not os.path.exists("/proc/self/status"), reason="needs Linux /proc for VmHWM")
@@ -106,7 +74,7 @@ def test_one_pass_peak_rss_within_the_limit_and_same_result(tmp_path):
         handle.create_dataset("X", data=X, chunks=(250, p))
     limit = 40 * 10**6
     env = dict(os.environ, OPENBLAS_NUM_THREADS="1", OMP_NUM_THREADS="1")
-    out = subprocess.run([sys.executable, "-c", _RSS_SCRIPT, str(path), str(limit)], capture_output=True,
+    out = subprocess.run([sys.executable, RSS_PROBE, str(path), str(limit), "one-pass", "none"], capture_output=True,
                          text=True, env=env, timeout=120, check=False)
     assert out.returncode == 0, out.stderr
     report = json.loads(out.stdout.strip().splitlines()[-1])
