@@ -463,14 +463,6 @@ def _run_block(piece, task, split, *args, rows=None):
     return split(result) if split is not None else result
 
 
-def _run_block_with_rows(piece, rows, task, split, *args):
-    """:func:`_run_block` for a task that takes the block's own rows: ``task(block, rows, *args)``."""
-    _limit_blas()
-    block = piece() if callable(piece) else piece
-    result = task(block, rows, *args)
-    return split(result) if split is not None else result
-
-
 @dataclass
 class ClusterBackend:
     """Passes on the workers of a ``dask.distributed`` cluster (see the module's notes).
@@ -665,14 +657,12 @@ class ClusterBackend:
             (block,) = dask.compute(blocks[i], scheduler="synchronous")
             traffic.sent += block_nbytes(block)
             piece = client.scatter(block, hash=False)
-        if rows is None:
-            future = client.submit(_run_block, piece, task, split, *shared, key=f"{token}-block-{i}", pure=False,
-                                   **placement)
-        else:
-            rows = np.ascontiguousarray(rows)
-            traffic.sent += rows.nbytes
-            future = client.submit(_run_block_with_rows, piece, rows, task, split, *shared,
-                                   key=f"{token}-block-{i}", pure=False, **placement)
+        own = {}
+        if rows is not None:  # this block's rows travel with its task
+            own["rows"] = np.ascontiguousarray(rows)
+            traffic.sent += own["rows"].nbytes
+        future = client.submit(_run_block, piece, task, split, *shared, key=f"{token}-block-{i}", pure=False,
+                               **placement, **own)
         if tree is None:
             return future
         if whole:
