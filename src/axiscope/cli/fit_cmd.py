@@ -194,6 +194,7 @@ def fit_command(
     quiet: Quiet = False,
 ) -> None:
     """Fit principal axes to INPUT and write tables, the model, a manifest and the axis cards to --out."""
+    from ..core.backends import shared_cluster
     from ..core.options import EngineSettings, InputLayout, Resources
     from ..core.preprocess import PreprocessSpec
     from ..errors import OptionError
@@ -238,7 +239,9 @@ def fit_command(
                 if supplementary_features else None,
                 supplementary_samples_column=supplementary_samples_column, allow_missing=allow_missing,
             )
-            with progress_display(quiet) as progress:
+            # one cluster for the whole command (fit, stability, supplementary passes), closed at
+            # the end whatever happens
+            with progress_display(quiet) as progress, shared_cluster(resources) as resources:
                 signal = None
                 unattended = dict(checksum=checksum.value, checkpoint=checkpoint, resume=resume)
                 assessed = []  # the stability, assessed on the fit's blocks while its cache is open
@@ -252,14 +255,15 @@ def fit_command(
                                       "be fitted unadjusted); leave one of them out")
                 if components == "auto" or assess_signal:
                     from ..decide.signal import fit_with_signal
-                    from ..fitting.run import fitted_blocks
 
                     result, signal = fit_with_signal(
                         src, n_components=components, max_components=max_components, permutations=permutations,
                         preprocess=spec, engine=engine, resources=resources, active=prepared.active,
                         exclude_features=prepared.exclude, progress=progress, covariates=covariates, **unattended)
                     if stability_repeats:  # on the axes kept: one more read of the input per pass
-                        then(result, fitted_blocks(src, result, active=prepared.active))
+                        assessed.append(fit_stability(src, result, stability_repeats, stability_threshold, engine,
+                                                      threads=threads, progress=progress, active=prepared.active,
+                                                      scheduler=resources.scheduler))
                 else:
                     result = fit(src, n_components=components, preprocess=spec, engine=engine,
                                  resources=resources, active=prepared.active,
@@ -267,7 +271,8 @@ def fit_command(
                                  then=then if stability_repeats else None, **unattended)
                 stability = assessed[0] if assessed else None
                 cards = explain_fit(prepared, result, src, top=top, memory_limit=memory_limit,
-                                    threads=threads, progress=progress, scheduler=scheduler, cluster=cluster)
+                                    threads=threads, progress=progress, scheduler=resources.scheduler,
+                                    cluster=resources.cluster)
         with atomic_directory(out, overwrite=overwrite) as tmp:
             result.write(tmp, top=top, parquet=format is TableFormat.parquet, command_line=sys.argv)
             if stability is not None:
@@ -309,13 +314,15 @@ def _covariates(adjust_for, annotations, id_column, categorical, numeric, supple
                       numeric=numeric or ())
 
 
-def fit_stability(blocks, result, repeats: int, threshold: float, engine, *, threads, progress):
-    """Split-half stability of the fit's axes on its blocks, recorded in its manifest."""
+def fit_stability(blocks, result, repeats: int, threshold: float, engine, *, threads, progress, active=None,
+                  scheduler=None):
+    """Split-half stability of the fit's axes on its blocks (or its input read again, on
+    ``scheduler`` like the fit), recorded in its manifest."""
     from ..decide.stability import axis_stability
 
     stability = axis_stability(blocks, result, stability_repeats=repeats, stability_threshold=threshold,
                                seed=engine.seed if isinstance(engine.seed, int) else 0, threads=threads,
-                               progress=progress)
+                               progress=progress, active=active, scheduler=scheduler)
     result.manifest["stability"] = stability.record()
     return stability
 

@@ -58,7 +58,8 @@ import numpy as np
 
 from ..errors import InputError, OptionError, reason
 
-__all__ = ["ClusterBackend", "Reduction", "SourceBlocks", "WorkerCache", "open_backend", "parse_cluster"]
+__all__ = ["ClusterBackend", "Reduction", "SourceBlocks", "WorkerCache", "open_backend", "parse_cluster",
+           "shared_cluster"]
 
 logger = logging.getLogger(__name__)
 
@@ -71,6 +72,12 @@ PASS_ATTEMPTS = 3
 PIECES_HELD = 4
 #: Seconds to wait for a scheduler address to answer.
 CONNECT_TIMEOUT = 20
+#: A local cluster's scheduler without its dashboard (``dashboard_address=None``), and its
+#: HTTP server (health and metrics routes, opened even without the dashboard, on port 8787
+#: unless told otherwise, with a warning when that port is taken) on a free port of the
+#: loopback interface: a port of 0 is documented as "a random port" (``LocalCluster``'s
+#: ``dashboard_address``) and the scheduler warns only when a port it was given is taken.
+QUIET_HTTP = {"dashboard_address": None, "scheduler_kwargs": {"dashboard_address": "127.0.0.1:0"}}
 
 
 @dataclass(frozen=True)
@@ -763,7 +770,8 @@ def _current_client():
 def open_backend(resources) -> Iterator[ClusterBackend | None]:
     """The back-end ``resources`` asks for: None (threads of this process) or a cluster.
 
-    ``resources.scheduler``: a ``distributed.Client`` or a scheduler address;
+    ``resources.scheduler``: a ``distributed.Client``, a scheduler address, or a back-end held
+    by :func:`shared_cluster` (each use gets a fresh record of its own on the same client);
     ``resources.cluster``: ``"local"`` or ``"local:N"``, a cluster of N worker processes on
     this machine started for the run (and stopped after it), each with one thread and an
     equal share of ``memory_limit``. Neither: the current client if the caller made one,
@@ -771,6 +779,10 @@ def open_backend(resources) -> Iterator[ClusterBackend | None]:
     """
     scheduler = getattr(resources, "scheduler", None)
     cluster = getattr(resources, "cluster", None)
+    if isinstance(scheduler, ClusterBackend):  # a cluster the command already holds (see shared_cluster)
+        with _forgetting(ClusterBackend(scheduler.client, scheduler.address, scheduler.kind)) as backend:
+            yield backend
+        return
     if cluster is not None:
         with _local_cluster(parse_cluster(cluster), resources) as backend:
             yield backend
@@ -803,6 +815,27 @@ def open_backend(resources) -> Iterator[ClusterBackend | None]:
 
 
 @contextlib.contextmanager
+def shared_cluster(resources) -> Iterator[Any]:
+    """``resources`` with the cluster it asks for started (or connected to) once, for several steps.
+
+    A command that runs several steps on a cluster (the fit, then the split-half stability
+    and the supplementary passes) starts the ``cluster="local:N"`` it was given, or connects
+    to the ``scheduler`` address, here, once; the steps receive the returned resources,
+    whose ``scheduler`` is that back-end (:func:`open_backend` hands each step a record of
+    its own on the same client). The cluster is closed when the block ends, whether it ends
+    normally, by an error or by an interrupt. Resources naming neither (threads, or the
+    current client) are returned as they are.
+    """
+    from dataclasses import replace
+
+    if getattr(resources, "cluster", None) is None and not isinstance(getattr(resources, "scheduler", None), str):
+        yield resources
+        return
+    with open_backend(resources) as backend:
+        yield replace(resources, scheduler=backend, cluster=None)
+
+
+@contextlib.contextmanager
 def _local_cluster(n_workers: int | None, resources) -> Iterator[ClusterBackend]:
     distributed = _distributed()
     from .memory import process_baseline, resident_bytes
@@ -822,7 +855,7 @@ def _local_cluster(n_workers: int | None, resources) -> Iterator[ClusterBackend]
             with dask.config.set(quiet_memory):
                 cluster = stack.enter_context(distributed.LocalCluster(
                     n_workers=n, threads_per_worker=1, processes=True, memory_limit=per_worker,
-                    host="127.0.0.1", dashboard_address=None, silence_logs=logging.ERROR))
+                    host="127.0.0.1", silence_logs=logging.ERROR, **QUIET_HTTP))
             client = stack.enter_context(distributed.Client(cluster, set_as_default=False))
         except (OSError, TimeoutError) as exc:
             raise OptionError(f"cluster={'local:%d' % n!r} could not be started ({reason(exc)}); "

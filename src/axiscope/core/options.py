@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import numbers
 import os
+import sys
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -31,6 +32,15 @@ SAMPLES_IN = ("rows", "columns")
 
 def _is_int(value) -> bool:
     return isinstance(value, numbers.Integral) and not isinstance(value, (bool, np.bool_))
+
+
+def _held_cluster(value) -> bool:
+    """Whether ``value`` is a cluster back-end a command holds for its steps (core/backends.py)."""
+    if "axiscope.core.backends" not in sys.modules:  # never made, then
+        return False
+    from .backends import ClusterBackend
+
+    return isinstance(value, ClusterBackend)
 
 
 def _is_real(value) -> bool:
@@ -121,7 +131,8 @@ class Resources:
         folder).
     scheduler : str or distributed.Client, optional
         Run the passes on a ``dask.distributed`` cluster: the address of its scheduler
-        (``tcp://host:8786``) or a client connected to it. Workers read their own blocks
+        (``tcp://host:8786``) or a client connected to it (or a cluster a command holds for
+        its steps, :func:`axiscope.core.backends.shared_cluster`). Workers read their own blocks
         from the input file, so it must be reachable at the same path on every worker.
         Default: the current client when the caller made one, otherwise threads of this
         process. Needs ``pip install "axiscope[cluster]"``.
@@ -172,7 +183,7 @@ class Resources:
             parse_cluster(self.cluster)
         if self.scheduler is not None and not (
                 (isinstance(self.scheduler, str) and self.scheduler.strip())
-                or hasattr(self.scheduler, "submit")):
+                or hasattr(self.scheduler, "submit") or _held_cluster(self.scheduler)):
             raise OptionError(f"scheduler={self.scheduler!r} is neither a scheduler address nor a "
                               "distributed.Client; pass one like tcp://host:8786")
 

@@ -53,6 +53,7 @@ pass costs about ``repeats`` times the block products of one pass of the fit.
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import numbers
 import time
@@ -64,8 +65,9 @@ import pandas as pd
 import scipy.linalg
 from scipy.optimize import linear_sum_assignment
 
-from ..core.backends import Reduction
+from ..core.backends import Reduction, open_backend
 from ..core.engine import ritz_accuracy
+from ..core.options import Resources
 from ..core.passes import PassRunner, Progress, blas_threads
 from ..errors import OptionError
 from ..fitting.result import FitResult
@@ -120,6 +122,8 @@ class AxisStability:
     halves : ndarray of int8, shape (repeats, n)
         The half (0 or 1) of each active sample in each repeat.
     seed : int or None
+    execution : dict or None
+        Where the passes ran: ``{"backend": "threaded", ...}`` or the cluster's record.
     """
 
     axis_names: list[str]
@@ -133,6 +137,8 @@ class AxisStability:
     loadings: list = field(default_factory=list, repr=False)
     halves: np.ndarray | None = field(default=None, repr=False)
     seed: int | None = None
+    #: Where the passes ran (threads or a cluster), as the fit's manifest records its own.
+    execution: dict | None = None
 
     @property
     def repeats(self) -> int:
@@ -176,6 +182,7 @@ class AxisStability:
             "read_from": self.read_from,
             "seconds": round(float(self.seconds), 3),
             "seed": self.seed,
+            **({} if self.execution is None else {"execution": self.execution}),
             "file": STABILITY_FILE,
             "axes": [{"axis": a, "stability": float(v), "stable": bool(s), "subspace_agreement": float(g),
                       "angle_bound": float(b)}
@@ -202,6 +209,8 @@ def axis_stability(
     active: np.ndarray | None = None,
     threads: int | None = None,
     progress: Progress | None = None,
+    scheduler=None,
+    cluster: str | None = None,
 ) -> AxisStability:
     """Split-half stability of the axes of ``result``, all halves sharing each read.
 
@@ -232,6 +241,12 @@ def axis_stability(
         Blocks worked on at once (default: the fit's).
     progress : callable, optional
         ``progress(pass_name, blocks_done, n_blocks)``.
+    scheduler, cluster
+        With a ``MatrixSource``: the ``dask.distributed`` cluster the passes run on, as for
+        :func:`axiscope.fitting.fit` (:class:`axiscope.Resources`: a scheduler's address or a
+        client, or ``"local:N"``); neither: the current client if the caller made one,
+        otherwise threads. Fitted blocks run where the fit ran (these are then ignored).
+        The values agree with the threaded run's to rounding (sums over blocks in another order).
 
     Returns
     -------
@@ -255,15 +270,21 @@ def axis_stability(
         raise OptionError(f"stability_repeats: halves of {half} samples have rank at most {half - 1}, fewer "
                           f"than the fit's {k} axes; fit fewer axes or leave stability out")
     t0 = time.perf_counter()
-    blocks = source if isinstance(source, FittedBlocks) else \
-        fitted_blocks(source, result, active=active, name="stability")
     threads = threads or int(result.manifest.get("plan", {}).get("threads", 1))
-    runner = PassRunner(threads=threads, progress=progress, backend=blocks.backend)  # the fit's cluster, if any
     rng = np.random.default_rng(seed)
     labels = np.stack([_split(n, rng) for _ in range(repeats)])
-    with blas_threads(threads):
-        halves, passes = _iterate(blocks, labels, k, oversample, max_passes, rng, runner,
-                                  recentre=bool(result.model.spec.center))
+    with contextlib.ExitStack() as stack:
+        if isinstance(source, FittedBlocks):
+            blocks = source  # read where the fit left them, on the fit's cluster if any
+        else:  # the input read again, on the cluster asked for (or the current client's)
+            backend = stack.enter_context(open_backend(Resources(threads=threads, scheduler=scheduler,
+                                                                 cluster=cluster)))
+            blocks = fitted_blocks(source, result, active=active, name="stability", backend=backend)
+        runner = PassRunner(threads=threads, progress=progress, backend=blocks.backend)
+        with blas_threads(threads):
+            halves, passes = _iterate(blocks, labels, k, oversample, max_passes, rng, runner,
+                                      recentre=bool(result.model.spec.center))
+        execution = runner.describe()
     full = np.asarray(result.model.components, dtype=np.float64)
     per_repeat, subspace = stability_values(full, [(halves[2 * r].vectors, halves[2 * r + 1].vectors)
                                                    for r in range(repeats)])
@@ -272,7 +293,7 @@ def axis_stability(
         threshold=threshold, passes=passes, read_from=blocks.source, seconds=time.perf_counter() - t0,
         angle_bound=np.max(np.stack([h.bound for h in halves]), axis=0),
         loadings=[(halves[2 * r].vectors, halves[2 * r + 1].vectors) for r in range(repeats)],
-        halves=labels, seed=int(seed),
+        halves=labels, seed=int(seed), execution=execution,
     )
     unstable = [a for a, s in zip(out.axis_names, out.stable) if not s]
     if unstable:

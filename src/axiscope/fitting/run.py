@@ -464,7 +464,7 @@ class FittedBlocks:
 
 
 def fitted_blocks(src: MatrixSource, result: FitResult, *, active: np.ndarray | None = None,
-                  name: str = "again") -> FittedBlocks:
+                  name: str = "again", backend=None) -> FittedBlocks:
     """The matrix ``result`` was fitted on, as the same blocks of the same active samples.
 
     Each pass over the returned array reads the input once more (no cache is kept), with the
@@ -480,6 +480,9 @@ def fitted_blocks(src: MatrixSource, result: FitResult, *, active: np.ndarray | 
         The fit's active samples (default: all).
     name : str
         Name of the Dask array (a prefix; a unique token is added).
+    backend : ClusterBackend, optional
+        The cluster the passes over the blocks run on (its workers read the blocks from the
+        input themselves); None: threads of this process.
     """
     active = np.ones(src.shape[0], dtype=bool) if active is None else np.asarray(active, dtype=bool)
     if active.shape != (src.shape[0],) or int(active.sum()) != result.model.n_samples:
@@ -491,7 +494,7 @@ def fitted_blocks(src: MatrixSource, result: FitResult, *, active: np.ndarray | 
     fill = np.asarray(prep.mean_raw, dtype=np.float64) if spec.missing == "mean" else None
     return FittedBlocks(reader.array(name, columns), np.asarray(prep.mean, dtype=np.float64),
                         np.asarray(prep.inverse_scale, dtype=np.float64), fill,
-                        lambda i: reader.block(i, columns), list(reader.rows), None, "input")
+                        lambda i: reader.block(i, columns), list(reader.rows), None, "input", backend)
 
 
 class _Caches:
