@@ -114,7 +114,7 @@ def _ids(handle, d: Path, *, n_ids: int, duplicate: bool = False) -> None:
 
 
 def _never_written(handle, d: Path) -> None:
-    handle.create_dataset("X", shape=(10**7, 10**6), dtype="f4", chunks=(1000, 1000))
+    handle.create_dataset("X", shape=(10**5, 10**6), dtype="f4", chunks=(1000, 1000))
 
 
 def _nan(handle, d: Path) -> None:
@@ -177,7 +177,7 @@ CASES = [
     Case("h5_never_written_chunks", "hdf5",
          _h5("unwritten.h5", lambda h, d: h.create_dataset("X", shape=(400, 50), dtype="f8", chunks=(100, 50))),
          2, "--allow-missing-chunks"),
-    # the declared shape, 10⁷ × 10⁶, does not fit the budget: exit 3 before reading (the
+    # the declared shape, 10⁵ × 10⁶ (400 GB), does not fit the budget: exit 3 before reading (the
     # absent chunks accepted, and counted in a warning line, to reach the budget check)
     Case("h5_never_written_huge", "hdf5",
          _h5("huge_unwritten.h5", _never_written, "--memory-limit", "1GB", "--allow-missing-chunks"), 3,
