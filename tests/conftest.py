@@ -9,7 +9,7 @@ Everything here is generic so that any test module can use it:
   singular values and subspaces) is returned with it.
 * ``dense_reference(X, ...)`` is the textbook dense computation (numpy/LAPACK) of the
   preprocessed matrix and its SVD, used as the outside reference by several modules.
-* ``client``: a ``dask.distributed`` client of a two-worker local cluster, per module.
+* ``client``: a ``dask.distributed`` client of a two-worker local cluster, per session.
 
 The data are invented (random numbers with a planted structure); the references are
 LAPACK via numpy and the formulas written next to each computation.
@@ -47,13 +47,16 @@ def _single_threaded_blas():
 # ----------------------------------------------------------------------------- cluster
 
 
-@pytest.fixture(scope="module")
+@pytest.fixture(scope="session")
 def client():
     """A client of a LocalCluster of two single-threaded worker processes (127.0.0.1, no
-    dashboard), one per test module; skips when ``distributed`` is not installed."""
+    dashboard, the scheduler's HTTP server on a free port), one for the whole session (each
+    start costs seconds); skips when ``distributed`` is not installed."""
     distributed = pytest.importorskip("distributed")
+    from axiscope.core.backends import QUIET_HTTP
+
     cluster = distributed.LocalCluster(processes=True, n_workers=2, threads_per_worker=1, host="127.0.0.1",
-                                       dashboard_address=None)
+                                       **QUIET_HTTP)
     client = distributed.Client(cluster, set_as_default=False)
     yield client
     client.close()

@@ -301,35 +301,7 @@ def test_a_worker_killed_mid_pass_changes_nothing(client, write_matrix, tmp_path
     # the file again) and the fixed tree summed the same numbers
     np.testing.assert_array_equal(before.model.singular_values, after.model.singular_values)
     np.testing.assert_array_equal(before.scores, after.scores)
-    client.run(lambda: None)  # the restarted worker is back
-
-
-def test_cli_local_cluster_end_to_end(write_matrix, tmp_path):
-    from typer.testing import CliRunner
-
-    from axiscope.cli import app
-    import pandas as pd
-
-    X = _planted(3)
-    path = write_matrix(X, "h5", chunks=(100, P))
-    runner = CliRunner()
-    common = [str(path), "--components", str(K), "--method", "randomized", "--seed", "3", "--quiet"]
-    done = runner.invoke(app, ["fit", *common, "--out", str(tmp_path / "threaded")])
-    assert done.exit_code == 0, done.output
-    done = runner.invoke(app, ["fit", *common, "--out", str(tmp_path / "cluster"), "--cluster", "local:2"])
-    assert done.exit_code == 0, done.output
-    import json
-
-    manifest = json.loads((tmp_path / "cluster" / "manifest.json").read_text())
-    assert manifest["execution"]["connected_to"] == "local cluster" and manifest["execution"]["workers"] == 2
-    for name in ("components.npy", "extra_training_sq_dist.npy"):
-        _close(np.load(tmp_path / "threaded" / "model" / name), np.load(tmp_path / "cluster" / "model" / name))
-    a = pd.read_csv(tmp_path / "threaded" / "sample_scores.tsv", sep="\t", comment="#")
-    b = pd.read_csv(tmp_path / "cluster" / "sample_scores.tsv", sep="\t", comment="#")
-    assert list(a.columns) == list(b.columns) and list(a["sample_id"]) == list(b["sample_id"])
-    # the table holds 8 significant digits: equal to within one unit of the 8th
-    numeric = a.select_dtypes("number").columns
-    np.testing.assert_allclose(a[numeric].to_numpy(), b[numeric].to_numpy(), rtol=2e-7, atol=1e-12)
+    client.wait_for_workers(2, timeout=60)  # the restarted worker is back (the cluster is shared by later tests)
 
 
 def test_bad_cluster_options_are_one_line_errors(monkeypatch, write_matrix, tmp_path):
@@ -385,22 +357,23 @@ def test_fit_against_a_scheduler_started_by_hand(write_matrix, tmp_path):
     worker_cli = [sys.executable, "-m", "distributed.cli.dask_worker"]
     info = tmp_path / "scheduler.json"
     scheduler = subprocess.Popen([*dask_cli, "--host", "127.0.0.1", "--port", "0", "--no-dashboard",
-                                  "--scheduler-file", str(info)], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    worker = None
+                                  "--dashboard-address", "127.0.0.1:0", "--scheduler-file", str(info)],
+                                 stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    # started at once: the worker waits for the scheduler's file, and meanwhile the threaded fit runs
+    worker = subprocess.Popen([*worker_cli, "--scheduler-file", str(info), "--nworkers", "1", "--nthreads", "1",
+                               "--no-dashboard", "--local-directory", str(tmp_path / "worker")],
+                              stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     try:
-        for _ in range(300):
+        X = _planted(seed=4)
+        path = write_matrix(X, "h5", chunks=(100, P))
+        threaded = fit(path, n_components=K, engine=ENGINE, resources=Resources(memory_limit=BUDGET, threads=2))
+        for _ in range(600):
             if info.exists() and info.stat().st_size:
                 break
             time.sleep(0.1)
         address = json.loads(info.read_text())["address"]
-        worker = subprocess.Popen([*worker_cli, address, "--nworkers", "1", "--nthreads", "1", "--no-dashboard",
-                                   "--local-directory", str(tmp_path / "worker")],
-                                  stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
         with distributed.Client(address, timeout=60) as probe:
             probe.wait_for_workers(1, timeout=60)
-        X = _planted(seed=4)
-        path = write_matrix(X, "h5", chunks=(100, P))
-        threaded = fit(path, n_components=K, engine=ENGINE, resources=Resources(memory_limit=BUDGET, threads=2))
         remote = fit(path, n_components=K, engine=ENGINE,
                      resources=Resources(memory_limit=BUDGET, threads=2, scheduler=address))
         assert remote.manifest["execution"]["backend"] == "dask.distributed"

@@ -25,7 +25,6 @@ import pytest
 distributed = pytest.importorskip("distributed")
 cloudpickle = pytest.importorskip("cloudpickle")
 
-from axiscope.core import backends  # noqa: E402
 from axiscope.core.options import EngineSettings, Resources  # noqa: E402
 from axiscope.decide.signal import fit_with_signal  # noqa: E402
 from axiscope.decide.stability import axis_stability  # noqa: E402
@@ -47,6 +46,11 @@ def _planted(seed: int = 0) -> np.ndarray:
 
 def _ids(n: int) -> list[str]:
     return [f"s{i}" for i in range(n)]
+
+
+def _close(a, b, rtol=1e-10):
+    scale = np.max(np.abs(a))
+    assert np.max(np.abs(a - b)) <= rtol * scale, np.max(np.abs(a - b)) / scale
 
 
 def _stability_values(record: dict) -> np.ndarray:
@@ -120,6 +124,8 @@ def _counting_local_clusters(monkeypatch) -> list:
         def __init__(self, *args, **kwargs):
             started.append(self)
             super().__init__(*args, **kwargs)
+            http = self.scheduler.http_server
+            self.http_address = (http.address, http.port)  # where its scheduler's HTTP server listens
 
     monkeypatch.setattr(distributed, "LocalCluster", Counted)
     return started
@@ -156,6 +162,16 @@ def test_cli_fit_starts_one_local_cluster_for_every_step(write_matrix, tmp_path,
     assert b["stability"]["passes"] == a["stability"]["passes"] >= 2
     np.testing.assert_allclose(_stability_values(b["stability"]), _stability_values(a["stability"]),
                                rtol=1e-8, atol=1e-10)
+    assert started[0].http_address[0] == "127.0.0.1" and started[0].http_address[1] != 8787
+    # the fit itself: the model's arrays agree to rounding, the tables to their printed digits
+    for name in ("components.npy", "singular_values.npy", "extra_training_sq_dist.npy"):
+        _close(np.load(tmp_path / "threaded" / "model" / name), np.load(tmp_path / "cluster" / "model" / name))
+    for table in ("sample_scores.tsv", "supplementary_sample_scores.tsv"):
+        x, y = (pd.read_csv(tmp_path / name / table, sep="\t", comment="#") for name in ("threaded", "cluster"))
+        assert list(x.columns) == list(y.columns) and list(x["sample_id"]) == list(y["sample_id"])
+        numeric = x.select_dtypes("number").columns
+        # the tables hold 8 significant digits: equal to within one unit of the 8th
+        np.testing.assert_allclose(x[numeric].to_numpy(), y[numeric].to_numpy(), rtol=2e-7, atol=1e-12)
 
 
 def test_cli_fit_closes_its_local_cluster_when_interrupted(write_matrix, tmp_path, monkeypatch):
@@ -176,15 +192,3 @@ def test_cli_fit_closes_its_local_cluster_when_interrupted(write_matrix, tmp_pat
     assert done.exit_code == 130, done.output
     assert len(started) == 1 and started[0].status.name == "closed"
     assert not (tmp_path / "o").exists()
-
-
-def test_local_cluster_http_server_on_a_free_loopback_port(port_8787_taken):
-    # the Python API's cluster="local:N": no dashboard, and the scheduler's HTTP server (health
-    # and metrics routes) on a free port of 127.0.0.1 without the "already in use" warning
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        with backends.open_backend(Resources(memory_limit="1GB", cluster="local:1")) as backend:
-            (cluster,) = [c for c in [getattr(backend.client, "cluster", None)] if c is not None]
-            http = cluster.scheduler.http_server
-            assert http.address == "127.0.0.1" and http.port != 8787
-    assert not [w for w in caught if "already in use" in str(w.message)], [str(w.message) for w in caught]
