@@ -74,7 +74,13 @@ def test_stability_after_auto_components_runs_on_the_cluster(client, write_matri
                     runs[name] = result, axis_stability(src, result, stability_repeats=2, seed=4, threads=2)
             else:
                 runs[name] = result, axis_stability(src, result, stability_repeats=2, seed=4, threads=2)
+        if name == "cluster":  # the scheduler's address, as --scheduler gives it
+            with open_matrix(path) as src:
+                by_address = axis_stability(src, result, stability_repeats=2, seed=4, threads=2,
+                                            scheduler=client.scheduler.address)
     (fit_a, threaded), (fit_b, clustered) = runs["threaded"], runs["cluster"]
+    assert by_address.execution["connected_to"] == "scheduler"
+    np.testing.assert_allclose(by_address.per_repeat, threaded.per_repeat, rtol=0, atol=1e-10)
     assert fit_a.model.n_components == fit_b.model.n_components == K  # the planted rank
     Z = (X - X.mean(axis=0)) / X.std(axis=0)  # LAPACK reference (population SD, the documented convention)
     np.testing.assert_allclose(fit_b.model.singular_values, np.linalg.svd(Z, compute_uv=False)[:K], rtol=1e-8)
