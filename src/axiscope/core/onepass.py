@@ -389,7 +389,7 @@ def one_pass_factorization(
     inv_d = np.divide(1.0, d, out=np.zeros_like(d), where=d > 0)
     omega_tilde = inv_d[:, None] * omega_used  # X̃·Ω̃ = (X − 1μᵀ)·Ω on the kept columns
     core = Q.T @ omega_tilde  # s × t
-    B = scipy.linalg.lstsq(core.T, Y.T, check_finite=False)[0].T  # n × s
+    B = _right_solve(Y, core)  # n × s
     U, sv, Vt = scipy.linalg.svd(B, full_matrices=False, check_finite=False)
     k_eff = min(k, sv.shape[0])
     components = Q @ Vt[:k_eff].T
@@ -421,6 +421,20 @@ def one_pass_factorization(
                  "squares_within_a_block": within if within == "float64" else f"{within}, {SQUARE_ROWS} rows at a time",
                  "sums_over_blocks": "float64"}
     return OnePassResult(fac, stats, float(rel), (s, t, q), residualizer=residualizer, working_precision=precision)
+
+
+def _right_solve(Y: np.ndarray, core: np.ndarray) -> np.ndarray:
+    """``B = Y·core⁺`` (``n × s``), the least-squares solution of ``B·core ≈ Y`` of least norm.
+
+    Through the SVD of the small ``core = U·Σ·Vᵀ`` (``s × t``): ``B = ((Y·V)·Σ⁻¹)·Uᵀ``,
+    singular values below ``eps·σ₁`` treated as zero (the default cut of
+    :func:`scipy.linalg.lstsq`, whose LAPACK ``gelsd`` gives the same ``B`` but carries the
+    ``n`` right-hand sides through its bidiagonal reduction: measured 0.5 s against 0.02 s of
+    CPU for ``n = 40,000``, ``t = 83``, one thread).
+    """
+    U, sv, Vt = scipy.linalg.svd(core, full_matrices=False, check_finite=False)
+    keep = sv > sv[0] * np.finfo(np.float64).eps if sv.size else sv > 0
+    return ((Y @ Vt[keep].T) / sv[keep]) @ U[:, keep].T
 
 
 def _estimated_row_norms(B, Y, core, total: float) -> np.ndarray:
