@@ -13,7 +13,8 @@ of the whole block task (``onepass._task``) and of the folding of each block's r
 (``onepass._ShiftedSums.fold``, on the calling thread); the task less the statistics is
 the shift's subtraction and the two products; what the process spent outside the reads,
 tasks and folds (the small factorisations after the pass, the rest of the fit, threads
-waiting) is the rest of its CPU time. Thread CPU times add up over threads, so they exceed
+waiting) is the rest of its CPU time. With ``--read-only``, the same pass with a block task
+that does nothing: what the fit's reading alone costs. Thread CPU times add up over threads, so they exceed
 the wall time when two threads work at once.
 """
 
@@ -31,7 +32,11 @@ def main() -> int:
     parser.add_argument("path", help="the matrix (a glob pattern is expanded; the first match is used)")
     parser.add_argument("memory_limit", help="e.g. 1GB")
     parser.add_argument("--components", "-k", type=int, default=20)
+    parser.add_argument("--read-only", action="store_true",
+                        help="only the fit's reading: the same reader, blocks and threads, a task that does nothing")
     args = parser.parse_args()
+    if args.read_only:
+        return read_only(sorted(glob.glob(args.path))[0], args.memory_limit, args.components)
 
     import axiscope.core.onepass as onepass
     from axiscope import EngineSettings, PreprocessSpec, Resources, fit
@@ -76,6 +81,33 @@ def main() -> int:
     print(f"  {'subtraction + products (task − statistics)':34s} {spent['whole block task'] - statistics:7.2f} s CPU")
     outside = cpu - spent["whole block task"] - spent["block reads"] - spent["folding"]
     print(f"  {'outside reads, tasks and folds':34s} {outside:7.2f} s CPU")
+    return 0
+
+
+def read_only(path: str, memory_limit: str, k: int) -> int:
+    """The one-pass fit's pass with its block task replaced by one that does nothing: what the
+    fit's reading costs (decoding, the chunk bands, the copy, the value check), to set beside
+    ``bench_onepass.py``'s floor."""
+    import numpy as np
+
+    import axiscope.fitting.run as run
+    from axiscope.core.options import EngineSettings, Resources
+    from axiscope.core.passes import PassRunner
+    from axiscope.core.plan import plan_fit
+    from axiscope.core.preprocess import PreprocessSpec
+    from axiscope.io import open_matrix
+
+    src = open_matrix(path)
+    spec = PreprocessSpec(scale="none")
+    plan = plan_fit(src, n_components=k, preprocess=spec, engine=EngineSettings(method="one-pass"),
+                    resources=Resources(memory_limit=memory_limit))
+    reader = run._Reader(src, spec, np.ones(src.shape[0], dtype=bool), plan.block_rows)
+    runner = PassRunner(threads=plan.threads)
+    wall, cpu = time.perf_counter(), time.process_time()
+    runner.run("read only", "input", reader.array("read"), lambda block: block.shape[0], lambda *a: None)
+    wall, cpu = time.perf_counter() - wall, time.process_time() - cpu
+    print(f"the fit's reading alone: wall {wall:.2f} s, process CPU {cpu:.2f} s, blocks of {plan.block_rows} rows, "
+          f"{plan.threads} threads")
     return 0
 
 
