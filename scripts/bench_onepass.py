@@ -17,6 +17,10 @@ around the child, peak RSS from ``wait4``):
 
 Beside the wall times, the CPU seconds of the process during the timed work
 (``time.process_time``): on a machine shared with other jobs they move less than wall times.
+* ``one-pass, code at DIR`` (with ``--compare-with DIR``): the same fit with the package
+  imported from another source tree (``PYTHONPATH=DIR``, e.g. an earlier commit unpacked by
+  ``git archive COMMIT src | tar -x -C /some/dir`` and ``DIR=/some/dir/src``), for a before/after
+  comparison within one run;
 * ``multi-pass`` (with ``--with-multipass``): the default randomized fit, for the accuracy
   a few more passes buy.
 
@@ -89,7 +93,9 @@ def worker_onepass(job: dict) -> dict:
         np.savez(job["factors"], s=res.model.singular_values, V=res.model.components,
                  S=res.scores, mean=res.model.mean)
     one = man.get("one_pass", {})
-    return {"seconds": seconds, "cpu": cpu, "passes": man["passes"]["count"],
+    import axiscope
+
+    return {"seconds": seconds, "cpu": cpu, "passes": man["passes"]["count"], "package": axiscope.__file__,
             "block_rows": man["plan"]["block_rows"],
             "estimated_relative_error": one.get("estimated_relative_error"),
             "widths": one.get("sketch_widths"),
@@ -241,6 +247,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--noise", type=float, default=1.0,
                     help="noise SD per entry of bench_fit.py's planted matrix (default 1)")
     ap.add_argument("--with-multipass", action="store_true", help="also the default (randomized) fit")
+    ap.add_argument("--compare-with", default=None, metavar="DIR",
+                    help="also the one-pass fit with the package imported from DIR (PYTHONPATH), "
+                         "e.g. an earlier commit's src/, at the first --memory-limit")
     ap.add_argument("--data-dir", default="bench-data")
     ap.add_argument("--out", default=None, help="append the Markdown report to this file")
     ap.add_argument("--worker", help=argparse.SUPPRESS)
@@ -261,6 +270,11 @@ def main(argv: list[str] | None = None) -> int:
         for limit in args.memory_limit.split(","):
             plan.append((f"axiscope one pass (--passes 1), --memory-limit {limit}", "onepass",
                          dict(common, path=meta["zarr"], memory_limit=limit, method="one-pass")))
+        if args.compare_with:
+            limit = args.memory_limit.split(",")[0]
+            plan.append((f"axiscope one pass, code at {args.compare_with}, --memory-limit {limit}", "onepass",
+                         dict(common, path=meta["zarr"], memory_limit=limit, method="one-pass",
+                              pythonpath=str(Path(args.compare_with).resolve()))))
         if args.with_multipass:
             limit = args.memory_limit.split(",")[0]
             plan.append((f"axiscope default passes, --memory-limit {limit}", "onepass",
@@ -274,7 +288,8 @@ def main(argv: list[str] | None = None) -> int:
                     row["factors"] = str(workdir / f"factors-{i}.npz")
                     job = dict(job, factors=row["factors"])
                 bf.say(f"[{n}x{p}] {label} (run {rep + 1}/{args.repeats}) ...")
-                child = bf.run_child(worker, job, workdir)
+                env = {"PYTHONPATH": job["pythonpath"]} if job.get("pythonpath") else None
+                child = bf.run_child(worker, job, workdir, env=env)
                 if child.returncode != 0:
                     raise SystemExit(f"{label} failed: {child.stderr_tail}")
                 cpu = child.result["cpu"] if child.returncode == 0 else float("nan")
@@ -339,6 +354,10 @@ def _report(args, argv, n, p, meta, ref_info, rows, ev, load_before, load_after)
     e = ev.get(one, {})
     if e:
         out.append("One-pass relative error of each σ_j: " + ", ".join(f"{x:.1e}" for x in e["rel_err"]) + ".")
+    for label, r in rows.items():
+        if r["res"] and r["res"].get("package"):
+            out.append(f"{label}: axiscope imported from `{r['res']['package']}`; pass times "
+                       f"{r['res'].get('pass_seconds')}.")
     parent = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
     out.append(f"Parent process peak RSS {bf._fmt_bytes(parent)}.")
     out.append("")

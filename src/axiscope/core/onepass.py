@@ -34,6 +34,16 @@ same pass accumulates ``(X − 1μᵀ)ᵀC`` (each block's ``X_bᵀC̄_b``, take
 with ``Ψ``), so ``M = X̃ᵀQ`` is known at the end, and both sketches are corrected without a
 pass: ``P·(X̃·Ω̃) = Y − Q·(QᵀY)`` and ``Ψ·P·X̃ = Ψ·X̃ − (Ψ·Q)·Mᵀ``; ``‖P·X̃‖²_F = ‖X̃‖²_F − ‖M‖²_F``.
 
+Working precision and cost of a dense block (:func:`_dense_task`): the block is shifted in
+place, in its own dtype, by ``c_b``, the mean of a few of its rows; both products (``Ψ_b``'s
+columns with a row of ones, which gives the column sums, and ``Ω``) are taken in the block's
+dtype (float32 for float32 input: the method's own error is orders above float32 rounding),
+the squares summed a few hundred rows at a time in that dtype; everything is added over
+blocks in float64, each block's shift moved to the common centre in float64
+(:class:`_ShiftedSums`). So a block costs one subtraction in place, two products and one sum
+of squares, and no float64 copy. The manifest's one-pass entry states these dtypes
+(:attr:`OnePassResult.working_precision`).
+
 Sparse blocks (:mod:`axiscope.core.sparse_ops`) are never densified: ``X_bᵀ·[Ψ_bᵀ, C̄_b]`` and
 ``X_b·Ω`` over the stored values, the block's mean taken out as a rank-one float64 correction.
 
@@ -57,7 +67,7 @@ from .adjust import Adjustment, Residualizer
 from .backends import Reduction
 from .engine import Factorization, accuracy_from_error, orient_signs
 from .passes import PassRunner
-from .preprocess import BlockStats, block_statistics, first_nonfinite
+from .preprocess import BlockStats, first_nonfinite
 from .sparse_ops import (as_columns, first_nonfinite_sparse, is_sparse, sparse_block_statistics, sparse_products,
                          sparse_transposed_product)
 
@@ -87,124 +97,205 @@ class OnePassResult:
     distances_estimated: bool = True
     #: ``Q`` and ``M = X̃ᵀQ`` of an adjusted fit (None without covariates)
     residualizer: Residualizer | None = None
+    #: the dtype of the blocks' products, and of their sums over blocks (manifest record)
+    working_precision: dict | None = None
+
+
+#: Rows, evenly spaced through a dense block, whose mean is the block's shift ``c``.
+SHIFT_ROWS = 32
+#: Rows per partial sum of squares accumulated in the block's dtype (then added in float64).
+SQUARE_ROWS = 256
 
 
 def _task(block, rows, width, omega, in_place=False):
-    """Statistics of a block, and its products about the block's own mean (float64).
+    """Statistics of a block, and its products about a shift ``c_b`` near the block's mean.
 
     ``rows`` holds this block's columns of ``Ψ`` (the first ``width`` columns) followed by its
     rows of the centred covariates ``C̄`` (none without an adjustment). Returns
-    ``(stats, left, cross, right, bad, Ψ_b·1, m_b)`` (the last two to merge ``left`` over
-    blocks and to move ``right`` to the final centre) with ``left = Ψ_b·(X_b − 1·m_bᵀ)`` (``width × p``),
-    ``cross = X_bᵀ·C̄_b`` (:func:`axiscope.core.adjust.block_cross`; None without covariates)
-    and ``right = (X_b − 1·m_bᵀ)·Ω``. Both left-hand products are one product with
-    ``[Ψ_bᵀ, C̄_b]``. A dense block is centred in its own dtype on a shift ``c`` near ``m_b``
-    (:func:`_shifted`; in place when ``in_place``), and ``e = m_b − c`` is taken out in
-    float64; a sparse block is never densified (:func:`_sparse_task`).
+    ``(stats, left, cross, right, bad, c_b)``: ``left = Ψ_b·(X_b − 1·c_bᵀ)`` (``width × p``),
+    ``cross = X_bᵀ·C̄_b`` (:func:`axiscope.core.adjust.block_cross`; None without covariates),
+    ``right = (X_b − 1·c_bᵀ)·Ω`` and the shift ``c_b`` (float64), which the fold uses to move
+    both products to the final centre (:class:`_ShiftedSums`). A dense block is worked on in
+    its own dtype (:func:`_dense_task`); a sparse block is never densified
+    (:func:`_sparse_task`).
     """
     if is_sparse(block):
         return _sparse_task(block, rows, width, omega)
-    stats, centred, c = _shifted(block, in_place)
-    psi_sum = rows[:, :width].astype(np.float64).sum(axis=0)
-    if centred is None:
-        return stats, None, None, None, first_nonfinite(block), psi_sum, stats.mean
+    return _dense_task(block, rows, width, omega, in_place)
+
+
+def _dense_task(block, rows, width, omega, in_place=False):
+    """:func:`_task` on a dense block: one copy at most, two products, one sum of squares.
+
+    The block is shifted in its own dtype (in place when ``in_place``) by ``c``, the mean of
+    :data:`SHIFT_ROWS` rows spread through it (:func:`_shift`): the difference of two numbers
+    of the column, so no precision is lost that the values had. Both products are taken in
+    the block's dtype; the left one is ``[Ψ_bᵀ, 1, C̄_b]ᵀ·(X_b − 1cᵀ)``, whose row of ones gives
+    the column sums ``Σ(x − c)`` with it. The statistics follow (Chan, Golub & LeVeque's
+    shifted sums): ``mean = c + Σ(x − c)/m``, ``M2 = Σ(x − c)² − (Σ(x − c))²/m``, with
+    ``Σ(x − c)²`` summed :data:`SQUARE_ROWS` rows at a time in the block's dtype and those
+    partial sums in float64.
+    """
+    if block.dtype not in (np.float32, np.float64):
+        block, in_place = block.astype(np.result_type(block.dtype, np.float32)), True
+    m = block.shape[0]
+    c = _shift(block)
+    centred = np.subtract(block, c, out=block) if in_place else block - c
     del block
-    e = stats.mean - c.astype(np.float64)
-    rows_b = rows.astype(centred.dtype)
-    both = (rows_b.T @ centred).astype(np.float64)  # (width + covariates) × p
-    left = both[:width]
-    left -= np.outer(rows_b[:, :width].astype(np.float64).sum(axis=0), e)
+    dtype = centred.dtype
+    lhs = np.empty((m, rows.shape[1] + 1), dtype=dtype)
+    lhs[:, :width] = rows[:, :width]
+    lhs[:, width] = 1.0
+    lhs[:, width + 1:] = rows[:, width:]
+    both = lhs.T @ centred  # (width + 1 + covariates) × p, in the block's dtype
+    csum = both[width].astype(np.float64)
+    squares = _sum_squares(centred)
+    if not (np.isfinite(csum).all() and np.isfinite(squares).all()):
+        bad = first_nonfinite(centred)  # x − c is finite exactly where x is (c is finite)
+        if bad is not None:
+            return None, None, None, None, bad, None
+        # finite values whose sums passed the dtype's largest number: again in float64
+        return _dense_task(centred.astype(np.float64) + c, rows, width, omega, True)
+    c64 = c.astype(np.float64)
+    m2 = np.maximum(squares - csum**2 / m, 0.0)
+    eps = float(np.finfo(dtype).eps)
+    stats = BlockStats(m, np.full(centred.shape[1], float(m)), c64 + csum / m, m2, 0, eps)
     cross = None
     if rows.shape[1] > width:  # the shift comes back in float64: X_bᵀC̄_b = (X_b − 1cᵀ)ᵀC̄_b + c·(1ᵀC̄_b)
-        cross = both[width:].T + np.outer(c.astype(np.float64), rows[:, width:].sum(axis=0))
-    omega_b = omega.astype(centred.dtype)
-    right = (centred @ omega_b).astype(np.float64)
-    right -= e @ omega_b.astype(np.float64)
-    return stats, left, cross, right, None, psi_sum, stats.mean
+        cross = both[width + 1:].T.astype(np.float64) + np.outer(c64, rows[:, width:].sum(axis=0))
+    right = centred @ omega.astype(dtype, copy=False)  # m × t, in the block's dtype
+    return stats, both[:width], cross, right, None, c64
 
 
-def _shifted(block: np.ndarray, in_place: bool = False) -> tuple[BlockStats, np.ndarray | None, np.ndarray | None]:
-    """The block's statistics, the block minus a shift ``c`` near its column means (in its own
-    dtype; the block itself, overwritten, when ``in_place``), and ``c``; ``(stats, None, None)``
-    when the block holds a non-finite value.
+def _shift(block: np.ndarray) -> np.ndarray:
+    """Mean of :data:`SHIFT_ROWS` rows evenly spread through the block, in its dtype (0 where
+    not finite, so that a NaN or an infinite value stays in its own cell)."""
+    step = max(1, block.shape[0] // SHIFT_ROWS)
+    some = block[::step][:SHIFT_ROWS]
+    with np.errstate(invalid="ignore", over="ignore"):
+        c = np.add.reduce(some, axis=0, dtype=np.float64) / some.shape[0]
+    c[~np.isfinite(c)] = 0.0
+    return c.astype(block.dtype)
 
-    The statistics pass's :func:`axiscope.core.preprocess.block_statistics`, sharing its
-    shifted copy with the products: ``c`` is the column means rounded to the block's dtype,
-    ``mean = c + Σ(x − c)/m`` and ``M2 = Σ(x − c)² − (Σ(x − c))²/m``, all sums in float64
-    (no cancellation, as ``c`` is the mean to rounding).
-    """
-    m = block.shape[0]
-    total = np.add.reduce(block, axis=0, dtype=np.float64)
-    if np.isfinite(total).all():
-        c = (total / m).astype(block.dtype)
-    else:  # a NaN or infinite value, or sums past the largest float
-        stats = block_statistics(block)
-        if stats.n_nonfinite:
-            return stats, None, None
-        c = stats.mean.astype(block.dtype)
-    centred = np.subtract(block, c, out=block) if in_place else block - c
-    csum = np.add.reduce(centred, axis=0, dtype=np.float64)
-    m2 = np.einsum("ij,ij->j", centred, centred, dtype=np.float64) - csum**2 / m
-    mean = c.astype(np.float64) + csum / m
-    eps = float(np.finfo(block.dtype if block.dtype.kind == "f" else np.float64).eps)
-    return BlockStats(m, np.full(block.shape[1], float(m)), mean, np.maximum(m2, 0.0), 0, eps), centred, c
+
+def _sum_squares(centred: np.ndarray) -> np.ndarray:
+    """``Σ_i x_ij²`` per column: :data:`SQUARE_ROWS` rows at a time in the block's dtype, the
+    partial sums added in float64 (no float64 copy of the block)."""
+    total = np.zeros(centred.shape[1])
+    for a in range(0, centred.shape[0], SQUARE_ROWS):
+        part = centred[a : a + SQUARE_ROWS]
+        total += np.einsum("ij,ij->j", part, part)
+    return total
 
 
 def _sparse_task(block, rows, width, omega):
-    """:func:`_task` on a sparse block: products over the stored values, the block mean as a
-    rank-one correction in float64 (``Ψ_b(X_b − 1mᵀ) = (X_bᵀΨ_bᵀ)ᵀ − (Ψ_b1)·mᵀ``,
-    ``(X_b − 1mᵀ)Ω = X_bΩ − 1·(mᵀΩ)``), never a dense copy of the block."""
+    """:func:`_task` on a sparse block: products over the stored values about the block's
+    mean ``m`` (the shift), taken out as a rank-one correction in float64
+    (``Ψ_b(X_b − 1mᵀ) = (X_bᵀΨ_bᵀ)ᵀ − (Ψ_b1)·mᵀ``, ``(X_b − 1mᵀ)Ω = X_bΩ − 1·(mᵀΩ)``), never a
+    dense copy of the block."""
     block = as_columns(block)
     bad = first_nonfinite_sparse(block)
-    psi_sum = rows[:, :width].astype(np.float64).sum(axis=0)
     if bad is not None:
-        return None, None, None, None, bad, psi_sum, None
+        return None, None, None, None, bad, None
     stats = sparse_block_statistics(block)
     both = sparse_transposed_product(block, rows)  # X_bᵀ·[Ψ_bᵀ, C̄_b]
     left = both[:, :width].T - np.outer(rows[:, :width].sum(axis=0), stats.mean)
     cross = both[:, width:] if rows.shape[1] > width else None
     zero = np.zeros_like(stats.mean)
     right = sparse_products(block, omega, 0.0, stats.mean, zero, zero, None, 0, False)[0]
-    return stats, left, cross, right, None, psi_sum, stats.mean
+    return stats, left, cross, right, None, stats.mean
 
 
-def _merge_left(a, b):
-    """Two runs of blocks' ``(stats, left, Ψ·1, cross)`` as one, ``left`` about the merged mean
-    (``cross``, the covariates' ``XᵀC̄``, is a plain sum; None without covariates).
-
-    With ``left_A = Ψ_A·(X_A − 1·m_Aᵀ)`` and the merged mean ``m``,
-    ``Ψ_A·(X_A − 1·mᵀ) = left_A + (Ψ_A·1)·(m_A − m)ᵀ``; the shifts are differences of
-    means, small next to the means themselves.
-    """
-    stats_a, left_a, sum_a, cross_a = a
-    stats_b, left_b, sum_b, cross_b = b
-    if stats_a is None or stats_b is None:  # a sparse block with a non-finite value, named when folded
-        return None, None, sum_a + sum_b, None
-    stats = stats_a.merge(stats_b)
-    left = None
-    if left_a is not None and left_b is not None:
-        left = left_a + np.outer(sum_a, stats_a.mean - stats.mean)
-        left += left_b
-        left += np.outer(sum_b, stats_b.mean - stats.mean)
+def _merge(a, b):
+    """Two runs of blocks' ``(stats, left, cross)`` as one: the statistics merged, the left
+    products (each about its blocks' own shifts, in the blocks' dtype) and the covariates'
+    ``XᵀC̄`` summed in float64; None after a block with a non-finite value (named when folded)."""
+    stats_a, left_a, cross_a = a
+    stats_b, left_b, cross_b = b
+    if stats_a is None or stats_b is None:
+        return None, None, None
     cross = None if cross_a is None or cross_b is None else cross_a + cross_b
-    return stats, left, sum_a + sum_b, cross
+    return stats_a.merge(stats_b), np.add(left_a, left_b, dtype=np.float64), cross
 
 
 def _split(result):
-    """On a cluster: ``right``, the bad cell and the block mean come back per block; the
-    statistics and ``left`` are merged on the workers (:func:`_merge_left`)."""
-    stats, left, cross, right, bad, psi_sum, mean = result
-    return (None, None, None, right, bad, None, mean), (stats, left, psi_sum, cross)
+    """On a cluster: ``right``, the bad cell and the shift come back per block; the
+    statistics and ``left`` are merged on the workers (:func:`_merge`)."""
+    stats, left, cross, right, bad, shift = result
+    return (None, None, None, right, bad, shift), (stats, left, cross)
 
 
 def _join(piece, total):
-    _, _, _, right, bad, _, mean = piece
-    stats, left, psi_sum, cross = total
-    return stats, left, cross, right, bad, psi_sum, mean
+    stats, left, cross = total
+    return stats, left, cross, piece[3], piece[4], piece[5]
 
 
 #: How a cluster sums the one-pass results (:class:`axiscope.core.backends.Reduction`).
-ONE_PASS_SUM = Reduction(_merge_left, split=_split, join=_join)
+ONE_PASS_SUM = Reduction(_merge, split=_split, join=_join)
+
+#: Blocks whose shift corrections are applied together (one small product instead of one
+#: rank-one update of the ``(s + q) × p`` sum per block).
+SHIFTS_AT_ONCE = 8
+
+
+class _ShiftedSums:
+    """The blocks' results folded in block order: both sketches about the first block's shift.
+
+    Block ``b`` brings ``L_b = Ψ_b·(X_b − 1c_bᵀ)`` and ``R_b = (X_b − 1c_bᵀ)·Ω`` about its own
+    shift ``c_b``. About the first block's shift ``r``:
+    ``Ψ·(X − 1rᵀ) = Σ_b L_b + Σ_b (Ψ_b1)·(c_b − r)ᵀ`` and ``(X_b − 1rᵀ)·Ω = R_b + 1·(c_b − r)ᵀΩ``;
+    the shifts differ by about a standard deviation, so nothing cancels. The corrections of
+    :data:`SHIFTS_AT_ONCE` blocks are applied as one product. ``L_b`` is summed in float64.
+    """
+
+    def __init__(self, psi: np.ndarray, omega: np.ndarray, Y: np.ndarray, on_missing):
+        self.psi, self.omega, self.Y, self.on_missing = psi, omega, Y, on_missing
+        self.ref = None
+        self.stats = self.left = self.cross = None
+        self.product_dtype = None  # of the blocks' products (sparse blocks: float64)
+        self.correction = np.zeros((psi.shape[0], omega.shape[0]))
+        self.waiting: list[tuple[int, int, np.ndarray]] = []
+
+    def fold(self, result, index, start) -> None:
+        stats, left, cross, right, bad, shift = result
+        if bad is not None:
+            if self.on_missing is not None:
+                self.on_missing(start + bad[0], bad[1])
+            raise ValueError(f"non-finite value at row {start + bad[0]}, column {bad[1]}")
+        m = right.shape[0]
+        self.Y[start : start + m] = right
+        self.product_dtype = np.promote_types(self.product_dtype or right.dtype, right.dtype)
+        if self.ref is None:
+            self.ref = shift.copy()
+        self.waiting.append((start, m, shift - self.ref))
+        if len(self.waiting) >= SHIFTS_AT_ONCE:
+            self._apply_shifts()
+        if stats is not None:  # on a cluster, only the last block brings the merged total
+            if self.stats is None:
+                self.stats, self.left, self.cross = stats, left.astype(np.float64), cross
+            else:
+                self.stats = self.stats.merge(stats)
+                np.add(self.left, left, out=self.left)
+                self.cross = None if cross is None else self.cross + cross
+
+    def _apply_shifts(self) -> None:
+        if not self.waiting:
+            return
+        D = np.array([d for _, _, d in self.waiting])  # blocks × p
+        G = np.array([self.psi[:, start : start + m].sum(axis=1) for start, m, _ in self.waiting])
+        self.correction += G.T @ D
+        for (start, m, _), row in zip(self.waiting, D @ self.omega):
+            self.Y[start : start + m] += row
+        self.waiting = []
+
+    def about(self, mean: np.ndarray) -> np.ndarray:
+        """``Ψ·(X − 1μᵀ)``, and ``Y`` moved to ``(X − 1μᵀ)·Ω`` in place, for the centre ``μ``."""
+        self._apply_shifts()
+        move = mean - self.ref
+        self.Y -= move @ self.omega
+        left = self.left + self.correction
+        left -= np.outer(self.psi.sum(axis=1), move)
+        return left
 
 
 def one_pass_factorization(
@@ -269,40 +360,21 @@ def one_pass_factorization(
     rows = psi.T if adjust is None else np.hstack([psi.T, adjust.centred])
 
     Y = np.empty((n, t))
-    acc: dict = {"merged": None, "ref": None}
-    shifts: list[tuple[int, int, np.ndarray]] = []
-
-    def fold(result, index, start):
-        stats, left, cross, right, bad, psi_sum, mean = result
-        if bad is not None:
-            if on_missing is not None:
-                on_missing(start + bad[0], bad[1])
-            raise ValueError(f"non-finite value at row {start + bad[0]}, column {bad[1]}")
-        m = right.shape[0]
-        if acc["ref"] is None:
-            acc["ref"] = mean.copy()
-        Y[start : start + m] = right
-        shifts.append((start, m, (mean - acc["ref"]) @ omega_used))  # small: against the first block's mean
-        if stats is not None:  # on a cluster, only the last block brings the merged total
-            merged = (stats, left, psi_sum, cross)
-            acc["merged"] = merged if acc["merged"] is None else _merge_left(acc["merged"], merged)
-
+    sums = _ShiftedSums(psi, omega_used, Y, on_missing)
     name = "one pass: statistics + " + ("covariates + " if adjust is not None else "") + "sketches"
     in_place = bool(fresh_blocks) and runner.backend is None  # (a cluster may run a block's task twice)
-    runner.run(name, source, X, _task, fold, s + q, omega_used, in_place, rows=rows, reduce=ONE_PASS_SUM)
-    stats, left_about, psi_sum, cross = acc["merged"]
+    runner.run(name, source, X, _task, sums.fold, s + q, omega_used.astype(work), in_place, rows=rows,
+               reduce=ONE_PASS_SUM)
+    stats, cross = sums.stats, sums.cross
     if cross is not None:
         adjust.add_cross(cross)
     mean, d = finish(stats)
     mean = np.asarray(mean, dtype=np.float64)
     d = np.asarray(d, dtype=np.float64)
 
-    # centre about μ (from about the mean of the pass), then scale
-    left = left_about - np.outer(psi_sum, mean - stats.mean)  # Ψ·X̃ before the scale
+    # centre about μ (both sketches, from about the first block's shift), then scale
+    left = sums.about(mean)  # Ψ·X̃ before the scale; Y = X̃·Ω̃ from here on
     left *= d
-    mu_omega = (mean - acc["ref"]) @ omega_used
-    for start, m, shift_omega in shifts:
-        Y[start : start + m] += shift_omega - mu_omega
     total = float(np.sum(stats.m2 * d**2))  # ‖X̃‖²_F
     residualizer = None
     if adjust is not None:  # both sketches of P·X̃ (module notes of core/adjust.py)
@@ -317,7 +389,7 @@ def one_pass_factorization(
     inv_d = np.divide(1.0, d, out=np.zeros_like(d), where=d > 0)
     omega_tilde = inv_d[:, None] * omega_used  # X̃·Ω̃ = (X − 1μᵀ)·Ω on the kept columns
     core = Q.T @ omega_tilde  # s × t
-    B = scipy.linalg.lstsq(core.T, Y.T, check_finite=False)[0].T  # n × s
+    B = _right_solve(Y, core)  # n × s
     U, sv, Vt = scipy.linalg.svd(B, full_matrices=False, check_finite=False)
     k_eff = min(k, sv.shape[0])
     components = Q @ Vt[:k_eff].T
@@ -344,7 +416,25 @@ def one_pass_factorization(
         residual_bound=float(np.sqrt(max(err2, 0.0))),
         accuracy=accuracy,
     )
-    return OnePassResult(fac, stats, float(rel), (s, t, q), residualizer=residualizer)
+    within = np.dtype(sums.product_dtype).name  # (sparse blocks: float64 throughout)
+    precision = {"block_products": within, "column_sums_within_a_block": within,
+                 "squares_within_a_block": within if within == "float64" else f"{within}, {SQUARE_ROWS} rows at a time",
+                 "sums_over_blocks": "float64"}
+    return OnePassResult(fac, stats, float(rel), (s, t, q), residualizer=residualizer, working_precision=precision)
+
+
+def _right_solve(Y: np.ndarray, core: np.ndarray) -> np.ndarray:
+    """``B = Y·core⁺`` (``n × s``), the least-squares solution of ``B·core ≈ Y`` of least norm.
+
+    Through the SVD of the small ``core = U·Σ·Vᵀ`` (``s × t``): ``B = ((Y·V)·Σ⁻¹)·Uᵀ``,
+    singular values below ``eps·σ₁`` treated as zero (the default cut of
+    :func:`scipy.linalg.lstsq`, whose LAPACK ``gelsd`` gives the same ``B`` but carries the
+    ``n`` right-hand sides through its bidiagonal reduction: measured 0.5 s against 0.02 s of
+    CPU for ``n = 40,000``, ``t = 83``, one thread).
+    """
+    U, sv, Vt = scipy.linalg.svd(core, full_matrices=False, check_finite=False)
+    keep = sv > sv[0] * np.finfo(np.float64).eps if sv.size else sv > 0
+    return ((Y @ Vt[keep].T) / sv[keep]) @ U[:, keep].T
 
 
 def _estimated_row_norms(B, Y, core, total: float) -> np.ndarray:

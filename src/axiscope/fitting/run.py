@@ -347,7 +347,7 @@ def _one_pass(src: MatrixSource, job: _Job, reader: _Reader, exclude, n: int, rn
     )
     fac = result.factorization
     fac.sketch = {"relative_error": result.relative_error, "widths": list(result.widths),
-                  "distances_estimated": result.distances_estimated}
+                  "distances_estimated": result.distances_estimated, "precision": result.working_precision}
     return found["stats"], found["prep"], fac, result.residualizer
 
 
@@ -789,6 +789,7 @@ def _one_pass_record(fac: Factorization) -> dict:
         "sketch_widths": {"sample_side": s, "feature_side": t, "error_rows": q},
         "estimated_relative_error": fac.sketch["relative_error"],
         "sample_distances": "estimated" if fac.sketch["distances_estimated"] else "exact",
+        "working_precision": fac.sketch.get("precision"),
         "note": ("read once: statistics and two random sketches in the same pass, no power "
                  "iterations; the singular values and loadings are less accurate than the default "
                  "passes give (estimated_relative_error is ‖X̃ − X̃ₖ‖_F / ‖X̃‖_F seen through a separate "
