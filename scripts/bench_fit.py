@@ -688,7 +688,9 @@ def run_size(args, size_index: int, n: int, p: int, workdir: Path) -> str:
         rows.append(row)
         for rep in range(args.repeats):
             if worker != "floor" and rep == 0:
-                row.factors = str(workdir / f"factors-{len(rows)}.npz")
+                where = Path(args.factors_dir) if args.factors_dir else workdir
+                chunks = "auto" if args.zarr_chunks is None else f"{args.zarr_chunks[0]}x{args.zarr_chunks[1]}"
+                row.factors = str(where / f"factors-{n}x{p}-chunks{chunks}-{len(rows)}-{worker}.npz")
                 job = dict(job, factors=row.factors)
             else:
                 job = dict(job, factors=None)
@@ -887,6 +889,9 @@ def build_parser() -> argparse.ArgumentParser:
     ap.add_argument("--scratch", default=None, help="axiscope's scratch folder (default: the temporary folder)")
     ap.add_argument("--data-dir", default="bench-data", help="where data and references are cached")
     ap.add_argument("--out", default=None, help="append the Markdown report to this file")
+    ap.add_argument("--factors-dir", default=None,
+                    help="keep each run's singular values and loadings here (default: a temporary folder), "
+                         "e.g. to compare two versions' results")
     ap.add_argument("--skip-reference", action="store_true",
                     help="no exact reference (accuracy columns left blank)")
     ap.add_argument("--timeout", type=float, default=None, help="kill a run after this many seconds")
@@ -937,6 +942,8 @@ def main(argv: list[str] | None = None) -> int:
         if args.components >= min(n, p) - 1:
             ap.error(f"--components {args.components} is too large for {n}x{p}")
     Path(args.data_dir).mkdir(parents=True, exist_ok=True)
+    if args.factors_dir:
+        Path(args.factors_dir).mkdir(parents=True, exist_ok=True)
     script = os.path.relpath(SCRIPT) if not os.path.relpath(SCRIPT).startswith("..") else str(SCRIPT)
     parts = [machine_report(args, [script] + argv)]
     with tempfile.TemporaryDirectory(prefix="bench-fit-") as tmp:

@@ -45,9 +45,17 @@ def read_all(source: MatrixSource, block: int) -> np.ndarray:
         part = source.read_samples(start, stop)
         assert part.shape == (stop - start, source.shape[1])
         assert part.dtype == source.dtype
-        assert part.flags.c_contiguous and part.flags.owndata
+        # the caller's own: C-ordered, writeable, and sharing no memory with another read's block
+        # (rows of a decoded chunk band may be handed out as a view of it: io/chunk_bands.py)
+        assert part.flags.c_contiguous and part.flags.writeable
+        assert not any(np.shares_memory(part, other) for other in parts)
         parts.append(part)
-    return np.concatenate(parts, axis=0)
+    whole = np.concatenate(parts, axis=0)
+    if parts:  # changing one block in place changes no other, nor a later read
+        parts[0] += 1
+        again = source.read_samples(0, parts[0].shape[0])
+        np.testing.assert_array_equal(again, whole[: parts[0].shape[0]])
+    return whole
 
 
 def assert_round_trip(source: MatrixSource, expected: np.ndarray) -> None:

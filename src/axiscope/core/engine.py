@@ -37,6 +37,7 @@ import scipy.linalg
 from .backends import Reduction
 from .passes import PassRunner
 from .sparse_ops import is_sparse, sparse_products
+from .workspace import work_array
 
 if TYPE_CHECKING:
     from .adjust import Residualizer
@@ -181,7 +182,8 @@ def _products(block, W, offset, centre, residual, d, fill, gram_width, want_norm
     if is_sparse(block):  # implicit centring over the stored values, float64 (core/sparse_ops.py)
         return sparse_products(block, W, offset, centre, residual, d, fill, gram_width, want_norms)
     block = _filled(block, fill)
-    centred = block - centre
+    # into the pass thread's work array (core/workspace.py): no fresh block-sized array per block
+    centred = np.subtract(block, centre, out=work_array("centred", block.shape, np.result_type(block, centre)))
     y = (centred @ W).astype(np.float64)
     y -= offset
     gram = None

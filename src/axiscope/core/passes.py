@@ -22,12 +22,16 @@ import dask
 import dask.array as da
 import numpy as np
 
+from .workspace import keep_work_arrays
 
 __all__ = ["PassRecord", "PassRunner", "array_from_blocks", "blas_threads"]
 
 logger = logging.getLogger(__name__)
 
 Progress = Callable[[str, int, int], None]
+
+#: ``source`` of the passes that read a block cache of this process (:mod:`axiscope.core.cache`).
+CACHED = ("memory", "compressed", "scratch")
 
 
 @dataclass
@@ -66,6 +70,8 @@ class PassRunner:
     ----------
     threads : int
         Blocks computed at once on the threaded back-end.
+    read_ahead, cached_threads : int
+        See the attributes.
     progress : callable or None
         Called as ``progress(pass_name, blocks_done, n_blocks)``.
     backend : axiscope.core.backends.ClusterBackend, optional
@@ -76,6 +82,12 @@ class PassRunner:
     progress: Progress | None = None
     records: list[PassRecord] = field(default_factory=list)
     backend: Any = None
+    #: Blocks read ahead of those worked on, by reading threads of their own (0: each thread
+    #: reads the block it works on, and ``2·threads`` blocks are in flight).
+    read_ahead: int = 0
+    #: Threads of the passes that read a block cache (0: ``threads``); the memory plan can
+    #: allow more there, where no decoded chunk bands are held.
+    cached_threads: int = 0
 
     @property
     def n_passes(self) -> int:
@@ -121,6 +133,7 @@ class PassRunner:
         n = len(blocks)
         if self.progress:
             self.progress(name, 0, n)
+        self._source = source
         self._run_pipelined(name, blocks, starts, task, fold, args)
         self.records.append(PassRecord(name, source, time.perf_counter() - t0, n))
         _log_pass(self.n_passes, self.records[-1])
@@ -128,7 +141,9 @@ class PassRunner:
     def describe(self) -> dict:
         """Where the passes ran, for the manifest."""
         if self.backend is None:
-            return {"backend": "threaded", "threads": self.threads}
+            extra = {"threads_reading_cache": self.cached_threads} \
+                if self.cached_threads and self.cached_threads != self.threads else {}
+            return {"backend": "threaded", "threads": self.threads, **extra}
         return self.backend.describe()
 
     def _run_pipelined(self, name, blocks, starts, task, fold, args) -> None:
@@ -136,7 +151,16 @@ class PassRunner:
 
         Each block's Dask graph is computed with the synchronous scheduler inside a pool
         thread, so the reading order, the memory held and the fold order are ours to fix.
+        With :attr:`read_ahead`, reading threads of their own read ahead
+        (:meth:`_run_read_ahead`), and passes over a block cache run on :attr:`cached_threads`.
         """
+        threads, read_ahead = self.threads, self.read_ahead
+        if self.cached_threads and getattr(self, "_source", None) in CACHED:
+            threads = self.cached_threads
+            read_ahead = threads if read_ahead else 0
+        if read_ahead:
+            self._run_read_ahead(name, blocks, starts, task, fold, args, threads, read_ahead)
+            return
         n = len(blocks)
         window = 2 * self.threads
 
@@ -144,7 +168,8 @@ class PassRunner:
             (block,) = dask.compute(blocks[i], scheduler="synchronous")
             return task(block, *args)
 
-        with ThreadPoolExecutor(max_workers=self.threads, thread_name_prefix="axiscope") as pool:
+        with ThreadPoolExecutor(max_workers=self.threads, thread_name_prefix="axiscope",
+                                initializer=keep_work_arrays) as pool:  # one set of work arrays per thread
             pending: deque = deque()
             submitted = 0
             try:
@@ -159,6 +184,49 @@ class PassRunner:
                         self.progress(name, i + 1, n)
             finally:
                 for future in pending:
+                    future.cancel()
+
+    def _run_read_ahead(self, name, blocks, starts, task, fold, args, threads: int, read_ahead: int) -> None:
+        """Blocks in order, ``threads + read_ahead`` in flight, folded in order; reading overlaps work.
+
+        Each block is read (its Dask graph computed with the synchronous scheduler) on one of
+        ``threads`` reading threads and then handed to one of ``threads`` working threads, so
+        the next blocks are read and decoded while earlier ones are worked on, even with one
+        thread (without it, one thread read and then worked, and decoding the next on-disk
+        chunk waited for the products of the block before).
+        """
+        n = len(blocks)
+        window = threads + read_ahead
+
+        def read(i, slot):
+            (slot[0],) = dask.compute(blocks[i], scheduler="synchronous")
+
+        def work(loaded, slot):
+            loaded.result()  # re-raises the read's error
+            block = slot.pop()
+            return task(block, *args)  # the block is let go as soon as its task is done
+
+        with ThreadPoolExecutor(max_workers=threads, thread_name_prefix="axiscope-read",
+                                initializer=keep_work_arrays) as readers, \
+                ThreadPoolExecutor(max_workers=threads, thread_name_prefix="axiscope",
+                                   initializer=keep_work_arrays) as pool:  # one set of work arrays per thread
+            pending: deque = deque()
+            submitted = 0
+            try:
+                for i in range(n):
+                    while submitted < n and len(pending) < window:
+                        slot: list = [None]
+                        loaded = readers.submit(read, submitted, slot)
+                        pending.append((loaded, pool.submit(work, loaded, slot)))
+                        submitted += 1
+                    result = pending.popleft()[1].result()
+                    fold(result, i, starts[i])
+                    del result
+                    if self.progress:
+                        self.progress(name, i + 1, n)
+            finally:
+                for loaded, future in pending:
+                    loaded.cancel()
                     future.cancel()
 
 

@@ -63,6 +63,11 @@ class BlockPlan:
     #: ``cache="compressed"``: compressed bytes the cache may hold in memory (blocks past it
     #: go to the scratch file); ``cache_bytes`` is then the expected compressed size.
     cache_allowance: int = 0
+    #: Blocks read ahead of those worked on (:class:`axiscope.core.passes.PassRunner`; 0:
+    #: each thread reads its own block).
+    read_ahead: int = 0
+    #: Threads of the passes that read the block cache (0: ``threads``).
+    cached_threads: int = 0
 
     def to_dict(self) -> dict:
         extra = {} if self.block_nonzeros is None else {"block_nonzeros": self.block_nonzeros}
@@ -189,8 +194,12 @@ def plan_blocks(
         cache_bytes = int(compressed_bytes) if compressed_bytes is not None else cache_bytes
     held = cache_bytes if cache == "memory" else allowance
     fitting = max(1, int((data_budget - fixed - held) // per_thread))
+    n_threads = min(threads, fitting)
     return BlockPlan(rows, cache, budget, fixed, rows * n_features * itemsize, cache_bytes, max_basis,
-                     min(threads, fitting), baseline, chunk_bytes, cache_allowance=allowance)
+                     n_threads, baseline, chunk_bytes, cache_allowance=allowance,
+                     read_ahead=_read_ahead(n_threads, rows, sample_chunk),
+                     cached_threads=_cached_threads(threads, n_threads, cache, data_budget - fixed - held,
+                                                    partial, rows, n_features, itemsize, width))
 
 
 def plan_one_pass(
@@ -290,6 +299,28 @@ def _block_rows(free: int, n_samples: int, n_features: int, itemsize: int, parti
         elif window * (partial + sample_chunk * row_bytes) + (window // 2) * chunk_bytes <= free:
             rows = sample_chunk
     return rows, window
+
+
+def _read_ahead(threads: int, rows: int, sample_chunk: int | None) -> int:
+    """Blocks read ahead of the ``threads`` worked on: ``threads`` (the ``2·threads`` blocks in
+    flight counted per thread), and up to ``2·threads`` while blocks cut an on-disk chunk band in
+    several, so that the next band is decoded while the blocks of the one before are worked on
+    (those read ahead from a held band are views of it: :mod:`axiscope.io.chunk_bands`)."""
+    per_band = -(-int(sample_chunk) // max(1, rows)) if sample_chunk and rows < sample_chunk else 1
+    return max(threads, min(per_band, 2 * threads))
+
+
+def _cached_threads(asked: int, threads: int, cache: str, free: int, partial: int, rows: int,
+                    n_features: int, itemsize: int, width: int) -> int:
+    """Threads of the passes that read the block cache, where no decoded chunk band is held.
+
+    Per thread two blocks in flight (one worked on, one read ahead), the worked-on block's
+    centred work array (:mod:`axiscope.core.workspace`) and two ``p × l`` partial products with
+    the block's ``l`` columns of products per row; at least the threads of the first pass."""
+    if cache not in ("memory", "compressed", "scratch"):
+        return threads
+    per_thread = 2 * (partial + rows * 8 * width) + 3 * rows * n_features * itemsize
+    return max(threads, min(asked, int(free // per_thread)))
 
 
 def _smaller_blocks_leave_room(free: int, rows: int, threads: int, *shape) -> bool:

@@ -14,6 +14,7 @@ from dataclasses import asdict, dataclass, field, fields
 import numpy as np
 
 from ..errors import InputError, OptionError, counted
+from .workspace import work_array
 
 __all__ = [
     "SCALES",
@@ -25,6 +26,7 @@ __all__ = [
     "row_totals",
     "transform_block",
     "block_statistics",
+    "statistics_and_sketch",
     "first_nonfinite",
     "constant_features",
     "constant_rule",
@@ -290,17 +292,41 @@ def block_statistics(block: np.ndarray) -> BlockStats:
     shifted by its (rounded) mean in its own dtype, and ``M2 = Σc² − (Σc)²/m`` corrects
     for the rounding of the shift.
     """
+    return statistics_and_sketch(block, None)[0]
+
+
+def statistics_and_sketch(block: np.ndarray, omega: np.ndarray | None, *,
+                          centre: bool = True) -> tuple[BlockStats, np.ndarray | None]:
+    """:func:`block_statistics`, and with ``omega`` (``p × l``, the block's dtype) the block's
+    sketch ``(X_b − 1m_bᵀ)ᵀ(X_b − 1m_bᵀ)·Ω`` about its own mean ``m_b`` in float64 (or
+    ``X_bᵀX_b·Ω`` when ``centre`` is false), from one shifted copy of the block.
+
+    The block is shifted in its own dtype by ``s``, its mean rounded to that dtype (nearby
+    numbers subtract exactly); the products use the shifted values, and the rounding
+    ``e = m_b − s`` is taken out in float64: ``Σ(x−m)(x−m)ᵀ = Σ(x−s)(x−s)ᵀ − rows·e·eᵀ``.
+    The shifted copy is a work array of the pass's thread (:mod:`axiscope.core.workspace`).
+    No sketch (None) for a block with non-finite cells, whose statistics skip them.
+    """
     m = block.shape[0]
     total = np.add.reduce(block, axis=0, dtype=np.float64)
     if not np.isfinite(total).all():
-        return _block_statistics_nonfinite(block)
+        return _block_statistics_nonfinite(block), None
     shift = (total / m).astype(block.dtype)
-    c = block - shift
+    sketch = None
+    if omega is not None and not centre:
+        sketch = (block.T @ (block @ omega)).astype(np.float64)
+    c = np.subtract(block, shift, out=work_array("shifted", block.shape, block.dtype))
+    if omega is not None and centre:
+        sketch = (c.T @ (c @ omega)).astype(np.float64)
     csum = np.add.reduce(c, axis=0, dtype=np.float64)
     np.square(c, out=c)
     m2 = np.add.reduce(c, axis=0, dtype=np.float64) - csum**2 / m
     mean = shift.astype(np.float64) + csum / m
-    return BlockStats(m, np.full(block.shape[1], float(m)), mean, np.maximum(m2, 0.0), 0, _eps(block.dtype))
+    if sketch is not None and centre:
+        e = csum / m  # m_b − s, the mean of the shifted values
+        sketch -= m * np.outer(e, e @ omega.astype(np.float64))
+    stats = BlockStats(m, np.full(block.shape[1], float(m)), mean, np.maximum(m2, 0.0), 0, _eps(block.dtype))
+    return stats, sketch
 
 
 def _eps(dtype: np.dtype) -> float:

