@@ -39,7 +39,7 @@ from typing import Any
 import numpy as np
 
 __all__ = ["kernel_name", "prepare", "times_dense", "transposed_times", "centred_row_sq_norms", "column_statistics",
-           "block_products", "tiled", "TiledBlock", "TILE_ROWS", "NUMBA_AVAILABLE"]
+           "block_products", "tiled", "tile_rows_for", "TiledBlock", "TILE_ROWS", "NUMBA_AVAILABLE"]
 
 
 #: Whether numba is installed (the ``fast`` extra); it is imported on the first product only.
@@ -322,7 +322,8 @@ class TiledBlock:
     in ``data``. ``indptr[T, j]`` is where feature ``j`` of tile ``T`` starts in ``data``
     (``indptr[T, features]`` where the tile ends), ``indices`` the row of each stored value
     within its tile (uint16). 6 bytes per stored float32 value (8 with int32 row numbers in
-    a CSC block) plus ``8·(features + 1)`` per tile.
+    a CSC block) plus ``8·(features + 1)`` per tile, at most 2 more per stored value
+    (:func:`tile_rows_for`): never more than the CSC block with int32 row numbers.
 
     Built from a CSR block in one counting sort per tile (:func:`tiled`), whose writes stay
     inside the tile. Anything but the compiled products sees it as its CSR form
@@ -380,13 +381,26 @@ class TiledBlock:
         return self.tocsr().T
 
 
-def tiled(block, tile_rows: int = TILE_ROWS) -> TiledBlock:
+def tile_rows_for(n_rows: int, n_features: int, nnz: int) -> int:
+    """Rows per tile of a block: :data:`TILE_ROWS`, or more where the block is so sparse that a
+    tile would hold fewer than ``4·features`` stored values (the walk over every feature of a
+    tile and its ``8·(features + 1)`` bytes of pointers, at most 2 bytes per stored value, would
+    then cost more than the cache saves); at most 65,536 (row numbers are uint16). Depends on
+    the block only, never on the threads; the sums are the same whatever the tiles."""
+    if nnz <= 0:
+        return max(1, min(n_rows, 2**16))
+    wanted = -(-4 * n_features * n_rows // nnz)
+    return int(max(1, min(2**16, max(TILE_ROWS, wanted))))
+
+
+def tiled(block, tile_rows: int | None = None) -> TiledBlock:
     """A CSR block (any SciPy sparse block) as a :class:`TiledBlock` (values keep float32)."""
     if isinstance(block, TiledBlock):
         return block
     if block.format != "csr":
         block = block.tocsr()
     n, p = block.shape
+    tile_rows = tile_rows_for(n, p, block.nnz) if tile_rows is None else int(tile_rows)
     data = block.data if block.data.dtype in (np.float32, np.float64) else block.data.astype(np.float64)
     tiles = -(-n // tile_rows)
     pointers = np.empty((tiles, p + 1), dtype=np.int64)
