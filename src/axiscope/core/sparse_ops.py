@@ -3,10 +3,10 @@
 A block of samples arrives from the reader as a :class:`scipy.sparse.csr_matrix` with the
 file's float values (float32 stays float32; other dtypes become float64, and so does a
 block that a per-sample transform rewrites); the per-sample transforms act on it, and the
-fit then keeps it in compressed-column form (:func:`as_columns`, the block's own CSC: its
-stored values grouped by feature), in the layout and dtype the products of
-:mod:`axiscope.core.sparse_kernels` read, so a cached block is used as it is on every pass
-(8 bytes per stored float32 value with int32 indices). ``X_b·W`` scatters into the small
+fit then keeps it in the layout the products of :mod:`axiscope.core.sparse_kernels` read
+(:func:`as_columns`: row tiles whose stored values are grouped by feature for the compiled
+loops, 6 bytes per stored float32 value; the block's own CSC for SciPy's kernels, 8 bytes
+with int32 indices), so a cached block is used as it is on every pass. ``X_b·W`` scatters into the small
 ``rows × l`` output and ``X_bᵀ·Y`` gathers from it, measured 2–4× faster than on the CSR
 block; the conversion costs about one product and is made once when blocks are cached.
 Every product accumulates in float64. Nothing here forms a dense copy of a block:
