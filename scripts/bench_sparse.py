@@ -10,6 +10,9 @@ then runs, each in a child process of its own with its peak resident memory (``V
   blocks stay in memory), with the compiled products (numba) and, with
   ``--scipy-kernels``, once more at the last limit with SciPy's kernels
   (``AXISCOPE_SPARSE_KERNEL=scipy``); with ``--cli`` the command line too (tables and cards);
+  with ``--before SRC``, the same fits once more with the package found in ``SRC`` (for
+  example an earlier commit's ``src`` folder from ``git archive``), for a before/after
+  comparison in the same run;
 * the compile time of the compiled products on first use (a child with an empty numba
   cache folder) and their load time from that cache (a second child);
 * scikit-learn ``PCA(svd_solver="arpack")`` on the same matrix loaded into memory as a
@@ -48,7 +51,9 @@ W, z = np.ones((100, 4)), np.zeros(100)
 t0 = time.perf_counter()
 sparse_stats_task(block, W, True)
 sparse_products(block, W, np.zeros(4), z, z, np.ones(100), None, 4, True)
-print(json.dumps({"kernel": K.kernel_name(), "first_call_seconds": time.perf_counter() - t0}))
+seconds = time.perf_counter() - t0
+K.prepare()  # every variant a fit loads (float64 values too), so no fit below compiles
+print(json.dumps({"kernel": K.kernel_name(), "first_call_seconds": seconds}))
 """
 
 CHILD = r"""
@@ -153,6 +158,8 @@ def main() -> None:
     parser.add_argument("--scipy-kernels", action="store_true",
                         help="also fit at the last --memory-limit with SciPy's kernels instead of the compiled ones")
     parser.add_argument("--cli", action="store_true", help="also time the command line (tables, cards)")
+    parser.add_argument("--before", type=Path, default=None,
+                        help="a src folder of another version of axiscope: its fits run too, at every --memory-limit")
     parser.add_argument("--folder", type=Path, default=None)
     args = parser.parse_args()
     import numpy as np
@@ -176,8 +183,17 @@ def main() -> None:
         done = subprocess.run([sys.executable, "-c", COMPILE], capture_output=True, text=True, check=True,
                               env=dict(os.environ, NUMBA_CACHE_DIR=str(cache_dir)))
         print(json.dumps({"kernels": label, **json.loads(done.stdout.strip().splitlines()[-1])}), flush=True)
+    if args.before is not None:  # its compiled loops loaded from a warm cache too, as for the version under test
+        subprocess.run([sys.executable, "-c", COMPILE], capture_output=True, text=True, check=True,
+                       env=dict(os.environ, NUMBA_CACHE_DIR=str(folder / "numba-cache-before"),
+                                PYTHONPATH=str(args.before.resolve())))
     results = {}
-    runs = [(f"axiscope-api {limit}", limit, {}) for limit in args.memory_limit]
+    runs = []
+    if args.before is not None:  # the earlier version first, with a numba cache of its own
+        runs += [(f"axiscope-api {limit} before", limit,
+                  {"PYTHONPATH": str(args.before.resolve()), "NUMBA_CACHE_DIR": str(folder / "numba-cache-before")})
+                 for limit in args.memory_limit]
+    runs += [(f"axiscope-api {limit}", limit, {}) for limit in args.memory_limit]
     if args.scipy_kernels:
         runs.append((f"axiscope-api {args.memory_limit[-1]} scipy-kernels", args.memory_limit[-1],
                      {"AXISCOPE_SPARSE_KERNEL": "scipy"}))
@@ -185,23 +201,27 @@ def main() -> None:
         runs.append(("axiscope-cli", args.memory_limit[0], {}))
     runs += [("sklearn-pca-arpack", "", {}), ("sklearn-truncated-svd", "", {})]
     for method, limit, env in runs:
-        results[method] = run(method, path, args.k, folder / "axiscope-out", limit,
-                              NUMBA_CACHE_DIR=str(cache_dir), **env)
+        env = {"NUMBA_CACHE_DIR": str(cache_dir), **env}
+        results[method] = run(method.split(" ")[0], path, args.k, folder / "axiscope-out", limit, **env)
         print(json.dumps({"method": method, **results[method]}), flush=True)
     ref = np.array(results["sklearn-pca-arpack"]["s"])
     base = results["sklearn-pca-arpack"]
     print(f"\n{args.samples:,} × {args.features:,}, density {args.density}, {nnz:,} stored values, k = {args.k}\n")
     print("| method | wall (s) | peak RSS (MB) | peak − baseline (MB) | wall / sklearn PCA | RSS / sklearn PCA "
-          "| (peak − baseline) / sklearn's | max rel. diff. of s to sklearn PCA |")
-    print("|---|---|---|---|---|---|---|---|")
+          "| (peak − baseline) / sklearn's | passes | first pass (s) | median later pass (s) "
+          "| max rel. diff. of s to sklearn PCA |")
+    print("|---|---|---|---|---|---|---|---|---|---|---|")
     base_data = base["peak"] - base["baseline"]
     for method, r in results.items():
         s = np.array(r["s"])
         diff = float(np.max(np.abs(s - ref) / ref))
         data = r["peak"] - r["baseline"]
+        passes = r.get("pass_seconds") or []
+        first = f"{passes[0]:.2f}" if passes else "—"
+        later = f"{float(np.median(passes[1:])):.2f}" if len(passes) > 1 else "—"
         print(f"| {method} | {r['seconds']:.1f} | {r['peak'] / 1e6:.0f} | {data / 1e6:.0f} | "
               f"{r['seconds'] / base['seconds']:.2f} | {r['peak'] / base['peak']:.2f} | {data / base_data:.2f} | "
-              f"{diff:.1e} |")
+              f"{r.get('passes', '—')} | {first} | {later} | {diff:.1e} |")
 
 
 if __name__ == "__main__":

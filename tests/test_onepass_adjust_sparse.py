@@ -137,13 +137,14 @@ def _same(a, b):
 def test_sparse_one_pass_equals_dense_copy(monkeypatch, adjusted):
     """Sparse blocks (never densified) give the dense copy's one-pass result to 1e-6 (float64)."""
     import axiscope.core.onepass as onepass
+    from axiscope.core.sparse_ops import is_sparse
 
     X = _counts()
     seen = []
     original = onepass.sparse_transposed_product
 
     def spy(block, rows):
-        assert sp.issparse(block)
+        assert is_sparse(block)  # compressed: SciPy's CSC, or the tiled layout of the compiled loops
         seen.append(block.nnz)
         return original(block, rows)
 

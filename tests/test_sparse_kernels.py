@@ -156,3 +156,63 @@ def test_float32_file_is_cached_at_8_bytes_per_stored_value(tmp_path):
         plan_log = plan_fit(src, n_components=3, preprocess=PreprocessSpec(log_transform=True),
                             engine=EngineSettings(), resources=Resources(memory_limit="2GB"))
         assert plan_log.cache_bytes >= 12 * X.nnz
+
+
+def needs_numba():
+    if not kernels.NUMBA_AVAILABLE:
+        pytest.skip("numba is not installed (the 'fast' extra)")
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_tiled_blocks_give_the_sums_of_the_column_loops_byte_for_byte(monkeypatch, dtype):
+    """Row tiles change where the work rows sit in cache, not the order of any sum: the tiled
+    loops equal the plain CSC loops bit for bit, whatever the tile height (empty tiles too)."""
+    needs_numba()
+    monkeypatch.setenv("AXISCOPE_SPARSE_KERNEL", "numba")
+    block = random_block(rows=700, cols=150, density=0.04, dtype=dtype, seed=7)
+    D = block.toarray()
+    D[200:260] = 0  # an empty tile at height 50
+    csc = sp.csc_matrix(D)
+    rng = np.random.default_rng(8)
+    W = rng.standard_normal((150, 9))
+    shift, offset = rng.standard_normal(9), rng.standard_normal(9) * 1e-3
+    dd, mu = rng.uniform(0.5, 2.0, 150), rng.uniform(0.0, 3.0, 150)
+    y_ref = kernels.times_dense(csc, W)
+    y_ref -= shift
+    y_ref -= offset
+    g_ref = kernels.transposed_times(csc, y_ref[:, :5])
+    stats_ref = kernels.column_statistics(csc)
+    norms_ref = kernels.centred_row_sq_norms(csc, dd, mu)
+    for height in (1, 50, 64, 700, None):
+        t = kernels.tiled(csc.tocsr(), height)
+        assert isinstance(t, kernels.TiledBlock) and t.indices.dtype == np.uint16 and t.dtype == dtype
+        assert (t.tocsr() != csc.tocsr()).nnz == 0  # the same matrix
+        y, g = kernels.block_products(t, W, shift, offset, 5)
+        assert y.tobytes() == y_ref.tobytes() and g.tobytes() == g_ref.tobytes()
+        mean, m2 = kernels.column_statistics(t)
+        assert mean.tobytes() == stats_ref[0].tobytes() and m2.tobytes() == stats_ref[1].tobytes()
+        assert kernels.centred_row_sq_norms(t, dd, mu).tobytes() == norms_ref.tobytes()
+        assert kernels.transposed_times(t, y).tobytes() == kernels.transposed_times(csc, y).tobytes()
+
+
+def test_tiles_grow_where_a_block_is_very_sparse():
+    """Pointers cost at most 2 bytes per stored value: tiles hold at least 4·features values."""
+    assert kernels.tile_rows_for(12_500, 30_000, 7_500_000) == kernels.TILE_ROWS  # 2% density: 2,048 rows
+    assert kernels.tile_rows_for(100_000, 30_000, 300_000) == 40_000  # 0.01%: 4·30,000 values per tile
+    assert kernels.tile_rows_for(10**6, 10**6, 10**6) == 2**16  # capped by uint16 row numbers
+
+
+def test_a_bad_index_is_found_when_the_block_is_read(tmp_path):
+    """A CSR file read by samples is not read once more at opening only to check its indices: the
+    slice a pass reads is checked before any product, with the message of the check at opening."""
+    from axiscope.errors import InputError
+
+    X = random_block(rows=300, cols=40, density=0.1, seed=9).tocsr()
+    path = write_csr_h5(tmp_path / "m.h5", X)
+    bad = int(X.indptr[250]) + 1
+    with h5py.File(path, "r+") as handle:
+        handle["counts/indices"][bad] = 40
+    with open_matrix(path) as src:
+        src.read_sparse(0, 200)  # rows before the bad entry read fine
+        with pytest.raises(InputError, match=f"'indices' entry {bad} is 40, outside the 40 columns"):
+            src.read_sparse(200, 300)

@@ -3,10 +3,10 @@
 A block of samples arrives from the reader as a :class:`scipy.sparse.csr_matrix` with the
 file's float values (float32 stays float32; other dtypes become float64, and so does a
 block that a per-sample transform rewrites); the per-sample transforms act on it, and the
-fit then keeps it in compressed-column form (:func:`as_columns`, the block's own CSC: its
-stored values grouped by feature), in the layout and dtype the products of
-:mod:`axiscope.core.sparse_kernels` read, so a cached block is used as it is on every pass
-(8 bytes per stored float32 value with int32 indices). ``X_b·W`` scatters into the small
+fit then keeps it in the layout the products of :mod:`axiscope.core.sparse_kernels` read
+(:func:`as_columns`: row tiles whose stored values are grouped by feature for the compiled
+loops, 6 bytes per stored float32 value; the block's own CSC for SciPy's kernels, 8 bytes
+with int32 indices), so a cached block is used as it is on every pass. ``X_b·W`` scatters into the small
 ``rows × l`` output and ``X_bᵀ·Y`` gathers from it, measured 2–4× faster than on the CSR
 block; the conversion costs about one product and is made once when blocks are cached.
 Every product accumulates in float64. Nothing here forms a dense copy of a block:
@@ -41,7 +41,8 @@ import numpy as np
 
 from ..errors import OptionError
 from .preprocess import BlockStats, NotADosage, PreprocessSpec
-from .sparse_kernels import centred_row_sq_norms, column_statistics, times_dense, transposed_times
+from .sparse_kernels import (TiledBlock, block_products, centred_row_sq_norms, column_statistics, kernel_name, tiled,
+                             transposed_times)
 
 __all__ = ["as_columns", "is_sparse", "check_sparse_spec", "transform_sparse", "sparse_block_statistics", "sparse_block_sketch",
            "sparse_stats_task", "sparse_products", "SparseBlockCache", "BYTES_PER_STORED", "first_nonfinite_sparse"]
@@ -54,8 +55,8 @@ BYTES_PER_STORED = 64
 
 
 def is_sparse(block: Any) -> bool:
-    """Whether a block is a SciPy sparse matrix or array."""
-    return type(block).__module__.startswith("scipy.sparse")
+    """Whether a block is a SciPy sparse matrix or array, or a tiled block of the compiled products."""
+    return isinstance(block, TiledBlock) or type(block).__module__.startswith("scipy.sparse")
 
 
 def check_sparse_spec(spec: PreprocessSpec) -> None:
@@ -87,7 +88,13 @@ def transform_sparse(block, spec: PreprocessSpec):
 
 
 def as_columns(block):
-    """The block in compressed-column form (CSC), as the statistics and products use it."""
+    """The block in the layout the statistics and products read: row tiles grouped by feature
+    (:class:`~axiscope.core.sparse_kernels.TiledBlock`) for the compiled loops, compressed
+    columns (CSC) for SciPy's kernels."""
+    if kernel_name() == "numba":
+        return tiled(block)
+    if isinstance(block, TiledBlock):
+        return block.tocsc()
     return block if block.format == "csc" else block.tocsc()
 
 
@@ -98,8 +105,11 @@ def first_nonfinite_sparse(block) -> tuple[int, int] | None:
     if not bad.any():
         return None
     # the first in row order, as for dense blocks
-    rows = block.indices[bad]
-    cols = _feature_of_each(block)[bad]
+    if isinstance(block, TiledBlock):
+        rows, cols = block.coordinates(np.flatnonzero(bad))
+    else:
+        rows = block.indices[bad]
+        cols = _feature_of_each(block)[bad]
     first = int(np.lexsort((cols, rows))[0])
     return int(rows[first]), int(cols[first])
 
@@ -124,11 +134,11 @@ def sparse_block_sketch(block, omega: np.ndarray, mean: np.ndarray | None) -> np
     ``(X_b − 1m_bᵀ)ᵀ·t = X_bᵀ·t − m_b·(1ᵀt)``.
     """
     block = as_columns(block)
-    t = times_dense(block, omega)
+    shift = np.zeros(omega.shape[1]) if mean is None else mean @ omega
+    t, sketch = block_products(block, omega, shift, 0.0, omega.shape[1])
     if mean is None:
-        return transposed_times(block, t)
-    t -= mean @ omega
-    return _minus_outer(transposed_times(block, t), mean, t.sum(axis=0))
+        return sketch
+    return _minus_outer(sketch, mean, t.sum(axis=0))
 
 
 def sparse_stats_task(block, omega: np.ndarray | None, centre: bool):
@@ -152,13 +162,9 @@ def sparse_products(block, W, offset, centre, residual, d, fill, gram_width, wan
     """
     block = as_columns(block)
     W = np.asarray(W, dtype=np.float64)
-    y = times_dense(block, W)
-    y -= centre @ W
-    y -= offset
-    gram = None
+    y, gram = block_products(block, W, centre @ W, offset, gram_width)
     if gram_width:
-        head = y[:, :gram_width]
-        gram = _minus_outer(transposed_times(block, head), centre, head.sum(axis=0))
+        gram = _minus_outer(gram, centre, y[:, :gram_width].sum(axis=0))
     norms = None
     if want_norms:
         mu = centre + residual
@@ -171,7 +177,7 @@ def sparse_products(block, W, offset, centre, residual, d, fill, gram_width, wan
 def sparse_transposed_product(block, R: np.ndarray) -> np.ndarray:
     """``X_bᵀ·R`` (``p × r``, float64) for a block's own dense rows ``R`` (``rows × r``), e.g. a
     one-pass fit's test matrix and covariates (:mod:`axiscope.core.onepass`)."""
-    return np.asarray(as_columns(block).T @ np.asarray(R, dtype=np.float64))
+    return transposed_times(as_columns(block), np.asarray(R, dtype=np.float64))
 
 
 def _minus_outer(gram: np.ndarray, u: np.ndarray, v: np.ndarray) -> np.ndarray:

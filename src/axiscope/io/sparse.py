@@ -18,7 +18,10 @@ only be decompressed whole, its arrays are held in memory (12 bytes per stored v
 
 Checks before any pass: the arrays exist and are 1-D; the shape is two positive integers;
 ``indptr`` has the right length, starts at 0, never decreases and ends at the number of
-stored values; every index lies inside the matrix (one read of ``indices``, in slabs).
+stored values; every index lies inside the matrix (one read of ``indices``, in slabs; for
+an HDF5 or Zarr file whose blocks of samples are slices of the arrays, in each slice the
+passes read instead, before any product, so the first pass stops at a bad index with the
+same message and no output is written).
 Stored NaN or infinite values are an error when read (an absent entry is a zero, so a
 sparse file cannot mark a value as missing).
 
@@ -93,11 +96,16 @@ class SparseBackend(Backend):
         The file axis ``indptr`` runs over (CSR: rows).
     lock : bool
         Serialise reads (h5py is not thread-safe).
+    index_check : tuple, optional
+        ``(where, name, limit, axis)``: the indices were not checked when the file was opened;
+        every slice read is checked instead (:func:`_check_index_slab`), before any product
+        sees it, with the same message as the check at opening.
     """
 
     def __init__(self, data: Any, indices: Any, indptr: np.ndarray, file_shape: tuple[int, int],
-                 compressed: str, *, lock: bool, close: Any = None) -> None:
+                 compressed: str, *, lock: bool, close: Any = None, index_check: tuple | None = None) -> None:
         self._data, self._indices, self._indptr = data, indices, indptr
+        self._index_check = index_check
         self.stored_dtype = np.dtype(data.dtype)
         #: dtype of the values of a block: float32 stays float32, anything else is float64
         self.value_dtype = np.dtype(np.float32 if self.stored_dtype == np.float32 else np.float64)
@@ -111,9 +119,13 @@ class SparseBackend(Backend):
 
     def _slice(self, a: int, b: int) -> tuple[np.ndarray, np.ndarray]:
         if self._lock is None:
-            return np.asarray(self._data[a:b]), np.asarray(self._indices[a:b])
-        with self._lock:
-            return np.asarray(self._data[a:b]), np.asarray(self._indices[a:b])
+            data, indices = np.asarray(self._data[a:b]), np.asarray(self._indices[a:b])
+        else:
+            with self._lock:
+                data, indices = np.asarray(self._data[a:b]), np.asarray(self._indices[a:b])
+        if self._index_check is not None:
+            _check_index_slab(*self._index_check, indices, a)
+        return data, indices
 
     def sample_major(self, samples_in: str) -> bool:
         """Whether samples run along the compressed axis (a block is one slice of each array)."""
@@ -365,11 +377,15 @@ def _check_pointers(where: str, pointers: np.ndarray, nnz: int, name: str) -> np
 
 def _check_indices(where: str, indices: Any, nnz: int, limit: int, name: str, axis: str) -> None:
     for a in range(0, nnz, _SLAB):
-        idx = np.asarray(indices[a : min(nnz, a + _SLAB)])
-        if idx.size and (idx.min() < 0 or idx.max() >= limit):
-            at = int(np.flatnonzero((idx < 0) | (idx >= limit))[0])
-            raise InputError(f"{where}: {name!r} entry {a + at} is {int(idx[at])}, outside the {limit} {axis} "
-                             "of the matrix; the sparse matrix is damaged, re-create it")
+        _check_index_slab(where, name, limit, axis, np.asarray(indices[a : min(nnz, a + _SLAB)]), a)
+
+
+def _check_index_slab(where: str, name: str, limit: int, axis: str, idx: np.ndarray, first: int) -> None:
+    """Every index of ``idx`` (entries ``first…`` of the file's array) inside ``[0, limit)``."""
+    if idx.size and (idx.min() < 0 or idx.max() >= limit):
+        at = int(np.flatnonzero((idx < 0) | (idx >= limit))[0])
+        raise InputError(f"{where}: {name!r} entry {first + at} is {int(idx[at])}, outside the {limit} {axis} "
+                         "of the matrix; the sparse matrix is damaged, re-create it")
 
 
 def _decoded(value: Any) -> str | None:
@@ -382,8 +398,16 @@ def _decoded(value: Any) -> str | None:
 
 def checked_backend(where: str, data: Any, indices: Any, pointers: Any, shape_value: Any,
                     declared: Any, names: tuple[str, str, str, str], compressed_axis: str, *,
-                    lock: bool, close: Any = None) -> SparseBackend:
-    """A :class:`SparseBackend` after every structural check (one read of the indices)."""
+                    lock: bool, close: Any = None, samples_in: str | None = None) -> SparseBackend:
+    """A :class:`SparseBackend` after every structural check.
+
+    The indices are checked in one read of them now, or, when ``samples_in`` says that
+    samples run along the compressed axis (every block a slice of the arrays), in the slices
+    the passes read: the first pass reads every index anyway, so a file is not read once
+    more only for the check (measured on a 100,000 × 30,000 CSR file at 2%: 0.3 s of opening,
+    240 MB of indices). A bad index then stops the first pass with the same one-line
+    message, before any product sees it and before any output is written.
+    """
     _check_arrays(where, data, indices, pointers, names)
     shape = _parse_shape(where, shape_value, names[3])
     fmt = _decoded(declared)
@@ -391,6 +415,9 @@ def checked_backend(where: str, data: Any, indices: Any, pointers: Any, shape_va
                              names[2])
     pointer_values = _check_pointers(where, np.asarray(pointers[:]), int(data.shape[0]), names[2])
     minor, axis = (shape[1], "columns") if compressed == "rows" else (shape[0], "rows")
+    if samples_in == compressed:
+        return SparseBackend(data, indices, pointer_values, shape, compressed, lock=lock, close=close,
+                             index_check=(where, names[1], minor, axis))
     _check_indices(where, indices, int(data.shape[0]), minor, names[1], axis)
     return SparseBackend(data, indices, pointer_values, shape, compressed, lock=lock, close=close)
 
@@ -497,7 +524,8 @@ def open_sparse_container(path: pathlib.Path, kind: str, handle: Any, group: str
                          "sparse_names=...")
     declared = node.attrs.get("format")
     backend = checked_backend(where, *arrays, shape_value, declared, names, compressed_axis,
-                              lock=kind == "hdf5", close=handle.close if kind == "hdf5" else None)
+                              lock=kind == "hdf5", close=handle.close if kind == "hdf5" else None,
+                              samples_in=samples_in)
 
     def lookup(name: str) -> Any:
         obj = _get(kind, handle, name)
