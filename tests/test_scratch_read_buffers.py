@@ -11,7 +11,7 @@ import numpy as np
 from axiscope.core.cache import BlockCache
 
 
-def _blocks(rows=(5, 7, 6), cols=9):
+def _blocks(rows=(500, 700, 600), cols=9):  # blocks of more than one aligned page
     rng = np.random.default_rng(3)
     return [rng.standard_normal((r, cols)).astype(np.float32) for r in rows]
 
@@ -43,13 +43,13 @@ def test_a_block_or_a_view_still_held_keeps_its_buffer(tmp_path):
 def test_a_buffer_nothing_refers_to_is_handed_out_again(tmp_path):
     cache, blocks, spans = _filled(tmp_path, reuse=1)
     with cache:
-        first = cache.get(*spans[1])
+        first = cache.get(*spans[0])  # the smallest block: the kept buffer fits the largest
         assert len(cache._kept) == 1 and np.shares_memory(first, cache._kept[0])
         where = first.ctypes.data  # (holding the kept buffer here would keep it in use)
         del first
-        again = cache.get(*spans[0])
+        again = cache.get(*spans[1])
         assert again.ctypes.data == where and len(cache._kept) == 1
-        np.testing.assert_array_equal(again, blocks[0])
+        np.testing.assert_array_equal(again, blocks[1])
 
 
 def test_without_reuse_every_read_is_fresh(tmp_path):

@@ -92,6 +92,7 @@ class BlockCache:
         self._direct = False  # the file is read and written with O_DIRECT
         self._reuse = int(reuse)
         self._kept: list[np.ndarray] = []  # read buffers handed out again (see _read_buffer)
+        self._largest = 0  # aligned bytes of the largest block in the scratch file
         if mode == "scratch":
             self._open_scratch()
 
@@ -139,6 +140,7 @@ class BlockCache:
         with self._lock:  # the block's place: the next free aligned bytes
             offset = self._end
             self._end += _aligned(nbytes)
+            self._largest = max(self._largest, _aligned(nbytes))
             self._where[start] = (offset, block.shape[0])
         try:
             if self._direct:
@@ -188,9 +190,11 @@ class BlockCache:
             for raw in self._kept:
                 if sys.getrefcount(raw) <= 3 and raw.nbytes >= nbytes + ALIGN:  # the list, `raw`, the call
                     return _aligned_view(raw, nbytes)
-            raw = np.empty(nbytes + ALIGN, dtype=np.uint8)
-            if len(self._kept) < self._reuse:
-                self._kept.append(raw)
+            if len(self._kept) >= self._reuse:
+                return _aligned_view(np.empty(nbytes + ALIGN, dtype=np.uint8), nbytes)
+            # kept: sized for the largest block, so that blocks of a few rows more fit it too
+            raw = np.empty(max(nbytes, self._largest) + ALIGN, dtype=np.uint8)
+            self._kept.append(raw)
             return _aligned_view(raw, nbytes)
 
     def close(self) -> None:
