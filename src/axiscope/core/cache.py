@@ -5,7 +5,8 @@ source stores the transformed blocks, and later passes read them back: from memo
 they fit the budget; compressed in memory with a fast codec (Blosc LZ4 with byte shuffle)
 when the compressed blocks are expected to fit it, any block past the allowance going to
 the scratch file; else from an uncompressed scratch file read with positioned reads into
-fresh buffers (no memory map, so no file pages count towards resident memory).
+buffers of the process's own (no memory map, so no file pages count towards resident memory),
+handed out again once no block or view refers to them (``reuse``).
 
 The scratch file is written and read with direct I/O (``O_DIRECT``: past the page cache)
 where the file system allows it, each block at the next free 4 KiB-aligned place. Measured
@@ -153,7 +154,8 @@ class BlockCache:
             raise scratch_error(self.path, exc, self.nbytes) from exc
 
     def get(self, start: int, stop: int) -> np.ndarray:
-        """Rows ``start .. stop`` as a fresh array (blocks are read back as they were put)."""
+        """Rows ``start .. stop`` as an array of the caller's own (blocks are read back as they
+        were put; a scratch read buffer is handed out again only once nothing refers to it)."""
         if self.mode == "memory":
             return self._blocks[start]
         packed = self._blocks.get(start) if self.mode == "compressed" else None
