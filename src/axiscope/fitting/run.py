@@ -505,6 +505,8 @@ class _Caches:
     def __init__(self, plan: BlockPlan, resources: Resources, *, sparse: bool = False):
         self.mode = plan.cache
         self.allowance = plan.cache_allowance if plan.cache == "compressed" else None
+        #: scratch read buffers handed out again: the two blocks in flight per thread the plan counts
+        self.reuse = 2 * max(plan.cached_threads, plan.threads)
         self.resources = resources
         self.sparse = sparse
         self.opened: list[BlockCache] = []
@@ -519,7 +521,7 @@ class _Caches:
             self.opened.append(cache)
             return cache
         scratch = self.resources.scratch_folder() if self.mode in ("scratch", "compressed") else None
-        cache = BlockCache(self.mode, n_rows, n_cols, dtype, scratch, allowance=self.allowance)
+        cache = BlockCache(self.mode, n_rows, n_cols, dtype, scratch, allowance=self.allowance, reuse=self.reuse)
         self.opened.append(cache)
         return cache
 
