@@ -34,9 +34,6 @@ def test_one_pass_plan_holds_what_the_multipass_plan_does_not_need():
     one = plan_one_pass(40000, 20000, 4, n_components=20, oversample=10, threads=2, budget=10**9, **shape)
     assert multi.threads == 1
     assert (one.block_rows, one.threads, one.cache, one.max_basis) == (1250, 2, "source", 0)
-    # one block read ahead per thread, in the slot of the shifted copy that the threaded
-    # back-end does not make (it centres the fit's fresh blocks in place)
-    assert one.read_ahead == one.threads
     # s = 41, t = 83, q = 20 (onepass.sketch_widths): Y, Ψ, the feature sketches, Ω
     assert one.fixed_bytes == 8 * 40000 * (83 + 61) + 8 * 20000 * (2 * 61 + 3 * 83 + 12)
     per_thread = 20000 * 61 * 20 + 2 * 8 * 6 * 20000 + 1250 * (2 * 20000 * 4 + 8 * 144) + one.chunk_bytes

@@ -221,10 +221,8 @@ def plan_one_pass(
     ``n × t`` sample sketch ``Y``, the ``(s + q) × p`` feature sketch and its running sum
     (two of them while two are merged), the test matrices ``Ψ`` (``(s + q) × n``) and ``Ω``
     (``p × t``, three copies: drawn, rounded, divided by the scale), all float64, and vectors
-    of per-feature statistics. Per thread: the block, a second block (on a cluster its shifted
-    copy, as a cluster may run a task twice and so never centres in place; on the threaded
-    back-end, which centres the fit's fresh blocks in place, one block read ahead by a reading
-    thread of its own: ``read_ahead = threads``, so reading and decoding overlap the products), its products
+    of per-feature statistics. Per thread: the block, its shifted copy (counted although the
+    fit centres fresh blocks in place, so that a cluster's copy fits too), its products
     (``(s + q) × p`` in the block's dtype and in float64, its ``t`` and ``s + q`` columns per
     row), the float64 products of one more block done and waiting to be folded, and the
     decoded on-disk chunk band of one read (``chunk_bytes``). The sketch widths ``s`` and
@@ -251,8 +249,7 @@ def plan_one_pass(
     # products (in the block's dtype, then float64) and statistics of the block worked on and
     # of one done and waiting to be folded (the runner keeps 2·threads blocks in flight)
     partial = n_features * left * (2 * 8 + itemsize) + 2 * 8 * 6 * n_features
-    # the block, its shifted copy or one block read ahead, Ψ_b and Y_b rows
-    row_bytes = 2 * n_features * itemsize + 8 * (t + left)
+    row_bytes = 2 * n_features * itemsize + 8 * (t + left)  # the block, its shifted copy, Ψ_b and Y_b rows
     free = data_budget - fixed
     rows = 0
     for window in (_REFERENCE_WINDOW // 2, 1):
@@ -274,9 +271,8 @@ def plan_one_pass(
         rows = (rows // sample_chunk) * sample_chunk  # whole on-disk chunks per block
     per_thread = partial + rows * row_bytes + chunk_bytes
     fitting = max(1, int(free // per_thread))
-    n_threads = min(threads, fitting)
     return BlockPlan(rows, "source", budget, fixed, rows * n_features * itemsize, 0, 0,
-                     n_threads, baseline, chunk_bytes, read_ahead=n_threads)
+                     min(threads, fitting), baseline, chunk_bytes)
 
 
 def _block_rows(free: int, n_samples: int, n_features: int, itemsize: int, partial: int, row_bytes: int,
