@@ -211,8 +211,6 @@ def _fit(src: MatrixSource, job: _Job, active, exclude, covariates=None, then=No
     plan = plan_fit(src, n_components=job.k, preprocess=job.spec, engine=job.engine,
                     resources=job.resources)
     method = _choose_method(job.engine.method, n, src.shape[1], job.spec, plan.budget - plan.baseline)
-    if job.backend is None:
-        _look_up_scheduler_meanwhile()
     runner = PassRunner(threads=plan.threads, progress=job.progress, backend=job.backend,
                         read_ahead=plan.read_ahead, cached_threads=plan.cached_threads)
     identity = _input_identity(src, job.checksum)
@@ -317,19 +315,6 @@ def _check_components(k: int, n: int, p: int, center: bool, where, *, after: str
             f"n_components={k} is more axes than {where} can give: {n} samples × {p} features{after} "
             f"have rank at most {limit} ({rule}); choose at most {limit}"
         )
-
-
-def _look_up_scheduler_meanwhile() -> None:
-    """Let Dask look for a cluster client on a thread of its own while the input is hashed and
-    the test matrices are drawn (both let go of the GIL): Dask's first ``compute`` in a process
-    imports ``dask.distributed`` to do so (0.3–0.5 s of one core), and inside the pass it held
-    the import lock while the other threads waited for it (BENCHMARKS.md, "One pass, round 4")."""
-    import threading
-
-    from dask.base import get_scheduler
-
-    threading.Thread(target=get_scheduler, kwargs={"scheduler": "synchronous"}, name="axiscope-lookup",
-                     daemon=True).start()
 
 
 def _one_pass(src: MatrixSource, job: _Job, reader: _Reader, exclude, n: int, rng, runner, adjust=None):
