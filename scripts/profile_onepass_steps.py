@@ -34,7 +34,12 @@ def main() -> int:
     parser.add_argument("--components", "-k", type=int, default=20)
     parser.add_argument("--read-only", action="store_true",
                         help="only the fit's reading: the same reader, blocks and threads, a task that does nothing")
+    parser.add_argument("--timeline", action="store_true",
+                        help="also sample every thread's CPU time (/proc/self/task) and print the cores busy per "
+                             "0.25 s, by kind of thread, with the fit's phases")
     args = parser.parse_args()
+    if args.timeline:
+        return timeline(sorted(glob.glob(args.path))[0], args.memory_limit, args.components)
     if args.read_only:
         return read_only(sorted(glob.glob(args.path))[0], args.memory_limit, args.components)
 
@@ -81,6 +86,95 @@ def main() -> int:
     print(f"  {'subtraction + products (task − statistics)':34s} {spent['whole block task'] - statistics:7.2f} s CPU")
     outside = cpu - spent["whole block task"] - spent["block reads"] - spent["folding"]
     print(f"  {'outside reads, tasks and folds':34s} {outside:7.2f} s CPU")
+    return 0
+
+
+def _thread_times() -> dict[int, tuple[str, float]]:
+    """``{tid: (Python thread name, CPU seconds)}`` of every thread of this process, from ``/proc/self/task``."""
+    import os
+
+    tick = os.sysconf("SC_CLK_TCK")
+    names = {t.native_id: t.name for t in threading.enumerate()}
+    out = {}
+    for tid in os.listdir("/proc/self/task"):
+        try:
+            with open(f"/proc/self/task/{tid}/stat") as handle:
+                stat = handle.read()
+        except OSError:
+            continue
+        name = names.get(int(tid), "not a Python thread")
+        fields = stat[stat.rindex(")") + 2 :].split()
+        out[int(tid)] = (name, (int(fields[11]) + int(fields[12])) / tick)
+    return out
+
+
+def _kind(name: str, main: str) -> str:
+    if name.startswith("axiscope-read"):
+        return "reading threads"
+    if name.startswith("axiscope"):
+        return "working threads"
+    if name == main:
+        return "calling thread"
+    return "other threads"  # the decoder's own, Dask's lookup
+
+
+def timeline(path: str, memory_limit: str, k: int, step: float = 0.25) -> int:
+    """One fit with every thread's CPU sampled every ``step`` seconds: the cores busy per step,
+    by kind of thread (reading, working, calling, others: the decoder's own threads), and
+    when the pass started and ended, so that idle time at the start, during the pass and
+    after it can be seen."""
+    import axiscope.core.onepass as onepass
+    from axiscope import EngineSettings, PreprocessSpec, Resources, fit
+    from axiscope.core.passes import PassRunner
+
+    marks: list[tuple[float, str]] = []
+    t0 = time.perf_counter()
+    run = PassRunner.run
+
+    def marked_run(self, name, *a, **kw):
+        marks.append((time.perf_counter() - t0, "pass starts"))
+        try:
+            return run(self, name, *a, **kw)
+        finally:
+            marks.append((time.perf_counter() - t0, "pass ends"))
+
+    PassRunner.run = marked_run
+    main = threading.main_thread().name
+    samples: list[tuple[float, dict]] = []
+    done = threading.Event()
+
+    def sample():
+        while not done.is_set():
+            samples.append((time.perf_counter() - t0, _thread_times()))
+            done.wait(step)
+
+    sampler = threading.Thread(target=sample, name="sampler", daemon=True)
+    sampler.start()
+    result = fit(path, n_components=k, preprocess=PreprocessSpec(scale="none"),
+                 engine=EngineSettings(method="one-pass", seed=0), resources=Resources(memory_limit=memory_limit))
+    marks.append((time.perf_counter() - t0, "fit returns"))
+    done.set()
+    sampler.join()
+    samples.append((time.perf_counter() - t0, _thread_times()))
+    plan = result.manifest["plan"]
+    print(f"axiscope from {onepass.__file__}; blocks of {plan['block_rows']} rows, {plan['threads']} threads, "
+          f"read ahead {plan.get('read_ahead', '-')}")
+    kinds = ["reading threads", "working threads", "calling thread", "other threads"]
+    print("    t s  cores busy: " + " | ".join(kinds) + " | total")
+    totals = defaultdict(float)
+    for (ta, a), (tb, b) in zip(samples[:-1], samples[1:]):
+        busy = defaultdict(float)
+        for tid, (name, cpu) in b.items():
+            if tid == threading.get_native_id():
+                continue  # the sampler
+            busy[_kind(name, main)] += cpu - a.get(tid, (name, 0.0))[1]
+        for kind in kinds:
+            totals[kind] += busy[kind]
+        events = ", ".join(label for t, label in marks if ta < t <= tb)
+        print(f"  {tb:5.2f}  " + " ".join(f"{busy[kind] / (tb - ta):5.2f}" for kind in kinds)
+              + f"  {sum(busy.values()) / (tb - ta):5.2f}  {events}")
+    print("CPU s by kind: " + ", ".join(f"{kind} {totals[kind]:.2f}" for kind in kinds))
+    print("marks: " + ", ".join(f"{label} {t:.2f} s" for t, label in marks))
     return 0
 
 
