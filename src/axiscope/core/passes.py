@@ -20,6 +20,7 @@ from typing import Any
 
 import dask
 import dask.array as da
+import dask.local
 import numpy as np
 
 from .workspace import keep_work_arrays
@@ -33,6 +34,12 @@ Progress = Callable[[str, int, int], None]
 #: ``source`` of the passes that read a block cache of this process (:mod:`axiscope.core.cache`).
 CACHED = ("memory", "compressed", "scratch")
 
+
+#: Dask's synchronous scheduler, passed as the function itself: by its name ("synchronous")
+#: dask first looks for a ``distributed`` client and so imports dask.distributed when it is
+#: installed, 0.2–0.35 s of pure-Python import on the first block of a threaded fit while the
+#: other block threads wait on the import lock (measured with stack dumps of a one-pass fit).
+SYNCHRONOUS = dask.local.get_sync
 
 @dataclass
 class PassRecord:
@@ -165,7 +172,7 @@ class PassRunner:
         window = 2 * self.threads
 
         def work(i):
-            (block,) = dask.compute(blocks[i], scheduler="synchronous")
+            (block,) = dask.compute(blocks[i], scheduler=SYNCHRONOUS)
             return task(block, *args)
 
         with ThreadPoolExecutor(max_workers=self.threads, thread_name_prefix="axiscope",
@@ -199,7 +206,7 @@ class PassRunner:
         window = threads + read_ahead
 
         def read(i, slot):
-            (slot[0],) = dask.compute(blocks[i], scheduler="synchronous")
+            (slot[0],) = dask.compute(blocks[i], scheduler=SYNCHRONOUS)
 
         def work(loaded, slot):
             loaded.result()  # re-raises the read's error
