@@ -19,7 +19,7 @@ from axiscope.core.cache import BlockCache
 from axiscope.core.passes import PassRunner, array_from_blocks
 from axiscope.core.plan import plan_blocks
 from axiscope.core.preprocess import statistics_and_sketch
-from axiscope.core.workspace import keep_work_arrays, reused_work_arrays, work_array
+from axiscope.core.workspace import keep_work_arrays, work_array
 from axiscope.io.chunk_bands import ChunkBands
 from axiscope.io.source import orient_block
 
@@ -76,20 +76,22 @@ def test_passes_over_the_cache_run_on_their_own_threads():
 
 
 def test_work_arrays_are_reused_only_where_kept():
-    with reused_work_arrays():
-        a = work_array("x", (10, 4), np.float32)
-        b = work_array("x", (5, 4), np.float32)  # smaller: the same memory
-        c = work_array("y", (10, 4), np.float32)  # another name: its own
-        assert np.shares_memory(a, b) and not np.shares_memory(a, c)
-        assert a.flags.c_contiguous and b.shape == (5, 4) and b.dtype == np.float32
-    assert not np.shares_memory(work_array("x", (10, 4), np.float32), work_array("x", (10, 4), np.float32))
     kept = []
-    thread = threading.Thread(target=lambda: (keep_work_arrays(),
-                                              kept.append(work_array("z", (3,), np.float64)),
-                                              kept.append(work_array("z", (3,), np.float64))))
+
+    def on_a_kept_thread():  # as the pass runner's threads: keep_work_arrays is their initializer
+        keep_work_arrays()
+        kept.append(work_array("x", (10, 4), np.float32))
+        kept.append(work_array("x", (5, 4), np.float32))  # smaller: the same memory
+        kept.append(work_array("y", (10, 4), np.float32))  # another name: its own
+
+    thread = threading.Thread(target=on_a_kept_thread)
     thread.start()
     thread.join()
-    assert np.shares_memory(kept[0], kept[1])
+    a, b, c = kept
+    assert np.shares_memory(a, b) and not np.shares_memory(a, c)
+    assert a.flags.c_contiguous and b.shape == (5, 4) and b.dtype == np.float32
+    # elsewhere (this thread keeps none): a fresh array every time
+    assert not np.shares_memory(work_array("x", (10, 4), np.float32), work_array("x", (10, 4), np.float32))
 
 
 def test_owned_blocks_are_not_copied_and_others_are():

@@ -4,10 +4,11 @@ A block task that needs a block-sized work array (the centred block of the produ
 shifted block of the statistics) used to allocate a fresh one for every block. A fresh
 array of tens of megabytes is mapped anew by the allocator and every page of it faults on
 first touch: measured on 1,000 × 20,000 float32 blocks, ``block - x`` into a fresh array
-67 ms (28 ms of it kernel time) against 27 ms into an array written before. Within
-:func:`reused_work_arrays` (the pass runner's threads, :mod:`axiscope.core.passes`),
-:func:`work_array` returns the calling thread's array of that name again, grown when a
-larger one is asked for; elsewhere (a cluster's workers, direct calls) a fresh array.
+67 ms (28 ms of it kernel time) against 27 ms into an array written before. On a thread
+that keeps its work arrays (:func:`keep_work_arrays`, the initializer of the pass runner's
+threads, :mod:`axiscope.core.passes`), :func:`work_array` returns the calling thread's
+array of that name again, grown when a larger one is asked for; elsewhere (a cluster's
+workers, direct calls) a fresh array.
 
 A work array is valid until the same thread asks for the same name again: a task must not
 return it, or any view of it.
@@ -17,12 +18,10 @@ from __future__ import annotations
 
 import math
 import threading
-from contextlib import contextmanager
-from collections.abc import Iterator
 
 import numpy as np
 
-__all__ = ["work_array", "reused_work_arrays", "keep_work_arrays"]
+__all__ = ["work_array", "keep_work_arrays"]
 
 _local = threading.local()
 
@@ -31,17 +30,6 @@ def keep_work_arrays() -> None:
     """Keep this thread's work arrays from now on (a pool's thread initializer; they are let go
     with the thread)."""
     _local.arrays = {}
-
-
-@contextmanager
-def reused_work_arrays() -> Iterator[None]:
-    """Within the block, :func:`work_array` on this thread hands out the same arrays again."""
-    before = getattr(_local, "arrays", None)
-    _local.arrays = {}
-    try:
-        yield
-    finally:
-        _local.arrays = before
 
 
 def work_array(name: str, shape: tuple[int, ...], dtype) -> np.ndarray:
